@@ -1,0 +1,39 @@
+"""invariance: measurement invariance testing for multi-group factor models."""
+
+from .api import fit_level, fit_levels
+from .data import SampleStats, sample_stats
+from .errors import (
+    ConvergenceWarning,
+    DataError,
+    EstimationError,
+    ImproperSolutionWarning,
+    InvarianceError,
+    InvarianceWarning,
+    SpecificationError,
+)
+from .estimate import fit
+from .model import LEVELS, ModelSpec, Release, Structure, build_level
+from .results import FitResult
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "LEVELS",
+    "ConvergenceWarning",
+    "DataError",
+    "EstimationError",
+    "FitResult",
+    "ImproperSolutionWarning",
+    "InvarianceError",
+    "InvarianceWarning",
+    "ModelSpec",
+    "Release",
+    "SampleStats",
+    "SpecificationError",
+    "Structure",
+    "build_level",
+    "fit",
+    "fit_level",
+    "fit_levels",
+    "sample_stats",
+]

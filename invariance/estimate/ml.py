@@ -1,0 +1,169 @@
+"""The estimation front door: :func:`fit` a :class:`~invariance.model.ModelSpec`.
+
+Complete-data ML from sufficient statistics; standard errors from the expected
+information (or, on request, the observed information: the finite-difference Jacobian
+of the analytic gradient). Improper solutions are named in ``FitResult.problems`` and
+emitted as :class:`~invariance.errors.ImproperSolutionWarning`.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+
+from ..data.moments import SampleStats
+from ..errors import ConvergenceWarning, EstimationError, ImproperSolutionWarning, SpecificationError
+from ..fit import compute_fit
+from ..model.spec import ModelSpec
+from ..results import FitResult
+from .kernels import group_matrices, implied_moments
+from .objective import MLObjective
+from .optimize import minimize
+from .start import start_values
+
+__all__ = ["fit", "diagnose", "observed_information"]
+
+
+def observed_information(obj, theta: np.ndarray, h: float = 1e-6) -> np.ndarray:
+    """Observed Hessian of the objective: central differences of the analytic gradient."""
+    q = theta.size
+    H = np.empty((q, q))
+    for j in range(q):
+        step = h * max(1.0, abs(theta[j]))
+        e = np.zeros(q)
+        e[j] = step
+        gp = obj.derivatives(theta + e, information=False)[1]
+        gm = obj.derivatives(theta - e, information=False)[1]
+        H[:, j] = (gp - gm) / (2 * step)
+    return (H + H.T) / 2
+
+
+def diagnose(spec: ModelSpec, matrices, sigmas, info: np.ndarray | None) -> list[str]:
+    """Name the improper parts of a solution.
+
+    Checks negative residual variances (Heywood cases), non-positive-definite factor
+    (Psi) and implied covariance matrices, and a singular information matrix (naming
+    the parameters in its null space).
+    """
+    problems = []
+    for g, (mats, sigma) in enumerate(zip(matrices, sigmas)):
+        gname = spec.groups[g]
+        theta = mats[3]
+        for i in np.flatnonzero(np.diag(theta) < 0):
+            problems.append(f"negative residual variance of item {spec.items[i]} in group {gname}")
+        psi = mats[2]
+        if psi.size and np.linalg.eigvalsh(psi)[0] < -1e-10:
+            problems.append(f"factor covariance matrix not positive definite in group {gname}")
+        if np.linalg.eigvalsh(sigma)[0] <= 0:
+            problems.append(f"implied covariance matrix not positive definite in group {gname}")
+    if info is not None and info.size:
+        d = np.sqrt(np.clip(np.abs(np.diag(info)), 1e-300, None))
+        scaled = info / np.outer(d, d)
+        w, v = np.linalg.eigh(scaled)
+        null = w < 1e-10 * max(w[-1], 1.0)
+        if null.any():
+            comp = np.abs(v[:, null]).max(axis=1)
+            names = [spec.param_labels[j] for j in np.flatnonzero(comp > 0.1)]
+            problems.append(
+                "singular information matrix (model not identified); parameters involved: "
+                + ", ".join(names[:12])
+                + (" ..." if len(names) > 12 else "")
+            )
+    return problems
+
+
+def fit(
+    spec: ModelSpec,
+    stats: SampleStats,
+    *,
+    information: str = "expected",
+    start: np.ndarray | None = None,
+    max_iter: int = 500,
+) -> FitResult:
+    """Estimate a multi-group model by maximum likelihood.
+
+    Parameters
+    ----------
+    spec
+        The model (see :func:`invariance.model.build_level`).
+    stats
+        Per-group sample statistics, groups in the order of ``spec.groups``.
+    information
+        ``"expected"`` (default) or ``"observed"`` information for standard errors.
+    start
+        Starting parameter vector; chosen from the data when omitted.
+    max_iter
+        Iteration limit of the scoring runs.
+
+    Returns
+    -------
+    FitResult
+    """
+    if information not in ("expected", "observed"):
+        raise SpecificationError(
+            f"The information for standard errors must be 'expected' or 'observed'; got {information!r}."
+        )
+    if tuple(stats.names) != tuple(spec.groups):
+        stats = stats.subset(spec.groups)
+    if tuple(stats.items) != tuple(spec.items):
+        stats = stats.reorder_items(spec.items)
+    obj = MLObjective(spec, stats)
+    x0 = start_values(spec, stats) if start is None else np.asarray(start, dtype=float)
+    out = minimize(obj, x0, max_iter=max_iter)
+    if not np.isfinite(out.fun):
+        raise EstimationError(
+            f"The {spec.level or 'model'} model could not be estimated: {out.message}; "
+            "check the model structure and the items of each factor."
+        )
+    theta = out.x
+    matrices = tuple(group_matrices(lay, theta) for lay in obj.layouts)
+    moments = [implied_moments(m)[:2] for m in matrices]
+    sigmas = tuple(s for s, _ in moments)
+    mus = tuple(mu for _, mu in moments)
+    info = out.info
+    if info is None:
+        info = obj.derivatives(theta)[2]
+    if information == "observed":
+        info_se = observed_information(obj, theta)
+    else:
+        info_se = info
+    problems = diagnose(spec, matrices, sigmas, info_se)
+    acov = None
+    if not any(p.startswith("singular information") for p in problems):
+        try:
+            # T = -2 logL + const: the information of logL is half the Hessian of T
+            acov = 2.0 * np.linalg.inv(info_se)
+        except np.linalg.LinAlgError:
+            acov = None
+    if not out.converged:
+        problems.insert(0, f"not converged: {out.message}")
+        warnings.warn(f"{spec.level or 'model'}: {out.message}", ConvergenceWarning, stacklevel=2)
+    for p in problems:
+        if not p.startswith("not converged"):
+            warnings.warn(f"{spec.level or 'model'}: {p}", ImproperSolutionWarning, stacklevel=2)
+    fs = compute_fit(
+        out.fun,
+        spec.df,
+        spec.n_params,
+        obj.S,
+        obj.mean,
+        sigmas,
+        mus,
+        obj.n,
+    )
+    return FitResult(
+        spec=spec,
+        estimator="ml",
+        theta=theta,
+        acov=acov,
+        converged=out.converged,
+        status=out.message,
+        iterations=out.iterations,
+        fit=fs,
+        problems=tuple(problems),
+        matrices=matrices,
+        sigma=sigmas,
+        mu=mus,
+        group_n=tuple(int(g.n) for g in stats.groups),
+    )

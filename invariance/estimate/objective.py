@@ -1,0 +1,92 @@
+"""Objectives the optimizer minimizes: each gives a value, an analytic gradient and an
+expected information, summed over groups.
+
+An objective is any object with
+
+* ``n_params``
+* ``value(theta) -> float``  (``inf`` outside the admissible region)
+* ``derivatives(theta) -> (value, gradient, information)``
+
+Estimators (ML now; FIML and DWLS plug in the same way) are objectives; the optimizer in
+:mod:`invariance.estimate.optimize` serves them all.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..data.moments import SampleStats
+from ..model.spec import ModelSpec
+from .kernels import compile_spec, group_matrices, implied_moments, ml_derivatives, ml_discrepancy, moment_jacobian
+
+__all__ = ["MLObjective"]
+
+
+class MLObjective:
+    """Normal-theory ML from per-group sufficient statistics.
+
+    The value is the test statistic T = sum_g N_g F_g (METHODS section 2); the
+    information is the expected Hessian of T, sum_g N_g E[d2F_g].
+    """
+
+    def __init__(self, spec: ModelSpec, stats: SampleStats) -> None:
+        self.spec = spec
+        self.stats = stats
+        self.layouts = compile_spec(spec)
+        self.n_params = spec.n_params
+        self.n = np.array([g.n for g in stats.groups], dtype=float)
+        self.S = [g.cov for g in stats.groups]
+        self.mean = [g.mean for g in stats.groups]
+        self.logdet_s = [float(np.linalg.slogdet(s)[1]) for s in self.S]
+
+    def moments(self, theta: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
+        """Implied (Sigma, mu) of every group."""
+        out = []
+        for lay in self.layouts:
+            sigma, mu, _, _ = implied_moments(group_matrices(lay, theta))
+            out.append((sigma, mu))
+        return out
+
+    def group_values(self, theta: np.ndarray) -> np.ndarray:
+        """F_g of every group."""
+        f = np.empty(len(self.layouts))
+        for g, lay in enumerate(self.layouts):
+            sigma, mu, _, _ = implied_moments(group_matrices(lay, theta))
+            f[g] = ml_discrepancy(sigma, mu, self.S[g], self.mean[g], self.logdet_s[g])
+        return f
+
+    def value(self, theta: np.ndarray) -> float:
+        try:
+            return float(self.n @ self.group_values(theta))
+        except np.linalg.LinAlgError:
+            return np.inf
+
+    def jacobians(self, theta: np.ndarray):
+        """Per group: (matrices, Sigma, mu, dS, dm) at ``theta`` (local parameters)."""
+        out = []
+        for lay in self.layouts:
+            mats = group_matrices(lay, theta)
+            sigma, mu, G, A = implied_moments(mats)
+            dS, dm = moment_jacobian(lay, mats, G, A)
+            out.append((mats, sigma, mu, dS, dm))
+        return out
+
+    def derivatives(self, theta: np.ndarray, *, information: bool = True):
+        q = self.n_params
+        grad = np.zeros(q)
+        info = np.zeros((q, q)) if information else None
+        total = 0.0
+        for g, lay in enumerate(self.layouts):
+            mats = group_matrices(lay, theta)
+            sigma, mu, G, A = implied_moments(mats)
+            f = ml_discrepancy(sigma, mu, self.S[g], self.mean[g], self.logdet_s[g])
+            if not np.isfinite(f):
+                raise np.linalg.LinAlgError("implied covariance not positive definite")
+            dS, dm = moment_jacobian(lay, mats, G, A)
+            gg, hh, _ = ml_derivatives(sigma, mu, self.S[g], self.mean[g], dS, dm, information=information)
+            u = lay.params
+            total += self.n[g] * f
+            grad[u] += self.n[g] * gg
+            if information:
+                info[np.ix_(u, u)] += self.n[g] * hh
+        return total, grad, info

@@ -1,0 +1,124 @@
+"""The optimizer: Fisher scoring with step halving, and a quasi-Newton fallback.
+
+One front door, :func:`minimize`, serves every objective (see
+:mod:`invariance.estimate.objective`). Stop reasons come from the fixed table
+:data:`STATUS`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import optimize as _sopt
+
+__all__ = ["STATUS", "Outcome", "minimize"]
+
+#: Fixed table of stop reasons: code -> message.
+STATUS = {
+    0: "converged",
+    1: "iteration limit reached before convergence",
+    2: "no step decreased the objective (line search failed)",
+    3: "the starting values give an implied covariance matrix that is not positive definite",
+    4: "converged by the quasi-Newton fallback",
+    5: "the quasi-Newton fallback did not converge",
+}
+
+
+@dataclass(frozen=True)
+class Outcome:
+    """What the optimizer returns (one type for every objective)."""
+
+    x: np.ndarray
+    fun: float
+    grad: np.ndarray
+    info: np.ndarray | None
+    status: int
+    iterations: int
+
+    @property
+    def converged(self) -> bool:
+        return self.status in (0, 4)
+
+    @property
+    def message(self) -> str:
+        return STATUS[self.status]
+
+
+def _solve(info: np.ndarray, grad: np.ndarray) -> np.ndarray:
+    """Scoring step -info^-1 grad, regularized when info is (near) singular."""
+    try:
+        c = np.linalg.cholesky(info)
+        y = np.linalg.solve(c, grad)
+        return -np.linalg.solve(c.T, y)
+    except np.linalg.LinAlgError:
+        scale = max(np.abs(np.diag(info)).max(), 1.0)
+        return -np.linalg.solve(info + 1e-8 * scale * np.eye(info.shape[0]), grad)
+
+
+def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float):
+    try:
+        f, g, h = obj.derivatives(x)
+    except np.linalg.LinAlgError:
+        return x, np.inf, None, None, 3, 0
+    for it in range(1, max_iter + 1):
+        step = _solve(h, g)
+        decrement = -float(g @ step)
+        if decrement < tol * max(1.0, abs(f)) and np.max(np.abs(step)) < 1e-5:
+            return x, f, g, h, 0, it - 1
+        t = 1.0
+        for _ in range(30):
+            xn = x + t * step
+            fn = obj.value(xn)
+            if np.isfinite(fn) and fn <= f + 1e-4 * t * float(g @ step):
+                break
+            t *= 0.5
+        else:
+            return x, f, g, h, 2, it
+        x = xn
+        try:
+            f, g, h = obj.derivatives(x)
+        except np.linalg.LinAlgError:
+            return x, np.inf, None, None, 2, it
+    return x, f, g, h, 1, max_iter
+
+
+def minimize(obj, x0: np.ndarray, *, max_iter: int = 500, tol: float = 1e-12) -> Outcome:
+    """Minimize ``obj`` from ``x0``.
+
+    Fisher scoring (Gauss-Newton with the expected information) with backtracking;
+    if it stalls, L-BFGS-B with the analytic gradient, then scoring again to polish.
+
+    Parameters
+    ----------
+    obj
+        An objective (``value``, ``derivatives``, ``n_params``).
+    x0
+        Starting vector.
+    max_iter
+        Iteration limit of each scoring run.
+    tol
+        Convergence tolerance on the Newton decrement, relative to the objective.
+    """
+    x0 = np.asarray(x0, dtype=float)
+    x, f, g, h, status, it = _scoring(obj, x0, max_iter=max_iter, tol=tol)
+    if status == 0:
+        return Outcome(x, f, g, h, 0, it)
+    if status == 3:
+        return Outcome(x, np.inf, np.full_like(x, np.nan), None, 3, 0)
+
+    def fun(z):
+        try:
+            v, gr, _ = obj.derivatives(z, information=False)
+        except np.linalg.LinAlgError:
+            return 1e20, np.zeros_like(z)
+        return v, gr
+
+    res = _sopt.minimize(fun, x, jac=True, method="L-BFGS-B", options={"maxiter": 20000, "ftol": 1e-15, "gtol": 1e-9})
+    x2, f2, g2, h2, st2, it2 = _scoring(obj, res.x, max_iter=max_iter, tol=tol)
+    total = it + int(res.nit) + it2
+    if st2 == 0:
+        return Outcome(x2, f2, g2, h2, 4, total)
+    if f2 is not None and np.isfinite(f2) and g2 is not None:
+        return Outcome(x2, f2, g2, h2, 5 if status != 1 else 1, total)
+    return Outcome(x, f, g, h, status, total)

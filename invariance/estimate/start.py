@@ -1,0 +1,108 @@
+"""Starting values from the sample moments.
+
+Loadings come from average inter-item correlations (a one-factor approximation per
+factor: r_ij ~ l_i l_j), which is close enough for Fisher scoring to converge in a few
+steps, bifactor models included: the general loadings use all items, the specific
+loadings what the general factor leaves of the within-factor correlations.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..data.moments import SampleStats
+from ..model.spec import ALPHA, BETA, LAMBDA, NU, PSI, THETA, ModelSpec
+
+__all__ = ["start_values"]
+
+
+def _mean_offdiag(block: np.ndarray) -> np.ndarray:
+    n = block.shape[0]
+    if n < 2:
+        return np.full(n, 0.5)
+    return (block.sum(axis=1) - np.diag(block)) / (n - 1)
+
+
+def _group_starts(spec: ModelSpec, g: int, S: np.ndarray, mean: np.ndarray) -> np.ndarray:
+    """Start value for every entry of group ``g`` (nan where not applicable)."""
+    sd = np.sqrt(np.diag(S))
+    R = S / np.outer(sd, sd)
+    p = len(spec.items)
+    idx = spec.group_entries(g)
+    mats, rows, cols = spec.matrix[idx], spec.row[idx], spec.col[idx]
+    lam_sel = mats == LAMBDA
+    # sign of each item: its loading on the first principal component
+    w, v = np.linalg.eigh(R)
+    pc = v[:, -1] * np.sign(v[:, -1].sum() or 1.0)
+    sign = np.where(pc < 0, -1.0, 1.0)
+    Rs = R * np.outer(sign, sign)
+    # factor -> items that load on it
+    load_items: dict[int, list[int]] = {}
+    for r, c in zip(rows[lam_sel], cols[lam_sel]):
+        load_items.setdefault(int(c), []).append(int(r))
+    # a factor is "general" when it loads on every item and other factors exist
+    std_load = np.zeros((p, len(spec.factors)))
+    general = [f for f, its in load_items.items() if len(its) == p and len(load_items) > 1]
+    lg = np.zeros(p)
+    for f in general:
+        lg = np.sqrt(np.clip(_mean_offdiag(Rs), 0.02, 0.9))
+        std_load[:, f] = lg
+    for f, its in load_items.items():
+        if f in general:
+            continue
+        its = np.array(its)
+        block = Rs[np.ix_(its, its)] - np.outer(lg[its], lg[its])
+        std_load[its, f] = np.sqrt(np.clip(_mean_offdiag(block), 0.02, 0.9))
+    std_load *= sign[:, None]
+    out = np.full(idx.size, np.nan)
+    for k, (mat, r, c) in enumerate(zip(mats, rows, cols)):
+        if mat == LAMBDA:
+            out[k] = std_load[r, c] * sd[r]
+        elif mat == THETA:
+            if r == c:
+                h2 = np.sum(std_load[r] ** 2)
+                out[k] = S[r, r] * max(1.0 - h2, 0.2)
+            else:
+                out[k] = 0.0
+        elif mat == NU:
+            out[k] = mean[r]
+        elif mat == PSI:
+            if r == c:
+                out[k] = 1.0
+            else:
+                a, b = load_items.get(int(r), []), load_items.get(int(c), [])
+                if a and b:
+                    sa = (Rs[np.ix_(a, b)]).mean()
+                    la, lb = std_load[a, r].mean(), std_load[b, c].mean()
+                    est = sa / max(abs(la * lb), 1e-3)
+                    out[k] = float(np.clip(est, -0.8, 0.8))
+                else:
+                    out[k] = 0.0
+        elif mat == BETA:
+            out[k] = 0.5 if len(load_items.get(int(r), [])) else 0.0
+        elif mat == ALPHA:
+            out[k] = 0.0
+    return out
+
+
+def start_values(spec: ModelSpec, stats: SampleStats) -> np.ndarray:
+    """A starting parameter vector for ``spec`` given the sample statistics.
+
+    Entries with a finite start in ``spec.value`` keep it; a label shared by several
+    groups starts at the average of its per-group values.
+    """
+    total = np.zeros(spec.n_params)
+    count = np.zeros(spec.n_params)
+    param = spec.param_index
+    for g, gs in enumerate(stats.groups):
+        idx = spec.group_entries(g)
+        st = _group_starts(spec, g, gs.cov, gs.mean)
+        given = spec.value[idx]
+        st = np.where(np.isfinite(given), given, st)
+        for k, v in zip(idx, st):
+            j = param[k]
+            if j >= 0 and np.isfinite(v):
+                total[j] += v
+                count[j] += 1
+    theta = np.where(count > 0, total / np.maximum(count, 1), 0.0)
+    return theta

@@ -1,0 +1,17 @@
+"""Model specification: structures, invariance levels and the entry table."""
+
+from .levels import LEVELS, build_level, level_rank
+from .spec import MATRICES, PARAMETER_KINDS, ModelSpec, Release
+from .structure import FAMILIES, Structure
+
+__all__ = [
+    "FAMILIES",
+    "LEVELS",
+    "MATRICES",
+    "PARAMETER_KINDS",
+    "ModelSpec",
+    "Release",
+    "Structure",
+    "build_level",
+    "level_rank",
+]

@@ -1,0 +1,162 @@
+"""Invariance levels: the constraints and identification of each nested model.
+
+Identification follows METHODS section 3 (Meredith 1993; Widaman & Reise 1997): factors
+are scaled by fixing variances, so every loading is free (needed for bifactor models).
+
+=============  ========  ==========  =========  ======================  ==================
+level          loadings  intercepts  residuals  factor variances        factor means
+=============  ========  ==========  =========  ======================  ==================
+configural     free      free        free       1 in every group        0 in every group
+metric         equal     free        free       1 in ref, free else     0
+scalar         equal     equal       free       1 in ref, free else     0 in ref, free else
+strict         equal     equal       equal      1 in ref, free else     0 in ref, free else
+=============  ========  ==========  =========  ======================  ==================
+
+Second-order models (Chen, Sousa & West 2005): ``metric`` holds the first-order and the
+second-order loadings equal; ``scalar`` holds item intercepts and first-order factor
+intercepts equal (both fixed at 0, so the higher-order mean is free outside the
+reference group). Structural paths and factor covariances stay free in every group
+through the measurement levels; the structural levels constrain them.
+Residual covariances are held equal at ``strict`` together with the residual variances.
+"""
+
+from __future__ import annotations
+
+from typing import Iterable, Sequence
+
+import numpy as np
+
+from ..errors import SpecificationError
+from .spec import ALPHA, BETA, LAMBDA, NU, PSI, THETA, ModelSpec, Release
+from .structure import Structure
+
+__all__ = ["LEVELS", "build_level", "level_rank"]
+
+LEVELS = ("configural", "metric", "scalar", "strict")
+
+
+def level_rank(level: str) -> int:
+    """Position of a measurement level in :data:`LEVELS`."""
+    try:
+        return LEVELS.index(level)
+    except ValueError:
+        raise SpecificationError(
+            f"Unknown invariance level {level!r}; use one of {', '.join(LEVELS)}."
+        ) from None
+
+
+def build_level(
+    structure: Structure,
+    groups: Sequence[str],
+    level: str,
+    *,
+    reference: str | None = None,
+    released: Iterable[Release] = (),
+) -> ModelSpec:
+    """Build the multi-group model of one invariance level.
+
+    Parameters
+    ----------
+    structure
+        The measurement structure shared by all groups.
+    groups
+        Group names, in data order. One group gives a single-group model.
+    level
+        One of :data:`LEVELS`.
+    reference
+        The reference group (variances 1 and means 0 there); the first group by default.
+    released
+        Constraints released up front (known partial invariance).
+
+    Returns
+    -------
+    ModelSpec
+    """
+    rank = level_rank(level)
+    groups = tuple(str(g) for g in groups)
+    if not groups:
+        raise SpecificationError("At least one group is needed to build a model.")
+    if len(set(groups)) != len(groups):
+        raise SpecificationError("Group names must be unique.")
+    ref = groups[0] if reference is None else str(reference)
+    if ref not in groups:
+        raise SpecificationError(
+            f"The reference group {ref!r} is not among the groups ({', '.join(groups)})."
+        )
+    items = structure.items
+    factors = structure.factor_names
+    it_ix = {v: k for k, v in enumerate(items)}
+    f_ix = {v: k for k, v in enumerate(factors)}
+    endo = set(structure.endogenous)
+    rows: list[tuple] = []  # (group, matrix, row, col, free, label, value)
+
+    def add(g, mat, r, c, free, label="", value=np.nan):
+        rows.append((g, mat, r, c, free, label if free else "", value if (free or not np.isnan(value)) else 0.0))
+
+    shared_load = rank >= 1
+    shared_int = rank >= 2
+    shared_res = rank >= 3
+    for g, gname in enumerate(groups):
+        is_ref = gname == ref
+        tag = f"|{gname}"
+        # loadings
+        for f, its in structure.measured_by.items():
+            for it in its:
+                lab = f"loading:{it}<-{f}"
+                add(g, LAMBDA, it_ix[it], f_ix[f], True, lab if shared_load else lab + tag)
+        # second-order loadings (B entries) and structural paths
+        if structure.family == "second_order":
+            for f in structure.factors:
+                lab = f"path:{f}<-{structure.general}"
+                add(g, BETA, f_ix[f], f_ix[structure.general], True, lab if shared_load else lab + tag)
+        for out, pred in structure.regressions:
+            add(g, BETA, f_ix[out], f_ix[pred], True, f"path:{out}<-{pred}{tag}")
+        # factor (disturbance) variances
+        for f in factors:
+            if rank == 0 or is_ref:
+                add(g, PSI, f_ix[f], f_ix[f], False, value=1.0)
+            else:
+                add(g, PSI, f_ix[f], f_ix[f], True, f"variance:{f}{tag}")
+        # factor covariances among exogenous factors (correlated / single families)
+        if structure.family in ("correlated", "single"):
+            exo = [f for f in factors if f not in endo]
+            for a in range(len(exo)):
+                for b in range(a):
+                    i, j = f_ix[exo[a]], f_ix[exo[b]]
+                    r, c = max(i, j), min(i, j)
+                    add(g, PSI, r, c, True, f"covariance:{factors[r]}~{factors[c]}{tag}")
+        # residual variances and covariances
+        for it in items:
+            lab = f"residual:{it}"
+            add(g, THETA, it_ix[it], it_ix[it], True, lab if shared_res else lab + tag)
+        for a, b in structure.residual_covariances:
+            i, j = it_ix[a], it_ix[b]
+            r, c = max(i, j), min(i, j)
+            lab = f"residual_cov:{items[r]}~{items[c]}"
+            add(g, THETA, r, c, True, lab if shared_res else lab + tag)
+        # intercepts
+        for it in items:
+            lab = f"intercept:{it}"
+            add(g, NU, it_ix[it], 0, True, lab if shared_int else lab + tag)
+        # factor means: only the top of the hierarchy gets a free mean at scalar+
+        for f in factors:
+            top = not (structure.family == "second_order" and f in structure.factors)
+            if rank >= 2 and not is_ref and top:
+                add(g, ALPHA, f_ix[f], 0, True, f"mean:{f}{tag}")
+    g_, m_, r_, c_, fr_, lb_, v_ = zip(*rows)
+    spec = ModelSpec(
+        items=items,
+        factors=factors,
+        groups=groups,
+        group=np.array(g_),
+        matrix=np.array(m_),
+        row=np.array(r_),
+        col=np.array(c_),
+        free=np.array(fr_),
+        label=np.array(lb_, dtype=object),
+        value=np.array(v_, dtype=float),
+        level=level,
+        reference=ref,
+    )
+    spec = spec.release_all(released)
+    return spec
