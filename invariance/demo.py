@@ -11,7 +11,7 @@ Planted effects (on the continuous response scale, before cutting into five cate
 
 * site ridge: the general-factor loading of so04 is 0.22 instead of 0.62;
 * site mesa: the intercepts of so03 and so09 are shifted up by 0.50;
-* occupation maintenance: the intercept of so11 is shifted (+0.60).
+* occupation maintenance: the intercept of so11 is shifted up by 0.80.
 
 Sites also differ in the mean and variance of the general factor (true differences,
 which invariance testing must not mistake for bias). About 0.5% of the answers are the
@@ -46,7 +46,7 @@ PLANTED = (
     ("site", "ridge", "loading", "so04", GENERAL, -0.40),
     ("site", "mesa", "intercept", "so03", None, 0.50),
     ("site", "mesa", "intercept", "so09", None, 0.50),
-    ("occupation", "maintenance", "intercept", "so11", None, 0.60),
+    ("occupation", "maintenance", "intercept", "so11", None, 0.80),
 )
 
 

@@ -171,8 +171,16 @@ def validate_document(doc: Mapping) -> None:
             err = e
             break
     while err.context:
-        unknown = [c for c in err.context if c.validator == "additionalProperties"]
-        err = unknown[0] if unknown else jsonschema.exceptions.best_match(err.context)
+        flat = list(_descendants(err))
+        unknown = [c for c in flat if c.validator == "additionalProperties"]
+        if unknown:
+            err = unknown[0]
+            break
+        # prefer the branch whose type matched: drop bare type/enum mismatches
+        matched = [c for c in err.context if c.validator not in ("type", "enum")]
+        err = matched[0] if matched else jsonschema.exceptions.best_match(err.context)
+        if not err.context:
+            break
     where = _path_text(err.absolute_path)
     if err.validator == "additionalProperties":
         allowed = sorted(err.schema.get("properties", {}))
@@ -186,6 +194,12 @@ def validate_document(doc: Mapping) -> None:
         missing = err.message.split("'")[1] if "'" in err.message else err.message
         raise SpecificationError(f"Required key {missing!r} is missing from {sect}; add it.")
     raise SpecificationError(f"Invalid value for {where}: {err.message}; fix it (see the pipeline reference in README.md).")
+
+
+def _descendants(err):
+    for c in err.context or ():
+        yield c
+        yield from _descendants(c)
 
 
 def _levels(levels) -> tuple[str, ...]:
