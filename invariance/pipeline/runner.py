@@ -183,7 +183,11 @@ def run(
     if not quiet:
         print(format_table(results))
         if out_dir is not None:
-            print(f"\nOutputs written to {out_dir}")
+            try:
+                shown = out_dir.relative_to(pathlib.Path.cwd().resolve())
+            except ValueError:
+                shown = out_dir
+            print(f"\nOutputs written to {shown}")
     return RunResult(
         results=_freeze(results),
         estimates=estimates,
