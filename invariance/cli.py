@@ -117,6 +117,10 @@ def main(argv: list[str] | None = None) -> int:
     except FileNotFoundError as exc:
         print(f"error: file not found: {exc.filename}; check the path", file=sys.stderr)
         return 2
+    except OSError as exc:  # unreadable input, unwritable output folder
+        where = f": {exc.filename}" if getattr(exc, "filename", None) else ""
+        print(f"error: {exc.strerror or exc}{where}; check the path and its permissions", file=sys.stderr)
+        return 2
     except KeyboardInterrupt:
         print("error: interrupted", file=sys.stderr)
         return 1

@@ -4,7 +4,12 @@
 left there (the data, the statistics, the fitted models) and adds its own objects. The
 dict a stage returns is merged into results.json, so it must hold plain JSON values.
 A later feature adds one function here (or in its own module) and one entry in
-:data:`STAGES`, plus a section in schema.json for its options.
+:data:`STAGES`, plus a section in schema.json for its options (read it with
+``spec.section(name)``). Useful state keys: ``checked`` (:class:`~invariance.data.CheckedData`),
+``stats`` (:class:`~invariance.data.SampleStats`), ``reference``, ``models``
+(level -> ModelSpec), ``fits`` (level -> FitResult), ``level_rows`` (the level entries
+of results.json, which a later stage may update in place, e.g. to ``holds_partially``),
+``warnings`` (list of strings).
 """
 
 from __future__ import annotations
@@ -21,9 +26,13 @@ from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
 from .load import PipelineSpec, thaw
 
-__all__ = ["STAGES", "Stage", "stage_data", "stage_stats", "stage_levels", "stage_fits", "stage_summary", "FIT_KEYS"]
+__all__ = ["FITTERS", "STAGES", "Stage", "stage_data", "stage_stats", "stage_levels", "stage_fits", "stage_summary", "FIT_KEYS"]
 
 Stage = Callable[[PipelineSpec, dict], dict]
+
+#: Estimator name (pipeline key ``estimator``) -> fitting function ``(spec, stats) -> FitResult``.
+#: A new estimator registers here and adds its name to the schema's ``estimator`` enum.
+FITTERS: dict[str, Callable] = {"ml": ml_fit}
 
 #: Fit statistics copied into each level of results.json.
 FIT_KEYS = ("chi2", "df", "pvalue", "cfi", "tli", "rmsea", "rmsea_ci90", "srmr", "aic", "bic")
@@ -101,10 +110,16 @@ def stage_levels(spec: PipelineSpec, state: dict) -> dict:
     }
 
 
-def _fit_one(model, stats):
+def _fit_one(model, stats, estimator: str = "ml"):
+    try:
+        fitter = FITTERS[estimator]
+    except KeyError:
+        raise SpecificationError(
+            f"Estimator {estimator!r} is not available; use one of {', '.join(FITTERS)}."
+        ) from None
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", InvarianceWarning)
-        res = ml_fit(model, stats)
+        res = fitter(model, stats)
     notes = [str(w.message) for w in caught if issubclass(w.category, InvarianceWarning)]
     return res, notes
 
@@ -147,7 +162,7 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
         if stopped is not None:
             rows.append(_not_tested(lv, stopped))
             continue
-        res, notes = _fit_one(state["models"][lv], stats)
+        res, notes = _fit_one(state["models"][lv], stats, spec.estimator)
         fits[lv] = res
         row = _level_row(lv, res, res.spec.released)
         if lv == "configural":
