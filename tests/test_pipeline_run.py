@@ -144,3 +144,38 @@ def test_check_fits_nothing(hs_dir):
 def test_stages_are_extensible():
     names = [n for n, _ in runner.STAGES]
     assert names == ["data", "stats", "levels", "fits", "summary"]
+
+
+def test_existing_foreign_folder_is_never_replaced(hs_dir):
+    from invariance.errors import SpecificationError
+
+    keep = hs_dir / "mine"
+    keep.mkdir()
+    (keep / "thesis.tex").write_text("precious")
+    doc = hs_doc(str(hs_dir / "hs.csv"), levels=["configural"])
+    with pytest.raises(SpecificationError, match="not the output of an earlier run"):
+        invariance.run(doc, out=keep, quiet=True)
+    assert (keep / "thesis.tex").read_text() == "precious"
+    # an earlier run's folder is replaced
+    first = invariance.run(doc, out=hs_dir / "again", quiet=True)
+    second = invariance.run(doc, out=hs_dir / "again", quiet=True)
+    assert first.out_dir == second.out_dir and (second.out_dir / "results.json").is_file()
+
+
+def test_spss_without_extra_gives_clear_error(tmp_path, monkeypatch):
+    import builtins
+
+    from invariance.data import read_table
+    from invariance.errors import DataError
+
+    real = builtins.__import__
+
+    def fake(name, *a, **k):
+        if name == "pyreadstat":
+            raise ImportError("no pyreadstat")
+        return real(name, *a, **k)
+
+    (tmp_path / "x.sav").write_bytes(b"not really")
+    monkeypatch.setattr(builtins, "__import__", fake)
+    with pytest.raises(DataError, match=r"optional extra 'spss'"):
+        read_table(tmp_path / "x.sav")

@@ -10,7 +10,7 @@ from types import MappingProxyType
 from typing import Any, Mapping
 
 from .load import PipelineSpec, load_pipeline, thaw
-from .output import format_table, level_table, to_json, write_outputs
+from .output import check_destination, format_table, level_table, to_json, write_outputs
 from .stages import STAGES, stage_data, stage_stats
 
 __all__ = ["RunResult", "run", "check", "default_out_dir"]
@@ -156,6 +156,11 @@ def run(
     RunResult
     """
     spec = load_pipeline(pipeline)
+    out_dir = pathlib.Path(out).resolve() if out is not None else default_out_dir(spec)
+    if write is False:
+        out_dir = None
+    if out_dir is not None:
+        check_destination(out_dir)
     stages = list(STAGES)
     if crosscheck:
         from .crosscheck import stage_crosscheck
@@ -164,9 +169,6 @@ def run(
     results, state = run_stages(spec, stages)
     results = json.loads(to_json(results))
     estimates = _estimates(state["fits"])
-    out_dir = pathlib.Path(out).resolve() if out is not None else default_out_dir(spec)
-    if write is False:
-        out_dir = None
     if out_dir is not None:
         from ..report import write_reports
 
