@@ -37,6 +37,26 @@ def test_levels_reproduce_check_values(hs_all_levels):
     assert metric["delta"]["df"] == 6
     assert metric["delta"]["cfi"] == pytest.approx(metric["cfi"] - d["levels"][0]["cfi"])
     assert scalar["delta"]["chi2"] == pytest.approx(164.103 - 124.044, abs=3e-3)
+    # Cheung & Rensvold (2002) / Chen (2007): the scalar dCFI (about -0.04) is far past -0.01
+    assert [lv["decision"] for lv in d["levels"]] == ["holds", "holds", "fails", "fails"]
+    # with stop_at_failure false, strict is compared with the last accepted level (metric)
+    strict = d["levels"][3]
+    assert strict["compared_with"] == "metric"
+    assert strict["delta"]["df"] == 69 - 54
+    assert strict["delta"]["chi2"] == pytest.approx(181.511 - 124.044, abs=3e-3)
+    assert d["supported_level"] == "metric"
+
+
+def test_group_order_and_reference_do_not_change_fit(hs_dir, hs_all_levels):
+    # property check (STYLE 7): the chi-square of each level does not depend on group order
+    _, res = hs_all_levels
+    doc = hs_doc(str(hs_dir / "hs.csv"), levels=["configural", "metric", "scalar"])
+    doc["data"]["groups"] = ["Pasteur", "Grant-White"]
+    doc["data"]["reference"] = "Pasteur"
+    d = invariance.run(doc, quiet=True).to_dict()
+    assert d["reference_group"] == "Pasteur" and list(d["groups"]) == ["Pasteur", "Grant-White"]
+    for a, b in zip(d["levels"], res.to_dict()["levels"]):
+        assert a["chi2"] == pytest.approx(b["chi2"], rel=1e-6)
 
 
 def test_results_json_has_every_field(hs_all_levels):

@@ -179,9 +179,9 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
         if verdict["decision"] == "holds":
             accepted = (lv, row)
         elif lv == "configural":
-            stopped = "not tested: the configural model was not supported"
+            stopped = "the configural model was not supported"
         elif spec.stop_at_failure:
-            stopped = f"not tested: {lv} failed and decision.stop_at_failure is true"
+            stopped = f"{lv} failed and decision.stop_at_failure is true"
     state["fits"] = fits
     state["level_rows"] = rows
     return {"levels": rows, "flagged": []}
