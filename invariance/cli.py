@@ -7,7 +7,6 @@ on stderr, no traceback), 1 internal error.
 from __future__ import annotations
 
 import argparse
-import pathlib
 import sys
 import warnings
 

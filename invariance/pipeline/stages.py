@@ -198,8 +198,9 @@ def stage_summary(spec: PipelineSpec, state: dict) -> dict:
         n_total <= 300 or max(ns) > 1.5 * min(ns)
     ):
         notes.append(
-            "Chen (2007) recommends the small-sample cutoffs when N <= 300 or groups are unbalanced: "
-            "set decision.cutoffs: chen2007_small"
+            f"total N = {n_total}, group sizes {min(ns)} to {max(ns)}: Chen (2007) recommends the "
+            "small-sample cutoffs when N <= 300 or groups are unbalanced (here: the largest group more "
+            "than 1.5 times the smallest): consider decision.cutoffs: chen2007_small"
         )
     state.setdefault("warnings", []).extend(notes)
     if best is None:
