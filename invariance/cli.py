@@ -26,6 +26,9 @@ class _Usage(Exception):
 
 def build_parser() -> argparse.ArgumentParser:
     p = _Parser(prog="invariance", description="Measurement invariance testing from one pipeline file.")
+    from . import __version__
+
+    p.add_argument("--version", action="version", version=f"invariance {__version__}")
     sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     r = sub.add_parser("run", help="fit the levels of a pipeline, decide, write the outputs")
     r.add_argument("pipeline", help="pipeline YAML file")

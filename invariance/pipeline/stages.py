@@ -26,7 +26,7 @@ from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
 from .load import PipelineSpec, thaw
 
-__all__ = ["FITTERS", "STAGES", "Stage", "stage_data", "stage_stats", "stage_levels", "stage_fits", "stage_summary", "FIT_KEYS"]
+__all__ = ["FITTERS", "STAGES", "Stage", "add_stage", "stage_data", "stage_stats", "stage_levels", "stage_fits", "stage_summary", "FIT_KEYS"]
 
 Stage = Callable[[PipelineSpec, dict], dict]
 
@@ -224,3 +224,27 @@ STAGES: list[tuple[str, Stage]] = [
     ("fits", stage_fits),
     ("summary", stage_summary),
 ]
+
+
+def add_stage(name: str, stage: Stage, *, after: str | None = None) -> None:
+    """Register a stage (once per name) so every later run calls it.
+
+    Parameters
+    ----------
+    name
+        Stage name; registering a name again replaces that stage.
+    stage
+        ``stage(spec, state) -> dict``; the dict is merged into results.json.
+    after
+        Name of the stage it follows (default: the end of the list).
+    """
+    names = [n for n, _ in STAGES]
+    if name in names:
+        STAGES[names.index(name)] = (name, stage)
+        return
+    if after is None:
+        STAGES.append((name, stage))
+        return
+    if after not in names:
+        raise ValueError(f"Unknown stage {after!r}; the stages are {', '.join(names)}.")
+    STAGES.insert(names.index(after) + 1, (name, stage))
