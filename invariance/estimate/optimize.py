@@ -17,6 +17,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize as _sopt
 
+from .linalg import arrow_solve
+
 __all__ = ["STATUS", "Outcome", "minimize"]
 
 #: Fixed table of stop reasons: code -> message.
@@ -50,15 +52,22 @@ class Outcome:
         return STATUS[self.status]
 
 
-def _solve(info: np.ndarray, grad: np.ndarray) -> np.ndarray:
-    """Scoring step -info^-1 grad, regularized when info is (near) singular."""
-    try:
-        c = np.linalg.cholesky(info)
-        y = np.linalg.solve(c, grad)
-        return -np.linalg.solve(c.T, y)
-    except np.linalg.LinAlgError:
-        scale = max(np.abs(np.diag(info)).max(), 1.0)
-        return -np.linalg.solve(info + 1e-8 * scale * np.eye(info.shape[0]), grad)
+def _solve(info: np.ndarray, grad: np.ndarray, part=None) -> np.ndarray:
+    """Scoring step -info^-1 grad (arrow-structured when ``part`` is given), with a
+    growing ridge when info is (near) singular or indefinite."""
+    scale = max(np.abs(np.diag(info)).max(), 1.0)
+    ridge = 0.0
+    eye = np.eye(info.shape[0])
+    for _ in range(8):
+        try:
+            M = info + ridge * scale * eye if ridge else info
+            if part is not None:
+                return -arrow_solve(M, grad, part)
+            c = np.linalg.cholesky(M)
+            return -np.linalg.solve(c.T, np.linalg.solve(c, grad))
+        except np.linalg.LinAlgError:
+            ridge = 1e-8 if not ridge else ridge * 100
+    return -np.linalg.lstsq(info, grad, rcond=None)[0]
 
 
 def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float):
@@ -67,18 +76,18 @@ def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float):
     except np.linalg.LinAlgError:
         return x, np.inf, None, None, 3, 0
     newton = hasattr(obj, "hessian")
+    part = getattr(obj, "partition", None)
     decrement = np.inf
     for it in range(1, max_iter + 1):
         step = None
         if newton and decrement < 1.0:
             try:
                 hx = obj.hessian(x)
-                np.linalg.cholesky(hx)
-                step = _solve(hx, g)
+                step = -arrow_solve(hx, g, part) if part is not None else -np.linalg.solve(np.linalg.cholesky(hx).T, np.linalg.solve(np.linalg.cholesky(hx), g))
             except np.linalg.LinAlgError:
                 step = None
         if step is None:
-            step = _solve(h, g)
+            step = _solve(h, g, part)
         decrement = -float(g @ step)
         if decrement < tol * max(1.0, abs(f)) and np.max(np.abs(step)) < 1e-5:
             return x, f, g, h, 0, it - 1
