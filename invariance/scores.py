@@ -36,7 +36,7 @@ from typing import Sequence
 
 import numpy as np
 
-from .errors import DataError, SpecificationError
+from .errors import DataError, EstimationError, SpecificationError
 from .results import FitResult
 
 __all__ = ["SCORE_METHODS", "score_weights", "score_cases", "determinacy", "FactorScores", "factor_scores"]
@@ -78,6 +78,11 @@ def score_weights(
         return np.linalg.solve(sigma, C).T
     if method != "bartlett":
         raise SpecificationError(f"The score method must be one of {', '.join(SCORE_METHODS)}; got {method!r}.")
+    if np.any(np.diag(theta) <= 0):
+        raise EstimationError(
+            "Bartlett scores need positive residual variances and the solution has a zero or "
+            "negative one (an improper solution); use the regression method or revise the model."
+        )
     m = lam.shape[1]
     W = np.zeros((m, lam.shape[0]))
     direct = np.flatnonzero(np.abs(lam).sum(axis=0) > 0)
@@ -191,6 +196,10 @@ class FactorScores:
     statement: str
     id_column: str
     notes: tuple[str, ...] = field(default_factory=tuple)
+
+    def to_csv(self, path) -> None:
+        """Write the per-case scores (id, group, factors) to a CSV file."""
+        self.table.to_csv(path, index=False)
 
     def to_dict(self) -> dict:
         """Plain-type summary for results.json (without the per-case scores)."""

@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 
 from invariance import Structure, fit_level
-from invariance.errors import DataError, SpecificationError
+from invariance.errors import DataError, EstimationError, SpecificationError
 from invariance.model import Release
 from invariance.scores import determinacy, factor_scores, score_cases
 
@@ -112,7 +112,7 @@ def _two_group_frame(rng):
 STRUCT = Structure(factors={"alpha": ("q1", "q2", "q3"), "beta": ("q4", "q5", "q6")})
 
 
-def test_factor_scores_table_one_row_per_case_used():
+def test_factor_scores_table_one_row_per_case_used(tmp_path):
     rng = np.random.default_rng(14)
     d = _two_group_frame(rng)
     res = fit_level(d, STRUCT, "scalar", group="site")
@@ -134,6 +134,12 @@ def test_factor_scores_table_one_row_per_case_used():
     full = factor_scores(res, d, group="site", incomplete=True)
     assert len(full.table) == len(d) and full.id_column == "row"
     assert full.table.loc[3, ["alpha", "beta"]].notna().all()
+    # scores.csv: one row per case used, read back unchanged
+    path = tmp_path / "scores.csv"
+    fs.to_csv(path)
+    back = pd.read_csv(path)
+    assert len(back) == len(fs.table) and list(back.columns) == list(fs.table.columns)
+    assert np.allclose(back.alpha, fs.table.alpha)
 
 
 def test_partial_model_statement_and_errors():
@@ -142,6 +148,10 @@ def test_partial_model_statement_and_errors():
     res = fit_level(d, STRUCT, "scalar", group="site", released=[Release("intercept", "q3")])
     fs = factor_scores(res, d, group="site")
     assert "partial" in fs.statement and "intercept of q3" in fs.statement
+    bad = list(_population())
+    bad[3] = np.diag([0.5, -0.1, 0.7, 0.4, 0.8, 0.5])
+    with pytest.raises(EstimationError, match="positive residual variances"):
+        score_cases(bad, np.zeros((2, 6)), method="bartlett")
     with pytest.raises(SpecificationError, match="score method"):
         factor_scores(res, d, group="site", method="mean")
     with pytest.raises(SpecificationError, match="name the grouping column"):
@@ -150,3 +160,24 @@ def test_partial_model_statement_and_errors():
     d2.loc[1, "case"] = d2.loc[0, "case"]
     with pytest.raises(DataError, match="repeats the value"):
         factor_scores(res, d2, group="site", id="case")
+
+
+def test_bifactor_scores_unbiased_and_determinacy():
+    # Bartlett (1937) with a general factor over all items and three orthogonal specifics;
+    # Grice (2001) determinacy as the correlation of regression scores with the factor
+    rng = np.random.default_rng(16)
+    p, m = 9, 4
+    lam = np.zeros((p, m))
+    lam[:, 0] = 0.6
+    for k in range(3):
+        lam[3 * k : 3 * k + 3, k + 1] = [0.5, 0.4, 0.6]
+    mats = (lam, np.zeros((m, m)), np.eye(m), np.eye(p) * 0.4, np.zeros(p), np.zeros(m))
+    eta = rng.normal(size=(40000, m))
+    x = eta @ lam.T + rng.normal(scale=np.sqrt(0.4), size=(40000, p))
+    s = score_cases(mats, x, method="bartlett")
+    sel = np.abs(eta[:, 0] - 1.0) < 0.05
+    assert s[sel, 0].mean() == pytest.approx(1.0, abs=0.06)
+    rho, _ = determinacy(mats)
+    r = score_cases(mats, x, method="regression")
+    for f in range(m):
+        assert np.corrcoef(r[:, f], eta[:, f])[0, 1] == pytest.approx(rho[f], abs=0.015)
