@@ -328,11 +328,14 @@ class GroupFit:
         The rule applied (thresholds and source).
     results
         Group -> :class:`FitResult` (``None`` where estimation failed).
+    messages
+        One warning sentence per failing group, naming it.
     """
 
     rows: tuple[dict, ...]
     rule: dict
     results: dict = field(repr=False)
+    messages: tuple[str, ...] = ()
 
     @property
     def failing(self) -> tuple[str, ...]:
@@ -340,7 +343,12 @@ class GroupFit:
         return tuple(r["group"] for r in self.rows if not r["acceptable"])
 
     def to_dict(self) -> dict:
-        return {"rule": dict(self.rule), "groups": [dict(r) for r in self.rows], "failing": list(self.failing)}
+        return {
+            "rule": dict(self.rule),
+            "groups": [dict(r) for r in self.rows],
+            "failing": list(self.failing),
+            "messages": list(self.messages),
+        }
 
 
 def group_fit(
@@ -363,7 +371,7 @@ def group_fit(
         if not (isinstance(v, (int, float)) and 0 <= v <= 1):
             raise SpecificationError(f"The {name!r} parameter of group_fit must be a number in [0, 1]; got {v!r}.")
     stats = _stats_for(data, structure.items, group)
-    rows, results = [], {}
+    rows, results, messages = [], {}, []
     for g in stats.names:
         res, probs = _quiet_fit(structure, stats.subset([g]))
         results[g] = res
@@ -376,8 +384,9 @@ def group_fit(
         else:
             if not res.converged:
                 reasons.append("the solution did not converge")
-            if res.problems:
-                reasons.append("the solution is improper (" + "; ".join(res.problems) + ")")
+            improper = [p for p in res.problems if not p.startswith("not converged")]
+            if improper:
+                reasons.append("the solution is improper (" + "; ".join(improper) + ")")
             if row["cfi"] is not None and row["cfi"] < cfi_min:
                 reasons.append(f"CFI {row['cfi']:.3f} < {cfi_min:.2f}")
             if row["rmsea"] is not None and row["rmsea"] > rmsea_max:
@@ -385,18 +394,18 @@ def group_fit(
         row["acceptable"] = not reasons
         row["reasons"] = reasons
         rows.append(row)
-        if reasons and warn:
-            warnings.warn(
+        if reasons:
+            messages.append(
                 f"The {structure.family} structure does not fit acceptably in group {g}: "
                 + "; ".join(reasons)
-                + "; revise the structure before testing invariance, or drop the group.",
-                InvarianceWarning,
-                stacklevel=2,
+                + "; revise the structure before testing invariance, or drop the group."
             )
+            if warn:
+                warnings.warn(messages[-1], InvarianceWarning, stacklevel=2)
     rule = {
         "cfi_min": cfi_min,
         "rmsea_max": rmsea_max,
         "also": "converged and no improper estimate",
         "source": "common practice (Hu & Bentler 1999 propose stricter cut-offs)",
     }
-    return GroupFit(rows=tuple(rows), rule=rule, results=results)
+    return GroupFit(rows=tuple(rows), rule=rule, results=results, messages=tuple(messages))
