@@ -65,7 +65,7 @@ def _cmd_check(args) -> int:
     info = check(args.pipeline)
     print(f"Pipeline {info['pipeline']}: valid. Data {info['data_file']}: {len(info['items'])} items, "
           f"group column {info['group_column']!r}, reference group {info['reference_group']}, model {info['family']}.")
-    print(f"Levels to fit: {', '.join(info['levels'])}.")
+    print("Levels to fit: " + ", ".join(f"{lv} ({q} free parameters)" for lv, q in info["free_parameters"].items()) + ".")
     print(f"{'group':<16}{'rows':>7}{'complete':>10}  missing values by item")
     for g, rows in info["rows"].items():
         miss = {k: v for k, v in info["missing"][g].items() if v}

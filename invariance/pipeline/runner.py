@@ -11,7 +11,7 @@ from typing import Any, Mapping
 
 from .load import PipelineSpec, load_pipeline, thaw
 from .output import check_destination, format_table, level_table, to_json, write_outputs
-from .stages import STAGES, stage_data, stage_stats
+from .stages import STAGES, stage_data, stage_levels, stage_stats
 
 __all__ = ["RunResult", "run", "check", "default_out_dir"]
 
@@ -209,7 +209,7 @@ def check(pipeline) -> dict:
         ``reference_group``, ``items`` and ``warnings``.
     """
     spec = load_pipeline(pipeline)
-    results, state = run_stages(spec, [("data", stage_data), ("stats", stage_stats)])
+    results, state = run_stages(spec, [("data", stage_data), ("stats", stage_stats), ("levels", stage_levels)])
     checked = state["checked"]
     return {
         "pipeline": str(spec.source) if spec.source else None,
@@ -222,6 +222,7 @@ def check(pipeline) -> dict:
         "missing": {g: dict(v) for g, v in checked.missing.items()},
         "levels": list(spec.levels),
         "family": spec.structure.family,
+        "free_parameters": results["free_parameters"],
         "warnings": results["warnings"],
     }
 
