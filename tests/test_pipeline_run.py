@@ -199,3 +199,24 @@ def test_spss_without_extra_gives_clear_error(tmp_path, monkeypatch):
     monkeypatch.setattr(builtins, "__import__", fake)
     with pytest.raises(DataError, match=r"optional extra 'spss'"):
         read_table(tmp_path / "x.sav")
+
+
+def test_unconverged_configural_is_not_called_noninvariance(hs_dir, monkeypatch):
+    from invariance.pipeline import stages
+
+    real = stages.FITTERS["ml"]
+
+    def no_convergence(model, stats):
+        import dataclasses
+
+        res = real(model, stats)
+        msg = "iteration limit reached before convergence"
+        return dataclasses.replace(res, converged=False, status=msg, problems=(f"not converged: {msg}",))
+
+    monkeypatch.setitem(stages.FITTERS, "ml", no_convergence)
+    d = invariance.run(hs_doc(str(hs_dir / "hs.csv")), quiet=True).to_dict()
+    assert d["levels"][0]["converged"] is False
+    assert d["levels"][0]["decision"] == "fails"
+    assert [lv["decision"] for lv in d["levels"][1:]] == ["not_tested"] * 3
+    assert d["supported_level"] is None
+    assert "did not converge" in d["verdict"]

@@ -203,10 +203,25 @@ def stage_summary(spec: PipelineSpec, state: dict) -> dict:
             "than 1.5 times the smallest): consider decision.cutoffs: chen2007_small"
         )
     state.setdefault("warnings", []).extend(notes)
-    if best is None:
+    first_bad = next((r for r in rows if r["decision"] not in ("holds", "holds_partially")), None)
+    estimation_failed = first_bad is not None and (
+        first_bad["converged"] is False
+        or (first_bad["level"] == "configural" and any(not p.startswith("not converged") for p in first_bad["problems"]))
+    )
+    if best is None and estimation_failed:
+        verdict = (
+            "The configural model did not converge to a proper solution, so no level could be judged: "
+            "check the factor structure, the items and the group sizes before reading any result."
+        )
+    elif best is None:
         verdict = "The data do not support even configural invariance: " + PERMITS[None] + "."
     else:
         verdict = f"The data support {best} invariance: {PERMITS[best]}."
+        if estimation_failed:
+            verdict += (
+                f" (The {first_bad['level']} model did not converge, so that step could not be judged; "
+                "a higher level may still hold.)"
+            )
     return {
         "supported_level": best,
         "permits": PERMITS[best],
