@@ -172,10 +172,13 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
             base_level, base_row = accepted
             delta = level_delta(row, base_row)
             verdict = judge_step(delta, lv, rule, converged=res.converged)
+            improper = [p for p in res.problems if not p.startswith("not converged")]
+            if improper and res.converged:
+                verdict["reason"] += "; caution, improper solution: " + "; ".join(improper)
             row.update({"delta": delta, "compared_with": base_level})
         row.update(verdict)
         rows.append(row)
-        state.setdefault("warnings", []).extend(f"{lv}: {n}" for n in notes)
+        state.setdefault("warnings", []).extend(n if n.startswith(f"{lv}:") else f"{lv}: {n}" for n in notes)
         if verdict["decision"] == "holds":
             accepted = (lv, row)
         elif lv == "configural":
