@@ -192,3 +192,14 @@ def test_demo_command_writes_data_and_pipelines(tmp_path):
     assert proc.returncode == 0, proc.stderr
     names = sorted(p.name for p in (tmp_path / "d").iterdir())
     assert names == ["shift_outlook.csv", "shift_outlook_by_occupation.yaml", "shift_outlook_by_site.yaml"]
+
+
+def test_internal_error_exits_1(monkeypatch, capsys, tmp_path):
+    import invariance.cli as cli
+
+    def boom(args):
+        raise RuntimeError("bug")
+
+    monkeypatch.setitem(cli.COMMANDS, "check", boom)
+    assert cli.main(["check", str(tmp_path / "p.yaml")]) == 1
+    assert "internal error: RuntimeError: bug" in capsys.readouterr().err
