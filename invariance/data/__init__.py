@@ -1,5 +1,19 @@
 """Data: reading files, missing codes, checks and per-group statistics."""
 
-from .moments import GroupStats, SampleStats, sample_stats, stats_from_arrays
+from .em import EMResult, Patterns, em_saturated, missing_patterns
+from .mcar import LittleTest, little_mcar
+from .moments import GroupStats, MissingInfo, SampleStats, sample_stats, stats_from_arrays
 
-__all__ = ["GroupStats", "SampleStats", "sample_stats", "stats_from_arrays"]
+__all__ = [
+    "EMResult",
+    "GroupStats",
+    "LittleTest",
+    "MissingInfo",
+    "Patterns",
+    "SampleStats",
+    "em_saturated",
+    "little_mcar",
+    "missing_patterns",
+    "sample_stats",
+    "stats_from_arrays",
+]
