@@ -178,6 +178,7 @@ def test_mcar_deletion_estimates_close_and_counts_right(hs):
         assert set(rep) == set(s.names) and all("little" in v for v in rep.values())
 
 
+@pytest.mark.filterwarnings("ignore::invariance.ImproperSolutionWarning")
 def test_listwise_is_the_default_and_reported(hs):
     d = _delete(hs, 0.05, 9)
     X = d[ITEMS].to_numpy(dtype=float)

@@ -139,7 +139,12 @@ def fit(
     full_info = any(g.has_missing for g in stats.groups)
     obj = FIMLObjective(spec, stats) if full_info else MLObjective(spec, stats)
     x0 = start_values(spec, stats) if start is None else np.asarray(start, dtype=float)
-    out = minimize(obj, x0, max_iter=max_iter)
+    tol = 1e-12
+    if full_info:
+        # T is a difference of casewise log-likelihoods of size |logL_H1|: allow for their
+        # rounding error in the convergence test (it is far below any reported digit)
+        tol = max(tol, 2e-14 * abs(2.0 * obj.loglik_h1) / max(1.0, float(spec.df)))
+    out = minimize(obj, x0, max_iter=max_iter, tol=tol)
     if not np.isfinite(out.fun):
         raise EstimationError(
             f"The {spec.level or 'model'} model could not be estimated: {out.message}; "

@@ -12,9 +12,13 @@ analytic moment Jacobian.
   the saturated information and B1 = sum_i z_i z_i' at the H1 estimates (sample moments,
   or EM with missing data: Yuan & Bentler 2000). With complete data this is exactly the
   distribution-free covariance of (x_i, vech (x_i - xbar)(x_i - xbar)') (Browne 1984).
-* Scaling: U = V - V Delta (Delta' V Delta)^-1 Delta' V with V the saturated information
-  at the implied moments; c = tr(U Gamma) / df; T_scaled = T / c (Satorra & Bentler 1994).
-  Groups enter block-diagonally (Satorra 1993). tr(U Gamma) >= 0 by construction.
+* Scaling: U = V - V Delta (Delta' V Delta)^-1 Delta' V, c = tr(U Gamma) / df,
+  T_scaled = T / c (Satorra & Bentler 1994). V is the saturated normal-theory
+  information evaluated at the H1 estimates (not at the implied moments): both are
+  consistent under a correct model, but only this choice gives c -> 1 for normal data
+  also when the model is wrong (the baseline model, a rejected invariance level),
+  because then Gamma -> V^-1 and tr(U Gamma) -> p* - q. Delta is taken at the
+  estimates. Groups enter block-diagonally (Satorra 1993); tr(U Gamma) >= 0.
 * Robust RMSEA, CFI and TLI replace each noncentrality estimate T - df by T - c df, with
   the baseline model's own c (Brosseau-Liard, Savalei & Li 2012; Brosseau-Liard &
   Savalei 2014; the formulas here are from memory of those papers).
@@ -134,14 +138,16 @@ class H1Moments:
 
     def __init__(self, stats: SampleStats) -> None:
         self.stats = stats
-        self.x, self.pat, self.gamma = [], [], []
+        self.x, self.pat, self.gamma, self.V = [], [], [], []
         for g in stats.groups:
             x = _group_raw(g)
             pat = missing_patterns(x)
             Z = saturated_scores(x, pat, g.mean, g.cov)
-            Ainv = np.linalg.inv(saturated_information(pat, g.mean, g.cov))
+            V = saturated_information(pat, g.mean, g.cov)
+            Ainv = np.linalg.inv(V)
             self.x.append(x)
             self.pat.append(pat)
+            self.V.append(V)
             self.gamma.append(Ainv @ (Z.T @ Z) @ Ainv)
 
     @property
@@ -178,28 +184,23 @@ def _trace(blocks, q: int) -> float:
 
 def scaling_trace(spec: ModelSpec, theta: np.ndarray, h1: H1Moments) -> float:
     """tr(U Gamma) of the model ``spec`` at ``theta`` (Satorra & Bentler 1994)."""
-    blocks = []
-    for (u, D, sigma, mu), pat, Gam in zip(_group_parts(spec, theta), h1.pat, h1.gamma):
-        blocks.append((u, D, saturated_information(pat, mu, sigma), Gam))
+    blocks = [(u, D, V, Gam) for (u, D, _, _), V, Gam in zip(_group_parts(spec, theta), h1.V, h1.gamma)]
     return _trace(blocks, spec.n_params)
 
 
 def baseline_trace(h1: H1Moments) -> float:
     """tr(U Gamma) of the baseline model: free means and variances, zero covariances.
 
-    The baseline estimates are each item's mean and variance over its observed values
-    (the ML estimates of a diagonal covariance model, with or without missing data).
+    Its Jacobian selects the means and variances; it does not depend on the estimates.
     """
     blocks = []
     q = 0
-    for x, pat, Gam in zip(h1.x, h1.pat, h1.gamma):
+    for x, V, Gam in zip(h1.x, h1.V, h1.gamma):
         p = x.shape[1]
         r, c = _vech(p)
         D = np.zeros((p + r.size, 2 * p))
         D[np.arange(p), np.arange(p)] = 1.0
         D[p + np.flatnonzero(r == c), p + np.arange(p)] = 1.0
-        mean, var = np.nanmean(x, axis=0), np.nanvar(x, axis=0)
-        V = saturated_information(pat, mean, np.diag(var))
         blocks.append((np.arange(q, q + 2 * p), D, V, Gam))
         q += 2 * p
     return _trace(blocks, q)
