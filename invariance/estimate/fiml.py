@@ -24,6 +24,7 @@ from ..data.em import em_saturated, missing_patterns, pattern_loglik
 from ..data.moments import SampleStats
 from ..model.spec import ModelSpec
 from .kernels import compile_spec, group_matrices, implied_moments, ml_derivatives, moment_jacobian
+from .linalg import partition
 
 __all__ = ["FIMLObjective", "independence_loglik"]
 
@@ -87,6 +88,8 @@ class FIMLObjective:
         self.S = [g.cov for g in stats.groups]
         self.mean = [g.mean for g in stats.groups]
         self.loglik_h1 = float(sum(d.loglik_h1 for d in self.data))
+        #: shared vs group-local parameters: the information matrix is arrow-shaped
+        self.partition = partition([lay.params for lay in self.layouts], self.n_params)
 
     # -- likelihood -----------------------------------------------------------------
     def loglik(self, theta: np.ndarray) -> float:
