@@ -227,10 +227,11 @@ def _skewed_small(seed):
 
 
 def test_strictly_positive_version_positive_where_2001_is_negative():
-    # seed 145 found by a search over small skewed samples: the 2001 c_d is negative there.
+    # seed 434 found by a search over 2000 small skewed samples (c_d < 0 in 2 of them):
+    # the 2001 c_d is negative there (-0.248).
     # Satorra & Bentler (2010): c_d = tr((U0 - U1(theta0)) Gamma)/ddf >= 0 always.
     items = ["a", "b", "c", "d"]
-    s = stats_from_arrays(_skewed_small(145), ["g1", "g2"], items)
+    s = stats_from_arrays(_skewed_small(434), ["g1", "g2"], items)
     st = Structure(factors={"f": items})
     sp0 = build_level(st, s.names, "scalar")
     sp1 = sp0.release("intercept", "d")

@@ -1,7 +1,7 @@
 """Data: reading files, missing codes, checks and per-group statistics."""
 
 from .em import EMResult, Patterns, em_saturated, missing_patterns
-from .mcar import LittleTest, little_mcar
+from .mcar import LittleTest, little_mcar, missing_report
 from .moments import GroupStats, MissingInfo, SampleStats, sample_stats, stats_from_arrays
 
 __all__ = [
@@ -14,6 +14,7 @@ __all__ = [
     "em_saturated",
     "little_mcar",
     "missing_patterns",
+    "missing_report",
     "sample_stats",
     "stats_from_arrays",
 ]

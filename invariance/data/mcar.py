@@ -20,7 +20,7 @@ from scipy import stats as _st
 
 from .em import em_saturated, missing_patterns
 
-__all__ = ["LittleTest", "little_mcar"]
+__all__ = ["LittleTest", "little_mcar", "missing_report"]
 
 
 @dataclass(frozen=True)
@@ -80,3 +80,22 @@ def little_mcar(
         d2 += rows.size * float(diff @ np.linalg.solve(cov[np.ix_(o, o)], diff))
     pval = float(_st.chi2.sf(d2, df)) if df > 0 else float("nan")
     return LittleTest(float(d2), int(df), pval, pat.n_patterns, int(x.shape[0]))
+
+
+def missing_report(stats) -> dict:
+    """Per group, how missing values were handled, as plain types.
+
+    For each group with a :class:`~invariance.data.moments.MissingInfo` record: the
+    method (``fiml`` or ``listwise``), rows in the data, cases used and dropped, the
+    number of patterns, the coverage of each item, and (full information with more
+    than one pattern) Little's MCAR test under ``"little"``.
+    """
+    out = {}
+    for g in stats.groups:
+        if g.missing is None:
+            continue
+        d = g.missing.to_dict(stats.items)
+        if g.missing.method == "fiml" and g.missing.n_patterns > 1:
+            d["little"] = little_mcar(g.raw, mean=g.mean, cov=g.cov).to_dict()
+        out[g.name] = d
+    return out

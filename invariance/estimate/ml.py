@@ -21,7 +21,7 @@ from scipy import stats as _st
 
 from ..data.moments import SampleStats
 from ..errors import ConvergenceWarning, EstimationError, ImproperSolutionWarning, SpecificationError
-from ..data.mcar import little_mcar
+from ..data.mcar import missing_report
 from ..fit import cfi as _cfi
 from ..fit import compute_fit, information_criteria
 from ..fit import tli as _tli
@@ -200,7 +200,7 @@ def fit(
         fs = _full_information_fit(fs, obj, spec)
         extra["likelihood"] = "full_information"
     if any(g.missing is not None for g in stats.groups):
-        extra["missing"] = _missing_report(stats)
+        extra["missing"] = missing_report(stats)
     if estimator == "ml_robust":
         acov = _robust(extra, spec, stats, theta, info_se, acov, fs)
     return FitResult(
@@ -238,19 +238,6 @@ def _full_information_fit(fs, obj: FIMLObjective, spec: ModelSpec):
         cfi=_cfi(fs.chi2, fs.df, t_b, fs.baseline_df),
         tli=_tli(fs.chi2, fs.df, t_b, fs.baseline_df),
     )
-
-
-def _missing_report(stats: SampleStats) -> dict:
-    """Per group: cases used and dropped, patterns, coverage, Little's MCAR test."""
-    out = {}
-    for g in stats.groups:
-        if g.missing is None:
-            continue
-        d = g.missing.to_dict(stats.items)
-        if g.missing.method == "fiml" and g.missing.n_patterns > 1:
-            d["little"] = little_mcar(g.raw, mean=g.mean, cov=g.cov).to_dict()
-        out[g.name] = d
-    return out
 
 
 def _robust(extra: dict, spec: ModelSpec, stats: SampleStats, theta, info_se, acov, fs):
