@@ -10,8 +10,11 @@ analytic moment Jacobian.
   B = sum_i (Delta' z_i)(Delta' z_i)' at the estimates (Huber 1967; White 1982).
 * Gamma: the asymptotic covariance of the saturated estimates, A1^-1 B1 A1^-1 with A1
   the saturated information and B1 = sum_i z_i z_i' at the H1 estimates (sample moments,
-  or EM with missing data: Yuan & Bentler 2000). With complete data this is exactly the
-  distribution-free covariance of (x_i, vech (x_i - xbar)(x_i - xbar)') (Browne 1984).
+  or EM with missing data). With complete data this is exactly the distribution-free
+  covariance of (x_i, vech (x_i - xbar)(x_i - xbar)') (Browne 1984). With missing data
+  A1 is the observed information (central differences of the analytic casewise scores),
+  which stays consistent when data are missing at random (Yuan & Bentler 2000); with
+  complete data observed and expected information coincide at the H1 estimates.
 * Scaling: U = V - V Delta (Delta' V Delta)^-1 Delta' V, c = tr(U Gamma) / df,
   T_scaled = T / c (Satorra & Bentler 1994). V is the saturated normal-theory
   information evaluated at the H1 estimates (not at the implied moments): both are
@@ -30,6 +33,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import weakref
+
 import numpy as np
 from scipy import stats as _st
 
@@ -42,6 +47,7 @@ from .kernels import compile_spec, group_matrices, implied_moments, moment_jacob
 __all__ = [
     "saturated_scores",
     "saturated_information",
+    "saturated_observed_information",
     "vech_jacobian",
     "H1Moments",
     "scaling_trace",
@@ -113,6 +119,33 @@ def saturated_information(pat: Patterns, mean: np.ndarray, cov: np.ndarray) -> n
     return A
 
 
+def saturated_observed_information(x: np.ndarray, pat: Patterns, mean: np.ndarray, cov: np.ndarray, h: float = 1e-5) -> np.ndarray:
+    """Observed information of the saturated model summed over cases.
+
+    Central differences of the analytic score sum in every (mu, vech Sigma) coordinate.
+    """
+    p = cov.shape[0]
+    r, c = _vech(p)
+    k = p + r.size
+    H = np.empty((k, k))
+    scale = np.concatenate([np.sqrt(np.diag(cov)), np.sqrt(np.diag(cov)[r] * np.diag(cov)[c])])
+    for j in range(k):
+        step = h * scale[j]
+        out = []
+        for sgn in (1.0, -1.0):
+            m, S = mean.copy(), cov.copy()
+            if j < p:
+                m[j] += sgn * step
+            else:
+                a, b = r[j - p], c[j - p]
+                S[a, b] += sgn * step
+                if a != b:
+                    S[b, a] += sgn * step
+            out.append(saturated_scores(x, pat, m, S).sum(axis=0))
+        H[:, j] = -(out[0] - out[1]) / (2 * step)
+    return (H + H.T) / 2
+
+
 def vech_jacobian(dS: np.ndarray, dm: np.ndarray) -> np.ndarray:
     """Delta = d (mu, vech Sigma) / d theta from the kernels' (u, p, p) and (u, p) arrays."""
     p = dm.shape[1]
@@ -129,26 +162,44 @@ def _group_raw(g: GroupStats) -> np.ndarray:
     return np.asarray(g.raw, dtype=float)
 
 
+_H1_CACHE: "weakref.WeakKeyDictionary[GroupStats, tuple]" = weakref.WeakKeyDictionary()
+
+
+def _h1_group(g: GroupStats) -> tuple:
+    """(x, patterns, V, Gamma) of one group, cached per statistics object."""
+    hit = _H1_CACHE.get(g)
+    if hit is not None:
+        return hit
+    x = _group_raw(g)
+    pat = missing_patterns(x)
+    Z = saturated_scores(x, pat, g.mean, g.cov)
+    if pat.n_patterns > 1 or not pat.observed.all():
+        V = saturated_observed_information(x, pat, g.mean, g.cov)
+    else:
+        V = saturated_information(pat, g.mean, g.cov)
+    Ainv = np.linalg.inv(V)
+    out = (x, pat, V, Ainv @ (Z.T @ Z) @ Ainv)
+    _H1_CACHE[g] = out
+    return out
+
+
 class H1Moments:
-    """Per group: the cases, their patterns and Gamma at the saturated (H1) estimates.
+    """Per group: the cases, their patterns, V and Gamma at the saturated (H1) estimates.
 
     The H1 estimates are the ``mean`` and ``cov`` of each group's statistics (sample
-    moments, or EM estimates under full-information ML).
+    moments, or EM estimates under full-information ML). Results are cached per
+    group-statistics object, so the levels of one analysis share the work.
     """
 
     def __init__(self, stats: SampleStats) -> None:
         self.stats = stats
         self.x, self.pat, self.gamma, self.V = [], [], [], []
         for g in stats.groups:
-            x = _group_raw(g)
-            pat = missing_patterns(x)
-            Z = saturated_scores(x, pat, g.mean, g.cov)
-            V = saturated_information(pat, g.mean, g.cov)
-            Ainv = np.linalg.inv(V)
+            x, pat, V, Gam = _h1_group(g)
             self.x.append(x)
             self.pat.append(pat)
             self.V.append(V)
-            self.gamma.append(Ainv @ (Z.T @ Z) @ Ainv)
+            self.gamma.append(Gam)
 
     @property
     def n(self) -> np.ndarray:
