@@ -106,7 +106,7 @@ def format_table(results: dict) -> str:
         )
     groups = ", ".join(f"{g} {n}" for g, n in results["groups"].items())
     out = [
-        f"{results.get('title', 'invariance')}: {results['estimator']} on complete cases; "
+        f"{results.get('title', 'invariance')}: {results['estimator']} on {results.get('data', {}).get('cases_used', 'complete cases')}; "
         f"groups (N used): {groups}; reference {results['reference_group']}",
         "",
         *lines,

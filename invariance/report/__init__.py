@@ -70,7 +70,7 @@ def write_reports(out_dir: pathlib.Path, results: dict, estimates, context: dict
         f"# {results.get('title', 'Measurement invariance')}",
         "",
         f"Created {context['created']}. Data: `{pathlib.Path(context['data_file']).name}` "
-        f"(SHA-256 `{context['data_sha256'][:16]}...`). Estimator: {results['estimator']} on complete cases.",
+        f"(SHA-256 `{context['data_sha256'][:16]}...`). Estimator: {results['estimator']} on {results.get('data', {}).get('cases_used', 'complete cases')}.",
         "",
         f"Groups: {groups}; reference group {results['reference_group']}.",
         f"Model: {st['family']} with factors "
