@@ -117,3 +117,42 @@ def robust_delta(delta: dict, res, base_res, stats, *, method: str, cache: dict)
     out["test"] = d.test
     out["pvalue"] = None if not np.isfinite(d.pvalue) else float(d.pvalue)
     return out
+
+
+def display_view(results: dict) -> dict:
+    """results.json as the tables show it: under ``ml_robust`` the level and difference
+    statistics are the scaled ones and the indices the robust ones (what decided)."""
+    if results.get("estimator") != "ml_robust":
+        return results
+    view = dict(results)
+    levels = []
+    for lv in results["levels"]:
+        row = dict(lv)
+        if lv.get("chi2_scaled") is not None:
+            row["chi2"] = lv["chi2_scaled"]
+            row["pvalue"] = lv.get("pvalue_scaled")
+        for k in ("cfi", "tli", "rmsea"):
+            if lv.get(f"{k}_robust") is not None:
+                row[k] = lv[f"{k}_robust"]
+        row["rmsea_ci90"] = [None, None]
+        d = lv.get("delta")
+        if d:
+            d = dict(d)
+            d["chi2"] = d.get("chi2_scaled")
+            row["delta"] = d
+        levels.append(row)
+    view["levels"] = levels
+    return view
+
+
+def display_note(results: dict) -> str | None:
+    """One line saying which statistics the tables show under ``ml_robust``."""
+    if results.get("estimator") != "ml_robust":
+        return None
+    tests = sorted({lv["delta"]["test"] for lv in results["levels"] if lv.get("delta") and lv["delta"].get("test")})
+    names = {"satorra_bentler_2001": "Satorra-Bentler 2001", "satorra_bentler_2010": "Satorra-Bentler 2010"}
+    which = ", ".join(names.get(t, t) for t in tests) or "none"
+    return (
+        "Robust ML: chi2 is the scaled statistic T/c, CFI, TLI and RMSEA are the robust indices, "
+        f"dchi2 is the scaled difference ({which}); unscaled values are in results.json."
+    )

@@ -25,6 +25,10 @@ def _f(v, fmt: str) -> str:
 
 
 def _table(results: dict) -> list[str]:
+    from ..pipeline.robust_stage import display_note, display_view
+
+    note = display_note(results)
+    results = display_view(results)
     lines = [
         "| level | chi2 | df | p | CFI | TLI | RMSEA [90% CI] | SRMR | dchi2 (ddf) | p | dCFI | dRMSEA | dSRMR | decision |",
         "|---|---:|---:|---:|---:|---:|---|---:|---|---:|---:|---:|---:|---|",
@@ -40,6 +44,8 @@ def _table(results: dict) -> list[str]:
             f"{_f(d.get('pvalue'), '.3f')} | {_f(d.get('cfi'), '+.4f')} | {_f(d.get('rmsea'), '+.4f')} | "
             f"{_f(d.get('srmr'), '+.4f')} | {lv['decision']} |"
         )
+    if note:
+        lines += ["", note]
     return lines
 
 
