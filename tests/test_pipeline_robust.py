@@ -109,3 +109,16 @@ def test_strictly_positive_difference_on_request(hs_dir):
 def test_unknown_incomplete_value_is_rejected(hs_dir):
     with pytest.raises(SpecificationError, match="data.incomplete"):
         _run(hs_dir, data={"path": "hs.csv", "group": "school", "incomplete": "pairwise"})
+
+
+def test_tables_show_the_statistics_that_decided(hs_dir):
+    from invariance.pipeline.output import format_table, level_table
+
+    res = _run(hs_dir, estimator="ml_robust", levels=["configural", "metric"])
+    text = format_table(res)
+    assert "Robust ML: chi2 is the scaled statistic" in text
+    metric = res["levels"][1]
+    assert f"{metric['chi2_scaled']:.2f}" in text and f"{metric['delta']['chi2_scaled']:.2f}" in text
+    tab = level_table(res)
+    assert tab.loc[1, "d_test"] == "satorra_bentler_2001"
+    assert tab.loc[1, "chi2"] == pytest.approx(metric["chi2"])  # the unscaled value stays in the data
