@@ -1,0 +1,32 @@
+"""Partial invariance: score tests for equality constraints and the sequential release search."""
+
+from .score import Constraint, CopyTest, ScoreTests, SetTest, constraints, map_theta, release_constraint, score_tests
+from .search import (
+    CORRECTIONS,
+    RELEASE_MODES,
+    STOP_REASONS,
+    ReleaseStep,
+    SearchResult,
+    adjust_pvalues,
+    level_parameters,
+    release_search,
+)
+
+__all__ = [
+    "CORRECTIONS",
+    "RELEASE_MODES",
+    "STOP_REASONS",
+    "Constraint",
+    "CopyTest",
+    "ReleaseStep",
+    "ScoreTests",
+    "SearchResult",
+    "SetTest",
+    "adjust_pvalues",
+    "constraints",
+    "level_parameters",
+    "map_theta",
+    "release_constraint",
+    "release_search",
+    "score_tests",
+]
