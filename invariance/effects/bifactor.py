@@ -94,7 +94,8 @@ def bifactor_kernel(
         ``omega``, ``omega_h``, ``ecv``, ``puc`` and per specific factor index a dict
         with ``omega_s``, ``omega_hs``, ``ecv``, ``ecv_subscale``.
     """
-    g, s, t, mem = (np.asarray(a, float) for a in (general, specific, residual)) + (np.asarray(membership),)
+    g, s, t = (np.asarray(a, float) for a in (general, specific, residual))
+    mem = np.asarray(membership)
     facs = [k for k in np.unique(mem) if k >= 0]
     spec_sums = sum(float(s[mem == k].sum()) ** 2 for k in facs)
     common = float(g.sum()) ** 2 + spec_sums
