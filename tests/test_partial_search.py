@@ -8,7 +8,7 @@ from scipy import stats as st
 
 from invariance import SpecificationError, Structure, build_level, fit
 from invariance.data.moments import stats_from_arrays
-from invariance.partial import adjust_pvalues, level_parameters, release_search
+from invariance.partial import adjust_pvalues, flagged_items, level_parameters, release_search
 
 ITEMS = [f"i{k}" for k in range(1, 13)]
 BIFACTOR = Structure(
@@ -85,6 +85,12 @@ def test_recovery_planted(planted):
     assert step.df == 2 and step.adjusted_pvalue < 0.05 and step.chi2_after < step.chi2_before
     d = res[1].to_dict()
     assert d["decision"] == "holds_partially" and d["released"][0]["item"] == "i10"
+    # flagged records sized on the final partial scalar model: the planted loading is a
+    # large difference in C only (.6 vs .2), the planted intercept one in B and C
+    flags = flagged_items(res, planted)
+    assert [(f["item"], f["parameter"], f["level"]) for f in flags] == [("i3", "loading", "metric"), ("i10", "intercept", "scalar")]
+    assert flags[0]["dmacs"]["C"] > 0.3 > flags[0]["dmacs"]["B"]
+    assert min(flags[1]["dmacs"].values()) > 0.2 and flags[1]["dmacs_max"] == max(flags[1]["dmacs"].values())
 
 
 def test_recovery_nothing_planted():

@@ -1,5 +1,6 @@
 """Partial invariance: score tests for equality constraints and the sequential release search."""
 
+from .flags import ITEM_PARAMETERS, flagged_items
 from .score import Constraint, CopyTest, ScoreTests, SetTest, constraints, map_theta, release_constraint, score_tests
 from .search import (
     CORRECTIONS,
@@ -14,6 +15,7 @@ from .search import (
 
 __all__ = [
     "CORRECTIONS",
+    "ITEM_PARAMETERS",
     "RELEASE_MODES",
     "STOP_REASONS",
     "Constraint",
@@ -24,6 +26,7 @@ __all__ = [
     "SetTest",
     "adjust_pvalues",
     "constraints",
+    "flagged_items",
     "level_parameters",
     "map_theta",
     "release_constraint",
