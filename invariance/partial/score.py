@@ -376,7 +376,8 @@ def score_tests(
         for g_ in gs:
             lm, epc = block([cu[(c_i, g_)]])
             e = float(epc[0]) if epc is not None else np.nan
-            uni.append(CopyTest(c, g_, lm, float(_st.chi2.sf(lm, 1)) if np.isfinite(lm) else np.nan, e, float(e * std[(c_i, g_)])))
+            pv = float(_st.chi2.sf(lm, 1)) if np.isfinite(lm) else np.nan
+            uni.append(CopyTest(c, g_, lm, pv, e, float(e * std[(c_i, g_)])))
         free_set = gs if c.fixed else gs[1:]
         if not free_set:
             continue
