@@ -1,6 +1,7 @@
 """Sequential release search: recovery of planted noninvariance (seeded simulation)."""
 
 import concurrent.futures as cf
+import dataclasses
 
 import numpy as np
 import pytest
@@ -120,6 +121,9 @@ def test_max_releases_and_stop_reasons(planted):
     f = fit(build_level(BIFACTOR, planted.names, "metric"), planted)
     r = release_search(f, planted, lambda x: False, max_releases=0)
     assert r.stop_reason == "max_releases" and not r.releases and r.decision == "fails"
+    bad = dataclasses.replace(f, converged=False)
+    r = release_search(bad, planted, lambda x: False)
+    assert r.stop_reason == "not_converged" and not r.releases
     r = release_search(f, planted, lambda x: False, max_releases=5)
     assert r.stop_reason in ("no_significant", "max_releases")
     assert r.releases[0].item == "i3"

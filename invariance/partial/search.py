@@ -60,7 +60,8 @@ STOP_REASONS = {
     "max_releases": "the maximum number of releases was reached",
     "not_confirmed": "no candidate was confirmed by its likelihood-ratio refit",
     "no_candidates": "the level has no testable equality constraint left",
-    "refit_failed": "the model with the constraint released could not be estimated",
+    "refit_failed": "the model with the constraint released could not be estimated or did not converge",
+    "not_converged": "the level's model did not converge; score tests need converged estimates",
 }
 
 _LEVEL_PARAMETERS = {
@@ -318,7 +319,9 @@ def release_search(
     tests: ScoreTests | None = None
     reason = "holds"
     ref = fit.spec.reference
-    while not holds:
+    if not holds and not current.converged:
+        reason = "not_converged"
+    while not holds and reason != "not_converged":
         if len(steps) >= max_releases:
             reason = "max_releases"
             break
@@ -353,7 +356,7 @@ def release_search(
             lr_p = p.copy()
             lr = {}
             for j, rf in zip(top, refits):
-                if rf is None:
+                if rf is None or not rf.converged:
                     lr_p[j] = 1.0
                     continue
                 t_lr = max(current.fit.chi2 - rf.fit.chi2, 0.0)
@@ -371,7 +374,7 @@ def release_search(
             j = sig[0]
             s = release_constraint(current.spec, cands[j][0], cands[j][1])
             rf = _refit((s, stats, map_theta(current.spec, current.theta, s)))
-            if rf is None:
+            if rf is None or not rf.converged:
                 reason = "refit_failed"
                 break
             chosen = (j, rf, None, None, adj[j])
