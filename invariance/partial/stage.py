@@ -140,11 +140,15 @@ def search_level(
     )
 
 
-def release_rows(res: FitResult, search: SearchResult | None) -> list[dict]:
-    """The level's ``released`` list: up-front releases, then the search's steps."""
+def release_rows(res: FitResult, search: SearchResult | None, pipeline_released=()) -> list[dict]:
+    """The level's ``released`` list: every release of its model, in order, marked by
+    ``source``: ``pipeline`` (named in the pipeline file), ``carried`` (found by the
+    search at an earlier level) or ``search`` (found at this level, with its statistic,
+    p-value and effect size)."""
     n_search = len(search.releases) if search is not None else 0
-    upfront = res.spec.released[: len(res.spec.released) - n_search] if n_search else res.spec.released
-    rows = [{**r.to_dict(), "source": "pipeline"} for r in upfront]
+    upto = len(res.spec.released) - n_search
+    pipe = set(pipeline_released)
+    rows = [{**r.to_dict(), "source": "pipeline" if r in pipe else "carried"} for r in res.spec.released[:upto]]
     if search is not None:
         rows += [{**s.to_dict(), "source": "search"} for s in search.releases]
     return rows

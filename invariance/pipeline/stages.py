@@ -19,6 +19,7 @@ from ..data.read import apply_missing, file_sha256, read_table
 from ..errors import DataError, InvarianceWarning, SpecificationError
 from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
+from ..partial.stage import stage_effects
 from .load import PipelineSpec, thaw
 
 __all__ = ["STAGES", "Stage", "stage_data", "stage_stats", "stage_levels", "stage_fits", "stage_summary", "FIT_KEYS"]
@@ -137,19 +138,33 @@ def _not_tested(level: str, why: str) -> dict:
 
 
 def stage_fits(spec: PipelineSpec, state: dict) -> dict:
-    """Fit the levels in order; compare each with the previous accepted level and judge it."""
+    """Fit the levels in order; compare each with the previous accepted level and judge it.
+
+    With a ``partial:`` section, a failed measurement level is handed to the release
+    search (:mod:`invariance.partial`); its releases are carried into the later levels.
+    """
+    from ..partial.stage import partial_settings, release_rows, search_level
+
     stats = state["stats"]
     rule = spec.rule
+    partial = partial_settings(spec.section("partial"))
     fits, rows = {}, []
     accepted = None  # (level, row) of the last level that held
     stopped = None
+    carried: tuple = ()  # releases made by the search, carried to later levels
+    searches = []
     for lv in spec.levels:
         if stopped is not None:
             rows.append(_not_tested(lv, stopped))
             continue
-        res, notes = _fit_one(state["models"][lv], stats)
+        model = state["models"][lv]
+        if carried:
+            model = build_level(spec.structure, stats.names, lv, reference=state["reference"],
+                                released=spec.released + carried)
+        res, notes = _fit_one(model, stats)
         fits[lv] = res
         row = _level_row(lv, res, res.spec.released)
+        search = None
         if lv == "configural":
             verdict = judge_configural(row, rule, converged=res.converged, problems=res.problems)
             row.update({"delta": None, "compared_with": None})
@@ -157,11 +172,31 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
             base_level, base_row = accepted
             delta = level_delta(row, base_row)
             verdict = judge_step(delta, lv, rule, converged=res.converged)
+            if verdict["decision"] != "holds" and partial.enabled:
+
+                def verdict_of(f, lv=lv, base_row=base_row):
+                    r = _level_row(lv, f, f.spec.released)
+                    return judge_step(level_delta(r, base_row), lv, rule, converged=f.converged)
+
+                search = search_level(res, stats, verdict_of, partial)
+                searches.append(search)
+                if search.releases:
+                    res = search.fit
+                    fits[lv] = res
+                    row = _level_row(lv, res, res.spec.released)
+                    delta = level_delta(row, base_row)
+                    verdict = verdict_of(res)
+                    if verdict["decision"] == "holds":
+                        verdict = {**verdict, "decision": "holds_partially"}
+                carried = carried + search.released
+                row["partial"] = {k: v for k, v in search.to_dict().items() if k not in ("fit", "releases", "released")}
+            if partial.enabled:
+                row["released"] = release_rows(res, search, spec.released)
             row.update({"delta": delta, "compared_with": base_level})
         row.update(verdict)
         rows.append(row)
         state.setdefault("warnings", []).extend(f"{lv}: {n}" for n in notes)
-        if verdict["decision"] == "holds":
+        if verdict["decision"] in ("holds", "holds_partially"):
             accepted = (lv, row)
         elif lv == "configural":
             stopped = "not tested: the configural model was not supported"
@@ -169,6 +204,7 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
             stopped = f"not tested: {lv} failed and decision.stop_at_failure is true"
     state["fits"] = fits
     state["level_rows"] = rows
+    state["searches"] = searches
     return {"levels": rows, "flagged": []}
 
 
@@ -206,5 +242,6 @@ STAGES: list[tuple[str, Stage]] = [
     ("stats", stage_stats),
     ("levels", stage_levels),
     ("fits", stage_fits),
+    ("effects", stage_effects),
     ("summary", stage_summary),
 ]
