@@ -96,11 +96,14 @@ def test_bifactor_pipeline_recovers_planted_items(tmp_path):
         "levels": ["configural", "metric", "scalar"],
         "decision": {"criteria": ["chi2"]},
         "partial": {"correction": "holm"},
+        "structural": {"levels": ["covariances"]},
     }
     d = invariance.run(doc, quiet=True).to_dict()
     assert [(f["item"], f["parameter"], f["factor"], f["level"]) for f in d["flagged"]] == [
         ("i3", "loading", "g", "metric"), ("i10", "intercept", None, "scalar")]
     assert [r["decision"] for r in d["levels"]] == ["holds", "holds_partially", "holds_partially"]
+    # bifactor factors are orthogonal: there is no covariance to hold equal
+    assert [s["decision"] for s in d["structural"]] == ["not_applicable"]
     assert d["flagged"][0]["dmacs"]["C"] > 0.3
     rel = d["reliability"]["groups"]["A"]
     assert 0 < rel["overall"]["omega_h"] < rel["overall"]["omega"] < 1 and 0 < rel["overall"]["ecv"] < 1

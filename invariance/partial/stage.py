@@ -184,6 +184,10 @@ def _structural(spec, state, base: FitResult, base_row: dict, settings: PartialS
         if spec.structure.family == "second_order" else ()
     for k, step in enumerate(steps):
         mspec = build_structural(base.spec, steps[: k + 1], released=released, second_order_paths=struct_family_so)
+        if mspec.df == accepted_fit.spec.df:
+            rows.append({"level": step, "decision": "not_applicable", "released": [], "tests": [],
+                         "reason": f"the model has no {structural_parameter(step)} to hold equal across groups"})
+            continue
         res, notes = _fit_quiet(mspec, stats)
         state.setdefault("warnings", []).extend(f"{step}: {n}" for n in notes)
 
