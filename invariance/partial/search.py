@@ -21,6 +21,9 @@ Options
     released and judged by the likelihood-ratio statistic instead (more accurate; the
     refits run through ``executor.map``, so a process pool or a distributed backend with
     a ``concurrent.futures``-like ``map`` plugs in).
+``until="clean"``
+    Keep releasing while a constraint is significant, even once the level holds
+    (default ``"holds"``: stop as soon as the judge accepts the level).
 """
 
 from __future__ import annotations
@@ -43,6 +46,7 @@ __all__ = [
     "CORRECTIONS",
     "RELEASE_MODES",
     "STOP_REASONS",
+    "UNTIL",
     "ReleaseStep",
     "SearchResult",
     "adjust_pvalues",
@@ -52,6 +56,7 @@ __all__ = [
 
 CORRECTIONS = ("holm", "bonferroni", "none")
 RELEASE_MODES = ("all", "groups")
+UNTIL = ("holds", "clean")
 
 #: Fixed table of stop reasons.
 STOP_REASONS = {
@@ -193,6 +198,8 @@ class SearchResult:
         The score tests of the last round (``None`` if none were computed).
     options
         The search options used.
+    initial_holds
+        The judge's verdict before any release.
     """
 
     level: str
@@ -203,13 +210,14 @@ class SearchResult:
     stop_reason: str
     tests: ScoreTests | None
     options: dict
+    initial_holds: bool = False
 
     @property
     def decision(self) -> str:
-        """``holds``, ``holds_partially`` (only after releases) or ``fails``."""
+        """``holds``, ``holds_partially`` (holds only after releases) or ``fails``."""
         if not self.holds:
             return "fails"
-        return "holds_partially" if self.releases else "holds"
+        return "holds_partially" if self.releases and not self.initial_holds else "holds"
 
     @property
     def released(self) -> tuple[Release, ...]:
@@ -221,6 +229,7 @@ class SearchResult:
             "level": self.level,
             "decision": self.decision,
             "holds": self.holds,
+            "initial_holds": self.initial_holds,
             "stop_reason": self.stop_reason,
             "stop_message": STOP_REASONS[self.stop_reason],
             "releases": [r.to_dict() for r in self.releases],
@@ -264,6 +273,7 @@ def release_search(
     verify: bool = False,
     verify_top: int = 3,
     executor=None,
+    until: str = "holds",
 ) -> SearchResult:
     """Release constraints of a fitted level one at a time until it holds.
 
@@ -294,6 +304,10 @@ def release_search(
         How many of the most significant candidates to refit when verifying.
     executor
         Object with a ``map(fn, iterable)`` method for the refits (default: serial).
+    until
+        ``holds`` (default): stop as soon as the level holds; ``clean``: keep releasing
+        while a constraint is significant (locates every noninvariant parameter the
+        tests can see, even when the approximate-fit criteria already accept the level).
 
     Returns
     -------
@@ -301,6 +315,8 @@ def release_search(
     """
     if correction not in CORRECTIONS:
         raise SpecificationError(f"The correction must be one of {', '.join(CORRECTIONS)}; got {correction!r}.")
+    if until not in UNTIL:
+        raise SpecificationError(f"'until' must be one of {', '.join(UNTIL)}; got {until!r}.")
     if release_in not in RELEASE_MODES:
         raise SpecificationError(f"'release_in' must be one of {', '.join(RELEASE_MODES)}; got {release_in!r}.")
     if not 0 < alpha < 1:
@@ -312,16 +328,16 @@ def release_search(
     mapper = map if executor is None else executor.map
     options = {"parameters": list(kinds), "alpha": alpha, "correction": correction,
                "max_releases": int(max_releases), "release_in": release_in,
-               "verify": bool(verify), "verify_top": int(verify_top)}
+               "verify": bool(verify), "verify_top": int(verify_top), "until": until}
     current = fit
-    holds = bool(judge(current))
+    holds = initial_holds = bool(judge(current))
     steps: list[ReleaseStep] = []
     tests: ScoreTests | None = None
     reason = "holds"
     ref = fit.spec.reference
-    if not holds and not current.converged:
+    if (until == "clean" or not holds) and not current.converged:
         reason = "not_converged"
-    while not holds and reason != "not_converged":
+    while (until == "clean" or not holds) and reason != "not_converged":
         if len(steps) >= max_releases:
             reason = "max_releases"
             break
@@ -398,6 +414,6 @@ def release_search(
             holds_after=holds, dmacs=_item_dmacs(rf, stats, con.item, con.parameter),
         ))
         current = rf
-    if holds:
+    if holds and until == "holds":
         reason = "holds"
-    return SearchResult(level, fit, current, holds, tuple(steps), reason, tests, options)
+    return SearchResult(level, fit, current, holds, tuple(steps), reason, tests, options, initial_holds)

@@ -31,7 +31,7 @@ from typing import Any, Callable, Mapping
 
 from ..errors import InvarianceWarning, SpecificationError
 from ..results import FitResult
-from .search import CORRECTIONS, RELEASE_MODES, SearchResult, release_search
+from .search import CORRECTIONS, RELEASE_MODES, UNTIL, SearchResult, release_search
 
 __all__ = [
     "FIT_ROW_KEYS",
@@ -64,10 +64,16 @@ class PartialSettings:
     verify: bool = False
     verify_top: int = 3
     min_invariant_items: int = 2
+    until: str = "holds"
 
     def search_options(self) -> dict:
         return {"alpha": self.alpha, "correction": self.correction, "max_releases": self.max_releases,
-                "release_in": self.release_in, "verify": self.verify, "verify_top": self.verify_top}
+                "release_in": self.release_in, "verify": self.verify, "verify_top": self.verify_top,
+                "until": self.until}
+
+    def searches(self, decision: str) -> bool:
+        """Whether a level with this decision is searched."""
+        return self.enabled and (decision != "holds" or self.until == "clean")
 
     def to_dict(self) -> dict:
         return dict(self.__dict__)
@@ -92,6 +98,8 @@ def partial_settings(section: Mapping[str, Any] | None) -> PartialSettings:
         raise SpecificationError(f"partial.correction must be one of {', '.join(CORRECTIONS)}; got {s.correction!r}.")
     if s.release_in not in RELEASE_MODES:
         raise SpecificationError(f"partial.release_in must be one of {', '.join(RELEASE_MODES)}; got {s.release_in!r}.")
+    if s.until not in UNTIL:
+        raise SpecificationError(f"partial.until must be one of {', '.join(UNTIL)}; got {s.until!r}.")
     if not 0 < float(s.alpha) < 1:
         raise SpecificationError(f"partial.alpha must be between 0 and 1; got {s.alpha!r}.")
     if int(s.max_releases) < 0 or int(s.verify_top) < 1 or int(s.min_invariant_items) < 1:
@@ -198,13 +206,11 @@ def _structural(spec, state, base: FitResult, base_row: dict, settings: PartialS
         verdict = verdict_of(res)
         search = None
         kind = structural_parameter(step)
-        if verdict["decision"] != "holds" and settings.enabled and res.converged:
+        if settings.searches(verdict["decision"]) and res.converged:
             search = search_level(res, stats, verdict_of, settings, parameters=(kind,))
             if search.releases:
                 res = search.fit
-                verdict = verdict_of(res)
-                if verdict["decision"] == "holds":
-                    verdict = {**verdict, "decision": "holds_partially"}
+                verdict = {**verdict_of(res), "decision": search.decision}
             released = released + search.released
         row = _row(step, res)
         row.update({"delta": level_delta(row, accepted_row), "compared_with": accepted_name, **verdict})

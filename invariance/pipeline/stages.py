@@ -172,7 +172,7 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
             base_level, base_row = accepted
             delta = level_delta(row, base_row)
             verdict = judge_step(delta, lv, rule, converged=res.converged)
-            if verdict["decision"] != "holds" and partial.enabled:
+            if partial.searches(verdict["decision"]) and res.converged:
 
                 def verdict_of(f, lv=lv, base_row=base_row):
                     r = _level_row(lv, f, f.spec.released)
@@ -185,9 +185,7 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
                     fits[lv] = res
                     row = _level_row(lv, res, res.spec.released)
                     delta = level_delta(row, base_row)
-                    verdict = verdict_of(res)
-                    if verdict["decision"] == "holds":
-                        verdict = {**verdict, "decision": "holds_partially"}
+                    verdict = {**verdict_of(res), "decision": search.decision}
                 carried = carried + search.released
                 row["partial"] = {k: v for k, v in search.to_dict().items() if k not in ("fit", "releases", "released")}
             if partial.enabled:
