@@ -144,3 +144,16 @@ def test_bad_options():
     with pytest.raises(SpecificationError, match="configural"):
         level_parameters("configural")
     assert level_parameters("strict+means") == ("mean",)
+
+
+def test_until_clean_searches_a_level_that_holds(planted):
+    # A judge that accepts everything: the default stops at once, 'clean' still
+    # releases the significant constraint and the decision stays 'holds'.
+    f = fit(build_level(BIFACTOR, planted.names, "metric"), planted)
+    r = release_search(f, planted, lambda x: True)
+    assert r.releases == () and r.decision == "holds"
+    r = release_search(f, planted, lambda x: True, until="clean")
+    assert [s.item for s in r.releases] == ["i3"] and r.decision == "holds"
+    assert r.stop_reason == "no_significant" and r.initial_holds
+    with pytest.raises(SpecificationError, match="until"):
+        release_search(f, planted, lambda x: True, until="never")
