@@ -118,7 +118,12 @@ class CopyTest:
 
 @dataclass(frozen=True)
 class SetTest:
-    """Multivariate score test: the parameter free in every group that shares it."""
+    """Multivariate score test: the parameter free in every group that shares it.
+
+    ``epc`` lists the expected change of each freed copy; for a shared free parameter
+    the first group's copy keeps the common value, so the changes are the other
+    groups' expected deviations from it (for a fixed equality: from the fixed value).
+    """
 
     constraint: Constraint
     statistic: float
@@ -330,6 +335,11 @@ def score_tests(
     -------
     ScoreTests
     """
+    if not str(fit.estimator).startswith("ml"):
+        raise SpecificationError(
+            f"Score tests use the normal-theory ML information; this fit used {fit.estimator!r}: "
+            "refit the level with ML to locate noninvariance."
+        )
     spec = fit.spec
     stats = _align(fit, stats)
     cons = constraints(spec, parameters=parameters)
