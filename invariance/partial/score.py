@@ -66,6 +66,9 @@ class Constraint:
         identification value) rather than one free parameter.
     entries
         Entry indices in the spec.
+    anchor
+        For a fixed equality, the group whose fixed entry stays (the reference group
+        when it shares the label); ``None`` otherwise.
     """
 
     label: str
@@ -75,12 +78,13 @@ class Constraint:
     groups: tuple[str, ...]
     fixed: bool
     entries: tuple[int, ...]
+    anchor: str | None = None
 
     @property
     def testable_groups(self) -> tuple[str, ...]:
-        """Groups whose copy can be released on its own (all but the reference for a
-        fixed equality, whose reference entry sets the scale)."""
-        return self.groups[1:] if self.fixed else self.groups
+        """Groups whose copy can be released on its own (for a fixed equality, all but
+        the ``anchor`` group, the reference, whose entry sets the scale)."""
+        return tuple(g for g in self.groups if g != self.anchor) if self.fixed else self.groups
 
     def release(self, groups: tuple[str, ...] | None = None) -> Release:
         """The :class:`Release` record that frees this constraint (in ``groups``)."""
@@ -209,9 +213,11 @@ def constraints(spec: ModelSpec, *, parameters: tuple[str, ...] | None = None) -
         if parameters is not None and kinds[k0] not in parameters:
             continue
         groups = [spec.groups[g] for g in gs]
-        if not free and spec.reference in groups:
-            groups.remove(spec.reference)
-            groups.insert(0, spec.reference)
+        anchor = None
+        if not free:
+            anchor = spec.reference if spec.reference in groups else groups[0]
+            groups.remove(anchor)
+            groups.insert(0, anchor)
         out.append(
             Constraint(
                 label=lab,
@@ -221,6 +227,7 @@ def constraints(spec: ModelSpec, *, parameters: tuple[str, ...] | None = None) -
                 groups=tuple(groups),
                 fixed=not free,
                 entries=tuple(ents),
+                anchor=anchor,
             )
         )
     return tuple(out)
