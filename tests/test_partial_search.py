@@ -157,3 +157,19 @@ def test_until_clean_searches_a_level_that_holds(planted):
     assert r.stop_reason == "no_significant" and r.initial_holds
     with pytest.raises(SpecificationError, match="until"):
         release_search(f, planted, lambda x: True, until="never")
+
+
+def test_refit_jobs_pickle_for_process_or_distributed_executors(planted):
+    # A process pool or a distributed backend ships (spec, stats, start) jobs and the
+    # FitResult back: both must survive pickling with the function itself.
+    import pickle
+
+    from invariance.partial.search import _refit
+    from invariance.partial.score import map_theta
+
+    f = fit(build_level(BIFACTOR, planted.names, "scalar"), planted)
+    job = (f.spec, planted, map_theta(f.spec, f.theta, f.spec))
+    fn, job2 = pickle.loads(pickle.dumps((_refit, job)))
+    res = fn(job2)
+    back = pickle.loads(pickle.dumps(res))
+    assert back.fit.chi2 == pytest.approx(f.fit.chi2, rel=1e-6)
