@@ -163,7 +163,7 @@ def test_check_fits_nothing(hs_dir):
 
 def test_stages_are_extensible():
     names = [n for n, _ in runner.STAGES]
-    assert names == ["data", "stats", "levels", "fits", "summary"]
+    assert names == ["data", "stats", "levels", "fits", "effects", "summary"]
 
 
 def test_existing_foreign_folder_is_never_replaced(hs_dir):
