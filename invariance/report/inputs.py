@@ -1,0 +1,201 @@
+"""Defensive readers of the results dict (results.json) used by the report.
+
+The report only reads results; it never re-estimates. Every key is read with ``.get``
+so that a results dict from an older or newer pipeline still renders. Keys read:
+
+Top level
+    ``estimator``, ``groups`` (group -> N used), ``reference_group``, ``levels``,
+    ``flagged``, ``decision_rule`` (``name``, ``criteria``, ``cutoffs``), and the
+    optional sections listed in :data:`OPTIONAL_KEYS`.
+Each level
+    ``level``, ``label`` (optional display name), ``converged``, ``chi2``, ``df``,
+    ``pvalue``, ``cfi``, ``tli``, ``rmsea``, ``rmsea_ci90``, ``srmr``, ``aic``, ``bic``,
+    ``delta`` (``chi2``, ``df``, ``pvalue``, ``cfi``, ``rmsea``, ``srmr``), ``decision``,
+    ``released``, and optionally ``cutoffs`` / ``criteria`` / ``problems`` /
+    ``compared_to``.
+
+Cutoffs may be given in any of these shapes (values for CFI/TLI may be given as a
+positive drop; they are read as a decrease):
+
+* ``{"cfi": 0.01, "rmsea": 0.015, "srmr": 0.03}`` (also ``delta_cfi``, ``dcfi``)
+* ``{"metric": {...}, "scalar": {...}}`` or ``{"loadings": {...}, "intercepts": {...}}``
+* ``{"srmr": {"metric": 0.03, "scalar": 0.01}}``
+* a ``cutoffs`` dict on the level entry itself (preferred when present)
+"""
+
+from __future__ import annotations
+
+from typing import Any, Mapping
+
+from .formatting import fnum, is_number
+
+__all__ = [
+    "CHANGE_INDICES",
+    "OPTIONAL_KEYS",
+    "accepted_entry",
+    "criteria_names",
+    "cutoff",
+    "first_key",
+    "levels",
+    "meets",
+    "rule",
+]
+
+#: Fit indices whose change between levels is judged against a cutoff.
+CHANGE_INDICES = ("cfi", "rmsea", "srmr")
+
+#: Optional sections: section -> accepted top-level keys (first one present wins).
+OPTIONAL_KEYS = {
+    "missing": ("missing", "missingness", "missing_data"),
+    "screening": ("screening", "data_checks", "checks"),
+    "effects": ("effects", "dmacs", "effect_sizes"),
+    "bifactor": ("bifactor", "bifactor_quality", "bifactor_indices", "quality"),
+    "latent_means": ("latent_means", "latent_mean_differences", "means"),
+    "alignment": ("alignment",),
+}
+
+# Which family of cutoffs a level's step constrains (Chen 2007 distinguishes them).
+_STEP_FAMILY = {
+    "metric": ("loadings", "loading", "metric"),
+    "scalar": ("intercepts", "intercept", "thresholds", "scalar"),
+    "threshold": ("thresholds", "threshold"),
+    "thresholds": ("thresholds", "threshold"),
+    "strict": ("residuals", "residual", "strict", "intercepts"),
+}
+
+
+def first_key(d: Mapping[str, Any] | None, names) -> Any:
+    """Value of the first of ``names`` present (and not None) in ``d``."""
+    if not isinstance(d, Mapping):
+        return None
+    for n in names:
+        if d.get(n) is not None:
+            return d[n]
+    return None
+
+
+def levels(results: Mapping[str, Any]) -> list[dict]:
+    """The level entries, in order (entries that are not dicts are dropped)."""
+    return [e for e in (results.get("levels") or []) if isinstance(e, Mapping)]
+
+
+def rule(results: Mapping[str, Any]) -> dict:
+    """The decision rule dict (``name``, ``criteria``, ``cutoffs``); empty if absent."""
+    r = results.get("decision_rule")
+    if not isinstance(r, Mapping):
+        r = {}
+    return dict(r)
+
+
+def criteria_names(results: Mapping[str, Any]) -> list[str]:
+    """Names of the criteria that decide (lower case, ``delta_`` prefixes removed)."""
+    crit = rule(results).get("criteria") or []
+    if isinstance(crit, (str, Mapping)):
+        crit = [crit]
+    out = []
+    for c in crit:
+        if isinstance(c, Mapping):
+            c = c.get("index") or c.get("name") or c.get("criterion")
+        if c is None:
+            continue
+        name = _norm_index(str(c))
+        if name not in out:
+            out.append(name)
+    return out
+
+
+def _norm_index(name: str) -> str:
+    n = name.strip().lower().replace("\u0394", "").replace("delta_", "").replace("delta", "")
+    if n.startswith("d") and n[1:] in ("cfi", "tli", "rmsea", "srmr", "chi2"):
+        n = n[1:]
+    if n in ("chisq", "chi-square", "chi_square", "chi2_difference", "lrt"):
+        n = "chi2"
+    return n
+
+
+def _lookup(d: Mapping[str, Any], index: str) -> Any:
+    for key, val in d.items():
+        if _norm_index(str(key)) == index:
+            return val
+    return None
+
+
+def cutoff(results: Mapping[str, Any], index: str, entry: Mapping[str, Any] | None = None) -> float | None:
+    """Cutoff for the change in ``index`` at the step of ``entry``; ``None`` if not given.
+
+    CFI and TLI cutoffs are returned as decreases (negative), RMSEA and SRMR as
+    increases (positive), the chi-square cutoff as a significance level.
+    """
+    index = _norm_index(index)
+    level = str((entry or {}).get("level", ""))
+    sources = []
+    if entry is not None and isinstance(entry.get("cutoffs"), Mapping):
+        sources.append(entry["cutoffs"])
+    r = rule(results)
+    if isinstance(r.get("cutoffs"), Mapping):
+        sources.append(r["cutoffs"])
+    crit = r.get("criteria")
+    if isinstance(crit, list):
+        sources.append(
+            {
+                (c.get("index") or c.get("name")): c.get("cutoff")
+                for c in crit
+                if isinstance(c, Mapping) and (c.get("index") or c.get("name"))
+            }
+        )
+    value = None
+    for src in sources:
+        # per-step family first: {"scalar": {...}} or {"intercepts": {...}}
+        for fam in (level,) + _STEP_FAMILY.get(level, ()):
+            sub = src.get(fam)
+            if isinstance(sub, Mapping):
+                value = _lookup(sub, index)
+                if value is not None:
+                    break
+        if value is None:
+            value = _lookup(src, index)
+            if isinstance(value, Mapping):
+                value = first_key(value, (level,) + _STEP_FAMILY.get(level, ()) + ("default",))
+        if value is not None:
+            break
+    if index == "chi2" and value is None:
+        value = first_key(r, ("alpha", "chi2_alpha"))
+    v = fnum(value)
+    if v is None:
+        return None
+    if index in ("cfi", "tli"):
+        return -abs(v)
+    if index in ("rmsea", "srmr"):
+        return abs(v)
+    return v
+
+
+def meets(index: str, change: Any, cut: float | None, *, pvalue: Any = None) -> bool | None:
+    """Whether a change stays within its cutoff (display only; the decision is recorded).
+
+    CFI/TLI: change >= cutoff; RMSEA/SRMR: change <= cutoff; chi-square: p >= alpha.
+    """
+    index = _norm_index(index)
+    if cut is None:
+        return None
+    if index == "chi2":
+        return None if not is_number(pvalue) else float(pvalue) >= cut
+    if not is_number(change):
+        return None
+    return float(change) >= cut if index in ("cfi", "tli") else float(change) <= cut
+
+
+def accepted_entry(results: Mapping[str, Any]) -> dict | None:
+    """The most constrained level that holds (fully or partially), else the configural one."""
+    entries = levels(results)
+    ok = [
+        e
+        for e in entries
+        if e.get("decision") in ("holds", "holds_partially") and e.get("converged", True) is not False
+    ]
+    if ok:
+        return ok[-1]
+    for e in entries:
+        if e.get("level") == "configural":
+            return e
+    return entries[0] if entries else None

@@ -1,0 +1,359 @@
+"""The report's input bundle and its main sections (summary, data, model, levels).
+
+Each section is one function ``build(inp: ReportInput) -> Section | None``; ``None``
+skips the section (its data are absent). The order of the report is
+:data:`invariance.report.registry.SECTIONS`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, Mapping
+
+import pandas as pd
+
+from . import inputs as I
+from .diagram import model_diagram
+from .formatting import (
+    decision_label,
+    fmt_bounded,
+    fmt_delta,
+    fmt_int,
+    fmt_p,
+    fnum,
+    level_label,
+    release_text,
+)
+from .parts import Bullets, Figure, Section, Table, Text, generic_parts
+from .plots import change_chart
+from .tables import DISPLAY_COLUMNS, level_table_display, level_table_note
+
+__all__ = [
+    "ReportInput",
+    "section_changes",
+    "section_data",
+    "section_levels",
+    "section_model",
+    "section_summary",
+]
+
+INDEX_NAMES = {"cfi": "\u0394CFI", "tli": "\u0394TLI", "rmsea": "\u0394RMSEA", "srmr": "\u0394SRMR", "chi2": "\u0394\u03c7\u00b2 test"}
+
+
+@dataclass
+class ReportInput:
+    """Everything a section may read: the results dict, the estimates and the run context.
+
+    Attributes
+    ----------
+    results
+        The results.json dict (see :mod:`invariance.report.inputs` for the keys read).
+    estimates
+        All estimates: columns level, group, parameter, lhs, rhs, label, free,
+        estimate, se, z, pvalue, std.
+    context
+        ``pipeline_text``, ``data_file``, ``data_sha256``, ``seed``, ``structure``
+        (``factors``, ``general``, ``family``, ``regressions``,
+        ``residual_covariances``), ``created``, ``quiet``.
+    """
+
+    results: Mapping[str, Any]
+    estimates: pd.DataFrame
+    context: Mapping[str, Any]
+    _cache: dict = field(default_factory=dict, repr=False)
+
+    @property
+    def groups(self) -> dict[str, Any]:
+        g = self.results.get("groups")
+        if isinstance(g, Mapping):
+            return dict(g)
+        if isinstance(g, (list, tuple)):
+            return {str(x): None for x in g}
+        return {}
+
+    @property
+    def reference(self) -> str | None:
+        ref = self.results.get("reference_group")
+        if ref is None and self.groups:
+            ref = next(iter(self.groups))
+        return None if ref is None else str(ref)
+
+    @property
+    def structure(self) -> dict:
+        s = self.context.get("structure")
+        return dict(s) if isinstance(s, Mapping) else {}
+
+    @property
+    def items(self) -> list[str]:
+        out: list[str] = []
+        for its in dict(self.structure.get("factors") or {}).values():
+            for it in its:
+                if str(it) not in out:
+                    out.append(str(it))
+        if not out and not self.estimates.empty and "parameter" in self.estimates:
+            out = [str(x) for x in dict.fromkeys(self.estimates.loc[self.estimates["parameter"] == "intercept", "lhs"])]
+        return out
+
+    @property
+    def accepted(self) -> dict | None:
+        return I.accepted_entry(self.results)
+
+    def estimates_at(self, level: str | None) -> pd.DataFrame:
+        """Estimates of one level (empty frame if the level or the columns are missing)."""
+        est = self.estimates
+        if est is None or est.empty or level is None or "level" not in est:
+            return pd.DataFrame(columns=["group", "parameter", "lhs", "rhs", "estimate", "se", "std", "label"])
+        sub = est[est["level"].astype(str) == str(level)]
+        keys = [c for c in ("group", "parameter", "lhs", "rhs") if c in sub]
+        return sub.drop_duplicates(subset=keys, keep="last") if keys else sub
+
+
+# ------------------------------------------------------------------ summary
+def section_summary(inp: ReportInput) -> Section | None:
+    """Overview: the highest level supported, the groups, the rule, warnings."""
+    entries = I.levels(inp.results)
+    acc = inp.accepted
+    parts: list = []
+    if acc is not None and acc.get("decision") in ("holds", "holds_partially"):
+        rel = [r for r in acc.get("released") or [] if isinstance(r, Mapping)]
+        lead = f"Most constrained level supported: {level_label(acc)}"
+        if rel:
+            lead += f", with {len(rel)} constraint{'s' if len(rel) != 1 else ''} released"
+        parts.append(Text(lead + ".", style="lead"))
+    elif entries:
+        parts.append(Text("No invariance level beyond the configural model is supported by the decision rule.", style="lead"))
+    groups = inp.groups
+    facts = []
+    if groups:
+        facts.append(
+            f"Groups: {', '.join(groups)} (reference group: {inp.reference})."
+        )
+    if inp.results.get("estimator"):
+        facts.append(f"Estimator: {inp.results['estimator']}.")
+    r = I.rule(inp.results)
+    if r.get("name"):
+        facts.append(f"Decision rule: {r['name']}.")
+    for e in entries:
+        facts.append(f"{level_label(e)}: {decision_label(e.get('decision')) or 'no decision recorded'}.")
+    if facts:
+        parts.append(Bullets(tuple(facts)))
+    warn = inp.results.get("warnings") or inp.results.get("problems")
+    notes = []
+    if isinstance(warn, (list, tuple)):
+        notes += [str(w) for w in warn]
+    elif warn:
+        notes.append(str(warn))
+    for e in entries:
+        if e.get("converged") is False:
+            notes.append(f"The {level_label(e).lower()} model did not converge; its fit statistics are not trustworthy.")
+        for p in e.get("problems") or []:
+            notes.append(f"{level_label(e)}: {p}")
+    if notes:
+        parts.append(Text("Warnings raised during estimation:", style="caution"))
+        parts.append(Bullets(tuple(notes)))
+    if not parts:
+        return None
+    return Section("summary", "Summary", tuple(parts))
+
+
+# --------------------------------------------------------------------- data
+def section_data(inp: ReportInput) -> Section | None:
+    """Groups and the cases used in each; missingness and screening when present."""
+    groups = inp.groups
+    parts: list = []
+    if groups:
+        ns = {g: fnum(n) for g, n in groups.items()}
+        total = sum(v for v in ns.values() if v is not None)
+        rows = []
+        for g, n in ns.items():
+            share = "" if not total or n is None else f"{100 * n / total:.1f}%"
+            rows.append((g, fmt_int(n), share, "reference" if g == inp.reference else ""))
+        rows.append(("Total", fmt_int(total) if total else "", "100.0%" if total else "", ""))
+        parts.append(Table(("Group", "N used", "Share", "Role"), tuple(rows),
+                           caption="Cases used per group", numeric=(False, True, True, False),
+                           row_styles=("",) * len(ns) + ("total",)))
+    n_items = len(inp.items)
+    if n_items:
+        parts.append(Text(f"{n_items} items enter the model."))
+    if inp.context.get("data_file"):
+        parts.append(Text(f"Data file: {inp.context['data_file']}."))
+    miss = I.first_key(inp.results, I.OPTIONAL_KEYS["missing"])
+    if miss is not None:
+        parts.append(Text("Missing data", style="note"))
+        parts += generic_parts(miss, key_name="group")
+    screen = I.first_key(inp.results, I.OPTIONAL_KEYS["screening"])
+    if screen is not None:
+        parts.append(Text("Data screening", style="note"))
+        parts += generic_parts(screen)
+    if not parts:
+        return None
+    return Section("data", "The data", tuple(parts))
+
+
+# -------------------------------------------------------------------- model
+def _std_values(est: pd.DataFrame, group: str | None, parameter: str) -> dict[tuple[str, str], float]:
+    if est.empty or group is None or "parameter" not in est:
+        return {}
+    col = "std" if "std" in est else "estimate"
+    sub = est[(est["group"].astype(str) == group) & (est["parameter"] == parameter)]
+    out = {}
+    for _, r in sub.iterrows():
+        v = fnum(r.get(col))
+        if v is not None and r.get("rhs") is not None and not (isinstance(r.get("rhs"), float)):
+            out[(str(r["lhs"]), str(r["rhs"]))] = v
+    return out
+
+
+def section_model(inp: ReportInput) -> Section | None:
+    """The diagram of the model, with the reference group's standardized loadings."""
+    st = inp.structure
+    factors = dict(st.get("factors") or {})
+    if not factors:
+        return None
+    acc = inp.accepted
+    level = acc.get("level") if acc else None
+    est = inp.estimates_at(level)
+    if est.empty:
+        level = "configural"
+        est = inp.estimates_at(level)
+    ref = inp.reference
+    loads = _std_values(est, ref, "loading")
+    png = model_diagram(
+        st,
+        loadings=loads,
+        paths=_std_values(est, ref, "path"),
+        correlations=_std_values(est, ref, "covariance"),
+    )
+    parts: list = []
+    family = st.get("family") or ("bifactor" if st.get("general") else "correlated")
+    desc = f"Model family: {family}"
+    if st.get("general"):
+        desc += f"; {'general' if family == 'bifactor' else 'higher-order'} factor: {st['general']}"
+    parts.append(Text(desc + ". Check that this is the model you meant to test."))
+    if png is not None:
+        where = (
+            f"Standardized estimates in the reference group ({ref}) under the {level} model"
+            if loads else "No estimates were available; the diagram shows the structure only"
+        )
+        parts.append(Figure("model", png, alt="Path diagram of the measurement model",
+                            caption=where + ". Arrow width follows the size of the loading; dashed arrows are negative."))
+    rows = [(str(f), ", ".join(str(i) for i in its)) for f, its in factors.items()]
+    if st.get("general") and family == "bifactor":
+        rows.insert(0, (str(st["general"]), "all items"))
+    parts.append(Table(("Factor", "Items"), tuple(rows), caption="Which items measure which factor"))
+    extra = []
+    for out, pred in st.get("regressions") or []:
+        extra.append(f"{out} is regressed on {pred}")
+    for a, b in st.get("residual_covariances") or []:
+        extra.append(f"residuals of {a} and {b} covary")
+    if extra:
+        parts.append(Bullets(tuple(extra)))
+    return Section("model", "The model", tuple(parts))
+
+
+# ------------------------------------------------------------------- levels
+def _criteria_rows(inp: ReportInput) -> tuple[list[tuple[str, ...]], list[str]]:
+    """Rows (level, criterion, change, cutoff, within, decision) for every compared level."""
+    names = I.criteria_names(inp.results)
+    shown = names + [ix for ix in ("cfi", "rmsea", "srmr", "chi2") if ix not in names]
+    rows, styles = [], []
+    for e in I.levels(inp.results):
+        d = e.get("delta")
+        if not isinstance(d, Mapping):
+            continue
+        given = {}
+        for c in e.get("criteria") or []:
+            if isinstance(c, Mapping) and (c.get("index") or c.get("name")):
+                given[I._norm_index(str(c.get("index") or c.get("name")))] = c
+        first = True
+        for ix in shown:
+            g = given.get(ix, {})
+            cut = fnum(g.get("cutoff")) if g.get("cutoff") is not None else I.cutoff(inp.results, ix, e)
+            if ix in ("cfi", "tli") and cut is not None:
+                cut = -abs(cut)
+            if ix == "chi2":
+                change = (f"{float(d['chi2']):.2f} on {fmt_int(d.get('df'))} df, p {fmt_p(d.get('pvalue'))}"
+                          if fnum(d.get("chi2")) is not None else "")
+                cut_text = "" if cut is None else f"p \u2265 {fmt_bounded(cut)}"
+                ok = I.meets(ix, None, cut, pvalue=d.get("pvalue"))
+            else:
+                change = fmt_delta(d.get(ix))
+                cut_text = "" if cut is None else (("\u2265 " if ix in ("cfi", "tli") else "\u2264 ") + fmt_delta(cut))
+                ok = I.meets(ix, d.get(ix), cut)
+            for key in ("met", "passed", "ok", "within"):
+                if isinstance(g.get(key), bool):
+                    ok = g[key]
+            if not change and not cut_text:
+                continue
+            role = "decides" if ix in names else ("shown" if names else "")
+            rows.append((
+                level_label(e) if first else "",
+                INDEX_NAMES.get(ix, ix),
+                change,
+                cut_text or "none set",
+                "" if ok is None else ("yes" if ok else "no"),
+                role,
+                decision_label(e.get("decision")) if first else "",
+            ))
+            styles.append("" if ok is None else ("ok" if ok else "bad"))
+            first = False
+    return rows, styles
+
+
+def section_levels(inp: ReportInput) -> Section | None:
+    """The stepwise table: fit per level, the changes, each criterion with its cutoff."""
+    entries = I.levels(inp.results)
+    if not entries:
+        return None
+    cells = level_table_display(inp.results)
+    styles = tuple(str(e.get("decision") or "") for e in entries)
+    parts: list = [
+        Table(DISPLAY_COLUMNS, tuple(tuple(r) for r in cells), caption="Fit of each invariance level",
+              note=level_table_note(inp.results),
+              numeric=(False,) + (True,) * (len(DISPLAY_COLUMNS) - 2) + (False,), row_styles=styles)
+    ]
+    r = I.rule(inp.results)
+    intro = []
+    if r.get("name"):
+        intro.append(f"Decision rule: {r['name']}.")
+    names = I.criteria_names(inp.results)
+    if names:
+        intro.append("Deciding criteria: " + ", ".join(INDEX_NAMES.get(n, n) for n in names) + ".")
+    for key in ("description", "combine", "combination", "note"):
+        if isinstance(r.get(key), str):
+            intro.append(r[key])
+    if not r:
+        intro.append("The results do not record the decision rule; cutoffs are shown where the results give them.")
+    parts.append(Text(" ".join(intro), style="note"))
+    rows, row_styles = _criteria_rows(inp)
+    if rows:
+        parts.append(Table(("Level", "Criterion", "Change", "Cutoff", "Within cutoff", "Role", "Decision"),
+                           tuple(rows), caption="Each criterion against its cutoff",
+                           numeric=(False, False, True, True, False, False, False), row_styles=tuple(row_styles)))
+    rel = [(level_label(e), release_text(x)) for e in entries for x in e.get("released") or [] if isinstance(x, Mapping)]
+    if rel:
+        parts.append(Text("Constraints released to reach partial invariance:", style="note"))
+        parts.append(Bullets(tuple(f"{m}: {t}" for m, t in rel)))
+    return Section("levels", "Invariance levels, step by step", tuple(parts))
+
+
+def section_changes(inp: ReportInput) -> Section | None:
+    """Chart of the change in CFI, RMSEA and SRMR per level against the cutoffs."""
+    steps = []
+    for e in I.levels(inp.results):
+        d = e.get("delta")
+        if not isinstance(d, Mapping):
+            continue
+        step = {"label": level_label(e)}
+        for ix in I.CHANGE_INDICES:
+            step[ix] = {"change": fnum(d.get(ix)), "cutoff": I.cutoff(inp.results, ix, e)}
+        steps.append(step)
+    png = change_chart(steps)
+    if png is None:
+        return None
+    has_cut = any(s[ix]["cutoff"] is not None for s in steps for ix in I.CHANGE_INDICES)
+    cap = ("Change in each fit index from the previous level. Dashed lines: the cutoff of each step; "
+           "hatched bars go beyond it.")
+    if not has_cut:
+        cap += " No cutoffs were recorded in the results."
+    return Section("changes", "Change in fit per level", (Figure("fit-changes", png, alt="Bar charts of the change in CFI, RMSEA and SRMR per level", caption=cap),))
