@@ -209,3 +209,28 @@ def hs_case(*, rename=None, group_names=None, factor_names=None, bifactor=False,
         "quiet": True,
     }
     return results, _estimates(used), context
+
+
+_CACHE: dict = {}
+
+#: Names full of markup (and a mathtext dollar) for the escaping tests.
+HOSTILE = {
+    "rename": {"x1": "x1<script>alert(1)</script>", "x5": "x5 & <b>bold</b>"},
+    "factor_names": {"visual": "<img src=x onerror=alert(2)>", "speed": "speed $x$ _under_"},
+    "group_names": {"Pasteur": '<script>alert("g")</script>'},
+    "pipeline_text": "title: test\n</code></pre><script>alert(4)</script>\n",
+}
+
+
+def cached_case(kind: str):
+    """The inputs of one case, fitted once per test session: ``three``, ``bifactor``, ``hostile``."""
+    if kind not in _CACHE:
+        if kind == "three":
+            _CACHE[kind] = hs_case()
+        elif kind == "bifactor":
+            _CACHE[kind] = hs_case(bifactor=True)
+        elif kind == "hostile":
+            _CACHE[kind] = hs_case(**HOSTILE)
+        else:
+            raise KeyError(kind)
+    return _CACHE[kind]

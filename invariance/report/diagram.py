@@ -85,7 +85,8 @@ def model_diagram(
         ax.set_ylim(0, height)
         ax.set_axis_off()
         ax.set_aspect("equal")
-        y_item = {it: height - 0.45 - k * ROW for k, it in enumerate(items)}
+        top = (height + (n - 1) * ROW) / 2
+        y_item = {it: top - k * ROW for k, it in enumerate(items)}
         bif = family == "bifactor" and general
         second = family == "second_order" and general
         x_item = width * (0.50 if bif else 0.72)

@@ -38,6 +38,7 @@ __all__ = [
     "first_key",
     "levels",
     "meets",
+    "new_releases",
     "rule",
 ]
 
@@ -183,6 +184,22 @@ def meets(index: str, change: Any, cut: float | None, *, pvalue: Any = None) -> 
     if not is_number(change):
         return None
     return float(change) >= cut if index in ("cfi", "tli") else float(change) <= cut
+
+
+def new_releases(results: Mapping[str, Any]) -> list[tuple[dict, dict]]:
+    """``(level entry, release)`` for each release at the first level that lists it
+    (later levels carry earlier releases forward)."""
+    seen, out = set(), []
+    for e in levels(results):
+        for r in e.get("released") or []:
+            if not isinstance(r, Mapping):
+                continue
+            g = r.get("groups")
+            key = (r.get("parameter"), r.get("item"), r.get("factor"), tuple(g) if isinstance(g, (list, tuple)) else g)
+            if key not in seen:
+                seen.add(key)
+                out.append((e, dict(r)))
+    return out
 
 
 def accepted_entry(results: Mapping[str, Any]) -> dict | None:

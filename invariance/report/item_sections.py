@@ -5,7 +5,7 @@ from __future__ import annotations
 from typing import Any, Mapping
 
 from . import inputs as I
-from .formatting import fnum, level_label
+from .formatting import fmt_bounded, fnum, level_label
 from .parts import Figure, Section, Table, Text, records_table
 from .plots import dmacs_heatmap, profile_chart
 from .sections import ReportInput
@@ -146,7 +146,7 @@ def section_effects(inp: ReportInput) -> Section | None:
     if not vals:
         return None
     seen_items = {i for i, _ in vals}
-    items = [i for i in inp.items if i in seen_items] + sorted(seen_items - set(inp.items))
+    items = list(inp.items) + sorted(seen_items - set(inp.items))
     focal = [g for g in inp.groups if g != inp.reference]
     seen_groups = {g for _, g in vals}
     groups = [g for g in focal if g in seen_groups] + sorted(seen_groups - set(focal))
@@ -157,7 +157,7 @@ def section_effects(inp: ReportInput) -> Section | None:
                             caption="dMACS (Nye & Drasgow 2011): the expected difference in an item's mean at equal latent "
                                     "values, in pooled SD units. White lines on the scale mark the rough guides .2, .4, .6 "
                                     "(Nye et al. 2019); a dash: not computed."))
-    rows = tuple((i, g, f"{v:.3f}") for (i, g), v in sorted(vals.items(), key=lambda kv: -kv[1]))
+    rows = tuple((i, g, fmt_bounded(v)) for (i, g), v in sorted(vals.items(), key=lambda kv: -kv[1]))
     parts.append(Table(("Item", "Focal group", "dMACS"), rows, caption="dMACS, largest first",
                        numeric=(False, False, True)))
     return Section("effects", "Size of the differences (dMACS)", tuple(parts))

@@ -134,7 +134,7 @@ def section_latent_means(inp: ReportInput) -> Section | None:
     if acc.get("level") not in ("scalar", "strict"):
         parts.append(Text("Scalar invariance (full or partial) is not supported by the decision rule, so these "
                           "latent mean differences may reflect item bias as well as real differences.", style="caution"))
-    png = forest_chart(plot_rows, xlabel="latent mean difference from the reference group (factor SD units of the reference group)")
+    png = forest_chart(plot_rows, xlabel="difference from the reference group (in its factor SD)")
     if png is not None:
         parts.append(Figure("latent-means", png, alt="Latent mean differences with intervals",
                             caption=f"Each group's latent mean minus the reference group's ({inp.reference}), with {ci} intervals."))
@@ -218,7 +218,7 @@ def section_provenance(inp: ReportInput) -> Section | None:
     ]
     vers = package_versions()
     parts: list = [
-        Table(("", ""), tuple(facts), caption="Run"),
+        Table(("What", "Value"), tuple(facts), caption="Run"),
         Table(("Package", "Version"), tuple(vers.items()), caption="Software"),
     ]
     text = ctx.get("pipeline_text")

@@ -14,7 +14,7 @@ import json
 from dataclasses import dataclass, field
 from typing import Any, ClassVar, Mapping, Sequence
 
-from .formatting import is_number
+from .formatting import fmt_p, is_number
 
 __all__ = [
     "Bullets",
@@ -142,6 +142,21 @@ def _flat(d: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
     return out
 
 
+P_KEYS = ("p", "pvalue", "p_value", "p_adjusted", "p_adj", "p_holm", "p_bonferroni")
+
+
+def _pcell(col: str, v: Any) -> str:
+    """Cells of p-value columns read ``< .001``; everything else as :func:`cell`."""
+    if col.split(" (")[0].lower() in P_KEYS and is_number(v):
+        return fmt_p(v)
+    return cell(v)
+
+
+def _rename(col: str, names: Mapping[str, str]) -> str:
+    head, sep, rest = col.partition(" (")
+    return names.get(col) or (names.get(head, head) + sep + rest)
+
+
 def records_table(records: Sequence[Mapping[str, Any]], *, caption: str = "", first: str | None = None,
                   names: Mapping[str, str] | None = None, note: str = "") -> Table:
     """A table from a list of flat-ish records (columns: the union of keys, in first-seen order)."""
@@ -152,11 +167,11 @@ def records_table(records: Sequence[Mapping[str, Any]], *, caption: str = "", fi
             if k not in cols:
                 cols.append(k)
     names = names or {}
-    rows = tuple(tuple(cell(r.get(c)) for c in cols) for r in flat)
+    rows = tuple(tuple(_pcell(c, r.get(c)) for c in cols) for r in flat)
     numeric = tuple(all(is_number(r.get(c)) or r.get(c) is None for r in flat) for c in cols)
     extra = f" (first {MAX_ROWS} of {len(records)} rows)" if len(records) > MAX_ROWS else ""
     return Table(
-        columns=tuple(names.get(c, c) for c in cols),
+        columns=tuple(_rename(c, names) for c in cols),
         rows=rows,
         caption=caption + extra,
         note=note,

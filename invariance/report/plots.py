@@ -97,7 +97,7 @@ def change_chart(steps: Sequence[Mapping]) -> bytes | None:
     with matplotlib.rc_context(_RC):
         fig = new_figure(2.6)
         axes = fig.subplots(1, len(indices), squeeze=False)[0]
-        labels = [mpl_text(s["label"]) for s in steps]
+        labels = [mpl_text(s["label"]).replace(" ", "\n", 1) for s in steps]
         x = list(range(len(steps)))
         for ax, ix in zip(axes, indices):
             _style_axes(ax)
@@ -118,9 +118,9 @@ def change_chart(steps: Sequence[Mapping]) -> bytes | None:
             ax.axhline(0, color="black", linewidth=0.6)
             lim = max([abs(v) for v in vals if v is not None] + [abs(c) for c in cuts if c is not None] + [0.005])
             ax.set_ylim(-1.25 * lim, 1.25 * lim)
-            ax.set_xticks(x, labels, rotation=30 if len(steps) > 3 else 0, ha="right" if len(steps) > 3 else "center")
+            ax.set_xticks(x, labels, rotation=30 if len(steps) > 4 else 0, ha="right" if len(steps) > 4 else "center")
             ax.set_title("\u0394" + ix.upper())
-            ax.yaxis.set_major_formatter(matplotlib.ticker.FuncFormatter(lambda v, _: f"{v:+.3f}".replace("-", "\u2212")))
+            ax.yaxis.set_major_formatter(matplotlib.ticker.FuncFormatter(_signed_tick))
         from matplotlib.lines import Line2D
         from matplotlib.patches import Patch
 
@@ -131,6 +131,12 @@ def change_chart(steps: Sequence[Mapping]) -> bytes | None:
         ]
         fig.legend(handles=handles, loc="outside lower center", ncols=3, frameon=False)
         return png_bytes(fig)
+
+
+def _signed_tick(v: float, _pos=None) -> str:
+    if abs(v) < 5e-7:
+        return "0"
+    return ("+" if v > 0 else "\u2212") + f"{abs(v):.3f}".lstrip("0")
 
 
 def _num(x) -> float | None:
@@ -206,7 +212,7 @@ def profile_chart(
 
             handles.append(Patch(facecolor="#dddddd", label="\u2020 released"))
             labels.append("\u2020 released")
-        ax.legend(handles, labels, loc="best", frameon=True, framealpha=0.9)
+        fig.legend(handles, labels, loc="outside lower center", ncols=min(len(labels), 5), frameon=False)
         return png_bytes(fig)
 
 
@@ -227,13 +233,12 @@ def dmacs_heatmap(items: Sequence[str], groups: Sequence[str], values: Mapping[t
     with matplotlib.rc_context(_RC):
         fig = new_figure(1.2 + 0.3 * len(items), width=min(PAGE_WIDTH, 2.6 + 0.9 * len(groups)))
         ax = fig.subplots()
-        cmap = matplotlib.colormaps["cividis"].copy()
-        cmap.set_bad("white")
+        cmap = matplotlib.colormaps["cividis"].with_extremes(bad="white")
         im = ax.imshow(np.ma.masked_invalid(M), cmap=cmap, vmin=0, vmax=top, aspect="auto")
         for i in range(M.shape[0]):
             for j in range(M.shape[1]):
                 if np.isfinite(M[i, j]):
-                    light = M[i, j] / top > 0.55
+                    light = M[i, j] / top > 0.45  # cividis is light above the middle
                     ax.text(j, i, f"{M[i, j]:.2f}".replace("0.", ".", 1), ha="center", va="center",
                             color="black" if light else "white", fontsize=8)
                 else:

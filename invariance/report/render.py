@@ -20,7 +20,7 @@ from .parts import Section
 
 __all__ = ["MdRaw", "md_escape", "render_html", "render_markdown"]
 
-_MD_SPECIAL = re.compile(r"([\\`*_\[\]{}#|!~+])")
+_MD_SPECIAL = re.compile(r"([\\`*_\[\]|~])")
 
 
 class MdRaw(str):
@@ -36,8 +36,6 @@ def md_escape(value: Any) -> str:
     s = str(value)
     s = s.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
     s = _MD_SPECIAL.sub(r"\\\1", s)
-    s = re.sub(r"^(\s*)(\d+)\.", r"\1\2\\.", s)
-    s = re.sub(r"^(\s*)-", r"\1\\-", s)
     return s.replace("\n", " ")
 
 

@@ -330,9 +330,10 @@ def section_levels(inp: ReportInput) -> Section | None:
         parts.append(Table(("Level", "Criterion", "Change", "Cutoff", "Within cutoff", "Role", "Decision"),
                            tuple(rows), caption="Each criterion against its cutoff",
                            numeric=(False, False, True, True, False, False, False), row_styles=tuple(row_styles)))
-    rel = [(level_label(e), release_text(x)) for e in entries for x in e.get("released") or [] if isinstance(x, Mapping)]
+    rel = [(level_label(e), release_text(x)) for e, x in I.new_releases(inp.results)]
     if rel:
-        parts.append(Text("Constraints released to reach partial invariance:", style="note"))
+        parts.append(Text("Constraints released to reach partial invariance (each is kept free in the later models):",
+                          style="note"))
         parts.append(Bullets(tuple(f"{m}: {t}" for m, t in rel)))
     return Section("levels", "Invariance levels, step by step", tuple(parts))
 

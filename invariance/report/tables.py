@@ -26,7 +26,7 @@ from .formatting import (
     level_label,
     release_text,
 )
-from .inputs import levels
+from .inputs import levels, new_releases
 
 __all__ = [
     "LEVEL_TABLE_FILES",
@@ -54,7 +54,7 @@ DISPLAY_COLUMNS = (
 )
 LATEX_COLUMNS = (
     "Model", r"$\chi^2$", r"\textit{df}", r"\textit{p}", "CFI", r"RMSEA [90\% CI]", "SRMR",
-    r"$\Delta\chi^2$", r"$\Delta$\textit{df}", r"\textit{p}", r"$\Delta$CFI", r"$\Delta$RMSEA",
+    r"$\Delta\chi^2$", r"$\Delta$\textit{df}", r"\textit{p}$_{\Delta}$", r"$\Delta$CFI", r"$\Delta$RMSEA",
     r"$\Delta$SRMR", "Decision",
 )
 
@@ -147,18 +147,14 @@ def level_table_note(results: Mapping[str, Any]) -> str:
     parts.append(
         "Changes (\u0394) are each model minus the model before it; CI = confidence interval."
     )
-    rel = [
-        (level_label(e), release_text(r))
-        for e in levels(results)
-        for r in (e.get("released") or [])
-        if isinstance(r, Mapping)
-    ]
+    rel = [(level_label(e), release_text(r)) for e, r in new_releases(results)]
     if rel:
         by_model: dict[str, list[str]] = {}
         for m, t in rel:
             by_model.setdefault(m, []).append(t)
         parts.append(
-            "Released constraints: " + "; ".join(f"{m}: {', '.join(ts)}" for m, ts in by_model.items()) + "."
+            "Released constraints (carried forward to the later models): "
+            + "; ".join(f"{m}: {', '.join(ts)}" for m, ts in by_model.items()) + "."
         )
     name = (results.get("decision_rule") or {}).get("name") if isinstance(results.get("decision_rule"), Mapping) else None
     if name:
