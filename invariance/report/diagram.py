@@ -92,14 +92,16 @@ def model_diagram(
         x_item = width * (0.50 if bif else 0.72)
         x_spec = width * (0.84 if bif else (0.40 if second else 0.32))
         x_gen = width * (0.13 if bif else 0.10)
-        box_w, box_h = 1.05, ROW * 0.72
-        fw, fh = 1.15, 0.5
+        longest_item = max(len(str(i)) for i in items)
+        longest_factor = max(len(str(f)) for f in [*factors, general or ""])
+        box_w, box_h = min(max(0.2 + 0.072 * longest_item, 0.7), 1.9), ROW * 0.72
+        fw, fh = min(max(0.35 + 0.08 * longest_factor, 1.0), 1.9), 0.5
         # items
         for it, y in y_item.items():
             ax.add_patch(FancyBboxPatch((x_item - box_w / 2, y - box_h / 2), box_w, box_h,
                                         boxstyle="round,pad=0.01,rounding_size=0.04",
                                         facecolor=ITEM_FILL, edgecolor="black", linewidth=0.8))
-            ax.text(x_item, y, mpl_text(_short(it, 14)), ha="center", va="center", fontsize=7.5)
+            ax.text(x_item, y, mpl_text(_short(it, 24)), ha="center", va="center", fontsize=7.5)
         # specific / first-order factors
         y_fac = {}
         for f, its in factors.items():
@@ -168,7 +170,7 @@ def _spread(pos: dict[str, float], *, min_gap: float) -> None:
 
 def _factor(ax, x: float, y: float, w: float, h: float, name: str, fill: str) -> None:
     ax.add_patch(Ellipse((x, y), w, h, facecolor=fill, edgecolor="black", linewidth=1.0))
-    ax.text(x, y, mpl_text(_short(name, 14)), ha="center", va="center", fontsize=8, fontweight="bold")
+    ax.text(x, y, mpl_text(_short(name, 20)), ha="center", va="center", fontsize=8, fontweight="bold")
 
 
 def _arrow(ax, start, end, value: float | None, *, at: float = 0.72, curve: float = 0.0, shrink: float = 0) -> None:

@@ -168,7 +168,10 @@ def records_table(records: Sequence[Mapping[str, Any]], *, caption: str = "", fi
                 cols.append(k)
     names = names or {}
     rows = tuple(tuple(_pcell(c, r.get(c)) for c in cols) for r in flat)
-    numeric = tuple(all(is_number(r.get(c)) or r.get(c) is None for r in flat) for c in cols)
+    numeric = tuple(
+        all(is_number(r.get(c)) or r.get(c) is None for r in flat) and any(is_number(r.get(c)) for r in flat)
+        for c in cols
+    )
     extra = f" (first {MAX_ROWS} of {len(records)} rows)" if len(records) > MAX_ROWS else ""
     return Table(
         columns=tuple(_rename(c, names) for c in cols),
