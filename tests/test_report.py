@@ -206,3 +206,21 @@ def test_quiet_context_writes_no_progress(tmp_path, capfd):
     results, est, ctx = cached_case("bifactor")
     write_reports(tmp_path, results, est, dict(ctx, quiet=True))
     assert capfd.readouterr().err == ""
+
+
+def test_screening_section_from_the_screening_module(tmp_path):
+    from invariance.screening import screen
+
+    from _report_cases import hs_data
+
+    results, est, ctx = cached_case("bifactor")
+    items = [f"x{k}" for k in range(1, 10)]
+    scr = screen(hs_data(), items, "school", scales={"all": items})
+    write_reports(tmp_path, dict(results, screening=scr), est, ctx)
+    html = (tmp_path / "report.html").read_text(encoding="utf-8")
+    ids = section_ids(html)
+    assert ids.index("screening") == ids.index("data") + 1
+    sec = html.split('<section id="screening">')[1].split("</section>")[0]
+    assert "Mardia" in sec and "Item-total (all)" in sec and "Grant-White" in sec
+    for note in scr["recommendation"]["notes"]:
+        assert note.split(";")[0][:40].replace("&", "&amp;") in sec or note[:30] in sec

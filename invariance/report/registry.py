@@ -25,6 +25,7 @@ from .other_sections import (
     section_provenance,
 )
 from .parts import Section, Text
+from .screening_section import section_screening
 from .sections import (
     ReportInput,
     section_changes,
@@ -40,6 +41,7 @@ __all__ = ["SECTIONS", "build_sections"]
 SECTIONS: tuple[tuple[str, Callable[[ReportInput], Section | None]], ...] = (
     ("summary", section_summary),
     ("data", section_data),
+    ("screening", section_screening),
     ("model", section_model),
     ("levels", section_levels),
     ("changes", section_changes),

@@ -181,10 +181,6 @@ def section_data(inp: ReportInput) -> Section | None:
     if miss is not None:
         parts.append(Text("Missing data", style="note"))
         parts += generic_parts(miss, key_name="group")
-    screen = I.first_key(inp.results, I.OPTIONAL_KEYS["screening"])
-    if screen is not None:
-        parts.append(Text("Data screening", style="note"))
-        parts += generic_parts(screen)
     if not parts:
         return None
     return Section("data", "The data", tuple(parts))
