@@ -146,7 +146,7 @@ def model_diagram(
             out, pred = str(out), str(pred)
             pos = {**{f: (x_spec, y) for f, y in y_fac.items()}, **({general: (x_gen, height / 2)} if general else {})}
             if out in pos and pred in pos:
-                _arrow(ax, pos[pred], pos[out], paths.get((out, pred)), curve=0.3, shrink=22)
+                _arrow(ax, pos[pred], pos[out], paths.get((out, pred)), curve=0.6, shrink=22, at=0.5)
         # residual covariances
         for a, b in structure.get("residual_covariances") or []:
             a, b = str(a), str(b)
@@ -180,7 +180,10 @@ def _arrow(ax, start, end, value: float | None, *, at: float = 0.72, curve: floa
                                  color="#333333", shrinkA=shrink, shrinkB=shrink,
                                  connectionstyle=f"arc3,rad={curve}"))
     if value is not None:
-        x = start[0] + at * (end[0] - start[0])
-        y = start[1] + at * (end[1] - start[1])
+        dx, dy = end[0] - start[0], end[1] - start[1]
+        x = start[0] + at * dx
+        y = start[1] + at * dy
+        if curve:  # the middle of matplotlib's arc3 curve (a quadratic Bezier)
+            x, y = x + 0.5 * curve * dy, y - 0.5 * curve * dx
         ax.text(x, y, _fmt(value), ha="center", va="center", fontsize=6.5,
                 bbox=dict(boxstyle="round,pad=0.08", facecolor="white", edgecolor="none", alpha=0.9))

@@ -1,5 +1,8 @@
 """Charts of the report, drawn with matplotlib's object interface (no pyplot state).
 
+Figures are rendered by the Agg canvas directly, so the report never touches the
+user's pyplot backend or global figure list.
+
 Every chart is sized for a page (6.5 inches wide), uses the Okabe-Ito colour-blind-safe
 palette, and never relies on colour alone: groups also differ by marker, lines by dash
 pattern, and "beyond the cutoff" bars by hatching, so the charts read in grayscale.
@@ -13,10 +16,9 @@ import math
 from typing import Mapping, Sequence
 
 import matplotlib
-
-matplotlib.use("Agg", force=False)
-from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: E402
-from matplotlib.figure import Figure  # noqa: E402
+import matplotlib.ticker
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
 
 __all__ = [
     "PAGE_WIDTH",
