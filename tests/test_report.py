@@ -224,3 +224,29 @@ def test_screening_section_from_the_screening_module(tmp_path):
     assert "Mardia" in sec and "Item-total (all)" in sec and "Grant-White" in sec
     for note in scr["recommendation"]["notes"]:
         assert note.split(";")[0][:40].replace("&", "&amp;") in sec or note[:30] in sec
+
+
+def test_sparse_and_odd_values_render(tmp_path):
+    # values a results.json may hold: nulls, NaN, strings for numbers, groups as a list,
+    # unknown decisions, a level that did not converge, no estimates at all
+    results = {
+        "estimator": "MLR",
+        "groups": ["a", "b"],
+        "levels": [
+            {"level": "configural", "converged": True, "chi2": 50.0, "df": 20, "pvalue": None, "cfi": float("nan"),
+             "rmsea": "0.05", "rmsea_ci90": None, "srmr": 0.04, "delta": None, "decision": None, "released": None},
+            {"level": "metric", "converged": False, "chi2": None, "df": 25, "delta": {"chi2": None, "cfi": -0.02},
+             "decision": "inconclusive_for_now", "problems": ["negative residual variance of item q1 in group b"]},
+        ],
+        "decision_rule": {"name": "custom", "criteria": [{"index": "cfi", "cutoff": 0.02}], "cutoffs": None},
+        "flagged": [{"item": "q1", "parameter": "loading", "groups": None, "dmacs": None}],
+        "latent_means": [],
+        "bifactor": "not computed for this family",
+    }
+    write_reports(tmp_path, results, None, {"structure": {"factors": {"F": ["q1", "q2", "q3"]}}})
+    html = (tmp_path / "report.html").read_text(encoding="utf-8")
+    assert "could not be drawn" not in html
+    assert "inconclusive for now" in html and "did not converge" in html and "negative residual variance" in html
+    assert "\u2265 \u2212.020" in html  # the cutoff given on the criterion itself, read as a decrease
+    ids = section_ids(html)
+    assert "latent_means" not in ids and "effects" not in ids and "bifactor" in ids

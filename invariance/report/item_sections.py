@@ -17,6 +17,8 @@ FLAG_NAMES = {
     "statistic": "Statistic", "lm": "Score test", "score": "Score test", "df": "df", "pvalue": "p",
     "p": "p", "p_adjusted": "p (adjusted)", "dmacs": "dMACS",
 }
+#: Most markers (rows x groups) in one profile figure: larger sets are split so each fits a page.
+MAX_MARKERS = 90
 KIND_TITLES = {"loading": "Loadings", "intercept": "Intercepts", "threshold": "Thresholds"}
 
 
@@ -82,13 +84,21 @@ def section_profiles(inp: ReportInput) -> Section | None:
             if v is not None:
                 values[(name, str(r["group"]))] = (v, fnum(r.get("se")))
         rel = _released_rows(acc, kind, rows)
-        png = profile_chart(list(rows), groups, values, released=rel, title=KIND_TITLES[kind],
-                            xlabel=f"{kind} (unstandardized, 95% interval)")
-        if png is not None:
-            cap = (f"{KIND_TITLES[kind]} per group under the {level_label(acc or {'level': level}).lower()} model. "
+        names = list(rows)
+        per = max(4, int(MAX_MARKERS / max(len(groups), 1)))
+        chunks = [names[k:k + per] for k in range(0, len(names), per)]
+        for n_chunk, chunk in enumerate(chunks, start=1):
+            part_of = f" ({n_chunk} of {len(chunks)})" if len(chunks) > 1 else ""
+            png = profile_chart(chunk, groups, values, released=[r for r in rel if r in chunk],
+                                title=KIND_TITLES[kind] + part_of, xlabel=f"{kind} (unstandardized, 95% interval)")
+            if png is None:
+                continue
+            cap = (f"{KIND_TITLES[kind]}{part_of} per group under the "
+                   f"{level_label(acc or {'level': level}).lower()} model. "
                    "Constrained parameters are equal across groups by construction")
             cap += "; released ones (\u2020, shaded) are estimated per group." if rel else "; none were released."
-            parts.append(Figure(f"profile-{kind}", png, alt=f"{KIND_TITLES[kind]} of each item in each group", caption=cap))
+            stem = f"profile-{kind}" + (f"-{n_chunk}" if len(chunks) > 1 else "")
+            parts.append(Figure(stem, png, alt=f"{KIND_TITLES[kind]}{part_of} of each item in each group", caption=cap))
     if not parts:
         return None
     return Section("profiles", "Item profiles across groups", tuple(parts))

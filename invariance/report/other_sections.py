@@ -12,7 +12,7 @@ from typing import Any, Mapping
 from . import inputs as I
 from .formatting import fmt_p, fnum
 from .parts import Bullets, Code, Figure, Section, Table, Text, cell, generic_parts, records_table
-from .plots import forest_chart
+from .plots import forest_chart, guide_chart
 from .sections import ReportInput
 
 __all__ = [
@@ -67,6 +67,11 @@ def section_bifactor(inp: ReportInput) -> Section | None:
     recs = _records(obj, "group")
     parts: list = []
     if recs:
+        png = _bifactor_chart(recs, inp)
+        if png is not None:
+            parts.append(Figure("bifactor-quality", png, alt="Bifactor quality indices per group",
+                                caption="Bifactor quality per group; dashed lines: the common-practice guides "
+                                        "(\u03c9H .80; ECV, PUC and H .70)."))
         tab = records_table(recs, first="group", caption="Bifactor quality per group (standardized solution)")
         parts.append(Table(tuple(_pretty(c) for c in tab.columns), tab.rows, caption=tab.caption, numeric=tab.numeric))
     else:
@@ -76,6 +81,31 @@ def section_bifactor(inp: ReportInput) -> Section | None:
         "Common practice: ECV and PUC above .70 suggest an essentially unidimensional scale; "
         "\u03c9H above .80 and H above .70 suggest a well-defined factor.", style="note"))
     return Section("bifactor", "Bifactor quality indices", tuple(parts))
+
+
+_GUIDES = {"\u03c9H": 0.80, "ECV": 0.70, "PUC": 0.70, "H": 0.70}
+
+
+def _bifactor_chart(recs: list[dict], inp: ReportInput) -> bytes | None:
+    """omegaH, ECV, PUC and H of the general factor per group against their guides."""
+    general = str(inp.structure.get("general") or "")
+    values: dict[tuple[str, str], float] = {}
+    groups = []
+    for r in recs:
+        g = str(r.get("group", ""))
+        groups.append(g)
+        for key, val in r.items():
+            if isinstance(val, Mapping):  # per-factor index: keep the general factor's
+                val = val.get(general) if general else None
+                label = _pretty(str(key)) + (f" ({general})" if general else "")
+                guide_key = _pretty(str(key))
+            else:
+                label = guide_key = _pretty(str(key))
+            if guide_key in _GUIDES and fnum(val) is not None:
+                values[(label, g)] = fnum(val)
+    order = [k for k in dict.fromkeys(ix for ix, _ in values)]
+    guides = {ix: _GUIDES[ix.split(" (")[0]] for ix in order}
+    return guide_chart(order, groups, values, guides=guides, ylabel="index")
 
 
 def _interval(rec: Mapping[str, Any]) -> tuple[float | None, float | None, str]:

@@ -27,6 +27,7 @@ __all__ = [
     "change_chart",
     "dmacs_heatmap",
     "forest_chart",
+    "guide_chart",
     "mpl_text",
     "new_figure",
     "png_bytes",
@@ -277,4 +278,50 @@ def forest_chart(rows: Sequence[tuple[str, float, float | None, float | None]], 
         ax.set_ylim(-0.6, n - 0.4)
         ax.grid(axis="x", color="#cccccc", linewidth=0.5)
         ax.set_xlabel(mpl_text(xlabel))
+        return png_bytes(fig)
+
+
+# ------------------------------------------------------------------ guides
+def guide_chart(
+    indices: Sequence[str],
+    groups: Sequence[str],
+    values: Mapping[tuple[str, str], float],
+    *,
+    guides: Mapping[str, float] | None = None,
+    ylabel: str = "value",
+) -> bytes | None:
+    """Indices on a 0-1 scale per group (a marker per group), with a guide line per index."""
+    indices = [ix for ix in indices if any(_num(values.get((ix, g))) is not None for g in groups)]
+    if not indices or not groups:
+        return None
+    guides = dict(guides or {})
+    G = len(groups)
+    with matplotlib.rc_context(_RC):
+        fig = new_figure(2.8)
+        ax = fig.subplots()
+        _style_axes(ax)
+        step = 0.6 / max(G, 1)
+        for k, ix in enumerate(indices):
+            if _num(guides.get(ix)) is not None:
+                ax.hlines(guides[ix], k - 0.4, k + 0.4, colors="black", linestyles="--", linewidth=1.1, zorder=1)
+        for j, g in enumerate(groups):
+            xs, ys = [], []
+            for k, ix in enumerate(indices):
+                v = _num(values.get((ix, g)))
+                if v is not None:
+                    xs.append(k + (j - (G - 1) / 2) * step)
+                    ys.append(v)
+            ax.plot(xs, ys, MARKERS[j % len(MARKERS)], color=PALETTE[j % len(PALETTE)], markeredgecolor="black",
+                    markeredgewidth=0.5, markersize=6, linestyle="none", label=mpl_text(g), zorder=3)
+        ax.set_xticks(range(len(indices)), [mpl_text(i) for i in indices])
+        ax.set_ylim(0, 1.02)
+        ax.set_ylabel(mpl_text(ylabel))
+        ax.grid(axis="y", color="#dddddd", linewidth=0.5)
+        handles, labels = ax.get_legend_handles_labels()
+        if guides:
+            from matplotlib.lines import Line2D
+
+            handles.append(Line2D([0], [0], color="black", linestyle="--"))
+            labels.append("guide (common practice)")
+        fig.legend(handles, labels, loc="outside lower center", ncols=min(len(labels), 5), frameon=False)
         return png_bytes(fig)
