@@ -7,7 +7,6 @@ import base64
 import copy
 import io
 import re
-import warnings
 
 import pandas as pd
 import pytest

@@ -8,7 +8,7 @@ loadings are dashed, so the diagram reads without colour.
 
 from __future__ import annotations
 
-from typing import Any, Mapping, Sequence
+from typing import Any, Mapping
 
 import matplotlib
 from matplotlib.patches import Ellipse, FancyArrowPatch, FancyBboxPatch

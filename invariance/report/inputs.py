@@ -38,6 +38,7 @@ __all__ = [
     "first_key",
     "levels",
     "meets",
+    "norm_index",
     "new_releases",
     "rule",
 ]
@@ -99,13 +100,13 @@ def criteria_names(results: Mapping[str, Any]) -> list[str]:
             c = c.get("index") or c.get("name") or c.get("criterion")
         if c is None:
             continue
-        name = _norm_index(str(c))
+        name = norm_index(str(c))
         if name not in out:
             out.append(name)
     return out
 
 
-def _norm_index(name: str) -> str:
+def norm_index(name: str) -> str:
     n = name.strip().lower().replace("\u0394", "").replace("delta_", "").replace("delta", "")
     if n.startswith("d") and n[1:] in ("cfi", "tli", "rmsea", "srmr", "chi2"):
         n = n[1:]
@@ -116,7 +117,7 @@ def _norm_index(name: str) -> str:
 
 def _lookup(d: Mapping[str, Any], index: str) -> Any:
     for key, val in d.items():
-        if _norm_index(str(key)) == index:
+        if norm_index(str(key)) == index:
             return val
     return None
 
@@ -127,7 +128,7 @@ def cutoff(results: Mapping[str, Any], index: str, entry: Mapping[str, Any] | No
     CFI and TLI cutoffs are returned as decreases (negative), RMSEA and SRMR as
     increases (positive), the chi-square cutoff as a significance level.
     """
-    index = _norm_index(index)
+    index = norm_index(index)
     level = str((entry or {}).get("level", ""))
     sources = []
     if entry is not None and isinstance(entry.get("cutoffs"), Mapping):
@@ -176,7 +177,7 @@ def meets(index: str, change: Any, cut: float | None, *, pvalue: Any = None) -> 
 
     CFI/TLI: change >= cutoff; RMSEA/SRMR: change <= cutoff; chi-square: p >= alpha.
     """
-    index = _norm_index(index)
+    index = norm_index(index)
     if cut is None:
         return None
     if index == "chi2":

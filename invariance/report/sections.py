@@ -260,7 +260,7 @@ def _criteria_rows(inp: ReportInput) -> tuple[list[tuple[str, ...]], list[str]]:
         given = {}
         for c in e.get("criteria") or []:
             if isinstance(c, Mapping) and (c.get("index") or c.get("name")):
-                given[I._norm_index(str(c.get("index") or c.get("name")))] = c
+                given[I.norm_index(str(c.get("index") or c.get("name")))] = c
         first = True
         for ix in shown:
             g = given.get(ix, {})
