@@ -116,3 +116,7 @@ def test_accepted_level_and_new_releases():
     assert I.accepted_entry(failing)["level"] == "configural"
     assert I.accepted_entry({"levels": [{"level": "configural", "decision": "fails"}]})["level"] == "configural"
     assert I.accepted_entry({}) is None
+    # nested levels: strict "holding" after a failed scalar step is not accepted
+    chain = {"levels": [{"level": "configural", "decision": "holds"}, {"level": "metric", "decision": "holds"},
+                        {"level": "scalar", "decision": "fails"}, {"level": "strict", "decision": "holds"}]}
+    assert I.accepted_entry(chain)["level"] == "metric"

@@ -204,13 +204,18 @@ def new_releases(results: Mapping[str, Any]) -> list[tuple[dict, dict]]:
 
 
 def accepted_entry(results: Mapping[str, Any]) -> dict | None:
-    """The most constrained level that holds (fully or partially), else the configural one."""
+    """The most constrained level that holds (fully or partially), else the configural one.
+
+    Levels are nested: the chain stops at the first level that does not hold, so a
+    later level that "holds" against a failed one is not accepted.
+    """
     entries = levels(results)
-    ok = [
-        e
-        for e in entries
-        if e.get("decision") in ("holds", "holds_partially") and e.get("converged", True) is not False
-    ]
+    ok = []
+    for e in entries:
+        if e.get("decision") in ("holds", "holds_partially") and e.get("converged", True) is not False:
+            ok.append(e)
+        else:
+            break
     if ok:
         return ok[-1]
     for e in entries:
