@@ -225,6 +225,14 @@ def test_screening_section_from_the_screening_module(tmp_path):
         assert note.split(";")[0][:40].replace("&", "&amp;") in sec or note[:30] in sec
 
 
+def test_summary_when_configural_fails(tmp_path):
+    results = {"groups": {"a": 300, "b": 300},
+               "levels": [{"level": "configural", "chi2": 900.0, "df": 40, "cfi": 0.71, "decision": "fails"}]}
+    write_reports(tmp_path, results, pd.DataFrame(), {})
+    html = (tmp_path / "report.html").read_text(encoding="utf-8")
+    assert "Not even the configural model is supported" in html
+
+
 def test_sparse_and_odd_values_render(tmp_path):
     # values a results.json may hold: nulls, NaN, strings for numbers, groups as a list,
     # unknown decisions, a level that did not converge, no estimates at all
@@ -245,6 +253,7 @@ def test_sparse_and_odd_values_render(tmp_path):
     write_reports(tmp_path, results, None, {"structure": {"factors": {"F": ["q1", "q2", "q3"]}}})
     html = (tmp_path / "report.html").read_text(encoding="utf-8")
     assert "could not be drawn" not in html
+    assert "No decision was recorded" in html
     assert "inconclusive for now" in html and "did not converge" in html and "negative residual variance" in html
     assert "\u2265 \u2212.020" in html  # the cutoff given on the criterion itself, read as a decrease
     ids = section_ids(html)

@@ -120,8 +120,11 @@ def section_summary(inp: ReportInput) -> Section | None:
         if rel:
             lead += f", with {len(rel)} constraint{'s' if len(rel) != 1 else ''} released"
         parts.append(Text(lead + ".", style="lead"))
+    elif acc is not None and acc.get("decision") == "fails":
+        parts.append(Text(f"Not even the {level_label(acc).lower()} model is supported by the decision rule: the groups "
+                          "may not share one factor structure, so no invariance level can be claimed.", style="lead"))
     elif entries:
-        parts.append(Text("No invariance level beyond the configural model is supported by the decision rule.", style="lead"))
+        parts.append(Text("No decision was recorded for the invariance levels.", style="lead"))
     groups = inp.groups
     facts = []
     if groups:
