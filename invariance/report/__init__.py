@@ -26,6 +26,7 @@ from typing import Any, Mapping
 import pandas as pd
 
 from ..progress import Progress
+from .formatting import estimator_label
 from .parts import Figure, Section
 from .registry import SECTIONS, build_sections
 from .render import render_html, render_markdown
@@ -49,11 +50,11 @@ def _meta(inp: ReportInput) -> dict[str, Any]:
     if inp.groups:
         bits.append(f"{len(inp.groups)} groups")
     if inp.results.get("estimator"):
-        bits.append(f"estimator {inp.results['estimator']}")
+        bits.append(f"estimator {estimator_label(inp.results['estimator'])}")
     if ctx.get("created"):
         bits.append(f"run {ctx['created']}")
     return {
-        "title": str(ctx.get("title") or "Measurement invariance report"),
+        "title": str(ctx.get("title") or inp.results.get("title") or "Measurement invariance report"),
         "subtitle": " \u00b7 ".join(bits),
         "version": __version__,
         "written": datetime.now(timezone.utc).isoformat(timespec="seconds"),

@@ -14,6 +14,7 @@ __all__ = [
     "DECISION_LABELS",
     "LEVEL_LABELS",
     "decision_label",
+    "estimator_label",
     "fnum",
     "fmt_bounded",
     "fmt_delta",
@@ -106,6 +107,15 @@ def fmt_p(x: Any, *, minus: str = MINUS) -> str:
     if v < 0.001:
         return "< .001"
     return fmt_bounded(v, minus=minus)
+
+
+ESTIMATOR_LABELS = {"ml": "ML", "mlr": "robust ML", "robust_ml": "robust ML", "fiml": "FIML (ML with missing data)",
+                    "dwls": "DWLS", "wlsmv": "DWLS (robust)", "uls": "ULS"}
+
+
+def estimator_label(code: Any) -> str:
+    """Readable name of an estimator code (``ml`` -> ``ML``); unknown codes as given."""
+    return ESTIMATOR_LABELS.get(str(code).lower(), str(code))
 
 
 def decision_label(code: Any) -> str:

@@ -4,15 +4,19 @@ The report only reads results; it never re-estimates. Every key is read with ``.
 so that a results dict from an older or newer pipeline still renders. Keys read:
 
 Top level
-    ``estimator``, ``groups`` (group -> N used), ``reference_group``, ``levels``,
-    ``flagged``, ``decision_rule`` (``name``, ``criteria``, ``cutoffs``), and the
-    optional sections listed in :data:`OPTIONAL_KEYS`.
+    ``title``, ``estimator``, ``groups`` (group -> N used), ``reference_group``,
+    ``levels``, ``flagged``, ``decision_rule`` (``name`` or ``source``, ``rule`` (the
+    rule in words), ``criteria``, ``cutoffs``, ``combine``, ``alpha``), ``verdict``,
+    ``warnings``, ``stop_at_failure``, ``data`` (``file``, ``rows_by_group``,
+    ``missing_by_group``, ``missing_codes``, ``cases_used``), and the optional sections
+    listed in :data:`OPTIONAL_KEYS`.
 Each level
     ``level``, ``label`` (optional display name), ``converged``, ``chi2``, ``df``,
     ``pvalue``, ``cfi``, ``tli``, ``rmsea``, ``rmsea_ci90``, ``srmr``, ``aic``, ``bic``,
     ``delta`` (``chi2``, ``df``, ``pvalue``, ``cfi``, ``rmsea``, ``srmr``), ``decision``,
-    ``released``, and optionally ``cutoffs`` / ``criteria`` / ``problems`` /
-    ``compared_to``.
+    ``released``, and optionally ``compared_with``, ``reason``, ``problems``,
+    ``cutoffs`` and ``checks`` (or ``criteria``): a list of {``criterion``, ``value``,
+    ``cutoff``, ``passed``}.
 
 Cutoffs may be given in any of these shapes (values for CFI/TLI may be given as a
 positive drop; they are read as a decrease):
@@ -37,10 +41,13 @@ __all__ = [
     "cutoff",
     "first_key",
     "levels",
+    "level_checks",
     "meets",
     "norm_index",
     "new_releases",
     "rule",
+    "rule_name",
+    "rule_text",
 ]
 
 #: Fit indices whose change between levels is judged against a cutoff.
@@ -89,6 +96,34 @@ def rule(results: Mapping[str, Any]) -> dict:
     return dict(r)
 
 
+def rule_name(results: Mapping[str, Any]) -> str | None:
+    """Short name of the decision rule (``name``, else ``source``)."""
+    r = rule(results)
+    name = r.get("name") or r.get("source")
+    return None if not name else str(name)
+
+
+def rule_text(results: Mapping[str, Any]) -> str | None:
+    """The rule in words (``rule`` or ``description``), when it says more than the name."""
+    r = rule(results)
+    text = r.get("rule") or r.get("description")
+    return None if not isinstance(text, str) or text == rule_name(results) else text
+
+
+def level_checks(entry: Mapping[str, Any]) -> dict[str, dict]:
+    """The checks recorded on a level: index -> {value, cutoff, passed}."""
+    out = {}
+    for c in (entry.get("checks") or entry.get("criteria") or []):
+        if not isinstance(c, Mapping):
+            continue
+        name = c.get("criterion") or c.get("index") or c.get("name")
+        if name is None:
+            continue
+        passed = next((c[k] for k in ("passed", "met", "ok", "within") if isinstance(c.get(k), bool)), None)
+        out[norm_index(str(name))] = {"value": c.get("value"), "cutoff": c.get("cutoff"), "passed": passed}
+    return out
+
+
 def criteria_names(results: Mapping[str, Any]) -> list[str]:
     """Names of the criteria that decide (lower case, ``delta_`` prefixes removed)."""
     crit = rule(results).get("criteria") or []
@@ -97,7 +132,7 @@ def criteria_names(results: Mapping[str, Any]) -> list[str]:
     out = []
     for c in crit:
         if isinstance(c, Mapping):
-            c = c.get("index") or c.get("name") or c.get("criterion")
+            c = c.get("criterion") or c.get("index") or c.get("name")
         if c is None:
             continue
         name = norm_index(str(c))
@@ -140,9 +175,9 @@ def cutoff(results: Mapping[str, Any], index: str, entry: Mapping[str, Any] | No
     if isinstance(crit, list):
         sources.append(
             {
-                (c.get("index") or c.get("name")): c.get("cutoff")
+                (c.get("criterion") or c.get("index") or c.get("name")): c.get("cutoff")
                 for c in crit
-                if isinstance(c, Mapping) and (c.get("index") or c.get("name"))
+                if isinstance(c, Mapping) and (c.get("criterion") or c.get("index") or c.get("name"))
             }
         )
     value = None

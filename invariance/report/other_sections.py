@@ -29,7 +29,9 @@ __all__ = [
 #: Top-level results keys that some section reads (anything else goes to "Further results").
 KNOWN_KEYS = {
     "estimator", "groups", "reference_group", "levels", "flagged", "decision_rule", "warnings",
-    "problems", "version", "created", "schema_version", "pipeline", "data", "seed",
+    "problems", "version", "created", "schema_version", "pipeline", "data", "seed", "title", "verdict",
+    "invariance_version", "n_total", "model", "free_parameters", "supported_level", "permits",
+    "stop_at_failure",
 } | {k for keys in I.OPTIONAL_KEYS.values() for k in keys}
 
 PACKAGES = ("invariance", "numpy", "scipy", "pandas", "matplotlib", "jinja2", "semopy", "PyYAML", "jsonschema")
@@ -204,7 +206,7 @@ def section_cautions(inp: ReportInput) -> Section | None:
         "These results are evidence for a decision about comparing groups, not the decision itself, "
         "and not a verdict on whether a test is fair.",
         "Fairness of a test used for high-stakes purposes (hiring, admission, clinical or legal decisions) is "
-        "judged under professional testing standards (AERA, APA & NCME, Standards for Educational and "
+        "judged under professional testing standards (AERA/APA/NCME Standards for Educational and "
         "Psychological Testing, 2014; ITC Guidelines for Translating and Adapting Tests, 2nd ed., 2017) and local law.",
         "Small groups (under about 200 cases per group; common practice) make every test here weak: "
         "a level that \u201cholds\u201d may only mean that differences could not be detected.",
@@ -238,10 +240,11 @@ def package_versions() -> dict[str, str]:
 def section_provenance(inp: ReportInput) -> Section | None:
     """The pipeline file as run, the data file's SHA-256, package versions, seed, time."""
     ctx = inp.context
-    seed = ctx.get("seed")
+    data = inp.results.get("data") if isinstance(inp.results.get("data"), Mapping) else {}
+    seed = ctx.get("seed", inp.results.get("seed"))
     facts = [
         ("Data file", str(ctx.get("data_file") or "not recorded")),
-        ("Data SHA-256", str(ctx.get("data_sha256") or "not recorded")),
+        ("Data SHA-256", str(ctx.get("data_sha256") or data.get("sha256") or "not recorded")),
         ("Seed", "none" if seed is None else str(seed)),
         ("Run started", str(ctx.get("created") or "not recorded")),
         ("Report written", datetime.now(timezone.utc).isoformat(timespec="seconds")),

@@ -8,6 +8,7 @@ skips the section (its data are absent). The order of the report is
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any, Mapping
 
 import pandas as pd
@@ -16,6 +17,7 @@ from . import inputs as I
 from .diagram import model_diagram
 from .formatting import (
     decision_label,
+    estimator_label,
     fmt_bounded,
     fmt_delta,
     fmt_int,
@@ -125,6 +127,8 @@ def section_summary(inp: ReportInput) -> Section | None:
                           "may not share one factor structure, so no invariance level can be claimed.", style="lead"))
     elif entries:
         parts.append(Text("No decision was recorded for the invariance levels.", style="lead"))
+    if isinstance(inp.results.get("verdict"), str) and inp.results["verdict"]:
+        parts.append(Text(inp.results["verdict"]))
     groups = inp.groups
     facts = []
     if groups:
@@ -132,12 +136,12 @@ def section_summary(inp: ReportInput) -> Section | None:
             f"Groups: {', '.join(groups)} (reference group: {inp.reference})."
         )
     if inp.results.get("estimator"):
-        facts.append(f"Estimator: {inp.results['estimator']}.")
-    r = I.rule(inp.results)
-    if r.get("name"):
-        facts.append(f"Decision rule: {r['name']}.")
+        facts.append(f"Estimator: {estimator_label(inp.results['estimator'])}.")
+    if I.rule_name(inp.results):
+        facts.append(f"Decision rule: {I.rule_name(inp.results)}.")
     for e in entries:
-        facts.append(f"{level_label(e)}: {decision_label(e.get('decision')) or 'no decision recorded'}.")
+        why = f" ({e['reason']})" if isinstance(e.get("reason"), str) and e["reason"] else ""
+        facts.append(f"{level_label(e)}: {decision_label(e.get('decision')) or 'no decision recorded'}{why}.")
     if facts:
         parts.append(Bullets(tuple(facts)))
     warn = inp.results.get("warnings") or inp.results.get("problems")
@@ -160,26 +164,64 @@ def section_summary(inp: ReportInput) -> Section | None:
 
 
 # --------------------------------------------------------------------- data
+def _missing_table(by_group: Mapping[str, Any], items: list[str]) -> Table | None:
+    """Items (rows) by groups (columns) of missing-value counts; ``None`` when nothing is missing."""
+    groups = [g for g, v in by_group.items() if isinstance(v, Mapping)]
+    if not groups:
+        return None
+    seen = [i for g in groups for i in by_group[g]]
+    order = [i for i in items if i in seen] + [i for i in dict.fromkeys(seen) if i not in items]
+    if not any(fnum(by_group[g].get(i)) for g in groups for i in order):
+        return None
+    rows = tuple((i, *(fmt_int(by_group[g].get(i)) for g in groups)) for i in order)
+    return Table(("Item", *groups), rows, caption="Missing values per item and group (before cases were dropped)",
+                 numeric=(False,) + (True,) * len(groups))
+
+
 def section_data(inp: ReportInput) -> Section | None:
-    """Groups and the cases used in each; missingness and screening when present."""
+    """Groups, rows read and cases used in each; missing values; the data file.
+
+    Reads ``groups``, ``data`` (``file``, ``rows_by_group``, ``missing_by_group``,
+    ``missing_codes``, ``cases_used``) and the optional missing-data section.
+    """
     groups = inp.groups
+    data = inp.results.get("data") if isinstance(inp.results.get("data"), Mapping) else {}
+    rows_by = data.get("rows_by_group") if isinstance(data.get("rows_by_group"), Mapping) else {}
     parts: list = []
     if groups:
         ns = {g: fnum(n) for g, n in groups.items()}
         total = sum(v for v in ns.values() if v is not None)
+        with_rows = bool(rows_by)
         rows = []
         for g, n in ns.items():
             share = "" if not total or n is None else f"{100 * n / total:.1f}%"
-            rows.append((g, fmt_int(n), share, "reference" if g == inp.reference else ""))
-        rows.append(("Total", fmt_int(total) if total else "", "100.0%" if total else "", ""))
-        parts.append(Table(("Group", "N used", "Share", "Role"), tuple(rows),
-                           caption="Cases used per group", numeric=(False, True, True, False),
+            read = fnum(rows_by.get(g))
+            extra = (fmt_int(read), fmt_int(read - n) if read is not None and n is not None else "") if with_rows else ()
+            rows.append((g, *extra, fmt_int(n), share, "reference" if g == inp.reference else ""))
+        read_total = sum(v for v in (fnum(x) for x in rows_by.values()) if v is not None)
+        extra = (fmt_int(read_total), fmt_int(read_total - total)) if with_rows else ()
+        rows.append(("Total", *extra, fmt_int(total) if total else "", "100.0%" if total else "", ""))
+        cols = ("Group",) + (("Rows read", "Dropped") if with_rows else ()) + ("N used", "Share", "Role")
+        parts.append(Table(cols, tuple(rows), caption="Cases per group",
+                           numeric=(False,) + (True,) * (len(cols) - 2) + (False,),
                            row_styles=("",) * len(ns) + ("total",)))
+    facts = []
     n_items = len(inp.items)
     if n_items:
-        parts.append(Text(f"{n_items} items enter the model."))
-    if inp.context.get("data_file"):
-        parts.append(Text(f"Data file: {inp.context['data_file']}."))
+        facts.append(f"{n_items} items enter the model.")
+    if data.get("cases_used"):
+        facts.append(f"Cases used: {data['cases_used']}.")
+    if data.get("missing_codes"):
+        facts.append("Values read as missing: " + ", ".join(str(c) for c in data["missing_codes"]) + ".")
+    name = data.get("file") or (Path(str(inp.context["data_file"])).name if inp.context.get("data_file") else None)
+    if name:
+        facts.append(f"Data file: {name} (full path and SHA-256 under Provenance).")
+    if facts:
+        parts.append(Bullets(tuple(facts)))
+    if isinstance(data.get("missing_by_group"), Mapping):
+        tab = _missing_table(data["missing_by_group"], inp.items)
+        if tab is not None:
+            parts.append(tab)
     miss = I.first_key(inp.results, I.OPTIONAL_KEYS["missing"])
     if miss is not None:
         parts.append(Text("Missing data", style="note"))
@@ -251,51 +293,72 @@ def section_model(inp: ReportInput) -> Section | None:
 
 
 # ------------------------------------------------------------------- levels
-def _criteria_rows(inp: ReportInput) -> tuple[list[tuple[str, ...]], list[str]]:
-    """Rows (level, criterion, change, cutoff, within, decision) for every compared level."""
+def _absolute_rows(e: Mapping[str, Any], checks: dict[str, dict]) -> list[tuple]:
+    """Rows for a level judged on its own fit (the configural model): value against cutoff."""
+    rows = []
+    for ix, c in checks.items():
+        cut = fnum(c.get("cutoff"))
+        up = ix in ("cfi", "tli")
+        value = c.get("value") if c.get("value") is not None else e.get(ix)
+        cut_text = "" if cut is None else ("\u2265 " if up else "\u2264 ") + fmt_bounded(cut)
+        ok = c.get("passed")
+        if ok is None and cut is not None and fnum(value) is not None:
+            ok = fnum(value) >= cut if up else fnum(value) <= cut
+        rows.append((ix.upper() if ix != "chi2" else "\u03c7\u00b2", fmt_bounded(value), cut_text or "none set", ok, "decides"))
+    return rows
+
+
+def _change_rows(inp: ReportInput, e: Mapping[str, Any], d: Mapping[str, Any], checks: dict[str, dict]) -> list[tuple]:
+    """Rows for a level judged by the change from the level before it."""
     names = I.criteria_names(inp.results)
-    shown = names + [ix for ix in ("cfi", "rmsea", "srmr", "chi2") if ix not in names]
+    shown = names + [ix for ix in checks if ix not in names]
+    shown += [ix for ix in ("cfi", "rmsea", "srmr", "chi2") if ix not in shown]
+    rows = []
+    for ix in shown:
+        g = checks.get(ix, {})
+        cut = fnum(g.get("cutoff")) if g.get("cutoff") is not None else I.cutoff(inp.results, ix, e)
+        if ix in ("cfi", "tli") and cut is not None:
+            cut = -abs(cut)
+        if ix == "chi2":
+            change = (f"{float(d['chi2']):.2f} on {fmt_int(d.get('df'))} df, p {fmt_p(d.get('pvalue'))}"
+                      if fnum(d.get("chi2")) is not None else "")
+            cut_text = "" if cut is None else f"p \u2265 {fmt_bounded(cut)}"
+            ok = I.meets(ix, None, cut, pvalue=d.get("pvalue"))
+        else:
+            change = fmt_delta(d.get(ix))
+            cut_text = "" if cut is None else (("\u2265 " if ix in ("cfi", "tli") else "\u2264 ") + fmt_delta(cut))
+            ok = I.meets(ix, d.get(ix), cut)
+        if isinstance(g.get("passed"), bool):
+            ok = g["passed"]
+        if not change and not cut_text:
+            continue
+        role = "decides" if (ix in names or ix in checks) else ("shown" if names or checks else "")
+        rows.append((INDEX_NAMES.get(ix, ix), change, cut_text or "none set", ok, role))
+    return rows
+
+
+def _criteria_rows(inp: ReportInput) -> tuple[list[tuple[str, ...]], list[str]]:
+    """Rows (level, criterion, value, cutoff, within, role, decision) for every judged level."""
     rows, styles = [], []
     for e in I.levels(inp.results):
         d = e.get("delta")
-        if not isinstance(d, Mapping):
+        checks = I.level_checks(e)
+        if isinstance(d, Mapping):
+            sub = _change_rows(inp, e, d, checks)
+        elif checks:
+            sub = _absolute_rows(e, checks)
+        else:
             continue
-        given = {}
-        for c in e.get("criteria") or []:
-            if isinstance(c, Mapping) and (c.get("index") or c.get("name")):
-                given[I.norm_index(str(c.get("index") or c.get("name")))] = c
-        first = True
-        for ix in shown:
-            g = given.get(ix, {})
-            cut = fnum(g.get("cutoff")) if g.get("cutoff") is not None else I.cutoff(inp.results, ix, e)
-            if ix in ("cfi", "tli") and cut is not None:
-                cut = -abs(cut)
-            if ix == "chi2":
-                change = (f"{float(d['chi2']):.2f} on {fmt_int(d.get('df'))} df, p {fmt_p(d.get('pvalue'))}"
-                          if fnum(d.get("chi2")) is not None else "")
-                cut_text = "" if cut is None else f"p \u2265 {fmt_bounded(cut)}"
-                ok = I.meets(ix, None, cut, pvalue=d.get("pvalue"))
-            else:
-                change = fmt_delta(d.get(ix))
-                cut_text = "" if cut is None else (("\u2265 " if ix in ("cfi", "tli") else "\u2264 ") + fmt_delta(cut))
-                ok = I.meets(ix, d.get(ix), cut)
-            for key in ("met", "passed", "ok", "within"):
-                if isinstance(g.get(key), bool):
-                    ok = g[key]
-            if not change and not cut_text:
-                continue
-            role = "decides" if ix in names else ("shown" if names else "")
+        name = level_label(e)
+        if e.get("compared_with"):
+            name += f" (vs {e['compared_with']})"
+        for k, (crit, value, cut_text, ok, role) in enumerate(sub):
             rows.append((
-                level_label(e) if first else "",
-                INDEX_NAMES.get(ix, ix),
-                change,
-                cut_text or "none set",
-                "" if ok is None else ("yes" if ok else "no"),
-                role,
-                decision_label(e.get("decision")) if first else "",
+                name if k == 0 else "", crit, value, cut_text,
+                "" if ok is None else ("yes" if ok else "no"), role,
+                decision_label(e.get("decision")) if k == 0 else "",
             ))
             styles.append("" if ok is None else ("ok" if ok else "bad"))
-            first = False
     return rows, styles
 
 
@@ -313,20 +376,27 @@ def section_levels(inp: ReportInput) -> Section | None:
     ]
     r = I.rule(inp.results)
     intro = []
-    if r.get("name"):
-        intro.append(f"Decision rule: {r['name']}.")
+    if I.rule_name(inp.results):
+        intro.append(f"Decision rule: {I.rule_name(inp.results)}.")
     names = I.criteria_names(inp.results)
     if names:
-        intro.append("Deciding criteria: " + ", ".join(INDEX_NAMES.get(n, n) for n in names) + ".")
-    for key in ("description", "combine", "combination", "note"):
+        how = {"all": " (a level holds when every one passes)", "any": " (a level holds when any one passes)"}
+        intro.append("Deciding criteria: " + ", ".join(INDEX_NAMES.get(n, n) for n in names)
+                     + how.get(str(r.get("combine")), "") + ".")
+    text = I.rule_text(inp.results)
+    if text:
+        intro.append(text if text.endswith(".") else text + ".")
+    for key in ("combination", "note"):
         if isinstance(r.get(key), str):
             intro.append(r[key])
+    if inp.results.get("stop_at_failure") and any(e.get("decision") == "not_tested" for e in entries):
+        intro.append("Testing stopped at the first level that failed; the levels after it were not tested.")
     if not r:
         intro.append("The results do not record the decision rule; cutoffs are shown where the results give them.")
     parts.append(Text(" ".join(intro), style="note"))
     rows, row_styles = _criteria_rows(inp)
     if rows:
-        parts.append(Table(("Level", "Criterion", "Change", "Cutoff", "Within cutoff", "Role", "Decision"),
+        parts.append(Table(("Level", "Criterion", "Change (or value)", "Cutoff", "Within cutoff", "Role", "Decision"),
                            tuple(rows), caption="Each criterion against its cutoff",
                            numeric=(False, False, True, True, False, False, False), row_styles=tuple(row_styles)))
     rel = [(level_label(e), release_text(x)) for e, x in I.new_releases(inp.results)]

@@ -17,6 +17,7 @@ from typing import Any, Mapping
 
 from .formatting import (
     decision_label,
+    estimator_label,
     fmt_bounded,
     fmt_delta,
     fmt_int,
@@ -26,7 +27,7 @@ from .formatting import (
     level_label,
     release_text,
 )
-from .inputs import levels, new_releases
+from .inputs import levels, new_releases, rule_name
 
 __all__ = [
     "LEVEL_TABLE_FILES",
@@ -143,7 +144,7 @@ def level_table_note(results: Mapping[str, Any]) -> str:
             + ")."
         )
     if results.get("estimator"):
-        parts.append(f"Estimator: {results['estimator']}.")
+        parts.append(f"Estimator: {estimator_label(results['estimator'])}.")
     parts.append(
         "Changes (\u0394) are each model minus the model before it; CI = confidence interval."
     )
@@ -156,7 +157,7 @@ def level_table_note(results: Mapping[str, Any]) -> str:
             "Released constraints (carried forward to the later models): "
             + "; ".join(f"{m}: {', '.join(ts)}" for m, ts in by_model.items()) + "."
         )
-    name = (results.get("decision_rule") or {}).get("name") if isinstance(results.get("decision_rule"), Mapping) else None
+    name = rule_name(results)
     if name:
         parts.append(f"Decision rule: {name}.")
     return " ".join(parts)
