@@ -258,3 +258,21 @@ def test_sparse_and_odd_values_render(tmp_path):
     assert "\u2265 \u2212.020" in html  # the cutoff given on the criterion itself, read as a decrease
     ids = section_ids(html)
     assert "latent_means" not in ids and "effects" not in ids and "bifactor" in ids
+
+
+class _Terminal(io.StringIO):
+    def isatty(self) -> bool:
+        return True
+
+
+@pytest.mark.parametrize("quiet", [False, True])
+def test_progress_on_a_terminal_unless_quiet(tmp_path, monkeypatch, quiet):
+    term = _Terminal()
+    monkeypatch.setattr("sys.stderr", term)
+    results, est, ctx = cached_case("bifactor")
+    write_reports(tmp_path, results, est, dict(ctx, quiet=quiet))
+    if quiet:
+        assert term.getvalue() == ""
+    else:
+        last = term.getvalue().strip().split("\r")[-1]
+        assert last.startswith("report") and "tables" in last

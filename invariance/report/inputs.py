@@ -107,7 +107,13 @@ def rule_text(results: Mapping[str, Any]) -> str | None:
     """The rule in words (``rule`` or ``description``), when it says more than the name."""
     r = rule(results)
     text = r.get("rule") or r.get("description")
-    return None if not isinstance(text, str) or text == rule_name(results) else text
+    name = rule_name(results)
+    if not isinstance(text, str) or text == name:
+        return None
+    if name and text.startswith(name):  # "<name>; a level holds when ..." -> "A level holds when ..."
+        text = text[len(name):].lstrip(" ;,.:")
+        text = text[:1].upper() + text[1:]
+    return text or None
 
 
 def level_checks(entry: Mapping[str, Any]) -> dict[str, dict]:

@@ -84,7 +84,7 @@ def _style_axes(ax) -> None:
 
 
 # --------------------------------------------------------------------- changes
-def change_chart(steps: Sequence[Mapping]) -> bytes | None:
+def change_chart(steps: Sequence[Mapping], *, deciding: Sequence[str] | None = None) -> bytes | None:
     """Change in each fit index per level, against the cutoff of that step.
 
     Parameters
@@ -93,6 +93,9 @@ def change_chart(steps: Sequence[Mapping]) -> bytes | None:
         One mapping per compared level: ``label`` (str) and, per index name
         (``cfi``, ``rmsea``, ``srmr``), a mapping with ``change`` and ``cutoff``
         (either may be ``None``).
+    deciding
+        Indices the decision rule uses; the other panels are titled "not deciding".
+        ``None``: no such marking.
     """
     indices = [ix for ix in ("cfi", "rmsea", "srmr") if any(_num(s.get(ix, {}).get("change")) for s in steps)]
     if not steps or not indices:
@@ -122,7 +125,7 @@ def change_chart(steps: Sequence[Mapping]) -> bytes | None:
             lim = max([abs(v) for v in vals if v is not None] + [abs(c) for c in cuts if c is not None] + [0.005])
             ax.set_ylim(-1.25 * lim, 1.25 * lim)
             ax.set_xticks(x, labels, rotation=30 if len(steps) > 4 else 0, ha="right" if len(steps) > 4 else "center")
-            ax.set_title("\u0394" + ix.upper())
+            ax.set_title("\u0394" + ix.upper() + ("" if deciding is None or ix in deciding else " (not deciding)"))
             ax.yaxis.set_major_formatter(matplotlib.ticker.FuncFormatter(_signed_tick))
         from matplotlib.lines import Line2D
         from matplotlib.patches import Patch

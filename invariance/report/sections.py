@@ -140,7 +140,11 @@ def section_summary(inp: ReportInput) -> Section | None:
     if I.rule_name(inp.results):
         facts.append(f"Decision rule: {I.rule_name(inp.results)}.")
     for e in entries:
-        why = f" ({e['reason']})" if isinstance(e.get("reason"), str) and e["reason"] else ""
+        reason = e.get("reason") if isinstance(e.get("reason"), str) else ""
+        label = decision_label(e.get("decision"))
+        if label and reason.lower().startswith(label.lower()):
+            reason = reason[len(label):].lstrip(" :;,")
+        why = f" ({reason})" if reason else ""
         facts.append(f"{level_label(e)}: {decision_label(e.get('decision')) or 'no decision recorded'}{why}.")
     if facts:
         parts.append(Bullets(tuple(facts)))
@@ -358,7 +362,7 @@ def _criteria_rows(inp: ReportInput) -> tuple[list[tuple[str, ...]], list[str]]:
                 "" if ok is None else ("yes" if ok else "no"), role,
                 decision_label(e.get("decision")) if k == 0 else "",
             ))
-            styles.append("" if ok is None else ("ok" if ok else "bad"))
+            styles.append("" if ok is None or role != "decides" else ("ok" if ok else "bad"))
     return rows, styles
 
 
@@ -418,12 +422,15 @@ def section_changes(inp: ReportInput) -> Section | None:
         for ix in I.CHANGE_INDICES:
             step[ix] = {"change": fnum(d.get(ix)), "cutoff": I.cutoff(inp.results, ix, e)}
         steps.append(step)
-    png = change_chart(steps)
+    names = I.criteria_names(inp.results)
+    png = change_chart(steps, deciding=names or None)
     if png is None:
         return None
     has_cut = any(s[ix]["cutoff"] is not None for s in steps for ix in I.CHANGE_INDICES)
     cap = ("Change in each fit index from the previous level. Dashed lines: the cutoff of each step; "
            "hatched bars go beyond it.")
+    if names:
+        cap += " Panels marked \u201cnot deciding\u201d are shown for information; the decision rule does not use them."
     if not has_cut:
         cap += " No cutoffs were recorded in the results."
     return Section("changes", "Change in fit per level", (Figure("fit-changes", png, alt="Bar charts of the change in CFI, RMSEA and SRMR per level", caption=cap),))
