@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from typing import Any, Mapping
 
 from . import inputs as I
@@ -86,6 +87,7 @@ def section_profiles(inp: ReportInput) -> Section | None:
         rel = _released_rows(acc, kind, rows)
         names = list(rows)
         per = max(4, int(MAX_MARKERS / max(len(groups), 1)))
+        per = math.ceil(len(names) / math.ceil(len(names) / per))  # even split
         chunks = [names[k:k + per] for k in range(0, len(names), per)]
         for n_chunk, chunk in enumerate(chunks, start=1):
             part_of = f" ({n_chunk} of {len(chunks)})" if len(chunks) > 1 else ""

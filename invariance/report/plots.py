@@ -195,7 +195,7 @@ def profile_chart(
                 v = values.get((r, g))
                 if v is None or _num(v[0]) is None:
                     continue
-                ys.append(n - 1 - k + (j - (G - 1) / 2) * step)
+                ys.append(n - 1 - k - (j - (G - 1) / 2) * step)  # first group on top
                 xs.append(v[0])
                 es.append(1.96 * v[1] if _num(v[1]) is not None else 0.0)
             if not xs:
