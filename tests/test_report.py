@@ -276,3 +276,23 @@ def test_progress_on_a_terminal_unless_quiet(tmp_path, monkeypatch, quiet):
     else:
         last = term.getvalue().strip().split("\r")[-1]
         assert last.startswith("report") and "tables" in last
+
+
+def test_latent_means_read_from_estimates_once_scalar_holds(tmp_path):
+    results, est, ctx = cached_case("three")
+    bare = {k: v for k, v in results.items() if k != "latent_means"}
+    write_reports(tmp_path, bare, est, ctx)
+    html = (tmp_path / "report.html").read_text(encoding="utf-8")
+    sec = html.split('<section id="latent_means">')[1].split("</section>")[0]
+    # the accepted model is the (partial) strict one: its free means in the focal group
+    means = est[(est["level"] == "strict") & (est["parameter"] == "mean") & est["free"]]
+    assert len(means) == 3
+    for r in means.itertuples():
+        assert f"{r.estimate:.3f}".replace("-", "\u2212") in sec
+    assert "Read from the estimates of the strict model" in sec
+    # no latent means while scalar invariance is not supported
+    failing = copy.deepcopy(bare)
+    failing["levels"][2]["decision"] = "fails"
+    out = tmp_path / "failing"
+    write_reports(out, failing, est, ctx)
+    assert "latent_means" not in section_ids((out / "report.html").read_text(encoding="utf-8"))

@@ -144,10 +144,44 @@ def _mean_records(obj: Any, groups: Mapping[str, Any]) -> list[dict]:
     return out
 
 
+def _means_from_estimates(inp: ReportInput) -> list[dict]:
+    """Free factor means of the accepted scalar or strict model, read from the estimates.
+
+    The reference group's means are fixed at 0 and its variances at 1 (METHODS section 3),
+    so each free mean is the difference from the reference group in its factor SD units.
+    """
+    acc = inp.accepted or {}
+    if acc.get("level") not in ("scalar", "strict"):
+        return []
+    est = inp.estimates_at(acc.get("level"))
+    if est.empty or "parameter" not in est:
+        return []
+    sub = est[(est["parameter"] == "mean") & (est["group"].astype(str) != str(inp.reference))]
+    if "free" in sub:
+        sub = sub[sub["free"].astype(bool)]
+    return [
+        {"factor": str(r["lhs"]), "group": str(r["group"]), "estimate": fnum(r.get("estimate")),
+         "se": fnum(r.get("se")), "pvalue": fnum(r.get("pvalue"))}
+        for _, r in sub.iterrows()
+    ]
+
+
 def section_latent_means(inp: ReportInput) -> Section | None:
-    """Latent mean differences from the reference group, with intervals."""
+    """Latent mean differences from the reference group, with intervals.
+
+    Reads ``latent_means`` (or ``latent_mean_differences``): records with ``factor``,
+    ``group``, ``estimate`` (or ``difference``), an interval (``ci95``/``ci``/``ci90`` or
+    ``lower``/``upper``) or ``se``, and ``pvalue``. Without that key, and once scalar
+    invariance holds (fully or partially), the free factor means of the accepted model
+    are read from the estimates.
+    """
     obj = I.first_key(inp.results, I.OPTIONAL_KEYS["latent_means"])
     recs = _mean_records(obj, inp.groups)
+    source = ""
+    if not recs:
+        recs = _means_from_estimates(inp)
+        source = (f" Read from the estimates of the {str((inp.accepted or {}).get('level'))} model, where the "
+                  "reference group's factor means are 0 and its variances 1.")
     if not recs:
         return None
     rows, plot_rows, labels = [], [], set()
@@ -169,7 +203,8 @@ def section_latent_means(inp: ReportInput) -> Section | None:
     png = forest_chart(plot_rows, xlabel="difference from the reference group (in its factor SD)")
     if png is not None:
         parts.append(Figure("latent-means", png, alt="Latent mean differences with intervals",
-                            caption=f"Each group's latent mean minus the reference group's ({inp.reference}), with {ci} intervals."))
+                            caption=f"Each group's latent mean minus the reference group's ({inp.reference}), "
+                                    f"with {ci} intervals.{source}"))
     parts.append(Table(("Factor", "Group", "Difference", f"{ci} interval", "SE", "p"), tuple(rows),
                        caption="Latent mean differences", numeric=(False, False, True, True, True, True)))
     return Section("latent_means", "Latent mean differences", tuple(parts))
