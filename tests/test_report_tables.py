@@ -120,3 +120,20 @@ def test_accepted_level_and_new_releases():
     chain = {"levels": [{"level": "configural", "decision": "holds"}, {"level": "metric", "decision": "holds"},
                         {"level": "scalar", "decision": "fails"}, {"level": "strict", "decision": "holds"}]}
     assert I.accepted_entry(chain)["level"] == "metric"
+
+
+def test_robust_statistics_replace_the_normal_ones():
+    # results.json under estimator ml_robust carries scaled and robust values beside the others
+    results, _, _ = cached_case("three")
+    robust = {**results, "estimator": "ml_robust", "levels": []}
+    for k, e in enumerate(results["levels"]):
+        e = dict(e, chi2_scaled=e["chi2"] / 1.25, pvalue_scaled=0.5, cfi_robust=0.95, tli_robust=0.94, rmsea_robust=0.05)
+        if e["delta"]:
+            e["delta"] = dict(e["delta"], chi2_scaled=3.21, test="satorra_bentler_2001")
+        robust["levels"].append(e)
+    md = level_table_markdown(I.display_results(robust))
+    assert f"| {results['levels'][0]['chi2'] / 1.25:.2f} |" in md and "| .950 |" in md and "| 3.21 |" in md
+    assert "Robust ML" in md and "Satorra & Bentler 2001" in md
+    assert "[.075, .120]" not in md  # no interval for the robust RMSEA
+    # normal-theory results pass through unchanged
+    assert I.display_results(results)["levels"] == results["levels"]

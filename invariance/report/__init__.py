@@ -27,6 +27,7 @@ import pandas as pd
 
 from ..progress import Progress
 from .formatting import estimator_label
+from .inputs import display_results
 from .parts import Figure, Section
 from .registry import SECTIONS, build_sections
 from .render import render_html, render_markdown
@@ -70,7 +71,7 @@ def build_report(
 ) -> tuple[list[Section], dict[str, Any]]:
     """The report's sections and page metadata, without writing anything."""
     est = estimates if isinstance(estimates, pd.DataFrame) else pd.DataFrame()
-    inp = ReportInput(results=dict(results or {}), estimates=est, context=dict(context or {}))
+    inp = ReportInput(results=display_results(results or {}), estimates=est, context=dict(context or {}))
     return build_sections(inp, progress=progress), _meta(inp)
 
 

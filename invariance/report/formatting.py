@@ -109,7 +109,7 @@ def fmt_p(x: Any, *, minus: str = MINUS) -> str:
     return fmt_bounded(v, minus=minus)
 
 
-ESTIMATOR_LABELS = {"ml": "ML", "mlr": "robust ML", "robust_ml": "robust ML", "fiml": "FIML (ML with missing data)",
+ESTIMATOR_LABELS = {"ml": "ML", "ml_robust": "robust ML (scaled statistics, sandwich SEs)", "mlr": "robust ML", "robust_ml": "robust ML", "fiml": "FIML (ML with missing data)",
                     "dwls": "DWLS", "wlsmv": "DWLS (robust)", "uls": "ULS"}
 
 

@@ -38,6 +38,7 @@ __all__ = [
     "OPTIONAL_KEYS",
     "accepted_entry",
     "criteria_names",
+    "display_results",
     "cutoff",
     "first_key",
     "levels",
@@ -55,7 +56,7 @@ CHANGE_INDICES = ("cfi", "rmsea", "srmr")
 
 #: Optional sections: section -> accepted top-level keys (first one present wins).
 OPTIONAL_KEYS = {
-    "missing": ("missing", "missingness", "missing_data"),
+    "missing": ("missing_data", "missing", "missingness"),
     "screening": ("screening", "data_checks", "checks"),
     "effects": ("effects", "dmacs", "effect_sizes"),
     "bifactor": ("bifactor", "bifactor_quality", "bifactor_indices", "quality"),
@@ -242,6 +243,52 @@ def new_releases(results: Mapping[str, Any]) -> list[tuple[dict, dict]]:
                 seen.add(key)
                 out.append((e, dict(r)))
     return out
+
+
+ROBUST_NOTE_KEY = "_shown_statistics"
+_TESTS = {"satorra_bentler_2001": "Satorra & Bentler 2001", "satorra_bentler_2010": "Satorra & Bentler 2010"}
+
+
+def display_results(results: Mapping[str, Any]) -> dict:
+    """results as the report shows them: under robust ML the statistics that decided.
+
+    When levels carry scaled statistics (``chi2_scaled``, ``pvalue_scaled``,
+    ``cfi_robust``, ``tli_robust``, ``rmsea_robust``; delta ``chi2_scaled``), those
+    replace the normal-theory values (the robust RMSEA has no interval here) and a
+    sentence saying so is stored under :data:`ROBUST_NOTE_KEY`. Otherwise the results
+    are returned unchanged.
+    """
+    entries = levels(results)
+    if not any(e.get("chi2_scaled") is not None for e in entries):
+        return dict(results)
+    view = dict(results)
+    rows, tests = [], set()
+    for e in results.get("levels") or []:
+        if not isinstance(e, Mapping):
+            continue
+        row = dict(e)
+        if e.get("chi2_scaled") is not None:
+            row["chi2"], row["pvalue"] = e["chi2_scaled"], e.get("pvalue_scaled")
+            row["rmsea_ci90"] = None
+        for k in ("cfi", "tli", "rmsea"):
+            if e.get(f"{k}_robust") is not None:
+                row[k] = e[f"{k}_robust"]
+        d = e.get("delta")
+        if isinstance(d, Mapping):
+            d = dict(d)
+            if d.get("chi2_scaled") is not None:
+                d["chi2"] = d["chi2_scaled"]
+            if d.get("test"):
+                tests.add(_TESTS.get(str(d["test"]), str(d["test"])))
+            row["delta"] = d
+        rows.append(row)
+    view["levels"] = rows
+    view[ROBUST_NOTE_KEY] = (
+        "Robust ML: \u03c7\u00b2 is the scaled statistic (T/c); CFI, TLI and RMSEA are the robust indices; "
+        "\u0394\u03c7\u00b2 is the scaled difference" + (f" ({', '.join(sorted(tests))})" if tests else "")
+        + "; the unscaled values are in results.json."
+    )
+    return view
 
 
 def accepted_entry(results: Mapping[str, Any]) -> dict | None:

@@ -1,6 +1,7 @@
-"""The data-screening section (results key ``screening``, written by
-:func:`invariance.screening.screen`): the recommendation, Mardia's tests per group and
-the item moments per group. Any other layout is shown as given."""
+"""Data-quality parts: the screening section (results key ``screening``, written by
+:func:`invariance.screening.screen`: the recommendation, Mardia's tests and the item
+moments per group) and the missing-data tables (results key ``missing_data``). Any
+other layout is shown as given."""
 
 from __future__ import annotations
 
@@ -11,7 +12,7 @@ from .formatting import fmt_p, fnum
 from .parts import Bullets, Section, Table, Text, cell, generic_parts
 from .sections import ReportInput
 
-__all__ = ["section_screening"]
+__all__ = ["missing_parts", "section_screening"]
 
 ITEM_COLUMNS = (
     ("item", "Item"), ("n", "n"), ("missing", "Missing"), ("mean", "Mean"), ("sd", "SD"),
@@ -80,3 +81,36 @@ def section_screening(inp: ReportInput) -> Section | None:
              str(v.get("source", "")) if isinstance(v, Mapping) else "")
             for k, v in rules.items()), caption="Screening rules"))
     return Section("screening", "Data screening", tuple(parts))
+
+
+def missing_parts(obj: Any, items: list[str]) -> list:
+    """Parts for the missing-data section (results key ``missing_data``).
+
+    Reads ``method`` and ``by_group`` (per group ``method``, ``n_input``, ``n_used``,
+    ``n_dropped``, ``n_patterns``, ``coverage`` {item: share observed}, ``em_converged``,
+    ``little`` {``statistic``, ``df``, ``pvalue``}); any other layout is shown as given.
+    """
+    by = obj.get("by_group") if isinstance(obj, Mapping) else None
+    if not isinstance(by, Mapping) or not all(isinstance(v, Mapping) for v in by.values()):
+        return generic_parts(obj, key_name="group")
+    parts: list = []
+    if obj.get("method"):
+        parts.append(Text(f"Missing values handled by: {str(obj['method']).replace('_', ' ')}.", style="note"))
+    rows = []
+    for g, v in by.items():
+        lt = v.get("little") if isinstance(v.get("little"), Mapping) else {}
+        rows.append((str(g), str(v.get("method", "")), cell(v.get("n_input")), cell(v.get("n_used")),
+                     cell(v.get("n_dropped")), cell(v.get("n_patterns")), cell(lt.get("statistic")),
+                     cell(lt.get("df")), fmt_p(lt.get("pvalue")), cell(v.get("em_converged"))))
+    parts.append(Table(
+        ("Group", "Method", "Rows", "Used", "Dropped", "Patterns", "Little's \u03c7\u00b2", "df", "p", "EM converged"),
+        tuple(rows), caption="Missing data per group (Little 1988 test of missing completely at random)",
+        numeric=(False, False) + (True,) * 7 + (False,),
+    ))
+    cov = {g: v.get("coverage") for g, v in by.items() if isinstance(v.get("coverage"), Mapping)}
+    if cov:
+        seen = [i for c in cov.values() for i in c]
+        order = [i for i in items if i in seen] + [i for i in dict.fromkeys(seen) if i not in items]
+        parts.append(Table(("Item", *cov), tuple((i, *(_share(c.get(i)) for c in cov.values())) for i in order),
+                           caption="Share of each item observed, per group", numeric=(False,) + (True,) * len(cov)))
+    return parts

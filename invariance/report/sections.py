@@ -228,8 +228,9 @@ def section_data(inp: ReportInput) -> Section | None:
             parts.append(tab)
     miss = I.first_key(inp.results, I.OPTIONAL_KEYS["missing"])
     if miss is not None:
-        parts.append(Text("Missing data", style="note"))
-        parts += generic_parts(miss, key_name="group")
+        from .screening_section import missing_parts
+
+        parts += missing_parts(miss, inp.items)
     if not parts:
         return None
     return Section("data", "The data", tuple(parts))

@@ -27,7 +27,7 @@ from .formatting import (
     level_label,
     release_text,
 )
-from .inputs import levels, new_releases, rule_name
+from .inputs import ROBUST_NOTE_KEY, display_results, levels, new_releases, rule_name
 
 __all__ = [
     "LEVEL_TABLE_FILES",
@@ -148,6 +148,8 @@ def level_table_note(results: Mapping[str, Any]) -> str:
     parts.append(
         "Changes (\u0394) are each model minus the model before it; CI = confidence interval."
     )
+    if results.get(ROBUST_NOTE_KEY):
+        parts.append(str(results[ROBUST_NOTE_KEY]))
     rel = [(level_label(e), release_text(r)) for e, r in new_releases(results)]
     if rel:
         by_model: dict[str, list[str]] = {}
@@ -234,6 +236,7 @@ def write_level_tables(out_dir: Path, results: Mapping[str, Any]) -> list[Path]:
     """Write :data:`LEVEL_TABLE_FILES` into ``out_dir``; returns the paths written."""
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
+    results = display_results(results)
     texts = (level_table_csv(results), level_table_markdown(results), level_table_latex(results))
     paths = []
     for name, text in zip(LEVEL_TABLE_FILES, texts):
