@@ -223,3 +223,19 @@ def test_unconverged_configural_is_not_called_noninvariance(hs_dir, monkeypatch)
     assert [lv["decision"] for lv in d["levels"][1:]] == ["not_tested"] * 3
     assert d["supported_level"] is None
     assert "did not converge" in d["verdict"]
+
+
+@pytest.mark.parametrize(
+    "extra, df",
+    [
+        ({"general": "g", "family": "second_order"}, 24),  # 3 first-order factors: same fit as correlated
+        ({"residual_covariances": [["x7", "x8"]]}, 23),
+    ],
+)
+def test_crosscheck_other_structures(hs_dir, extra, df):
+    doc = hs_doc(str(hs_dir / "hs.csv"), levels=["configural"])
+    doc["model"].update(extra)
+    d = invariance.run(doc, quiet=True, crosscheck=True).to_dict()
+    for r in d["crosscheck"]["groups"]:
+        assert r["df"] == df
+        assert r["agreement"] == "agree"  # semopy, an independent reference
