@@ -85,6 +85,11 @@ def build_structure(
         return Structure(factors={name: tuple(items)}, family="single", residual_covariances=rc)
     if family == "correlated":
         return Structure(factors=factors, family="correlated", residual_covariances=rc)
+    if family == "bifactor" and len(factors) < 2:
+        raise SpecificationError(
+            "A bifactor structure over one specific factor is not identified (general and specific "
+            "factor load on the same items); give at least two specific factors or compare 'single' instead."
+        )
     return Structure(factors=factors, family=family, general=gen, residual_covariances=rc)
 
 
