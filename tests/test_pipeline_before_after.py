@@ -87,3 +87,14 @@ def test_bad_sections(hs_dir):
     doc = hs_doc(str(hs_dir / "hs.csv"), levels=["configural"], scores={"id": "nope"})
     with pytest.raises(DataError, match="scores.id names column 'nope'"):
         invariance.run(doc, quiet=True)
+
+
+def test_group_fit_rule_follows_configural_fit(hs_dir):
+    # the per-group rule defaults to decision.configural_fit; compare.group_fit overrides it
+    doc = hs_doc(str(hs_dir / "hs.csv"), levels=["configural"], decision={"configural_fit": {"cfi": 0.9, "rmsea": 0.11}})
+    d = invariance.run(doc, quiet=True).to_dict()
+    assert d["group_fit"]["failing"] == [] and d["group_fit"]["rule"]["rmsea_max"] == 0.11
+    doc["compare"] = {"group_fit": {"cfi": 0.95}}
+    d = invariance.run(doc, quiet=True).to_dict()
+    # Grant-White CFI .941 and Pasteur CFI .903 (this fit) are both below .95
+    assert d["group_fit"]["failing"] == ["Grant-White", "Pasteur"]
