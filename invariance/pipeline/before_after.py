@@ -32,6 +32,13 @@ def _section(spec: PipelineSpec, name: str) -> dict:
     return thaw(spec.section(name) or {})
 
 
+def _fitter(spec: PipelineSpec):
+    """The pipeline's estimator (the per-group and rival fits use the same one)."""
+    from .stages import FITTERS  # stages imports this module: look up at run time
+
+    return FITTERS.get(spec.estimator, FITTERS["ml"])
+
+
 def stage_screening(spec: PipelineSpec, state: dict) -> dict:
     """Screen the items of every group (before any model is fitted)."""
     checked = state["checked"]
@@ -69,6 +76,7 @@ def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
         cfi_min=float(rule.get("cfi", 0.90)),
         rmsea_max=float(rule.get("rmsea", 0.10)),
         warn=False,
+        fitter=_fitter(spec),
     )
     state["group_fit"] = gf
     state.setdefault("warnings", []).extend(gf.messages)
@@ -88,6 +96,7 @@ def stage_structures(spec: PipelineSpec, state: dict) -> dict:
             fams,
             general=st.general,
             residual_covariances=st.residual_covariances,
+            fitter=_fitter(spec),
         )
     except SpecificationError as exc:
         raise SpecificationError(f"compare.structures: {exc}") from None
