@@ -66,11 +66,13 @@ def _cmd_check(args) -> int:
     print(f"Pipeline {info['pipeline']}: valid. Data {info['data_file']}: {len(info['items'])} items, "
           f"group column {info['group_column']!r}, reference group {info['reference_group']}, model {info['family']}.")
     print("Levels to fit: " + ", ".join(f"{lv} ({q} free parameters)" for lv, q in info["free_parameters"].items()) + ".")
-    print(f"{'group':<16}{'rows':>7}{'complete':>10}  missing values by item")
+    print(f"{'group':<16}{'rows':>7}{'used':>10}  missing values by item")
     for g, rows in info["rows"].items():
         miss = {k: v for k, v in info["missing"][g].items() if v}
         text = ", ".join(f"{k} {v}" for k, v in miss.items()) or "none"
         print(f"{g:<16}{rows:>7}{info['groups'][g]:>10}  {text}")
+    if info.get("cases_used"):
+        print(f"Cases used: {info['cases_used']}.")
     for w in info["warnings"]:
         print(f"note: {w}")
     return 0

@@ -62,7 +62,7 @@ def _bad_cases(hs_frame, folder):
         ("non_numeric", with_(data={"path": text, "group": "school"}), "Item 'x5' holds non-numeric values"),
         ("one_group", with_(data={"path": one, "group": "school"}), "at least two groups"),
         ("reference_absent", with_(data={"path": "hs.csv", "group": "school", "reference": "Lincoln"}), "Reference group 'Lincoln'"),
-        ("tiny_group", with_(data={"path": tiny, "group": "school"}), "Group 'Tiny' has 5 complete cases for 9 items"),
+        ("tiny_group", with_(data={"path": tiny, "group": "school"}), "Group 'Tiny' has 5 cases with an observed item for 9 items"),
         ("constant_item", with_(data={"path": const, "group": "school"}), "Item 'x1' is constant"),
         ("empty_item", with_(data={"path": empty, "group": "school"}), "Item 'x2' is entirely missing in group 'Pasteur'"),
         ("released_bad_group", with_(model__released=[{"parameter": "intercept", "item": "x3", "groups": ["Nope"]}]), "group 'Nope'"),

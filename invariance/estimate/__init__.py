@@ -1,8 +1,24 @@
 """Estimation: objectives, the optimizer and the :func:`fit` front door."""
 
-from .ml import diagnose, fit
+from .fiml import FIMLObjective
+from .ml import ESTIMATORS, diagnose, fit
 from .objective import MLObjective
 from .optimize import STATUS, Outcome, minimize
+from .robust import DifferenceTest, robust_difference, scaled_difference, strictly_positive_difference
 from .start import start_values
 
-__all__ = ["fit", "diagnose", "MLObjective", "STATUS", "Outcome", "minimize", "start_values"]
+__all__ = [
+    "ESTIMATORS",
+    "DifferenceTest",
+    "FIMLObjective",
+    "MLObjective",
+    "STATUS",
+    "Outcome",
+    "diagnose",
+    "fit",
+    "minimize",
+    "robust_difference",
+    "scaled_difference",
+    "start_values",
+    "strictly_positive_difference",
+]

@@ -76,7 +76,16 @@ def level_table(results: dict):
                 "reason": lv.get("reason", ""),
             }
         )
-    return pd.DataFrame(rows, columns=list(TABLE_COLUMNS))
+        if results.get("estimator") == "ml_robust":
+            rows[-1].update(
+                {k: lv.get(k) for k in ("chi2_scaled", "scaling_factor", "pvalue_scaled", "cfi_robust", "tli_robust", "rmsea_robust")}
+            )
+            rows[-1].update({"d_chi2_scaled": d.get("chi2_scaled"), "d_test": d.get("test")})
+    cols = list(TABLE_COLUMNS)
+    if results.get("estimator") == "ml_robust":
+        cols += ["chi2_scaled", "scaling_factor", "pvalue_scaled", "cfi_robust", "tli_robust", "rmsea_robust",
+                 "d_chi2_scaled", "d_test"]
+    return pd.DataFrame(rows, columns=cols)
 
 
 def _release_text(r: dict) -> str:
@@ -91,6 +100,10 @@ def _num(v, fmt: str) -> str:
 
 def format_table(results: dict) -> str:
     """The stepwise table and the verdict as terminal text."""
+    from .robust_stage import display_note, display_view
+
+    note = display_note(results)
+    results = display_view(results)
     head = f"{'level':<11}{'chi2':>10}{'df':>5}{'CFI':>7}{'RMSEA':>7}{'SRMR':>7}{'dchi2':>9}{'ddf':>5}{'p':>7}{'dCFI':>8}{'dRMSEA':>8}{'dSRMR':>8}  decision"
     lines = [head, "-" * len(head)]
     for lv in results["levels"]:
@@ -106,10 +119,11 @@ def format_table(results: dict) -> str:
         )
     groups = ", ".join(f"{g} {n}" for g, n in results["groups"].items())
     out = [
-        f"{results.get('title', 'invariance')}: {results['estimator']} on complete cases; "
+        f"{results.get('title', 'invariance')}: {results['estimator']} on {results.get('data', {}).get('cases_used', 'complete cases')}; "
         f"groups (N used): {groups}; reference {results['reference_group']}",
         "",
         *lines,
+        *([note] if note else []),
         "",
         f"Rule: {results['decision_rule']['rule']}",
     ]

@@ -207,8 +207,9 @@ def check(pipeline) -> dict:
     Returns
     -------
     dict
-        ``groups`` (group -> N complete), ``rows``, ``missing`` (group -> item -> count),
-        ``reference_group``, ``items`` and ``warnings``.
+        ``groups`` (group -> cases used), ``rows``, ``missing`` (group -> item -> count),
+        ``cases_used`` (how incomplete rows are handled), ``reference_group``, ``items``
+        and ``warnings``.
     """
     spec = load_pipeline(pipeline)
     results, state = run_stages(spec, [("data", stage_data), ("stats", stage_stats), ("levels", stage_levels)])
@@ -222,6 +223,7 @@ def check(pipeline) -> dict:
         "rows": dict(checked.rows),
         "groups": results["groups"],
         "missing": {g: dict(v) for g, v in checked.missing.items()},
+        "cases_used": results["data"]["cases_used"],
         "levels": list(spec.levels),
         "family": spec.structure.family,
         "free_parameters": results["free_parameters"],

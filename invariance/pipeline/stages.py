@@ -14,6 +14,8 @@ of results.json, which a later stage may update in place, e.g. to ``holds_partia
 
 from __future__ import annotations
 
+import functools
+
 import warnings
 from typing import Callable
 
@@ -26,6 +28,7 @@ from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
 from .before_after import stage_group_fit, stage_scores, stage_screening, stage_structures
 from .load import PipelineSpec, thaw
+from . import robust_stage as _rs
 
 __all__ = ["FITTERS", "STAGES", "Stage", "add_stage", "stage_data", "stage_stats", "stage_levels", "stage_fits", "stage_summary", "FIT_KEYS"]
 
@@ -33,7 +36,10 @@ Stage = Callable[[PipelineSpec, dict], dict]
 
 #: Estimator name (pipeline key ``estimator``) -> fitting function ``(spec, stats) -> FitResult``.
 #: A new estimator registers here and adds its name to the schema's ``estimator`` enum.
-FITTERS: dict[str, Callable] = {"ml": ml_fit}
+FITTERS: dict[str, Callable] = {
+    "ml": ml_fit,
+    "ml_robust": functools.partial(ml_fit, estimator="ml_robust"),
+}
 
 #: Fit statistics copied into each level of results.json.
 FIT_KEYS = ("chi2", "df", "pvalue", "cfi", "tli", "rmsea", "rmsea_ci90", "srmr", "aic", "bic")
@@ -49,6 +55,7 @@ def stage_data(spec: PipelineSpec, state: dict) -> dict:
         group=spec.group,
         reference=spec.reference,
         groups=spec.groups,
+        complete_cases_needed=_rs.incomplete_choice(spec) == "listwise",
     )
     reference = spec.reference if spec.reference is not None else checked.groups[0]
     for rel in spec.released:
@@ -63,6 +70,7 @@ def stage_data(spec: PipelineSpec, state: dict) -> dict:
     state["reference"] = reference
     state.setdefault("warnings", []).extend(checked.warnings)
     missing = spec.missing
+    has_missing = any(any(v.values()) for v in checked.missing.values())
     return {
         "data": {
             "file": spec.data_path.name,
@@ -70,7 +78,7 @@ def stage_data(spec: PipelineSpec, state: dict) -> dict:
             "rows": int(raw.shape[0]),
             "group_column": spec.group,
             "missing_codes": thaw(missing),
-            "cases_used": "complete cases (listwise deletion)",
+            "cases_used": _rs.cases_used_text(_rs.stats_method(spec, checked), has_missing),
             "rows_by_group": dict(checked.rows),
             "missing_by_group": {g: dict(v) for g, v in checked.missing.items()},
         },
@@ -79,11 +87,16 @@ def stage_data(spec: PipelineSpec, state: dict) -> dict:
 
 
 def stage_stats(spec: PipelineSpec, state: dict) -> dict:
-    """Per-group sufficient statistics from complete cases."""
+    """Per-group statistics: complete cases, or every case with an observed item (FIML)."""
     checked = state["checked"]
-    stats = sample_stats(checked.frame, checked.items, checked.group, groups=checked.groups)
+    method = _rs.stats_method(spec, checked)
+    stats = sample_stats(checked.frame, checked.items, checked.group, groups=checked.groups, missing=method)
     state["stats"] = stats
-    return {"groups": {g.name: int(g.n) for g in stats.groups}, "n_total": int(stats.n_total)}
+    return {
+        "groups": {g.name: int(g.n) for g in stats.groups},
+        "n_total": int(stats.n_total),
+        "missing_data": _rs.missing_section(stats, checked, method),
+    }
 
 
 def stage_levels(spec: PipelineSpec, state: dict) -> dict:
@@ -131,6 +144,7 @@ def _level_row(level: str, res, released) -> dict:
     row = {"level": level, "converged": bool(res.converged), "status": res.status}
     for k in FIT_KEYS:
         row[k] = fs.get(k)
+    row.update(_rs.robust_level_fields(res))
     row["problems"] = list(res.problems)
     row["released"] = [r.to_dict() for r in released]
     return row
@@ -139,6 +153,7 @@ def _level_row(level: str, res, released) -> dict:
 def _not_tested(level: str, why: str) -> dict:
     row = {"level": level, "converged": None, "status": "not fitted"}
     row.update({k: None for k in FIT_KEYS})
+    row.update({k: None for k in _rs.ROBUST_KEYS})
     row.update(
         {
             "problems": [],
@@ -160,6 +175,8 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
     fits, rows = {}, []
     accepted = None  # (level, row) of the last level that held
     stopped = None
+    robust = spec.estimator == "ml_robust"
+    h1_cache: dict = {}
     for lv in spec.levels:
         if stopped is not None:
             rows.append(_not_tested(lv, stopped))
@@ -168,11 +185,19 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
         fits[lv] = res
         row = _level_row(lv, res, res.spec.released)
         if lv == "configural":
-            verdict = judge_configural(row, rule, converged=res.converged, problems=res.problems)
+            view = _rs.decision_view(row) if robust else row
+            verdict = judge_configural(view, rule, converged=res.converged, problems=res.problems)
             row.update({"delta": None, "compared_with": None})
         else:
             base_level, base_row = accepted
-            delta = level_delta(row, base_row)
+            if robust:
+                # decisions on the scaled difference and the robust indices
+                delta = level_delta(_rs.decision_view(row), _rs.decision_view(base_row))
+                delta = _rs.robust_delta(
+                    delta, res, fits[base_level], stats, method=_rs.difference_choice(spec), cache=h1_cache
+                )
+            else:
+                delta = level_delta(row, base_row)
             verdict = judge_step(delta, lv, rule, converged=res.converged)
             improper = [p for p in res.problems if not p.startswith("not converged")]
             if improper and res.converged:

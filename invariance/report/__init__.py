@@ -31,6 +31,10 @@ def _p(v) -> str:
 
 
 def _table(results: dict) -> list[str]:
+    from ..pipeline.robust_stage import display_note, display_view
+
+    note = display_note(results)
+    results = display_view(results)
     lines = [
         "| level | chi2 | df | p | CFI | TLI | RMSEA [90% CI] | SRMR | dchi2 (ddf) | p | dCFI | dRMSEA | dSRMR | decision |",
         "|---|---:|---:|---:|---:|---:|---|---:|---|---:|---:|---:|---:|---|",
@@ -46,6 +50,8 @@ def _table(results: dict) -> list[str]:
             f"{_p(d.get('pvalue'))} | {_f(d.get('cfi'), '+.4f')} | {_f(d.get('rmsea'), '+.4f')} | "
             f"{_f(d.get('srmr'), '+.4f')} | {lv['decision']} |"
         )
+    if note:
+        lines += ["", note]
     return lines
 
 
@@ -76,7 +82,7 @@ def write_reports(out_dir: pathlib.Path, results: dict, estimates, context: dict
         f"# {results.get('title', 'Measurement invariance')}",
         "",
         f"Created {context['created']}. Data: `{pathlib.Path(context['data_file']).name}` "
-        f"(SHA-256 `{context['data_sha256'][:16]}...`). Estimator: {results['estimator']} on complete cases.",
+        f"(SHA-256 `{context['data_sha256'][:16]}...`). Estimator: {results['estimator']} on {results.get('data', {}).get('cases_used', 'complete cases')}.",
         "",
         f"Groups: {groups}; reference group {results['reference_group']}.",
         f"Model: {st['family']} with factors "
