@@ -27,6 +27,7 @@ from ..errors import DataError, InvarianceWarning, SpecificationError
 from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
 from ..partial.stage import stage_effects
+from .before_after import stage_group_fit, stage_scores, stage_screening, stage_structures
 from .load import PipelineSpec, thaw
 from . import robust_stage as _rs
 
@@ -66,6 +67,7 @@ def stage_data(spec: PipelineSpec, state: dict) -> dict:
                     f"{', '.join(checked.groups)}; fix the group name."
                 )
     state["checked"] = checked
+    state["frame"] = frame  # every column (identifier columns for scores)
     state["reference"] = reference
     state.setdefault("warnings", []).extend(checked.warnings)
     missing = spec.missing
@@ -296,11 +298,15 @@ def stage_summary(spec: PipelineSpec, state: dict) -> dict:
 #: The stages of a run, in order: (name, function).
 STAGES: list[tuple[str, Stage]] = [
     ("data", stage_data),
+    ("screening", stage_screening),
     ("stats", stage_stats),
+    ("group_fit", stage_group_fit),
+    ("structures", stage_structures),
     ("levels", stage_levels),
     ("fits", stage_fits),
     ("effects", stage_effects),
     ("summary", stage_summary),
+    ("scores", stage_scores),
 ]
 
 
