@@ -79,7 +79,7 @@ def fit(
     *,
     information: str = "expected",
     start: np.ndarray | None = None,
-    max_iter: int = 500,
+    max_iter: int = 200,
 ) -> FitResult:
     """Estimate a multi-group model by maximum likelihood.
 
@@ -125,7 +125,7 @@ def fit(
     if info is None:
         info = obj.derivatives(theta)[2]
     if information == "observed":
-        info_se = observed_information(obj, theta)
+        info_se = obj.hessian(theta) if hasattr(obj, "hessian") else observed_information(obj, theta)
     else:
         info_se = info
     problems = diagnose(spec, matrices, sigmas, info_se)

@@ -17,7 +17,15 @@ import numpy as np
 
 from ..data.moments import SampleStats
 from ..model.spec import ModelSpec
-from .kernels import compile_spec, group_matrices, implied_moments, ml_derivatives, ml_discrepancy, moment_jacobian
+from .kernels import (
+    compile_spec,
+    group_matrices,
+    implied_moments,
+    ml_derivatives,
+    ml_discrepancy,
+    ml_hessian,
+    moment_jacobian,
+)
 
 __all__ = ["MLObjective"]
 
@@ -90,3 +98,16 @@ class MLObjective:
             if information:
                 info[np.ix_(u, u)] += self.n[g] * hh
         return total, grad, info
+
+    def hessian(self, theta: np.ndarray) -> np.ndarray:
+        """Exact (observed) Hessian of T, analytic."""
+        q = self.n_params
+        H = np.zeros((q, q))
+        for g, lay in enumerate(self.layouts):
+            mats = group_matrices(lay, theta)
+            sigma, mu, G, A = implied_moments(mats)
+            dS, dm = moment_jacobian(lay, mats, G, A)
+            hh = ml_hessian(lay, mats, sigma, mu, G, A, self.S[g], self.mean[g], dS, dm)
+            u = lay.params
+            H[np.ix_(u, u)] += self.n[g] * hh
+        return H
