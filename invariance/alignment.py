@@ -60,6 +60,7 @@ __all__ = [
     "alignment_loss",
     "aligned_parameters",
     "solve_alignment",
+    "implicit_jacobian",
 ]
 
 EPSILON = 0.01
@@ -178,6 +179,28 @@ def _fd_jacobian(fun, x: np.ndarray, h: float = 1e-5) -> np.ndarray:
         e[j] = step
         cols.append((fun(x + e) - fun(x - e)) / (2 * step))
     return np.column_stack(cols)
+
+
+def implicit_jacobian(
+    x: np.ndarray, lam0: np.ndarray, nu0: np.ndarray, weights: np.ndarray, ref: int, *, eps: float = EPSILON
+) -> np.ndarray:
+    """Derivative of the aligned solution with respect to the configural estimates.
+
+    At a minimum ``grad_x F(x, c) = 0``, so ``dx/dc = -H_xx^-1 H_xc`` (implicit function
+    theorem); both blocks are central differences of the analytic gradient. ``c`` is
+    ``(lam0.ravel(), nu0.ravel())``. Returns a (2(G-1), 2Gk) array (nan if H_xx is singular).
+    """
+    G, k = lam0.shape
+    c0 = np.concatenate([lam0.ravel(), nu0.ravel()])
+    H = _fd_jacobian(lambda xx: alignment_loss(xx, lam0, nu0, weights, ref, eps)[1], x)
+    H = (H + H.T) / 2
+    Hc = _fd_jacobian(
+        lambda cc: alignment_loss(x, cc[: G * k].reshape(G, k), cc[G * k :].reshape(G, k), weights, ref, eps)[1], c0
+    )
+    try:
+        return -np.linalg.solve(H, Hc)
+    except np.linalg.LinAlgError:
+        return np.full((x.size, c0.size), np.nan)
 
 
 # --------------------------------------------------------------------------- results
@@ -463,15 +486,8 @@ def align(
         # delta method through the implicit solution x(c), c = (lam0, nu0)
         c0 = np.concatenate([lam0.ravel(), nu0.ravel()])
         split = lambda c: (c[: G * k].reshape(G, k), c[G * k :].reshape(G, k))
-        grad_x = lambda xx: alignment_loss(xx, lam0, nu0, weights, ref, epsilon)[1]
-        grad_c = lambda cc: alignment_loss(x, *split(cc), weights, ref, epsilon)[1]
-        H = _fd_jacobian(grad_x, x)
-        H = (H + H.T) / 2
-        Hc = _fd_jacobian(grad_c, c0)
-        try:
-            J = -np.linalg.solve(H, Hc)
-        except np.linalg.LinAlgError:
-            J = np.full((x.size, c0.size), np.nan)
+        J = implicit_jacobian(x, lam0, nu0, weights, ref, eps=epsilon)
+        if not np.all(np.isfinite(J)):
             notes.append(f"the alignment loss of factor {fname} is flat at its minimum: no standard errors")
 
         def params_of(cc, xx):

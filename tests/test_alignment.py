@@ -111,3 +111,25 @@ def test_refuses_non_configural_and_bifactor():
         res = fit(spec, stats)
     with pytest.raises(SpecificationError, match="bifactor"):
         align(res)
+
+
+def test_implicit_derivative_matches_resolving():
+    # the delta-method Jacobian (implicit function theorem) against re-solving the
+    # alignment at perturbed configural estimates (central differences)
+    from invariance.alignment import implicit_jacobian, solve_alignment
+
+    rng = np.random.default_rng(7)
+    G, k = 5, 4
+    lam0 = rng.uniform(0.5, 0.9, k)[None, :] * rng.uniform(0.8, 1.2, G)[:, None] + rng.normal(0, 0.02, (G, k))
+    nu0 = rng.normal(3, 0.2, k)[None, :] + rng.normal(0, 0.3, G)[:, None] * lam0
+    w = np.full((G, G), 300.0)
+    np.fill_diagonal(w, 0)
+    x, _, ok = solve_alignment(lam0, nu0, w, 0, random_starts=0)
+    assert ok
+    J = implicit_jacobian(x, lam0, nu0, w, 0)
+    d = rng.normal(size=2 * G * k)
+    h = 1e-4
+    sol = lambda c: solve_alignment(c[: G * k].reshape(G, k), c[G * k:].reshape(G, k), w, 0, random_starts=0)[0]
+    c0 = np.concatenate([lam0.ravel(), nu0.ravel()])
+    num = (sol(c0 + h * d) - sol(c0 - h * d)) / (2 * h)
+    np.testing.assert_allclose(J @ d, num, rtol=1e-3, atol=1e-4)

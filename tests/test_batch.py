@@ -104,3 +104,24 @@ def test_bad_options():
         run_batch([Task("a", broken), Task("a", broken)], workers=0, quiet=True)
     with pytest.raises(SpecificationError, match="workers"):
         run_batch([Task("a", broken)], workers=-1, quiet=True)
+
+
+def test_progress_only_on_a_terminal():
+    import io
+
+    from invariance.batch.runner import Progress
+
+    class Tty(io.StringIO):
+        def isatty(self):
+            return True
+
+    tty, pipe = Tty(), io.StringIO()
+    for stream, quiet in ((tty, False), (pipe, False)):
+        pr = Progress(2, label="plan", quiet=quiet, stream=stream)
+        pr.step(True)
+        pr.step(False)
+    assert "plan: 2/2 done, 1 failed" in tty.getvalue() and pipe.getvalue() == ""
+    quiet = Tty()
+    pr = Progress(1, quiet=True, stream=quiet)
+    pr.step()
+    assert quiet.getvalue() == ""

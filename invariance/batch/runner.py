@@ -14,6 +14,12 @@ Execution backends
   importable on its workers);
 * ``workers=0``: no Dask at all, tasks run one by one in this process.
 
+While a batch runs in this process, the BLAS library is limited to one thread
+(threadpoolctl): the model matrices are small, and a multi-threaded BLAS on a busy
+machine made a 138 x 138 Cholesky factorization 200 times slower than one thread did
+(docs/many_groups.md). Dask's worker processes get the same limit from their
+environment (``OMP_NUM_THREADS=1`` and friends, dask's default).
+
 A task that raises records its error as one line (``ExceptionName: message``) and the
 other tasks go on. Progress goes to stderr when it is a terminal and ``quiet`` is false.
 """
@@ -26,15 +32,28 @@ import time
 import uuid
 import warnings
 from dataclasses import dataclass, field
-from typing import Any, Callable, Iterable, Mapping, Sequence
+from contextlib import contextmanager
+from typing import Any, Callable, Iterable, Iterator, Mapping, Sequence
 
 import numpy as np
 
 from ..errors import InvarianceWarning, SpecificationError
 
-__all__ = ["Task", "TaskOutcome", "BatchResult", "run_batch", "task_seed", "highest_level", "Progress"]
+__all__ = ["Task", "TaskOutcome", "BatchResult", "run_batch", "task_seed", "highest_level", "Progress", "single_thread_blas"]
 
 LEVEL_ORDER = ("configural", "metric", "scalar", "strict")
+
+
+@contextmanager
+def single_thread_blas() -> Iterator[None]:
+    """Limit BLAS/OpenMP thread pools to one thread inside the block (no-op without threadpoolctl)."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - declared dependency
+        yield
+        return
+    with threadpool_limits(limits=1):
+        yield
 
 
 def task_seed(base_seed: int, index: int) -> int:
@@ -238,7 +257,7 @@ def run_batch(
     progress = Progress(len(tasks), label=label, quiet=quiet)
     t0 = time.perf_counter()
     results: list[tuple] = [None] * len(tasks)  # type: ignore[list-item]
-    with warnings.catch_warnings():
+    with warnings.catch_warnings(), single_thread_blas():
         # the problems reach each task's result; do not print them from every worker
         warnings.simplefilter("ignore", InvarianceWarning)
         if scheduler is None and workers == 0:
@@ -267,7 +286,7 @@ def _run_dask(tasks, seeds, results, progress, *, scheduler, workers, processes)
     if scheduler is None:
         cluster = LocalCluster(
             n_workers=int(workers), threads_per_worker=1, processes=processes,
-            dashboard_address=None, silence_logs=logging.ERROR,
+            dashboard_address=":0", silence_logs=logging.ERROR,
         )
         client = Client(cluster)
         backend = f"local Dask cluster, {workers} worker {'processes' if processes else 'threads'}"
