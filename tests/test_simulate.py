@@ -87,3 +87,19 @@ def test_bad_plan_inputs():
         plan(pop, sizes=100, shift=Shift("intercept", "zz", 0.2), replications=2, workers=0, quiet=True)
     with pytest.raises(SpecificationError, match="planted parameter"):
         plan(pop, sizes=100, shift=Shift("slope", "a", 0.2), replications=2, workers=0, quiet=True)
+
+
+def test_population_from_values_matches_matrices():
+    pop = Population.from_values(
+        STRUCT, ("g1", "g2"),
+        loadings={"F": {"a": 0.7, "b": 0.6, "c": 0.8, "d": 0.65}},
+        intercepts={"a": 2.0, "b": 2.5, "c": 3.0, "d": 1.5},
+        residuals={"a": 0.51, "b": 0.64, "c": 0.36, "d": 1 - 0.65**2},
+        means={"g2": {"F": 0.4}}, variances={"g2": {"F": 1.3}},
+    )
+    for a, b in zip(pop.moments(), _population().moments()):
+        np.testing.assert_allclose(a[0], b[0])
+        np.testing.assert_allclose(a[1], b[1])
+    with pytest.raises(SpecificationError, match="loading of item 'd'"):
+        Population.from_values(STRUCT, ("g1",), loadings={"F": {"a": 1, "b": 1, "c": 1}},
+                               intercepts={}, residuals={})

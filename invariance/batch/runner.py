@@ -17,8 +17,8 @@ Execution backends
 While a batch runs in this process, the BLAS library is limited to one thread
 (threadpoolctl): the model matrices are small, and a multi-threaded BLAS on a busy
 machine made a 138 x 138 Cholesky factorization 200 times slower than one thread did
-(docs/many_groups.md). Dask's worker processes get the same limit from their
-environment (``OMP_NUM_THREADS=1`` and friends, dask's default).
+(docs/many_groups.md). Each task also runs under that limit on its worker, whether
+a thread, a local process or a remote machine.
 
 A task that raises records its error as one line (``ExceptionName: message``) and the
 other tasks go on. Progress goes to stderr when it is a terminal and ``quiet`` is false.
@@ -178,7 +178,8 @@ def _one_line(exc: BaseException) -> str:
 def _guarded(function: Callable, kwargs: Mapping, seed: int) -> tuple[str, Any, str, float]:
     start = time.perf_counter()
     try:
-        value = function(**dict(kwargs), seed=seed)
+        with single_thread_blas():  # also in worker processes and on remote workers
+            value = function(**dict(kwargs), seed=seed)
         return "ok", value, "", time.perf_counter() - start
     except Exception as exc:  # noqa: BLE001 - a failing task must not stop the batch
         return "failed", None, _one_line(exc), time.perf_counter() - start

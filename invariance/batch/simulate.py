@@ -121,6 +121,91 @@ class Population:
                          d.get("alpha", np.zeros(m))))
         return cls(structure, tuple(data), tuple(mats))
 
+    @classmethod
+    def from_values(
+        cls,
+        structure: Structure,
+        groups: Sequence[str],
+        *,
+        loadings: Mapping[str, Mapping[str, float]],
+        intercepts: Mapping[str, float],
+        residuals: Mapping[str, float],
+        means: Mapping[str, Mapping[str, float]] | None = None,
+        variances: Mapping[str, Mapping[str, float]] | None = None,
+        covariances: Mapping[str, float] | None = None,
+        paths: Mapping[str, float] | None = None,
+    ) -> "Population":
+        """An exactly invariant population from item values shared by all groups.
+
+        Parameters
+        ----------
+        structure, groups
+            The model and the group names.
+        loadings
+            factor -> item -> loading (every loading of the structure).
+        intercepts, residuals
+            item -> intercept / residual variance.
+        means, variances
+            group -> factor -> factor mean (default 0) / (disturbance) variance (default 1).
+        covariances
+            ``"A~B"`` -> factor covariance, the same in every group (default 0).
+        paths
+            ``"outcome<-predictor"`` -> B entry (second-order loadings, regressions).
+        """
+        items, facs = structure.items, structure.factor_names
+        p, m = len(items), len(facs)
+        lam = np.zeros((p, m))
+        for f, its in structure.measured_by.items():
+            given = dict(loadings.get(f, {}))
+            for it in its:
+                if it not in given:
+                    raise SpecificationError(f"The population needs the loading of item {it!r} on factor {f!r}.")
+                lam[items.index(it), facs.index(f)] = float(given.pop(it))
+            if given:
+                raise SpecificationError(f"Item {next(iter(given))!r} does not load on factor {f!r} in the structure.")
+        extra = set(loadings) - set(structure.measured_by)
+        if extra:
+            raise SpecificationError(f"Unknown factor {sorted(extra)[0]!r} in the population loadings.")
+
+        def vec(values: Mapping[str, float], what: str) -> np.ndarray:
+            unknown = set(values) - set(items)
+            if unknown:
+                raise SpecificationError(f"Unknown item {sorted(unknown)[0]!r} in the population {what}.")
+            missing = [it for it in items if it not in values]
+            if missing:
+                raise SpecificationError(f"The population needs the {what[:-1]} of item {missing[0]!r}.")
+            return np.array([float(values[it]) for it in items])
+
+        nu, th = vec(intercepts, "intercepts"), vec(residuals, "residuals")
+        beta = np.zeros((m, m))
+        for key, val in (paths or {}).items():
+            out, _, pred = key.partition("<-")
+            if out not in facs or pred not in facs:
+                raise SpecificationError(f"The population path {key!r} must read 'outcome<-predictor' with known factors.")
+            beta[facs.index(out), facs.index(pred)] = float(val)
+        psi0 = np.eye(m)
+        for key, val in (covariances or {}).items():
+            a, _, b = key.partition("~")
+            if a not in facs or b not in facs or a == b:
+                raise SpecificationError(f"The population covariance {key!r} must read 'A~B' with two known factors.")
+            psi0[facs.index(a), facs.index(b)] = psi0[facs.index(b), facs.index(a)] = float(val)
+        groups = tuple(str(g) for g in groups)
+        for what, d in (("means", means or {}), ("variances", variances or {})):
+            for g, fs in d.items():
+                if g not in groups:
+                    raise SpecificationError(f"Unknown group {g!r} in the population {what}; groups: {', '.join(groups)}.")
+                bad = set(fs) - set(facs)
+                if bad:
+                    raise SpecificationError(f"Unknown factor {sorted(bad)[0]!r} in the population {what} of {g!r}.")
+        mats = []
+        for g in groups:
+            alpha = np.array([float((means or {}).get(g, {}).get(f, 0.0)) for f in facs])
+            var = np.array([float((variances or {}).get(g, {}).get(f, 1.0)) for f in facs])
+            sd = np.sqrt(var)
+            psi = psi0 * np.outer(sd, sd)
+            mats.append((lam, beta, psi, np.diag(th), nu, alpha))
+        return cls(structure, groups, tuple(mats))
+
     def to_dict(self) -> dict:
         """Plain types (the inverse of :meth:`from_dict`)."""
         return {g: {n: np.asarray(x).tolist() for n, x in zip(_MATS, ms)} for g, ms in zip(self.groups, self.matrices)}

@@ -1,0 +1,60 @@
+"""The batch and plan commands, driven through their argparse registration in-process
+(the subprocess tests of ``python -m invariance`` come with the command line)."""
+
+from __future__ import annotations
+
+import argparse
+import json
+
+import pandas as pd
+import pytest
+import yaml
+
+from invariance import SpecificationError
+from invariance.batch.commands import add_commands
+from invariance.batch.planfile import load_plan
+
+PLAN = {
+    "model": {"family": "single", "factors": {"F": ["a", "b", "c", "d"]}},
+    "groups": ["north", "south"],
+    "population": {
+        "loadings": {"F": {"a": 0.7, "b": 0.6, "c": 0.8, "d": 0.65}},
+        "intercepts": {"a": 2.0, "b": 2.5, "c": 3.0, "d": 1.5},
+        "residuals": {"a": 0.51, "b": 0.64, "c": 0.36, "d": 0.58},
+        "means": {"south": {"F": 0.3}},
+    },
+    "sizes": 200,
+    "shift": {"parameter": "loading", "item": "c", "size": -0.4, "groups": ["south"]},
+    "replications": 8,
+    "seed": 3,
+}
+
+
+def _parse(argv):
+    ap = argparse.ArgumentParser(prog="invariance")
+    add_commands(ap.add_subparsers(dest="command"))
+    return ap.parse_args(argv)
+
+
+def test_plan_command_writes_json_and_csv(tmp_path, capsys):
+    path = tmp_path / "plan.yaml"
+    path.write_text(yaml.safe_dump(PLAN))
+    args = _parse(["plan", str(path), "--workers", "0", "--out", str(tmp_path / "o"), "--quiet"])
+    assert args.handler(args) == 0
+    d = json.loads((tmp_path / "o" / "plan.json").read_text())
+    assert d["target_step"] == "metric"
+    assert d["settings"]["replications"] == 8 and d["settings"]["sizes"] == {"north": 200, "south": 200}
+    rates = d["power"]["chi2 p<0.05"]["metric"]
+    assert rates["n"] == 8 and 0 <= rates["rate"] <= 1
+    rep = pd.read_csv(tmp_path / "o" / "replications.csv")
+    assert set(rep["condition"]) == {"invariant", "shifted"} and len(rep) == 2 * 8 * 1
+    assert "dCFI" in capsys.readouterr().out
+
+
+def test_plan_file_rejects_unknown_keys():
+    bad = dict(PLAN, replication=3)
+    with pytest.raises(SpecificationError, match="Unknown key 'replication'.*allowed"):
+        load_plan(bad)
+    bad = dict(PLAN, shift={"parameter": "intercept", "item": "b"})
+    with pytest.raises(SpecificationError, match="needs the key 'size'"):
+        load_plan(bad)
