@@ -17,6 +17,7 @@ import numpy as np
 
 from ..data.moments import SampleStats
 from ..model.spec import ModelSpec
+from .linalg import partition
 from .kernels import (
     compile_spec,
     group_matrices,
@@ -46,6 +47,8 @@ class MLObjective:
         self.S = [g.cov for g in stats.groups]
         self.mean = [g.mean for g in stats.groups]
         self.logdet_s = [float(np.linalg.slogdet(s)[1]) for s in self.S]
+        #: shared vs group-local parameters: the information matrix is arrow-shaped
+        self.partition = partition([lay.params for lay in self.layouts], self.n_params)
 
     def moments(self, theta: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
         """Implied (Sigma, mu) of every group."""

@@ -17,6 +17,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize as _sopt
 
+from .linalg import arrow_solve
+
 __all__ = ["STATUS", "Outcome", "minimize"]
 
 #: Fixed table of stop reasons: code -> message.
@@ -27,6 +29,7 @@ STATUS = {
     3: "the starting values give an implied covariance matrix that is not positive definite",
     4: "converged by the quasi-Newton fallback",
     5: "the quasi-Newton fallback did not converge",
+    6: "estimates diverge (the model is empirically under-identified or its optimum lies on a boundary)",
 }
 
 
@@ -50,15 +53,22 @@ class Outcome:
         return STATUS[self.status]
 
 
-def _solve(info: np.ndarray, grad: np.ndarray) -> np.ndarray:
-    """Scoring step -info^-1 grad, regularized when info is (near) singular."""
-    try:
-        c = np.linalg.cholesky(info)
-        y = np.linalg.solve(c, grad)
-        return -np.linalg.solve(c.T, y)
-    except np.linalg.LinAlgError:
-        scale = max(np.abs(np.diag(info)).max(), 1.0)
-        return -np.linalg.solve(info + 1e-8 * scale * np.eye(info.shape[0]), grad)
+def _solve(info: np.ndarray, grad: np.ndarray, part=None) -> np.ndarray:
+    """Scoring step -info^-1 grad (arrow-structured when ``part`` is given), with a
+    growing ridge when info is (near) singular or indefinite."""
+    scale = max(np.abs(np.diag(info)).max(), 1.0)
+    ridge = 0.0
+    eye = np.eye(info.shape[0])
+    for _ in range(8):
+        try:
+            M = info + ridge * scale * eye if ridge else info
+            if part is not None:
+                return -arrow_solve(M, grad, part)
+            c = np.linalg.cholesky(M)
+            return -np.linalg.solve(c.T, np.linalg.solve(c, grad))
+        except np.linalg.LinAlgError:
+            ridge = 1e-8 if not ridge else ridge * 100
+    return -np.linalg.lstsq(info, grad, rcond=None)[0]
 
 
 def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float):
@@ -66,19 +76,20 @@ def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float):
         f, g, h = obj.derivatives(x)
     except np.linalg.LinAlgError:
         return x, np.inf, None, None, 3, 0
+    bound = 100.0 * (1.0 + np.max(np.abs(x)))  # far beyond any admissible scale of this data
     newton = hasattr(obj, "hessian")
+    part = getattr(obj, "partition", None)
     decrement = np.inf
     for it in range(1, max_iter + 1):
         step = None
         if newton and decrement < 1.0:
             try:
                 hx = obj.hessian(x)
-                np.linalg.cholesky(hx)
-                step = _solve(hx, g)
+                step = -arrow_solve(hx, g, part) if part is not None else -np.linalg.solve(np.linalg.cholesky(hx).T, np.linalg.solve(np.linalg.cholesky(hx), g))
             except np.linalg.LinAlgError:
                 step = None
         if step is None:
-            step = _solve(h, g)
+            step = _solve(h, g, part)
         decrement = -float(g @ step)
         if decrement < tol * max(1.0, abs(f)) and np.max(np.abs(step)) < 1e-5:
             return x, f, g, h, 0, it - 1
@@ -92,6 +103,12 @@ def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float):
         else:
             return x, f, g, h, 2, it
         x = xn
+        if np.max(np.abs(x)) > bound:
+            try:
+                f, g, h = obj.derivatives(x)
+            except np.linalg.LinAlgError:
+                pass
+            return x, f, g, h, 6, it
         try:
             f, g, h = obj.derivatives(x)
         except np.linalg.LinAlgError:
@@ -122,6 +139,8 @@ def minimize(obj, x0: np.ndarray, *, max_iter: int = 200, tol: float = 1e-12) ->
         return Outcome(x, f, g, h, 0, it)
     if status == 3:
         return Outcome(x, np.inf, np.full_like(x, np.nan), None, 3, 0)
+    if status == 6:
+        return Outcome(x, f, g, h, 6, it)
 
     def fun(z):
         try:
