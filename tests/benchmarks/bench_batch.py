@@ -43,21 +43,25 @@ def bench_workers(reps: int) -> None:
     tasks = [Task(f"r{r}", replicate, {"population": pop, "sizes": (300, 300),
                                         "levels": ("configural", "metric", "scalar"), "data_seed": task_seed(1, r)})
              for r in range(reps)]
-    print(f"cores visible: {os.cpu_count()}; {reps} replications x 3 fits (6 items, 2 groups, N = 300 each)")
+    print(f"cores visible: {os.cpu_count()}; load average {os.getloadavg()[0]:.1f}; "
+          f"{reps} replications x 3 fits (6 items, 2 groups, N = 300 each)")
     t = time.perf_counter()
     base = run_batch(tasks, workers=0, quiet=True)
     serial = time.perf_counter() - t
-    print(f"  one by one (no Dask): {serial:7.2f} s")
+    busy = lambda r: sum(o.seconds for o in r.outcomes)
+    print(f"  one by one (no Dask): {serial:7.2f} s (time inside the tasks {busy(base):.2f} s)")
     for processes in (False, True):
-        times = {}
+        times, inside = {}, {}
         for w in (1, 2):
             t = time.perf_counter()
             res = run_batch(tasks, workers=w, processes=processes, quiet=True)
             times[w] = time.perf_counter() - t
+            inside[w] = busy(res)
             assert res.values == base.values, "parallel results differ from the one-by-one run"
         kind = "processes" if processes else "threads"
         print(f"  Dask {kind:9s}: 1 worker {times[1]:7.2f} s, 2 workers {times[2]:7.2f} s, "
-              f"speed-up {times[1] / times[2]:.2f}x")
+              f"speed-up {times[1] / times[2]:.2f}x (time inside the tasks {inside[1]:.2f} s and {inside[2]:.2f} s: "
+              "a sum that grows with 2 workers means the cores were not free)")
 
 
 def bench_groups(max_groups: int = 64, n: int = 300, *, single: bool = True) -> None:
