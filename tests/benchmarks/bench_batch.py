@@ -61,7 +61,7 @@ def bench_workers(reps: int) -> None:
         kind = "processes" if processes else "threads"
         print(f"  Dask {kind:9s}: 1 worker {times[1]:7.2f} s, 2 workers {times[2]:7.2f} s, "
               f"speed-up {times[1] / times[2]:.2f}x (time inside the tasks {inside[1]:.2f} s and {inside[2]:.2f} s: "
-              "a sum that grows with 2 workers means the cores were not free)")
+              "a sum that grows with 2 workers means the tasks competed, for the interpreter lock or for the cores)")
 
 
 def bench_groups(max_groups: int = 64, n: int = 300, *, single: bool = True) -> None:
