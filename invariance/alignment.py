@@ -301,6 +301,27 @@ class AlignmentResult:
         ]
         return pd.DataFrame(rows)
 
+    def parameter_table(self):
+        """One row per factor, item parameter and group: aligned value, SE, in the invariant set."""
+        import pandas as pd
+
+        rows = [
+            {
+                "factor": p.factor,
+                "item": p.item,
+                "parameter": p.parameter,
+                "group": g,
+                "aligned": p.aligned[g],
+                "se": p.se[g],
+                "invariant": g in p.invariant,
+                "set_value": p.value,
+                "r2": p.r2,
+            }
+            for p in self.parameters
+            for g in self.groups
+        ]
+        return pd.DataFrame(rows)
+
     def to_dict(self) -> dict:
         """Plain types for results.json (section ``alignment``)."""
         conv = lambda d: {f: {g: _num(v) for g, v in dd.items()} for f, dd in d.items()}

@@ -133,3 +133,32 @@ def test_implicit_derivative_matches_resolving():
     c0 = np.concatenate([lam0.ravel(), nu0.ravel()])
     num = (sol(c0 + h * d) - sol(c0 - h * d)) / (2 * h)
     np.testing.assert_allclose(J @ d, num, rtol=1e-3, atol=1e-4)
+
+
+def test_group_order_does_not_change_the_solution():
+    # property check (STYLE habit 7): permuting the groups permutes the solution
+    from invariance.alignment import solve_alignment
+
+    rng = np.random.default_rng(11)
+    G, k = 6, 4
+    lam0 = rng.uniform(0.5, 0.9, k)[None, :] * rng.uniform(0.8, 1.2, G)[:, None]
+    nu0 = rng.normal(3, 0.2, k)[None, :] + rng.normal(0, 0.4, G)[:, None] * lam0
+    nu0[2, 1] += 0.7
+    n = rng.integers(150, 600, G).astype(float)
+    w = np.sqrt(np.outer(n, n))
+    np.fill_diagonal(w, 0)
+    x, f, _ = solve_alignment(lam0, nu0, w, 0)
+    perm = np.array([0, 4, 2, 5, 1, 3])
+    xp, fp, _ = solve_alignment(lam0[perm], nu0[perm], w[np.ix_(perm, perm)], 0)
+    assert fp == pytest.approx(f, rel=1e-8)
+    a = np.r_[0, x[: G - 1]]
+    ap = np.r_[0, xp[: G - 1]]
+    np.testing.assert_allclose(ap, a[perm], atol=1e-5)
+
+
+def test_parameter_table(aligned):
+    res, al, stats, *_ = aligned
+    t = al.parameter_table()
+    assert len(t) == 2 * P * G
+    row = t[(t.item == "q4") & (t.parameter == "intercept") & (t.group == "c04")].iloc[0]
+    assert not row.invariant and row.se > 0
