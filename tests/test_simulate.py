@@ -103,3 +103,12 @@ def test_population_from_values_matches_matrices():
     with pytest.raises(SpecificationError, match="loading of item 'd'"):
         Population.from_values(STRUCT, ("g1",), loadings={"F": {"a": 1, "b": 1, "c": 1}},
                                intercepts={}, residuals={})
+
+
+def test_chunking_does_not_change_the_replications():
+    pop = _population()
+    a = plan(pop, sizes=120, replications=6, levels=("configural", "metric"), seed=5, workers=0, quiet=True)
+    b = plan(pop, sizes=120, replications=6, levels=("configural", "metric"), seed=5, workers=2, chunk=4, quiet=True)
+    cols = ["replication", "dchi2", "dcfi", "drmsea", "dsrmr"]
+    assert a.replications[cols].equals(b.replications[cols])
+    assert b.settings["chunk"] == 4

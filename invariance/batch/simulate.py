@@ -36,9 +36,9 @@ from ..model.levels import LEVELS, build_level
 from ..model.structure import Structure
 from ..results import FitResult
 from .rules import Rule, default_rules, finite
-from .runner import Task, run_batch, task_seed
+from .runner import Task, _one_line, run_batch, task_seed
 
-__all__ = ["Population", "Shift", "PlanResult", "plan", "replicate", "simulate_groups", "STEP_OF"]
+__all__ = ["Population", "Shift", "PlanResult", "plan", "replicate", "replicate_chunk", "simulate_groups", "STEP_OF"]
 
 #: The step (level) at which each shiftable parameter is first held equal.
 STEP_OF = {"loading": "metric", "intercept": "scalar", "residual": "strict"}
@@ -329,6 +329,18 @@ def replicate(*, population: Population, sizes: Sequence[int], levels: Sequence[
     return {"fits": fits, "steps": steps}
 
 
+def replicate_chunk(*, population: Population, sizes: Sequence[int], levels: Sequence[str],
+                    data_seeds: Sequence[int], seed: int = 0) -> list[dict]:
+    """Several replications in one task; a failing one gives ``{"error": one line}``."""
+    out = []
+    for s in data_seeds:
+        try:
+            out.append(replicate(population=population, sizes=sizes, levels=levels, data_seed=s))
+        except Exception as exc:  # noqa: BLE001 - one bad sample must not lose the chunk
+            out.append({"error": _one_line(exc)})
+    return out
+
+
 def _rate(k: int, n: int) -> dict:
     if n == 0:
         return {"rate": None, "count": 0, "n": 0, "ci95": [None, None]}
@@ -407,6 +419,7 @@ def plan(
     workers: int = 2,
     processes: bool = False,
     quiet: bool = False,
+    chunk: int | None = None,
 ) -> PlanResult:
     """Monte Carlo power, false alarms and empirical cutoffs.
 
@@ -428,6 +441,10 @@ def plan(
         Levels to fit; default configural up to the step of the shift (strict without one).
     seed, scheduler, workers, processes, quiet
         Passed to :func:`invariance.batch.run_batch`.
+    chunk
+        Replications per Dask task (default: about eight tasks per worker and
+        condition, to spread the scheduling overhead); a failing replication is
+        recorded on its own either way.
     """
     if int(replications) != replications or replications < 1:
         raise SpecificationError(f"The number of replications must be a whole number >= 1; got {replications!r}.")
@@ -442,24 +459,36 @@ def plan(
         if lv not in LEVELS:
             raise SpecificationError(f"Unknown level {lv!r}; use some of {', '.join(LEVELS)}.")
     rules = default_rules(alpha) if rules is None else dict(rules)
-    tasks = []
     conds = [("invariant", population)] + ([("shifted", shifted)] if shifted is not None else [])
+    R = int(replications)
+    if chunk is None:
+        chunk = 1 if (workers == 0 and scheduler is None) else max(1, -(-R // (8 * max(int(workers), 1))))
+    if int(chunk) != chunk or chunk < 1:
+        raise SpecificationError(f"The chunk size must be a whole number >= 1; got {chunk!r}.")
+    tasks = []
     for cond, pop in conds:
-        for r in range(int(replications)):
-            tasks.append(Task(f"{cond}-{r}", replicate,
-                              {"population": pop, "sizes": n, "levels": levels, "data_seed": task_seed(seed, r)}))
+        for start in range(0, R, int(chunk)):
+            reps = list(range(start, min(R, start + int(chunk))))
+            tasks.append(Task(f"{cond}-{start}", replicate_chunk,
+                              {"population": pop, "sizes": n, "levels": levels,
+                               "data_seeds": [task_seed(seed, r) for r in reps]}))
     batch = run_batch(tasks, seed=seed, scheduler=scheduler, workers=workers, processes=processes, quiet=quiet,
                       label="plan")
     import pandas as pd
 
     rows, failed = [], []
     for o in batch.outcomes:
-        cond, rep = o.name.rsplit("-", 1)
+        cond, start = o.name.rsplit("-", 1)
         if not o.ok:
             failed.append(f"{o.name}: {o.error}")
             continue
-        for st, d in o.value["steps"].items():
-            rows.append({"condition": cond, "replication": int(rep), "step": st, **d})
+        for j, value in enumerate(o.value):
+            rep = int(start) + j
+            if "error" in value:
+                failed.append(f"{cond}-{rep}: {value['error']}")
+                continue
+            for st, d in value["steps"].items():
+                rows.append({"condition": cond, "replication": rep, "step": st, **d})
     cols = ["condition", "replication", "step", "dchi2", "ddf", "p", "dcfi", "drmsea", "dsrmr", "converged"]
     frame = pd.DataFrame(rows, columns=cols)
     steps = list(levels[1:])
@@ -471,6 +500,6 @@ def plan(
         target_step=target,
         settings={"replications": int(replications), "sizes": dict(zip(population.groups, n)), "alpha": alpha,
                   "levels": list(levels), "seed": int(seed), "shift": None if shift is None else shift.to_dict(),
-                  "backend": batch.backend, "rules": list(rules)},
+                  "backend": batch.backend, "chunk": int(chunk), "rules": list(rules)},
         failed=tuple(failed),
     )
