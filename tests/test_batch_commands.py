@@ -58,3 +58,20 @@ def test_plan_file_rejects_unknown_keys():
     bad = dict(PLAN, shift={"parameter": "intercept", "item": "b"})
     with pytest.raises(SpecificationError, match="needs the key 'size'"):
         load_plan(bad)
+
+
+def test_pipeline_variants(tmp_path):
+    from invariance.batch.tasks import parse_vary, pipeline_variants
+
+    (tmp_path / "sub").mkdir()
+    path = tmp_path / "sub" / "study.yaml"
+    path.write_text(yaml.safe_dump({"data": {"path": "d.csv", "group": "site"}, "model": {"factors": {"F": ["a"]}},
+                                    "output": {"folder": "x"}}))
+    vary = parse_vary(["data.group=site,region", "estimator=ml"])
+    out = pipeline_variants(path, vary)
+    assert [n for n, _ in out] == ["study-site-ml", "study-region-ml"]
+    doc = out[1][1]
+    assert doc["data"]["group"] == "region" and doc["estimator"] == "ml" and "output" not in doc
+    assert doc["data"]["path"] == str((tmp_path / "sub" / "d.csv").resolve())
+    with pytest.raises(SpecificationError, match="KEY=VALUE"):
+        parse_vary(["data.group"])

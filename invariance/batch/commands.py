@@ -1,7 +1,8 @@
 """Command-line commands of the many-runs layer, registered by :mod:`invariance.cli`.
 
-``invariance batch PIPELINE... [--scheduler ADDRESS] [--workers N] [--out DIR]``
-    Runs every pipeline into ``DIR/<pipeline name>/`` (the files of a single run) and
+``invariance batch PIPELINE... [--vary KEY=V1,V2] [--scheduler ADDRESS] [--workers N] [--out DIR]``
+    Runs every pipeline (with ``--vary``: once per value of a pipeline key, such as
+    ``data.group=site,region`` for several grouping columns) into ``DIR/<pipeline name>/`` (the files of a single run) and
     writes ``DIR/batch.csv`` (a row per pipeline: status, highest level supported,
     flagged items, seed, seconds, error). Exit code 0 when every pipeline ran, 1 when
     some failed (their errors are in batch.csv).
@@ -22,7 +23,7 @@ from pathlib import Path
 from .planfile import load_plan
 from .runner import Task, run_batch
 from .simulate import plan
-from .tasks import pipeline_task
+from .tasks import parse_vary, pipeline_task, pipeline_variants
 
 __all__ = ["add_commands", "cmd_batch", "cmd_plan"]
 
@@ -43,6 +44,8 @@ def add_commands(subparsers) -> None:
     b = subparsers.add_parser("batch", help="run several pipelines as one batch on Dask",
                               description="Run several pipelines as one batch on Dask.")
     b.add_argument("pipelines", nargs="+", metavar="PIPELINE", help="pipeline files")
+    b.add_argument("--vary", metavar="KEY=V1,V2", action="append", default=[],
+                   help="run every pipeline once per value of a key, e.g. data.group=site,region (repeatable)")
     _common(b, "batch_results")
     b.set_defaults(handler=cmd_batch)
     p = subparsers.add_parser("plan", help="Monte Carlo power, false alarms and cutoffs for a planned study",
@@ -53,10 +56,9 @@ def add_commands(subparsers) -> None:
     p.set_defaults(handler=cmd_plan)
 
 
-def _task_names(paths: list[Path]) -> list[str]:
+def _unique(stems: list[str]) -> list[str]:
     names, seen = [], {}
-    for path in paths:
-        stem = path.stem
+    for stem in stems:
         k = seen.get(stem, 0)
         seen[stem] = k + 1
         names.append(stem if k == 0 else f"{stem}_{k + 1}")
@@ -68,10 +70,16 @@ def cmd_batch(args: argparse.Namespace) -> int:
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     paths = [Path(p) for p in args.pipelines]
-    tasks = [
-        Task(name, pipeline_task, {"pipeline": str(path.resolve()), "out": str((out / name).resolve())})
-        for name, path in zip(_task_names(paths), paths)
-    ]
+    vary = parse_vary(args.vary)
+    tasks = []
+    if vary:
+        entries = [(name, doc) for path in paths for name, doc in pipeline_variants(path, vary)]
+        names = _unique([n for n, _ in entries])
+        for name, (_, doc) in zip(names, entries):
+            tasks.append(Task(name, pipeline_task, {"pipeline": doc, "out": str((out / name).resolve())}))
+    else:
+        for name, path in zip(_unique([p.stem for p in paths]), paths):
+            tasks.append(Task(name, pipeline_task, {"pipeline": str(path.resolve()), "out": str((out / name).resolve())}))
     res = run_batch(tasks, seed=args.seed or 0, scheduler=args.scheduler, workers=args.workers,
                     processes=args.processes, quiet=args.quiet)
     res.write_csv(out / "batch.csv")
