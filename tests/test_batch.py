@@ -125,3 +125,28 @@ def test_progress_only_on_a_terminal():
     pr = Progress(1, quiet=True, stream=quiet)
     pr.step()
     assert quiet.getvalue() == ""
+
+
+def test_worker_processes_give_the_same_results():
+    # the process backend pickles the tasks and their arguments (Population included)
+    pop = _population()
+    tasks = [Task(f"r{r}", replicate, {"population": pop, "sizes": (120, 120), "levels": ("configural", "metric"),
+                                       "data_seed": r}) for r in range(3)]
+    par = run_batch(tasks, workers=1, processes=True, quiet=True)
+    ser = run_batch(tasks, workers=0, quiet=True)
+    assert "processes" in par.backend
+    assert [o.status for o in par.outcomes] == ["ok"] * 3
+    assert par.values == ser.values
+
+
+def test_existing_cluster_by_scheduler_address():
+    import logging
+
+    from distributed import LocalCluster
+
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=False, dashboard_address=":0",
+                      silence_logs=logging.ERROR) as cluster:
+        res = run_batch(_tasks(2), seed=11, scheduler=cluster.scheduler_address, quiet=True)
+        assert res.backend == f"Dask scheduler {cluster.scheduler_address}"
+    ser = run_batch(_tasks(2), seed=11, workers=0, quiet=True)
+    assert res.values == ser.values
