@@ -112,3 +112,10 @@ def test_chunking_does_not_change_the_replications():
     cols = ["replication", "dchi2", "dcfi", "drmsea", "dsrmr"]
     assert a.replications[cols].equals(b.replications[cols])
     assert b.settings["chunk"] == 4
+
+
+def test_noninvariant_population_is_noted():
+    pop = _population().shifted(Shift("intercept", "a", 0.3))
+    assert pop.invariant() == {"loading": True, "intercept": False, "residual": True}
+    res = plan(pop, sizes=100, replications=2, levels=("configural", "metric", "scalar"), workers=0, quiet=True)
+    assert len(res.settings["notes"]) == 1 and "intercepts differ" in res.settings["notes"][0]

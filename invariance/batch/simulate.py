@@ -210,6 +210,13 @@ class Population:
         """Plain types (the inverse of :meth:`from_dict`)."""
         return {g: {n: np.asarray(x).tolist() for n, x in zip(_MATS, ms)} for g, ms in zip(self.groups, self.matrices)}
 
+    def invariant(self) -> dict[str, bool]:
+        """Whether loadings, intercepts and residual variances are equal in every group."""
+        first = self.matrices[0]
+        same = lambda k: all(np.allclose(ms[k], first[k], rtol=0, atol=1e-10) for ms in self.matrices[1:])
+        return {"loading": same(0), "intercept": same(4), "residual": bool(
+            all(np.allclose(np.diag(ms[3]), np.diag(first[3]), rtol=0, atol=1e-10) for ms in self.matrices[1:]))}
+
     def moments(self) -> list[tuple[np.ndarray, np.ndarray]]:
         """Population (Sigma, mu) of every group."""
         return [implied_moments(ms)[:2] for ms in self.matrices]
@@ -459,6 +466,13 @@ def plan(
         if lv not in LEVELS:
             raise SpecificationError(f"Unknown level {lv!r}; use some of {', '.join(LEVELS)}.")
     rules = default_rules(alpha) if rules is None else dict(rules)
+    exact = population.invariant()
+    notes = [
+        f"the population's {kind}s differ across groups, so the invariant-condition rates at the "
+        f"{STEP_OF[kind]} step are not false alarms: start from a population fitted at that level"
+        for kind in STEP_OF
+        if not exact[kind] and STEP_OF[kind] in levels
+    ]
     conds = [("invariant", population)] + ([("shifted", shifted)] if shifted is not None else [])
     R = int(replications)
     if chunk is None:
@@ -500,6 +514,7 @@ def plan(
         target_step=target,
         settings={"replications": int(replications), "sizes": dict(zip(population.groups, n)), "alpha": alpha,
                   "levels": list(levels), "seed": int(seed), "shift": None if shift is None else shift.to_dict(),
-                  "backend": batch.backend, "chunk": int(chunk), "rules": list(rules)},
+                  "backend": batch.backend, "chunk": int(chunk), "rules": list(rules),
+                  "population_invariant": exact, "notes": notes},
         failed=tuple(failed),
     )
