@@ -74,6 +74,13 @@ def test_population_from_fit_and_dict_roundtrip():
     back = Population.from_dict(again.to_dict(), STRUCT)
     for a, b in zip(again.moments(), back.moments()):
         np.testing.assert_allclose(a[0], b[0])
+    # the estimates table (what a run writes to estimates.csv) gives the same population
+    est = res.estimates()
+    est.insert(0, "level", "scalar")
+    table = Population.from_estimates(est, STRUCT)
+    for a, b in zip(again.moments(), table.moments()):
+        np.testing.assert_allclose(a[0], b[0], atol=1e-12)
+        np.testing.assert_allclose(a[1], b[1], atol=1e-12)
     # sample moments of a large simulated sample approach the population moments
     big = simulate_groups(pop, (20000, 20000), seed=2)
     np.testing.assert_allclose(big[1].mean(axis=0), pop.moments()[1][1], atol=0.05)

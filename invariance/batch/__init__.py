@@ -7,7 +7,8 @@
 """
 
 from .runner import BatchResult, Task, TaskOutcome, highest_level, run_batch, task_seed
-from .simulate import PlanResult, Population, Shift, plan, replicate, simulate_groups
+from .population import Population, Shift, simulate_groups
+from .simulate import PlanResult, plan, replicate
 from .tasks import pipeline_task
 
 __all__ = [

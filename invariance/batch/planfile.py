@@ -29,7 +29,7 @@ from typing import Any, Mapping
 
 from ..errors import SpecificationError
 from ..model.structure import Structure
-from .simulate import Population, Shift
+from .population import Population, Shift
 
 __all__ = ["load_plan", "PLAN_KEYS"]
 
