@@ -75,3 +75,28 @@ def test_pipeline_variants(tmp_path):
     assert doc["data"]["path"] == str((tmp_path / "sub" / "d.csv").resolve())
     with pytest.raises(SpecificationError, match="KEY=VALUE"):
         parse_vary(["data.group"])
+
+
+def test_plan_from_an_estimates_file(tmp_path):
+    import numpy as np
+
+    from invariance import Structure, build_level, fit
+    from invariance.batch import Population, simulate_groups
+    from invariance.data.moments import stats_from_arrays
+
+    struct = Structure({"F": ("a", "b", "c", "d")}, family="single")
+    pop = load_plan(PLAN)["population"]
+    data = simulate_groups(pop, (300, 300), seed=1)
+    st = stats_from_arrays(data, pop.groups, struct.items)
+    res = fit(build_level(struct, st.names, "scalar"), st)
+    est = res.estimates()
+    est.insert(0, "level", "scalar")
+    est.to_csv(tmp_path / "estimates.csv", index=False)
+    doc = {k: v for k, v in PLAN.items() if k != "population"}
+    doc["population"] = {"estimates": "estimates.csv", "level": "scalar"}
+    (tmp_path / "p.yaml").write_text(yaml.safe_dump(doc))
+    got = load_plan(tmp_path / "p.yaml")["population"]
+    want = Population.from_fit(res, struct)
+    for a, b in zip(got.moments(), want.moments()):
+        np.testing.assert_allclose(a[0], b[0], atol=1e-9)
+    assert got.invariant() == {"loading": True, "intercept": True, "residual": False}

@@ -8,6 +8,8 @@ Layout (every key checked; unknown keys are rejected with the allowed ones)::
       general: null             # general / higher-order factor name
     groups: [north, south]
     population:                 # exact invariance, then group factor means/variances
+                                # (or: {estimates: results/study/estimates.csv, level: scalar},
+                                #  a fitted run's estimates, path relative to the plan file)
       loadings: {F: {a: 0.7, b: 0.6, c: 0.8, d: 0.65}}
       intercepts: {a: 2.0, b: 2.5, c: 3.0, d: 1.5}
       residuals: {a: 0.51, b: 0.64, c: 0.36, d: 0.58}
@@ -36,6 +38,7 @@ __all__ = ["load_plan", "PLAN_KEYS"]
 PLAN_KEYS = ("model", "groups", "population", "sizes", "shift", "replications", "alpha", "seed")
 _MODEL_KEYS = ("family", "factors", "general", "regressions", "residual_covariances")
 _POP_KEYS = ("loadings", "intercepts", "residuals", "means", "variances", "covariances", "paths")
+_EST_KEYS = ("estimates", "level")
 _SHIFT_KEYS = ("parameter", "item", "size", "factor", "groups")
 
 
@@ -57,12 +60,14 @@ def load_plan(source: str | Path | Mapping) -> dict:
     """Read and check a planning file; returns keyword arguments of :func:`invariance.batch.plan`
     plus ``population``.
     """
+    base = Path.cwd()
     if isinstance(source, Mapping):
         d = source
     else:
         import yaml
 
         path = Path(source)
+        base = path.parent
         if not path.is_file():
             raise SpecificationError(f"The plan file {str(path)!r} does not exist; check the path.")
         try:
@@ -83,8 +88,19 @@ def load_plan(source: str | Path | Mapping) -> dict:
     groups = d["groups"]
     if not isinstance(groups, (list, tuple)) or len(groups) < 2:
         raise SpecificationError("The plan needs a list of at least two group names under 'groups'.")
-    pop = _check_keys(d["population"], _POP_KEYS, "population", required=("loadings", "intercepts", "residuals"))
-    population = Population.from_values(structure, [str(g) for g in groups], **pop)
+    if isinstance(d["population"], Mapping) and "estimates" in d["population"]:
+        pop = _check_keys(d["population"], _EST_KEYS, "population")
+        est = base / str(pop["estimates"])
+        if not est.is_file():
+            raise SpecificationError(f"The estimates file {str(est)!r} does not exist; check population.estimates.")
+        population = Population.from_estimates(est, structure, level=pop.get("level"))
+        if list(population.groups) != [str(g) for g in groups]:
+            raise SpecificationError(
+                f"The estimates file has the groups {', '.join(population.groups)}; list the same under 'groups'."
+            )
+    else:
+        pop = _check_keys(d["population"], _POP_KEYS, "population", required=("loadings", "intercepts", "residuals"))
+        population = Population.from_values(structure, [str(g) for g in groups], **pop)
     shift = None
     if d.get("shift") is not None:
         s = _check_keys(d["shift"], _SHIFT_KEYS, "shift", required=("parameter", "item", "size"))
