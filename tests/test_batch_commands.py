@@ -100,3 +100,15 @@ def test_plan_from_an_estimates_file(tmp_path):
     for a, b in zip(got.moments(), want.moments()):
         np.testing.assert_allclose(a[0], b[0], atol=1e-9)
     assert got.invariant() == {"loading": True, "intercept": True, "residual": False}
+
+
+def test_plan_file_with_own_decision_rule():
+    doc = dict(PLAN, decision={"criteria": ["cfi"], "cutoffs": {"cfi": 0.002}})
+    kw = load_plan(doc)
+    names = list(kw["rules"])
+    assert len(names) == 5 and names[-1].startswith("your rule:")
+    rule = kw["rules"][names[-1]]
+    base = {"dchi2": 1.0, "ddf": 3, "p": 0.8, "drmsea": 0.0, "dsrmr": 0.0}
+    assert rule(dict(base, dcfi=-0.003), "metric") and not rule(dict(base, dcfi=-0.001), "metric")
+    with pytest.raises(SpecificationError, match="Unknown key 'stop_at_failure'"):
+        load_plan(dict(PLAN, decision={"stop_at_failure": True}))

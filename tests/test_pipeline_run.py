@@ -143,4 +143,4 @@ def test_check_fits_nothing(hs_dir):
 
 def test_stages_are_extensible():
     names = [n for n, _ in runner.STAGES]
-    assert names == ["data", "stats", "levels", "fits", "summary"]
+    assert names == ["data", "stats", "levels", "fits", "alignment", "summary"]

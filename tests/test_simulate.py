@@ -126,3 +126,27 @@ def test_noninvariant_population_is_noted():
     assert pop.invariant() == {"loading": True, "intercept": False, "residual": True}
     res = plan(pop, sizes=100, replications=2, levels=("configural", "metric", "scalar"), workers=0, quiet=True)
     assert len(res.settings["notes"]) == 1 and "intercepts differ" in res.settings["notes"][0]
+
+
+def test_pipeline_rules_agree_with_direct_readings(null_plan):
+    # the planner's default rules wrap invariance.compare; the direct readings of the
+    # published rules (Cheung & Rensvold 2002; Chen 2007) must flag the same replications
+    from functools import partial
+
+    from invariance.batch.rules import cfi_rule, chen_rule, chi2_rule, default_rules
+
+    rules = default_rules(0.05)
+    direct = {
+        "chi2 p<0.05": partial(chi2_rule, alpha=0.05),
+        "dCFI<=-.01 (Cheung & Rensvold 2002)": cfi_rule,
+        "Chen 2007 (N>300, balanced)": partial(chen_rule, sample="large"),
+        "Chen 2007 (N<=300 or unbalanced)": partial(chen_rule, sample="small"),
+    }
+    rows = null_plan.replications.to_dict("records")
+    # shift the changes so that every rule meets both outcomes
+    probes = rows + [dict(r, dcfi=r["dcfi"] - 0.012, drmsea=r["drmsea"] + 0.02, p=r["p"] / 50) for r in rows[:50]]
+    for name, rule in rules.items():
+        got = [rule(r, r["step"]) for r in probes]
+        want = [direct[name](r, r["step"]) for r in probes]
+        assert got == want, name
+        assert any(got) and not all(got)

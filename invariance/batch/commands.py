@@ -4,8 +4,8 @@
     Runs every pipeline (with ``--vary``: once per value of a pipeline key, such as
     ``data.group=site,region`` for several grouping columns) into ``DIR/<pipeline name>/`` (the files of a single run) and
     writes ``DIR/batch.csv`` (a row per pipeline: status, highest level supported,
-    flagged items, seed, seconds, error). Exit code 0 when every pipeline ran, 1 when
-    some failed (their errors are in batch.csv).
+    flagged items, seed, seconds, error). Exit code 0 when every pipeline ran, 2 when
+    some failed (one line on stderr; each error in batch.csv), as for bad input.
 
 ``invariance plan PLANFILE [--replications R] [--workers N] [--scheduler ADDRESS] [--out DIR]``
     Monte Carlo planning from a planning file (:mod:`invariance.batch.planfile`): writes
@@ -86,7 +86,12 @@ def cmd_batch(args: argparse.Namespace) -> int:
     table = res.table()
     print(table[["task", "status", "highest_level", "flagged", "error"]].to_string(index=False))
     print(f"{len(tasks) - res.n_failed} of {len(tasks)} pipelines ran ({res.backend}); summary in {out / 'batch.csv'}")
-    return 1 if res.n_failed else 0
+    if res.n_failed:
+        first = next(o for o in res.outcomes if not o.ok)
+        print(f"error: {res.n_failed} of {len(tasks)} pipelines failed (first: {first.name}: {first.error}); "
+              f"see {out / 'batch.csv'}", file=sys.stderr)
+        return 2
+    return 0
 
 
 def cmd_plan(args: argparse.Namespace) -> int:

@@ -22,6 +22,9 @@ Layout (every key checked; unknown keys are rejected with the allowed ones)::
     replications: 200
     alpha: 0.05
     seed: 1
+    decision: {criteria: [cfi, rmsea], combine: paired, cutoffs: chen2007_small}   # optional:
+                                # your own rule (a pipeline's decision keys), reported
+                                # beside the default rules
 """
 
 from __future__ import annotations
@@ -31,11 +34,14 @@ from typing import Any, Mapping
 
 from ..errors import SpecificationError
 from ..model.structure import Structure
+from ..compare import make_rule
 from .population import Population, Shift
+from .rules import decision_rule, default_rules
 
 __all__ = ["load_plan", "PLAN_KEYS"]
 
-PLAN_KEYS = ("model", "groups", "population", "sizes", "shift", "replications", "alpha", "seed")
+PLAN_KEYS = ("model", "groups", "population", "sizes", "shift", "replications", "alpha", "seed", "decision")
+_DECISION_KEYS = ("criteria", "combine", "alpha", "cutoffs")
 _MODEL_KEYS = ("family", "factors", "general", "regressions", "residual_covariances")
 _POP_KEYS = ("loadings", "intercepts", "residuals", "means", "variances", "covariances", "paths")
 _EST_KEYS = ("estimates", "level")
@@ -115,4 +121,9 @@ def load_plan(source: str | Path | Mapping) -> dict:
                 out[key] = kind(d[key])
             except (TypeError, ValueError):
                 raise SpecificationError(f"The plan key {key!r} must be a number; got {d[key]!r}.") from None
+    if d.get("decision") is not None:
+        dec = _check_keys(d["decision"], _DECISION_KEYS, "decision")
+        rule = make_rule(criteria=dec.get("criteria"), combine=dec.get("combine", "all"),
+                         alpha=float(dec.get("alpha", out.get("alpha", 0.05))), cutoffs=dec.get("cutoffs"))
+        out["rules"] = {**default_rules(out.get("alpha", 0.05)), f"your rule: {rule.describe()}": decision_rule(rule)}
     return out

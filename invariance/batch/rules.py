@@ -1,20 +1,23 @@
 """Decision rules for one step between nested levels, as small replaceable functions.
 
-Each rule takes the changes of one step (restricted minus free: ``dchi2``, ``ddf``,
-``p``, ``dcfi``, ``drmsea``, ``dsrmr``) and the step's level (``metric``, ``scalar``,
-``strict``) and returns True when it signals noninvariance (METHODS section 5).
-These are the planning module's own copies; they can be swapped for the pipeline's
-decision rules (``invariance.compare``) without touching the simulation.
+A planning rule takes the changes of one step (restricted minus free: ``dchi2``,
+``ddf``, ``p``, ``dcfi``, ``drmsea``, ``dsrmr``) and the step's level (``metric``,
+``scalar``, ``strict``) and returns True when it signals noninvariance (METHODS
+section 5). The defaults wrap the pipeline's own decision rules
+(:mod:`invariance.compare`) through :func:`decision_rule`, so a plan judges exactly
+as a run does. :func:`chi2_rule`, :func:`cfi_rule` and :func:`chen_rule` are
+independent direct readings of the published rules; the tests check that both agree.
 """
 
 from __future__ import annotations
 
-from functools import partial
 from typing import Callable, Mapping
 
 import numpy as np
 
-__all__ = ["chi2_rule", "cfi_rule", "chen_rule", "default_rules", "Rule"]
+from ..compare import DecisionRule, judge_step, make_rule
+
+__all__ = ["Rule", "chi2_rule", "cfi_rule", "chen_rule", "decision_rule", "default_rules", "finite"]
 
 Rule = Callable[[Mapping, str], bool]
 
@@ -26,7 +29,7 @@ def chi2_rule(delta: Mapping, level: str, *, alpha: float = 0.05) -> bool:
 
 def cfi_rule(delta: Mapping, level: str, *, cutoff: float = 0.01) -> bool:
     """Cheung & Rensvold (2002): dCFI <= -cutoff (0.01)."""
-    return bool(delta["dcfi"] <= -cutoff + 1e-12)
+    return bool(round(delta["dcfi"], 10) <= -cutoff)
 
 
 #: Chen (2007) cutoffs: (dCFI, dRMSEA, dSRMR loadings, dSRMR intercepts/residuals).
@@ -41,17 +44,38 @@ def chen_rule(delta: Mapping, level: str, *, sample: str = "large") -> bool:
     """
     c, r, s_load, s_other = CHEN[sample]
     s = s_load if level == "metric" else s_other
-    tol = 1e-12
-    return bool(delta["dcfi"] <= -c + tol and (delta["drmsea"] >= r - tol or delta["dsrmr"] >= s - tol))
+    rd = lambda v: round(v, 10)
+    return bool(rd(delta["dcfi"]) <= -c and (rd(delta["drmsea"]) >= r or rd(delta["dsrmr"]) >= s))
+
+
+class decision_rule:  # noqa: N801 - used like a function
+    """A pipeline :class:`~invariance.compare.DecisionRule` as a planning rule.
+
+    The step is flagged when :func:`invariance.compare.judge_step` says it ``fails``.
+    """
+
+    def __init__(self, rule: DecisionRule) -> None:
+        self.rule = rule
+
+    def __call__(self, delta: Mapping, level: str) -> bool:
+        d = {"chi2": float(delta["dchi2"]), "df": int(delta["ddf"]), "pvalue": float(delta["p"]),
+             "cfi": float(delta["dcfi"]), "rmsea": float(delta["drmsea"]), "srmr": float(delta["dsrmr"])}
+        return judge_step(d, level, self.rule)["decision"] == "fails"
+
+    def __repr__(self) -> str:
+        return f"decision_rule({self.rule.describe()!r})"
 
 
 def default_rules(alpha: float = 0.05) -> dict[str, Rule]:
     """The rules the planner reports by default, by name."""
+    paired = ("cfi", "rmsea", "srmr")
     return {
-        f"chi2 p<{alpha:g}": partial(chi2_rule, alpha=alpha),
-        "dCFI<=-.01 (Cheung & Rensvold 2002)": cfi_rule,
-        "Chen 2007 (N>300, balanced)": partial(chen_rule, sample="large"),
-        "Chen 2007 (N<=300 or unbalanced)": partial(chen_rule, sample="small"),
+        f"chi2 p<{alpha:g}": decision_rule(make_rule(criteria=("chi2",), alpha=alpha)),
+        "dCFI<=-.01 (Cheung & Rensvold 2002)": decision_rule(make_rule(cutoffs="cheung_rensvold2002")),
+        "Chen 2007 (N>300, balanced)": decision_rule(make_rule(criteria=paired, combine="paired", cutoffs="chen2007")),
+        "Chen 2007 (N<=300 or unbalanced)": decision_rule(
+            make_rule(criteria=paired, combine="paired", cutoffs="chen2007_small")
+        ),
     }
 
 

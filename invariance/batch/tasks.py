@@ -21,10 +21,12 @@ def summarize_results(results: Mapping[str, Any]) -> dict:
     """The batch summary of one pipeline's results.json content.
 
     Keeps each level's ``level`` and ``decision``, the flagged items, and the highest
-    level supported (an unbroken run of ``holds`` / ``holds_partially`` decisions).
+    level supported (the run's ``supported_level``, else the end of an unbroken run of
+    ``holds`` / ``holds_partially`` decisions; ``"none"`` when not even configural holds).
     """
     levels = [{"level": lv.get("level"), "decision": lv.get("decision")} for lv in results.get("levels", [])]
-    return {"levels": levels, "flagged": list(results.get("flagged", []) or []), "highest_level": highest_level(levels)}
+    best = results["supported_level"] if "supported_level" in results else highest_level(levels)
+    return {"levels": levels, "flagged": list(results.get("flagged", []) or []), "highest_level": best or "none"}
 
 
 def pipeline_task(*, pipeline, out: str | Path, seed: int = 0) -> dict:

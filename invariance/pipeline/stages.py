@@ -19,6 +19,7 @@ from ..data.read import apply_missing, file_sha256, read_table
 from ..errors import DataError, InvarianceWarning, SpecificationError
 from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
+from .align_stage import stage_alignment
 from .load import PipelineSpec, thaw
 
 __all__ = ["STAGES", "Stage", "stage_data", "stage_stats", "stage_levels", "stage_fits", "stage_summary", "FIT_KEYS"]
@@ -206,5 +207,6 @@ STAGES: list[tuple[str, Stage]] = [
     ("stats", stage_stats),
     ("levels", stage_levels),
     ("fits", stage_fits),
+    ("alignment", stage_alignment),
     ("summary", stage_summary),
 ]
