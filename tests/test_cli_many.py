@@ -23,42 +23,45 @@ def _levels(path):
     return d["supported_level"], [(lv["level"], lv["decision"], lv["chi2"]) for lv in d["levels"]]
 
 
-def test_batch_command_matches_single_runs(small_demo, tmp_path):
-    site = small_demo / "shift_outlook_by_site.yaml"
-    occ = small_demo / "shift_outlook_by_occupation.yaml"
-    broken = write_yaml(tmp_path / "broken.yaml", {"data": {"path": "nowhere.csv", "group": "g"},
-                                                   "model": {"factors": {"F": ["a", "b"]}}})
-    out = tmp_path / "batch"
-    r = run_cli("batch", site, occ, broken, "--workers", "2", "--out", out, "--quiet", timeout=300)
+def test_batch_command_matches_single_runs(hs_dir):
+    # Holzinger & Swineford (1939) by school and by sex, plus a broken pipeline
+    school = write_yaml(hs_dir / "by_school.yaml", hs_doc("hs.csv", levels=["configural", "metric", "scalar"]))
+    sex = write_yaml(hs_dir / "by_sex.yaml", hs_doc("hs.csv", levels=["configural", "metric", "scalar"],
+                                                   data={"path": "hs.csv", "group": "sex"}))
+    broken = write_yaml(hs_dir / "broken.yaml", {"data": {"path": "nowhere.csv", "group": "g"},
+                                                 "model": {"factors": {"F": ["a", "b"]}}})
+    out = hs_dir / "batch"
+    r = run_cli("batch", school, sex, broken, "--workers", "2", "--out", out, "--quiet", timeout=300)
     # issue 8: the broken pipeline is reported (exit 2, one line on stderr) and the rest complete
     assert r.returncode == 2, r.stderr
     assert len(r.stderr.strip().splitlines()) == 1 and "broken" in r.stderr
     table = pd.read_csv(out / "batch.csv", keep_default_na=False)
-    assert table["task"].tolist() == ["shift_outlook_by_site", "shift_outlook_by_occupation", "broken"]
+    assert table["task"].tolist() == ["by_school", "by_sex", "broken"]
     assert table["status"].tolist() == ["ok", "ok", "failed"]
     assert table.loc[2, "error"].startswith("DataError: ")
     # the same pipelines run one by one give the same results
-    for name, path in (("shift_outlook_by_site", site), ("shift_outlook_by_occupation", occ)):
-        single = tmp_path / f"single_{name}"
-        r1 = run_cli("run", path, "--out", single, "--quiet", timeout=300)
-        assert r1.returncode == 0, r1.stderr
+    for name, path in (("by_school", school), ("by_sex", sex)):
+        single = hs_dir / f"single_{name}"
+        res = invariance.run(path, out=single, quiet=True)
         batch_res, single_res = _levels(out / name / "results.json"), _levels(single / "results.json")
         assert batch_res == single_res
-        row = table[table.task == name].iloc[0]
-        assert row["highest_level"] == (single_res[0] or "none")
+        assert table[table.task == name].iloc[0]["highest_level"] == (res.supported_level or "none")
         assert {p.name for p in (out / name).iterdir()} == {p.name for p in single.iterdir()}
+    # Holzinger & Swineford by school: configural chi-square 115.851 on 48 df (METHODS section 12)
+    d = json.loads((out / "by_school" / "results.json").read_text())
+    assert d["levels"][0]["chi2"] == pytest.approx(115.851, abs=2e-3)
 
 
-def test_batch_vary_grouping_column(small_demo, tmp_path):
-    site = small_demo / "shift_outlook_by_site.yaml"
-    out = tmp_path / "vary"
-    r = run_cli("batch", site, "--vary", "data.group=site,occupation", "--workers", "0", "--out", out,
-                "--quiet", timeout=300)
-    # the occupation variant needs its own reference group: the site pipeline names 'harbor'
+def test_batch_vary_grouping_column(hs_dir):
+    path = write_yaml(hs_dir / "hs.yaml", hs_doc("hs.csv", levels=["configural", "metric"]))
+    out = hs_dir / "vary"
+    r = run_cli("batch", path, "--vary", "data.group=school,sex", "--workers", "0", "--out", out, "--quiet",
+                timeout=300)
+    assert r.returncode == 0, r.stderr
     table = pd.read_csv(out / "batch.csv", keep_default_na=False)
-    assert table["task"].tolist() == ["shift_outlook_by_site-site", "shift_outlook_by_site-occupation"]
-    assert table.loc[0, "status"] == "ok"
-    assert r.returncode == (0 if (table["status"] == "ok").all() else 2)
+    assert table["task"].tolist() == ["hs-school", "hs-sex"] and (table["status"] == "ok").all()
+    groups = json.loads((out / "hs-sex" / "results.json").read_text())["groups"]
+    assert len(groups) == 2 and sum(groups.values()) == 301  # 301 pupils (METHODS section 12)
 
 
 def test_plan_command(tmp_path):
@@ -81,10 +84,6 @@ def test_plan_command(tmp_path):
     assert d["target_step"] == "scalar" and d["settings"]["seed"] == 2
     assert "scalar" in d["cutoffs"] and "metric" in d["cutoffs"]
     assert "dCFI" in r.stdout
-    bad = write_yaml(tmp_path / "bad.yaml", dict(plan, replicas=3))
-    r = run_cli("plan", bad, "--workers", "0", timeout=120)
-    assert r.returncode == 2 and r.stderr.startswith("error: Unknown key 'replicas'")
-    assert len(r.stderr.strip().splitlines()) == 1
 
 
 def test_pipeline_alignment_section(hs_dir):
@@ -124,5 +123,11 @@ def test_pipeline_alignment_refuses_bifactor(small_demo, tmp_path):
     assert "alignment.enabled needs a single-factor or correlated-factor model" in r.stderr
     assert len(r.stderr.strip().splitlines()) == 1
     doc["alignment"] = {"enabled": True, "refrence": "x"}
-    r = run_cli("run", write_yaml(tmp_path / "bad.yaml", doc), "--quiet", timeout=120)
-    assert r.returncode == 2 and "refrence" in r.stderr
+    with pytest.raises(invariance.SpecificationError, match="Unknown key 'refrence'"):
+        invariance.load_pipeline(write_yaml(tmp_path / "bad.yaml", doc))
+
+
+def test_plan_command_bad_file_one_line(tmp_path):
+    r = run_cli("plan", tmp_path / "missing.yaml", timeout=120)
+    assert r.returncode == 2 and r.stderr.startswith("error: The plan file")
+    assert len(r.stderr.strip().splitlines()) == 1
