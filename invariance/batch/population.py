@@ -13,6 +13,7 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
+from ..data.simulate import draw_group
 from ..errors import SpecificationError
 from ..estimate.kernels import implied_moments
 from ..model.levels import LEVELS
@@ -327,10 +328,6 @@ def group_sizes(population: Population, sizes) -> tuple[int, ...]:
 def simulate_groups(population: Population, sizes: Sequence[int], seed: int) -> list[np.ndarray]:
     """Normal data of every group, (n_g, p) arrays, from one seed."""
     rng = np.random.default_rng(seed)
-    out = []
-    for (sigma, mu), n in zip(population.moments(), sizes):
-        L = np.linalg.cholesky(sigma)
-        out.append(mu + rng.standard_normal((n, mu.size)) @ L.T)
-    return out
+    return [draw_group(n, sigma, mu, rng) for (sigma, mu), n in zip(population.moments(), sizes)]
 
 
