@@ -290,7 +290,9 @@ def _run_dask(tasks, seeds, results, progress, *, scheduler, workers, processes)
             dashboard_address=":0", silence_logs=logging.ERROR,
         )
         client = Client(cluster)
-        backend = f"local Dask cluster, {workers} worker {'processes' if processes else 'threads'}"
+        kind = ("process" if processes else "thread") + ("es" if processes and workers != 1 else "")
+        kind += "s" if not processes and workers != 1 else ""
+        backend = f"local Dask cluster, {workers} worker {kind}"
     else:
         try:
             client = Client(scheduler, timeout="10s")
