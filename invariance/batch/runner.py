@@ -287,7 +287,7 @@ def _run_dask(tasks, seeds, results, progress, *, scheduler, workers, processes)
     if scheduler is None:
         cluster = LocalCluster(
             n_workers=int(workers), threads_per_worker=1, processes=processes,
-            dashboard_address=":0", silence_logs=logging.ERROR,
+            dashboard_address=":0", silence_logs=logging.CRITICAL,
         )
         client = Client(cluster)
         kind = ("process" if processes else "thread") + ("es" if processes and workers != 1 else "")
