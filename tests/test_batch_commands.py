@@ -112,3 +112,12 @@ def test_plan_file_with_own_decision_rule():
     assert rule(dict(base, dcfi=-0.003), "metric") and not rule(dict(base, dcfi=-0.001), "metric")
     with pytest.raises(SpecificationError, match="Unknown key 'stop_at_failure'"):
         load_plan(dict(PLAN, decision={"stop_at_failure": True}))
+
+
+def test_example_plan_file_is_valid():
+    import pathlib
+
+    path = pathlib.Path(__file__).resolve().parents[1] / "examples" / "plan_shift_outlook.yaml"
+    kw = load_plan(path)
+    assert kw["population"].groups == ("harbor", "ridge") and kw["shift"].item == "so04"
+    assert kw["population"].invariant() == {"loading": True, "intercept": True, "residual": True}
