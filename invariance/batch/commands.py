@@ -109,8 +109,10 @@ def cmd_plan(args: argparse.Namespace) -> int:
     (out / "plan.json").write_text(json.dumps(res.to_dict(), indent=2, default=float) + "\n")
     res.replications.to_csv(out / "replications.csv", index=False)
     t = res.table()
-    t["rate"] = t["rate"].map(lambda v: f"{v:.3f}" if v == v and v is not None else "n/a")
-    print(t[["condition", "rule", "step", "rate", "n"]].to_string(index=False))
+    fmt = lambda v: "n/a" if v is None or v != v else f"{v:.3f}"
+    t["rate"] = t["rate"].map(fmt)
+    t["95% interval"] = [f"[{fmt(a)}, {fmt(b)}]" for a, b in zip(t["ci_low"], t["ci_high"])]
+    print(t[["condition", "rule", "step", "rate", "95% interval", "n"]].to_string(index=False))
     for step, c in res.cutoffs.items():
         if c["n"]:
             print(f"{step}: under invariance, 5th percentile of dCFI {c['dcfi_p05']:+.4f}, "
