@@ -145,18 +145,6 @@ def _path_text(path) -> str:
     return ".".join(parts) if parts else "(top level)"
 
 
-def _schema_at(path) -> dict:
-    """The sub-schema at a document path (following properties only)."""
-    node = schema()
-    for key in path:
-        props = node.get("properties", {})
-        if key in props:
-            node = props[key]
-        else:
-            return {}
-    return node
-
-
 def validate_document(doc: Mapping) -> None:
     """Validate a pipeline document against the schema; raise one clear error."""
     import jsonschema

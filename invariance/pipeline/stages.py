@@ -4,7 +4,12 @@
 left there (the data, the statistics, the fitted models) and adds its own objects. The
 dict a stage returns is merged into results.json, so it must hold plain JSON values.
 A later feature adds one function here (or in its own module) and one entry in
-:data:`STAGES`, plus a section in schema.json for its options.
+:data:`STAGES`, plus a section in schema.json for its options (read it with
+``spec.section(name)``). Useful state keys: ``checked`` (:class:`~invariance.data.CheckedData`),
+``stats`` (:class:`~invariance.data.SampleStats`), ``reference``, ``models``
+(level -> ModelSpec), ``fits`` (level -> FitResult), ``level_rows`` (the level entries
+of results.json, which a later stage may update in place, e.g. to ``holds_partially``),
+``warnings`` (list of strings).
 """
 
 from __future__ import annotations
@@ -22,9 +27,13 @@ from ..model.levels import build_level
 from .align_stage import stage_alignment
 from .load import PipelineSpec, thaw
 
-__all__ = ["STAGES", "Stage", "stage_data", "stage_stats", "stage_levels", "stage_fits", "stage_summary", "FIT_KEYS"]
+__all__ = ["FITTERS", "STAGES", "Stage", "add_stage", "stage_data", "stage_stats", "stage_levels", "stage_fits", "stage_summary", "FIT_KEYS"]
 
 Stage = Callable[[PipelineSpec, dict], dict]
+
+#: Estimator name (pipeline key ``estimator``) -> fitting function ``(spec, stats) -> FitResult``.
+#: A new estimator registers here and adds its name to the schema's ``estimator`` enum.
+FITTERS: dict[str, Callable] = {"ml": ml_fit}
 
 #: Fit statistics copied into each level of results.json.
 FIT_KEYS = ("chi2", "df", "pvalue", "cfi", "tli", "rmsea", "rmsea_ci90", "srmr", "aic", "bic")
@@ -102,10 +111,16 @@ def stage_levels(spec: PipelineSpec, state: dict) -> dict:
     }
 
 
-def _fit_one(model, stats):
+def _fit_one(model, stats, estimator: str = "ml"):
+    try:
+        fitter = FITTERS[estimator]
+    except KeyError:
+        raise SpecificationError(
+            f"Estimator {estimator!r} is not available; use one of {', '.join(FITTERS)}."
+        ) from None
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", InvarianceWarning)
-        res = ml_fit(model, stats)
+        res = fitter(model, stats)
     notes = [str(w.message) for w in caught if issubclass(w.category, InvarianceWarning)]
     return res, notes
 
@@ -148,7 +163,7 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
         if stopped is not None:
             rows.append(_not_tested(lv, stopped))
             continue
-        res, notes = _fit_one(state["models"][lv], stats)
+        res, notes = _fit_one(state["models"][lv], stats, spec.estimator)
         fits[lv] = res
         row = _level_row(lv, res, res.spec.released)
         if lv == "configural":
@@ -158,16 +173,19 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
             base_level, base_row = accepted
             delta = level_delta(row, base_row)
             verdict = judge_step(delta, lv, rule, converged=res.converged)
+            improper = [p for p in res.problems if not p.startswith("not converged")]
+            if improper and res.converged:
+                verdict["reason"] += "; caution, improper solution: " + "; ".join(improper)
             row.update({"delta": delta, "compared_with": base_level})
         row.update(verdict)
         rows.append(row)
-        state.setdefault("warnings", []).extend(f"{lv}: {n}" for n in notes)
+        state.setdefault("warnings", []).extend(n if n.startswith(f"{lv}:") else f"{lv}: {n}" for n in notes)
         if verdict["decision"] == "holds":
             accepted = (lv, row)
         elif lv == "configural":
-            stopped = "not tested: the configural model was not supported"
+            stopped = "the configural model was not supported"
         elif spec.stop_at_failure:
-            stopped = f"not tested: {lv} failed and decision.stop_at_failure is true"
+            stopped = f"{lv} failed and decision.stop_at_failure is true"
     state["fits"] = fits
     state["level_rows"] = rows
     return {"levels": rows, "flagged": []}
@@ -184,14 +202,30 @@ def stage_summary(spec: PipelineSpec, state: dict) -> dict:
         n_total <= 300 or max(ns) > 1.5 * min(ns)
     ):
         notes.append(
-            "Chen (2007) recommends the small-sample cutoffs when N <= 300 or groups are unbalanced: "
-            "set decision.cutoffs: chen2007_small"
+            f"total N = {n_total}, group sizes {min(ns)} to {max(ns)}: Chen (2007) recommends the "
+            "small-sample cutoffs when N <= 300 or groups are unbalanced (here: the largest group more "
+            "than 1.5 times the smallest): consider decision.cutoffs: chen2007_small"
         )
     state.setdefault("warnings", []).extend(notes)
-    if best is None:
+    first_bad = next((r for r in rows if r["decision"] not in ("holds", "holds_partially")), None)
+    estimation_failed = first_bad is not None and (
+        first_bad["converged"] is False
+        or (first_bad["level"] == "configural" and any(not p.startswith("not converged") for p in first_bad["problems"]))
+    )
+    if best is None and estimation_failed:
+        verdict = (
+            "The configural model did not converge to a proper solution, so no level could be judged: "
+            "check the factor structure, the items and the group sizes before reading any result."
+        )
+    elif best is None:
         verdict = "The data do not support even configural invariance: " + PERMITS[None] + "."
     else:
         verdict = f"The data support {best} invariance: {PERMITS[best]}."
+        if estimation_failed:
+            verdict += (
+                f" (The {first_bad['level']} model did not converge, so that step could not be judged; "
+                "a higher level may still hold.)"
+            )
     return {
         "supported_level": best,
         "permits": PERMITS[best],
@@ -210,3 +244,27 @@ STAGES: list[tuple[str, Stage]] = [
     ("alignment", stage_alignment),
     ("summary", stage_summary),
 ]
+
+
+def add_stage(name: str, stage: Stage, *, after: str | None = None) -> None:
+    """Register a stage (once per name) so every later run calls it.
+
+    Parameters
+    ----------
+    name
+        Stage name; registering a name again replaces that stage.
+    stage
+        ``stage(spec, state) -> dict``; the dict is merged into results.json.
+    after
+        Name of the stage it follows (default: the end of the list).
+    """
+    names = [n for n, _ in STAGES]
+    if name in names:
+        STAGES[names.index(name)] = (name, stage)
+        return
+    if after is None:
+        STAGES.append((name, stage))
+        return
+    if after not in names:
+        raise ValueError(f"Unknown stage {after!r}; the stages are {', '.join(names)}.")
+    STAGES.insert(names.index(after) + 1, (name, stage))

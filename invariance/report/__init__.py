@@ -24,6 +24,12 @@ def _f(v, fmt: str) -> str:
     return "" if v is None else format(v, fmt)
 
 
+def _p(v) -> str:
+    if v is None:
+        return ""
+    return "<.001" if v < 0.001 else f"{v:.3f}"
+
+
 def _table(results: dict) -> list[str]:
     lines = [
         "| level | chi2 | df | p | CFI | TLI | RMSEA [90% CI] | SRMR | dchi2 (ddf) | p | dCFI | dRMSEA | dSRMR | decision |",
@@ -35,9 +41,9 @@ def _table(results: dict) -> list[str]:
         rm = "" if lv["rmsea"] is None else f"{lv['rmsea']:.3f} [{_f(ci[0], '.3f')}, {_f(ci[1], '.3f')}]"
         dd = "" if not d else f"{d['chi2']:.2f} ({d['df']})"
         lines.append(
-            f"| {lv['level']} | {_f(lv['chi2'], '.2f')} | {_f(lv['df'], 'd')} | {_f(lv['pvalue'], '.3f')} | "
+            f"| {lv['level']} | {_f(lv['chi2'], '.2f')} | {_f(lv['df'], 'd')} | {_p(lv['pvalue'])} | "
             f"{_f(lv['cfi'], '.3f')} | {_f(lv['tli'], '.3f')} | {rm} | {_f(lv['srmr'], '.3f')} | {dd} | "
-            f"{_f(d.get('pvalue'), '.3f')} | {_f(d.get('cfi'), '+.4f')} | {_f(d.get('rmsea'), '+.4f')} | "
+            f"{_p(d.get('pvalue'))} | {_f(d.get('cfi'), '+.4f')} | {_f(d.get('rmsea'), '+.4f')} | "
             f"{_f(d.get('srmr'), '+.4f')} | {lv['decision']} |"
         )
     return lines
