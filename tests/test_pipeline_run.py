@@ -166,7 +166,7 @@ def test_check_fits_nothing(hs_dir):
 
 def test_stages_are_extensible():
     names = [n for n, _ in runner.STAGES]
-    assert names == ["data", "screening", "stats", "group_fit", "structures", "levels", "fits", "effects", "summary", "scores"]
+    assert names == ["data", "screening", "stats", "group_fit", "structures", "levels", "fits", "effects", "alignment", "summary", "scores"]
 
 
 def test_existing_foreign_folder_is_never_replaced(hs_dir):

@@ -28,6 +28,7 @@ from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
 from ..partial.stage import stage_effects
 from .before_after import stage_group_fit, stage_scores, stage_screening, stage_structures
+from .align_stage import stage_alignment
 from .load import PipelineSpec, thaw
 from . import robust_stage as _rs
 
@@ -305,6 +306,7 @@ STAGES: list[tuple[str, Stage]] = [
     ("levels", stage_levels),
     ("fits", stage_fits),
     ("effects", stage_effects),
+    ("alignment", stage_alignment),
     ("summary", stage_summary),
     ("scores", stage_scores),
 ]
