@@ -84,7 +84,10 @@ def test_output_folder_files(hs_all_levels):
     path, res = hs_all_levels
     out = path.parent / "out"
     assert res.out_dir == out.resolve()
-    assert sorted(p.name for p in out.iterdir()) == ["estimates.csv", "levels.csv", "pipeline.yaml", "report.md", "results.json"]
+    assert sorted(p.name for p in out.iterdir()) == [
+        "estimates.csv", "figures", "levels.csv", "pipeline.yaml", "report.html", "report.md", "results.json",
+        "table_levels.csv", "table_levels.md", "table_levels.tex",
+    ]
     table = pd.read_csv(out / "levels.csv")
     assert table["level"].tolist() == ["configural", "metric", "scalar", "strict"]
     est = pd.read_csv(out / "estimates.csv")
@@ -163,7 +166,7 @@ def test_check_fits_nothing(hs_dir):
 
 def test_stages_are_extensible():
     names = [n for n, _ in runner.STAGES]
-    assert names == ["data", "stats", "levels", "fits", "summary"]
+    assert names == ["data", "screening", "stats", "group_fit", "structures", "levels", "fits", "effects", "alignment", "summary", "scores"]
 
 
 def test_existing_foreign_folder_is_never_replaced(hs_dir):

@@ -179,6 +179,8 @@ def run(
             level_table(results).to_csv(folder / "levels.csv", index=False)
             estimates.to_csv(folder / "estimates.csv", index=False)
             (folder / "pipeline.yaml").write_text(spec.text, encoding="utf-8")
+            if state.get("scores_table") is not None:
+                state["scores_table"].to_csv(folder / "scores.csv", index=False)
             write_reports(folder, results, estimates, context)
 
         out_dir = write_outputs(out_dir, [files])
