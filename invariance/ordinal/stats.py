@@ -1,0 +1,115 @@
+"""Per-group ordinal sample statistics: the data the DWLS estimator fits.
+
+The edge between data frames and the array kernels of :mod:`.polychoric`. Complete
+cases per group (a case with any item missing is dropped), as for complete-data ML.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Mapping, Sequence
+
+import numpy as np
+
+from ..errors import DataError
+from .categories import CategoryMap, category_maps, encode
+from .polychoric import PolychoricFit, polychoric
+
+__all__ = ["OrdinalStats", "ordinal_stats", "ordinal_stats_from_arrays"]
+
+
+@dataclass(frozen=True, eq=False)
+class OrdinalStats:
+    """Thresholds, polychoric correlations and their ACOV for every group.
+
+    Attributes
+    ----------
+    items
+        Item names (model order).
+    names
+        Group names.
+    fits
+        One :class:`~invariance.ordinal.polychoric.PolychoricFit` per group.
+    categories
+        One :class:`~invariance.ordinal.categories.CategoryMap` per item.
+    """
+
+    items: tuple[str, ...]
+    names: tuple[str, ...]
+    fits: tuple[PolychoricFit, ...]
+    categories: tuple[CategoryMap, ...]
+
+    @property
+    def n_categories(self) -> np.ndarray:
+        return np.array([m.n_categories for m in self.categories])
+
+    @property
+    def n(self) -> np.ndarray:
+        return np.array([f.n for f in self.fits], dtype=float)
+
+    @property
+    def n_total(self) -> int:
+        return int(self.n.sum())
+
+    def subset(self, names: Sequence[str]) -> "OrdinalStats":
+        by = dict(zip(self.names, self.fits))
+        return OrdinalStats(self.items, tuple(names), tuple(by[n] for n in names), self.categories)
+
+
+def ordinal_stats_from_arrays(
+    arrays: Sequence[np.ndarray],
+    names: Sequence[str],
+    items: Sequence[str],
+    *,
+    merge: Mapping[str, Sequence[Sequence[float]]] | None = None,
+) -> OrdinalStats:
+    """Ordinal statistics from one (n_g, p) value array per group.
+
+    Parameters
+    ----------
+    arrays
+        Item values per group (rows with a missing value are dropped).
+    names, items
+        Group and item names.
+    merge
+        Item -> lists of adjacent values to merge (see
+        :func:`invariance.ordinal.categories.category_maps`).
+    """
+    items = tuple(str(i) for i in items)
+    names = tuple(str(n) for n in names)
+    clean = []
+    for name, x in zip(names, arrays):
+        x = np.asarray(x, dtype=float)
+        x = x[~np.isnan(x).any(axis=1)]
+        if x.shape[0] < 2 * len(items):
+            raise DataError(
+                f"Group {name!r} has {x.shape[0]} complete cases for {len(items)} ordinal items; "
+                "collect more data for this group, merge it with another, or drop it."
+            )
+        clean.append(x)
+    maps = category_maps(clean, names, items, merge=merge)
+    K = np.array([m.n_categories for m in maps])
+    fits = tuple(polychoric(encode(x, maps), K) for x in clean)
+    return OrdinalStats(items, names, fits, maps)
+
+
+def ordinal_stats(
+    frame,
+    items: Sequence[str],
+    group: str | None = None,
+    *,
+    groups: Sequence[str] | None = None,
+    merge: Mapping[str, Sequence[Sequence[float]]] | None = None,
+) -> OrdinalStats:
+    """Ordinal statistics from a pandas DataFrame (``group`` names the grouping column)."""
+    items = [str(i) for i in items]
+    missing = [c for c in items + ([group] if group else []) if c not in frame.columns]
+    if missing:
+        raise DataError(f"Column {missing[0]!r} is not in the data; check the spelling or the data file.")
+    if group is None:
+        return ordinal_stats_from_arrays([frame[items].to_numpy(dtype=float)], ["all"], items, merge=merge)
+    keys = frame[group]
+    if groups is None:
+        groups = list(dict.fromkeys(keys.dropna().tolist()))
+    arrays = [frame.loc[keys == g, items].to_numpy(dtype=float) for g in groups]
+    return ordinal_stats_from_arrays(arrays, [str(g) for g in groups], items, merge=merge)
