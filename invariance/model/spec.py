@@ -24,11 +24,14 @@ import numpy as np
 
 from ..errors import SpecificationError
 
-__all__ = ["ModelSpec", "Release", "MATRICES", "PARAMETER_KINDS", "LAMBDA", "BETA", "PSI", "THETA", "NU", "ALPHA"]
+__all__ = ["ModelSpec", "Release", "MATRICES", "PARAMETER_KINDS", "LAMBDA", "BETA", "PSI", "THETA", "NU", "ALPHA", "TAU"]
 
 #: Matrix codes in the entry table.
 LAMBDA, BETA, PSI, THETA, NU, ALPHA = range(6)
-MATRICES = ("lambda", "beta", "psi", "theta", "nu", "alpha")
+#: Thresholds of ordered items (row = item, col = threshold index 0 .. K_i - 2). Only
+#: ordinal models (:mod:`invariance.ordinal.levels`) use it; the continuous kernels skip it.
+TAU = 6
+MATRICES = ("lambda", "beta", "psi", "theta", "nu", "alpha", "tau")
 
 #: Names of the parameter kinds an entry can be (what a reader calls it).
 PARAMETER_KINDS = (
@@ -40,6 +43,7 @@ PARAMETER_KINDS = (
     "residual_cov", # Theta[i, j]
     "intercept",    # nu[i]
     "mean",         # alpha[f]: factor mean or intercept
+    "threshold",    # tau[i, k]: threshold k of an ordered item
 )
 
 
@@ -84,6 +88,8 @@ def _kind(matrix: int, row: int, col: int) -> str:
         return "residual" if row == col else "residual_cov"
     if matrix == NU:
         return "intercept"
+    if matrix == TAU:
+        return "threshold"
     return "mean"
 
 
@@ -110,6 +116,10 @@ class ModelSpec:
         Name of the reference group (informational; identification is in the table).
     released
         The :class:`Release` records applied so far.
+    moment_count
+        Number of observed statistics when they are not G p(p+3)/2 covariances and
+        means (ordinal models: thresholds and polychoric correlations); ``None`` for
+        the continuous count.
     """
 
     items: tuple[str, ...]
@@ -125,6 +135,7 @@ class ModelSpec:
     level: str = ""
     reference: str = ""
     released: tuple[Release, ...] = ()
+    moment_count: int | None = None
     _param: np.ndarray = field(init=False, repr=False)
     _labels: tuple[str, ...] = field(init=False, repr=False)
 
@@ -164,7 +175,9 @@ class ModelSpec:
 
     @property
     def n_moments(self) -> int:
-        """Observed moments: G * p(p+3)/2 (covariances and means)."""
+        """Observed moments: G * p(p+3)/2 (covariances and means), or ``moment_count``."""
+        if self.moment_count is not None:
+            return int(self.moment_count)
         p = len(self.items)
         return len(self.groups) * p * (p + 3) // 2
 
@@ -192,6 +205,8 @@ class ModelSpec:
                 lhs[k], rhs[k] = self.items[r], (self.items[c] if r != c else None)
             elif m == NU:
                 lhs[k], rhs[k] = self.items[r], None
+            elif m == TAU:
+                lhs[k], rhs[k] = self.items[r], f"t{c + 1}"
             else:
                 lhs[k], rhs[k] = self.factors[r], None
         return lhs, rhs
