@@ -42,7 +42,7 @@ def _upper(h: np.ndarray, k: np.ndarray, r: np.ndarray) -> np.ndarray:
         asr = np.arcsin(rl) / 2.0
         sn = np.sin(asr[:, None] * _X[None, :])
         expo = (sn * (hl * kl)[:, None] - hs[:, None]) / (1.0 - sn * sn)
-        out[low] = np.exp(expo) @ _W * asr / _TWO_PI + ndtr(-hl) * ndtr(-kl)
+        out[low] = (np.exp(expo) * _W).sum(axis=1) * asr / _TWO_PI + ndtr(-hl) * ndtr(-kl)
     high = ~low
     if high.any():
         hh, kh, rh = h[high], k[high].copy(), r[high]
@@ -76,7 +76,7 @@ def _upper(h: np.ndarray, k: np.ndarray, r: np.ndarray) -> np.ndarray:
             sp2 = 1.0 + c[:, None] * xs * (1.0 + 5.0 * d[:, None] * xs)
             rs = np.sqrt(1.0 - xs)
             ep = np.exp(-(hkh[:, None] / 2.0) * xs / (1.0 + rs) ** 2) / rs
-            integ = np.where(ok, np.exp(np.where(ok, asr2, 0.0)) * (sp2 - ep), 0.0) @ _W
+            integ = (np.where(ok, np.exp(np.where(ok, asr2, 0.0)) * (sp2 - ep), 0.0) * _W).sum(axis=1)
             bvn = np.where(inner, (a2 * integ - term) / _TWO_PI, 0.0)
         pos = rh > 0
         res = np.empty(hh.shape)

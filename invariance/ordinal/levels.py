@@ -12,18 +12,23 @@ Levels (each adds the constraints of the previous one):
 ==========  ==========================================================================
 configural  everything free per group; per group and item nu = 0, Theta_ii = 1; factor
             means 0 and variances 1 in every group
-thresholds  thresholds equal across groups; outside the reference group the items get
-            free intercepts (three or more categories) and free unique variances
-metric      loadings equal; factor variances free outside the reference group; binary
-            items now get free intercepts outside the reference group
+thresholds  thresholds equal across groups; outside the reference group every item gets
+            a free intercept, and items with three or more categories a free unique
+            variance
+metric      loadings equal; factor variances free outside the reference group
 scalar      intercepts equal (all 0); factor means free outside the reference group
 strict      unique variances equal (all 1)
 ==========  ==========================================================================
 
-With K_i categories the thresholds step changes the fit by (G - 1)(K_i - 3) degrees of
-freedom per item: for three categories (and for binary items, whose intercept stays
-fixed) it is an equivalent reparameterization of the configural model, the identity
-Wu & Estabrook (2016) prove; with four or more categories it is testable.
+Counting per item and non-reference group, the thresholds step changes the fit by
+K_i - 3 degrees of freedom for K_i >= 3 (K_i - 1 equalities, intercept and unique
+variance freed) and by 0 for binary items (one equality, intercept freed). With three
+categories, and for binary items, it is therefore an equivalent re-parameterization of
+the configural model, the identity of Wu & Estabrook (2016); with four or more
+categories it is a testable restriction. A binary item has only one threshold, so its
+latent-response scale stays fixed (Theta_ii = 1) at every level: the loadings step
+tests its loading, and the strict step adds no constraint for it (its unique variance
+is not separately identified).
 
 Releases (partial invariance) are applied when the model is built: ``threshold``
 gives the item group-specific thresholds (its intercept and unique variance are then
@@ -109,6 +114,10 @@ def build_ordinal_level(
             )
         if r.item not in items:
             raise SpecificationError(f"The release names {r.item!r}, which is not an item of the model.")
+        if r.parameter == "residual" and K[items.index(r.item)] == 2:
+            raise SpecificationError(
+                f"Item {r.item!r} is binary: its unique variance is fixed for identification and cannot be released."
+            )
         if r.groups is not None:
             bad = [g for g in r.groups if g not in groups]
             if bad:
@@ -164,16 +173,13 @@ def build_ordinal_level(
                 lab = f"threshold:{it}#{k + 1}"
                 add(g, TAU, i, k, True, lab if tau_shared else lab + tag)
             # location and scale of the latent response
-            loads_shared = rank >= 2 and not any(
-                is_released("loading", it, gname, f) for f, its in structure.measured_by.items() if it in its
-            )
-            nu_free = (
+            nu_free = not is_ref and tau_shared and (rank < 3 or is_released("intercept", it, gname))
+            th_free = (
                 not is_ref
                 and tau_shared
-                and (K[i] >= 3 or loads_shared)
-                and (rank < 3 or is_released("intercept", it, gname))
+                and K[i] >= 3
+                and (rank < 4 or is_released("residual", it, gname))
             )
-            th_free = not is_ref and tau_shared and (rank < 4 or is_released("residual", it, gname))
             if nu_free:
                 add(g, NU, i, 0, True, f"intercept:{it}{tag}")
             if th_free:
