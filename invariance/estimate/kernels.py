@@ -26,6 +26,7 @@ __all__ = [
     "moment_jacobian",
     "ml_discrepancy",
     "ml_derivatives",
+    "ml_hessian",
 ]
 
 
@@ -225,3 +226,99 @@ def ml_derivatives(
         Y = dm @ Rinv.T
         info = X @ X.T + 2.0 * (Y @ Y.T)
     return grad, info, W
+
+
+def ml_hessian(
+    lay: GroupLayout,
+    mats: tuple[np.ndarray, ...],
+    sigma: np.ndarray,
+    mu: np.ndarray,
+    G: np.ndarray,
+    A: np.ndarray,
+    S: np.ndarray,
+    mean: np.ndarray,
+    dS: np.ndarray,
+    dm: np.ndarray,
+) -> np.ndarray:
+    """Exact (observed) Hessian of one group's ML discrepancy, local parameters.
+
+    With W = Sigma^-1, d = m - mu, C = S + dd', Gs = W - W C W, w = W d::
+
+        F_uv = tr(Gs Sigma_uv) - 2 w' mu_uv - tr(W S_u W S_v) + 2 tr(W S_u W C W S_v)
+               + 2 mu_v' W S_u w + 2 mu_u' W S_v w + 2 mu_u' W mu_v
+
+    The second-derivative terms tr(Gs Sigma_uv) - 2 w' mu_uv are contracted in closed
+    form per pair of matrix entries (Lambda, B, Psi, alpha; Theta and nu enter linearly).
+    """
+    lam, beta, psi, theta, nu, alpha = mats
+    R = np.linalg.cholesky(sigma)
+    Rinv = np.linalg.inv(R)
+    W = Rinv.T @ Rinv
+    d = mean - mu
+    w = W @ d
+    Cm = S + np.outer(d, d)
+    Gs = W - W @ Cm @ W
+    u = dS.shape[0]
+    # moment part
+    X = Rinv @ dS @ Rinv.T                      # (u, p, p)
+    Q = Rinv @ Cm @ Rinv.T
+    Xf = X.reshape(u, -1)
+    XQ = (X @ Q).reshape(u, -1)
+    H = -(Xf @ Xf.T) + 2.0 * (XQ @ Xf.T)
+    a = np.einsum("uij,j->ui", dS, w) @ W       # (u, p): W S_u w as rows
+    H += 2.0 * (dm @ a.T + a @ dm.T) + 2.0 * dm @ W @ dm.T
+    # second-derivative contraction, per entry
+    k = lay.ent_mat.size
+    Ke = np.zeros((k, k))
+    Phi = A @ psi @ A.T
+    GsG = Gs @ G
+    GsLPhi = Gs @ lam @ Phi
+    Aa = A @ alpha
+    Kf = G.T @ Gs @ G
+    M = lam.T @ Gs @ lam
+    v = lam.T @ w
+    AtMA = A.T @ M @ A
+    Z = 2.0 * M @ A @ psi - 2.0 * np.outer(v, alpha)
+    AZA = A.T @ Z @ A.T
+    Atv = A.T @ v
+    iL, jL, _, pL = lay.sel[LAMBDA]
+    eB, fB, _, pB = lay.sel[BETA]
+    cP, dP, _, pP = lay.sel[PSI]
+    cA, _, _, pA = lay.sel[ALPHA]
+    offP = (cP != dP).astype(float)
+    if pL.size:
+        Ke[np.ix_(pL, pL)] = 2.0 * Gs[np.ix_(iL, iL)] * Phi[np.ix_(jL, jL)].T
+        if pP.size:
+            blk = 2.0 * GsG[iL][:, cP] * A[jL][:, dP] + offP[None, :] * 2.0 * GsG[iL][:, dP] * A[jL][:, cP]
+            Ke[np.ix_(pL, pP)] = blk
+            Ke[np.ix_(pP, pL)] = blk.T
+        if pB.size:
+            blk = 2.0 * (GsG[iL][:, eB] * Phi[fB][:, jL].T + GsLPhi[iL][:, fB] * A[jL][:, eB])
+            blk -= 2.0 * w[iL][:, None] * A[jL][:, eB] * Aa[fB][None, :]
+            Ke[np.ix_(pL, pB)] = blk
+            Ke[np.ix_(pB, pL)] = blk.T
+        if pA.size:
+            blk = -2.0 * w[iL][:, None] * A[jL][:, cA]
+            Ke[np.ix_(pL, pA)] = blk
+            Ke[np.ix_(pA, pL)] = blk.T
+    if pB.size:
+        blk = (
+            2.0 * AtMA[np.ix_(eB, eB)].T * Phi[np.ix_(fB, fB)]
+            + A[np.ix_(fB, eB)].T * AZA[np.ix_(eB, fB)].T
+            + A[np.ix_(fB, eB)] * AZA[np.ix_(eB, fB)]
+        )
+        Ke[np.ix_(pB, pB)] = blk
+        if pP.size:
+            # rows: Psi entries (c, d); cols: B entries (e, f)
+            blk = 2.0 * A[np.ix_(fB, cP)].T * Kf[np.ix_(eB, dP)].T
+            blk += offP[:, None] * 2.0 * A[np.ix_(fB, dP)].T * Kf[np.ix_(eB, cP)].T
+            blk = np.where(offP[:, None] > 0, blk, 2.0 * A[np.ix_(fB, cP)].T * Kf[np.ix_(eB, cP)].T)
+            Ke[np.ix_(pP, pB)] = blk
+            Ke[np.ix_(pB, pP)] = blk.T
+        if pA.size:
+            blk = -2.0 * Atv[eB][:, None] * A[np.ix_(fB, cA)]
+            Ke[np.ix_(pB, pA)] = blk
+            Ke[np.ix_(pA, pB)] = blk.T
+    if not (lay.P.shape[0] == lay.P.shape[1] and np.array_equal(lay.P, np.eye(k))):
+        Ke = lay.P.T @ Ke @ lay.P
+    return H + Ke

@@ -18,6 +18,7 @@ from ..fit import compute_fit
 from ..model.spec import ModelSpec
 from ..results import FitResult
 from .kernels import group_matrices, implied_moments
+from .linalg import arrow_inverse, arrow_min_eigen
 from .objective import MLObjective
 from .optimize import minimize
 from .start import start_values
@@ -39,7 +40,7 @@ def observed_information(obj, theta: np.ndarray, h: float = 1e-6) -> np.ndarray:
     return (H + H.T) / 2
 
 
-def diagnose(spec: ModelSpec, matrices, sigmas, info: np.ndarray | None) -> list[str]:
+def diagnose(spec: ModelSpec, matrices, sigmas, info: np.ndarray | None, part=None) -> list[str]:
     """Name the improper parts of a solution.
 
     Checks negative residual variances (Heywood cases), non-positive-definite factor
@@ -57,7 +58,14 @@ def diagnose(spec: ModelSpec, matrices, sigmas, info: np.ndarray | None) -> list
             problems.append(f"factor covariance matrix not positive definite in group {gname}")
         if np.linalg.eigvalsh(sigma)[0] <= 0:
             problems.append(f"implied covariance matrix not positive definite in group {gname}")
+    singular = False
     if info is not None and info.size:
+        if part is not None:
+            singular = arrow_min_eigen(info, part) < 1e-10
+        else:
+            d = np.sqrt(np.clip(np.abs(np.diag(info)), 1e-300, None))
+            singular = np.linalg.eigvalsh(info / np.outer(d, d))[0] < 1e-10
+    if singular:
         d = np.sqrt(np.clip(np.abs(np.diag(info)), 1e-300, None))
         scaled = info / np.outer(d, d)
         w, v = np.linalg.eigh(scaled)
@@ -79,7 +87,7 @@ def fit(
     *,
     information: str = "expected",
     start: np.ndarray | None = None,
-    max_iter: int = 500,
+    max_iter: int = 200,
 ) -> FitResult:
     """Estimate a multi-group model by maximum likelihood.
 
@@ -125,15 +133,16 @@ def fit(
     if info is None:
         info = obj.derivatives(theta)[2]
     if information == "observed":
-        info_se = observed_information(obj, theta)
+        info_se = obj.hessian(theta) if hasattr(obj, "hessian") else observed_information(obj, theta)
     else:
         info_se = info
-    problems = diagnose(spec, matrices, sigmas, info_se)
+    part = getattr(obj, "partition", None)
+    problems = diagnose(spec, matrices, sigmas, info_se, part)
     acov = None
     if not any(p.startswith("singular information") for p in problems):
         try:
             # T = -2 logL + const: the information of logL is half the Hessian of T
-            acov = 2.0 * np.linalg.inv(info_se)
+            acov = 2.0 * (arrow_inverse(info_se, part) if part is not None else np.linalg.inv(info_se))
         except np.linalg.LinAlgError:
             acov = None
     if not out.converged:

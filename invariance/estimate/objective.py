@@ -17,7 +17,16 @@ import numpy as np
 
 from ..data.moments import SampleStats
 from ..model.spec import ModelSpec
-from .kernels import compile_spec, group_matrices, implied_moments, ml_derivatives, ml_discrepancy, moment_jacobian
+from .linalg import partition
+from .kernels import (
+    compile_spec,
+    group_matrices,
+    implied_moments,
+    ml_derivatives,
+    ml_discrepancy,
+    ml_hessian,
+    moment_jacobian,
+)
 
 __all__ = ["MLObjective"]
 
@@ -38,6 +47,8 @@ class MLObjective:
         self.S = [g.cov for g in stats.groups]
         self.mean = [g.mean for g in stats.groups]
         self.logdet_s = [float(np.linalg.slogdet(s)[1]) for s in self.S]
+        #: shared vs group-local parameters: the information matrix is arrow-shaped
+        self.partition = partition([lay.params for lay in self.layouts], self.n_params)
 
     def moments(self, theta: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
         """Implied (Sigma, mu) of every group."""
@@ -90,3 +101,16 @@ class MLObjective:
             if information:
                 info[np.ix_(u, u)] += self.n[g] * hh
         return total, grad, info
+
+    def hessian(self, theta: np.ndarray) -> np.ndarray:
+        """Exact (observed) Hessian of T, analytic."""
+        q = self.n_params
+        H = np.zeros((q, q))
+        for g, lay in enumerate(self.layouts):
+            mats = group_matrices(lay, theta)
+            sigma, mu, G, A = implied_moments(mats)
+            dS, dm = moment_jacobian(lay, mats, G, A)
+            hh = ml_hessian(lay, mats, sigma, mu, G, A, self.S[g], self.mean[g], dS, dm)
+            u = lay.params
+            H[np.ix_(u, u)] += self.n[g] * hh
+        return H

@@ -216,7 +216,9 @@ class ModelSpec:
         return np.flatnonzero(self.group == g)
 
     # --------------------------------------------------------------- editing
-    def _select(self, parameter: str, item: str, factor: str | None, groups: Sequence[str] | None) -> np.ndarray:
+    def _select(
+        self, parameter: str, item: str, factor: str | None, groups: Sequence[str] | None
+    ) -> tuple[np.ndarray, str | None]:
         if parameter not in PARAMETER_KINDS:
             raise SpecificationError(
                 f"Unknown parameter kind {parameter!r}; use one of {', '.join(PARAMETER_KINDS)}."
@@ -248,7 +250,7 @@ class ModelSpec:
                 f"There is no free {parameter} of {item!r}{where} in this model to release; "
                 "check the item, factor and parameter names."
             )
-        return np.flatnonzero(mask)
+        return np.flatnonzero(mask), factor
 
     def release(
         self,
@@ -263,7 +265,7 @@ class ModelSpec:
         separately in each named group (``groups=None``: in every group), while the
         other groups keep sharing their common label.
         """
-        idx = self._select(parameter, item, factor, None if groups is None else tuple(groups))
+        idx, factor = self._select(parameter, item, factor, None if groups is None else tuple(groups))
         label = self.label.copy()
         for k in idx:
             base = label[k].split("|", 1)[0]

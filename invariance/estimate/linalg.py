@@ -1,0 +1,116 @@
+"""Linear algebra on the arrow-shaped information matrix of multi-group models.
+
+Parameters are either *shared* (a label used in several groups: an equality constraint)
+or *local* to one group. Local parameters of different groups never meet in the
+information matrix, so it is an arrowhead::
+
+    [ A    B_1  B_2 ... ]
+    [ B_1' D_1  0       ]
+    [ B_2' 0    D_2     ]
+
+and solving or inverting it costs time linear in the number of groups (Schur complement
+on the shared block) instead of cubic in the total parameter count.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import linalg as sla
+
+__all__ = ["ArrowPartition", "partition", "arrow_solve", "arrow_inverse", "arrow_min_eigen"]
+
+
+@dataclass(frozen=True, eq=False)
+class ArrowPartition:
+    """Shared parameter indices and, per group, the indices local to that group."""
+
+    q: int
+    shared: np.ndarray
+    local: tuple[np.ndarray, ...]
+
+
+def partition(group_params, q: int) -> ArrowPartition:
+    """Partition parameters given the global indices used by each group."""
+    count = np.zeros(q, dtype=int)
+    for u in group_params:
+        count[u] += 1
+    shared = np.flatnonzero(count != 1)
+    local = tuple(np.asarray([j for j in u if count[j] == 1], dtype=np.int64) for u in group_params)
+    return ArrowPartition(q, shared, local)
+
+
+def _eliminate(H: np.ndarray, part: ArrowPartition, rhs: np.ndarray | None):
+    s = part.shared
+    schur = H[np.ix_(s, s)].copy()
+    r = None if rhs is None else rhs[s].copy()
+    blocks = []
+    for loc in part.local:
+        if not loc.size:
+            continue
+        c = sla.cho_factor(H[np.ix_(loc, loc)], check_finite=False)
+        B = H[np.ix_(s, loc)]
+        DiBt = sla.cho_solve(c, B.T, check_finite=False)
+        Dib = None
+        if rhs is not None:
+            Dib = sla.cho_solve(c, rhs[loc], check_finite=False)
+            r -= B @ Dib
+        schur -= B @ DiBt
+        blocks.append((loc, c, DiBt, Dib))
+    return schur, r, blocks
+
+
+def arrow_solve(H: np.ndarray, b: np.ndarray, part: ArrowPartition) -> np.ndarray:
+    """Solve H x = b for a positive-definite arrow matrix; raises LinAlgError otherwise."""
+    schur, r, blocks = _eliminate(H, part, b)
+    x = np.empty(part.q)
+    xs = sla.cho_solve(sla.cho_factor(schur, check_finite=False), r, check_finite=False) if part.shared.size else np.empty(0)
+    x[part.shared] = xs
+    for loc, _, DiBt, Dib in blocks:
+        x[loc] = Dib - DiBt @ xs
+    return x
+
+
+def arrow_inverse(H: np.ndarray, part: ArrowPartition) -> np.ndarray:
+    """Full inverse of a positive-definite arrow matrix; raises LinAlgError otherwise."""
+    schur, _, blocks = _eliminate(H, part, None)
+    s = part.shared
+    q = part.q
+    out = np.zeros((q, q))
+    sinv = sla.cho_solve(sla.cho_factor(schur, check_finite=False), np.eye(s.size), check_finite=False) if s.size else np.zeros((0, 0))
+    out[np.ix_(s, s)] = sinv
+    if not blocks:
+        return out
+    L = np.concatenate([loc for loc, *_ in blocks])
+    M = np.vstack([DiBt for _, _, DiBt, _ in blocks])  # (L, s) = D^-1 B'
+    out[np.ix_(s, L)] = -sinv @ M.T
+    out[np.ix_(L, s)] = -(M @ sinv)
+    LL = M @ sinv @ M.T
+    off = 0
+    for loc, c, _, _ in blocks:
+        n = loc.size
+        LL[off : off + n, off : off + n] += sla.cho_solve(c, np.eye(n), check_finite=False)
+        off += n
+    out[np.ix_(L, L)] = LL
+    return (out + out.T) / 2
+
+
+def arrow_min_eigen(H: np.ndarray, part: ArrowPartition) -> float:
+    """Smallest eigenvalue among the diagonal blocks and the Schur complement of the
+    diagonally scaled matrix: zero (or negative) exactly when H is singular (or indefinite)."""
+    d = np.sqrt(np.clip(np.abs(np.diag(H)), 1e-300, None))
+    Hs = H / np.outer(d, d)
+    worst = np.inf
+    for loc in part.local:
+        if loc.size:
+            worst = min(worst, float(np.linalg.eigvalsh(Hs[np.ix_(loc, loc)])[0]))
+    if worst <= 1e-12:
+        return worst
+    try:
+        schur, _, _ = _eliminate(Hs, part, None)
+    except np.linalg.LinAlgError:
+        return 0.0
+    if part.shared.size:
+        worst = min(worst, float(np.linalg.eigvalsh(schur)[0]))
+    return worst
