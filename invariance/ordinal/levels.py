@@ -70,6 +70,7 @@ def build_ordinal_level(
     *,
     reference: str | None = None,
     released: Iterable[Release] = (),
+    fixed_means: Sequence[str] = (),
 ) -> ModelSpec:
     """Build the multi-group ordinal model of one level.
 
@@ -88,6 +89,10 @@ def build_ordinal_level(
     released
         :class:`~invariance.model.Release` records with ``parameter`` in
         :data:`ORDINAL_RELEASES`.
+    fixed_means
+        Factors whose means stay 0 in every group at the scalar and strict levels
+        (for example the specific factors of a bifactor model, whose means are weakly
+        identified next to the general mean; a common practice choice).
 
     Returns
     -------
@@ -131,6 +136,9 @@ def build_ordinal_level(
         return False
 
     factors = structure.factor_names
+    bad = [f for f in fixed_means if f not in factors]
+    if bad:
+        raise SpecificationError(f"fixed_means names {bad[0]!r}, which is not a factor; use one of {', '.join(factors)}.")
     it_ix = {v: k for k, v in enumerate(items)}
     f_ix = {v: k for k, v in enumerate(factors)}
     endo = set(structure.endogenous)
@@ -193,7 +201,7 @@ def build_ordinal_level(
             add(g, THETA, r, c, True, lab if rank >= 4 else lab + tag)
         for f in factors:
             top = not (structure.family == "second_order" and f in structure.factors)
-            if rank >= 3 and not is_ref and top:
+            if rank >= 3 and not is_ref and top and f not in fixed_means:
                 add(g, ALPHA, f_ix[f], 0, True, f"mean:{f}{tag}")
     g_, m_, r_, c_, fr_, lb_, v_ = zip(*rows)
     p = len(items)
