@@ -29,6 +29,7 @@ STATUS = {
     3: "the starting values give an implied covariance matrix that is not positive definite",
     4: "converged by the quasi-Newton fallback",
     5: "the quasi-Newton fallback did not converge",
+    6: "estimates diverge (the model is empirically under-identified or its optimum lies on a boundary)",
 }
 
 
@@ -75,6 +76,7 @@ def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float):
         f, g, h = obj.derivatives(x)
     except np.linalg.LinAlgError:
         return x, np.inf, None, None, 3, 0
+    bound = 100.0 * (1.0 + np.max(np.abs(x)))  # far beyond any admissible scale of this data
     newton = hasattr(obj, "hessian")
     part = getattr(obj, "partition", None)
     decrement = np.inf
@@ -101,6 +103,12 @@ def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float):
         else:
             return x, f, g, h, 2, it
         x = xn
+        if np.max(np.abs(x)) > bound:
+            try:
+                f, g, h = obj.derivatives(x)
+            except np.linalg.LinAlgError:
+                pass
+            return x, f, g, h, 6, it
         try:
             f, g, h = obj.derivatives(x)
         except np.linalg.LinAlgError:
@@ -131,6 +139,8 @@ def minimize(obj, x0: np.ndarray, *, max_iter: int = 200, tol: float = 1e-12) ->
         return Outcome(x, f, g, h, 0, it)
     if status == 3:
         return Outcome(x, np.inf, np.full_like(x, np.nan), None, 3, 0)
+    if status == 6:
+        return Outcome(x, f, g, h, 6, it)
 
     def fun(z):
         try:

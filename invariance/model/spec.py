@@ -77,22 +77,6 @@ class Release:
         }
 
 
-def _kind(matrix: int, row: int, col: int) -> str:
-    if matrix == LAMBDA:
-        return "loading"
-    if matrix == BETA:
-        return "path"
-    if matrix == PSI:
-        return "variance" if row == col else "covariance"
-    if matrix == THETA:
-        return "residual" if row == col else "residual_cov"
-    if matrix == NU:
-        return "intercept"
-    if matrix == TAU:
-        return "threshold"
-    return "mean"
-
-
 @dataclass(frozen=True, eq=False)
 class ModelSpec:
     """Entry table of a multi-group model.
@@ -188,28 +172,32 @@ class ModelSpec:
 
     def kinds(self) -> np.ndarray:
         """Parameter kind of every entry (see :data:`PARAMETER_KINDS`)."""
-        return np.array([_kind(m, r, c) for m, r, c in zip(self.matrix, self.row, self.col)], dtype=object)
+        diag = self.row == self.col
+        # matrix code -> kind, with the symmetric matrices split by diagonal
+        table = np.array(["loading", "path", "covariance", "residual_cov", "intercept", "mean", "threshold"], dtype=object)
+        out = table[self.matrix]
+        out[(self.matrix == PSI) & diag] = "variance"
+        out[(self.matrix == THETA) & diag] = "residual"
+        return out
 
     def entry_names(self) -> tuple[np.ndarray, np.ndarray]:
-        """(lhs, rhs) names of every entry: item/factor for loadings, etc."""
-        lhs = np.empty(self.group.size, dtype=object)
-        rhs = np.empty(self.group.size, dtype=object)
-        for k, (m, r, c) in enumerate(zip(self.matrix, self.row, self.col)):
-            if m == LAMBDA:
-                lhs[k], rhs[k] = self.items[r], self.factors[c]
-            elif m == BETA:
-                lhs[k], rhs[k] = self.factors[r], self.factors[c]
-            elif m == PSI:
-                lhs[k], rhs[k] = self.factors[r], (self.factors[c] if r != c else None)
-            elif m == THETA:
-                lhs[k], rhs[k] = self.items[r], (self.items[c] if r != c else None)
-            elif m == NU:
-                lhs[k], rhs[k] = self.items[r], None
-            elif m == TAU:
-                lhs[k], rhs[k] = self.items[r], f"t{c + 1}"
-            else:
-                lhs[k], rhs[k] = self.factors[r], None
-        return lhs, rhs
+        """(lhs, rhs) names of every entry: item and factor for loadings, outcome and
+        predictor for paths, the two variables of a covariance, ``None`` where absent."""
+        items = np.array(self.items + (None,), dtype=object)
+        facs = np.array(self.factors + (None,), dtype=object)
+        m, r, c = self.matrix, self.row, self.col
+        item_row = np.isin(m, (LAMBDA, THETA, NU, TAU))
+        lhs = np.where(item_row, items[np.where(item_row, r, -1)], facs[np.where(item_row, -1, r)])
+        rhs = np.full(m.size, None, dtype=object)
+        sel = m == LAMBDA
+        rhs[sel] = facs[c[sel]]
+        sel = (m == BETA) | ((m == PSI) & (r != c))
+        rhs[sel] = facs[c[sel]]
+        sel = (m == THETA) & (r != c)
+        rhs[sel] = items[c[sel]]
+        for k in np.flatnonzero(m == TAU):
+            rhs[k] = f"t{c[k] + 1}"
+        return lhs.astype(object), rhs
 
     def group_entries(self, g: int) -> np.ndarray:
         """Indices of the entries of group ``g``."""
