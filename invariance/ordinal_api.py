@@ -13,6 +13,8 @@ from __future__ import annotations
 
 from typing import Iterable, Mapping, Sequence
 
+import numpy as np
+
 from .errors import SpecificationError
 from .estimate.dwls_robust import dwls_difference, fit_dwls
 from .model.spec import Release
@@ -28,6 +30,7 @@ __all__ = [
     "compare_ordinal_levels",
     "release_tests",
     "release_search",
+    "ordinal_effects",
 ]
 
 #: The constraint each level adds, released by default when searching at that level.
@@ -228,3 +231,63 @@ def release_search(
     final = fit_dwls(build_ordinal_level(structure, stats.names, level, stats.n_categories,
                                          reference=reference, released=released, fixed_means=fixed_means), stats)
     return {"released": list(released), "steps": steps, "fit": final}
+
+
+def ordinal_effects(result: FitResult, stats: OrdinalStats, *, focal: str, reference: str | None = None) -> dict:
+    """dMACS per item (latent-response and expected-score scales) and, for bifactor
+    structures, latent-response bifactor indices per group.
+
+    Parameters
+    ----------
+    result
+        A DWLS fit of an ordinal level (usually scalar with its releases).
+    stats
+        The ordinal statistics it was fitted to.
+    focal, reference
+        The two groups compared (reference: the model's reference group by default).
+
+    Returns
+    -------
+    dict
+        ``dmacs``: item -> {``latent``, ``expected_score``}; ``bifactor``: group ->
+        indices (only when the model has one factor loading on every item and others).
+    """
+    from .ordinal.effects import bifactor_indices_latent, category_sd, dmacs_expected_score, dmacs_latent
+
+    spec = result.spec
+    ref = reference or spec.reference
+    gr, gf = spec.groups.index(ref), spec.groups.index(focal)
+    mats = {g: result.matrices[g] for g in (gr, gf)}
+    fits = {g: stats.fits[stats.names.index(spec.groups[g])] for g in (gr, gf)}
+    lam_f, beta_f, psi_f, th_f, nu_f, al_f, tau_f = mats[gf]
+    A = np.linalg.inv(np.eye(beta_f.shape[0]) - beta_f)
+    phi_f = A @ psi_f @ A.T
+    alpha_f = A @ al_f
+    dm = {}
+    for i, it in enumerate(spec.items):
+        pr = {"nu": mats[gr][4][i], "lam": mats[gr][0][i], "theta": mats[gr][3][i, i], "tau": mats[gr][6][i]}
+        pf = {"nu": nu_f[i], "lam": lam_f[i], "theta": th_f[i, i], "tau": tau_f[i]}
+        nr, nf = fits[gr].n, fits[gf].n
+        sd_lat = [np.sqrt(result.sigma[g][i, i]) for g in (gr, gf)]
+        sd_obs = [category_sd(fits[g].thresholds[i]) for g in (gr, gf)]
+        pooled = float(np.sqrt(((nr - 1) * sd_obs[0] ** 2 + (nf - 1) * sd_obs[1] ** 2) / (nr + nf - 2)))
+        dm[it] = {
+            "latent": dmacs_latent(pr["nu"], pr["lam"], pf["nu"], pf["lam"], alpha_f, phi_f,
+                                   sd_r=sd_lat[0], sd_f=sd_lat[1], n_r=nr, n_f=nf),
+            "expected_score": dmacs_expected_score(pr, pf, alpha_f, phi_f, sd_pooled=pooled),
+        }
+    out = {"reference": ref, "focal": focal, "dmacs": dm}
+    p = len(spec.items)
+    lam0 = result.matrices[0][0]
+    full = [c for c in range(lam0.shape[1]) if np.all(lam0[:, c] != 0)]
+    if len(full) == 1 and lam0.shape[1] > 1:
+        gcol = full[0]
+        bif = {}
+        for g, gname in enumerate(spec.groups):
+            std = result.standardized(gname)
+            L, T = std["lambda"], np.diag(std["theta"])
+            specifics = {spec.factors[c]: [c, *np.flatnonzero(L[:, c] != 0).tolist()]
+                         for c in range(L.shape[1]) if c != gcol and np.any(L[:, c] != 0)}
+            bif[gname] = bifactor_indices_latent(L, T, general=gcol, specifics=specifics)
+        out["bifactor"] = bif
+    return out

@@ -214,7 +214,7 @@ def fit_dwls(
         status=out.message, iterations=out.iterations, fit=fs, problems=tuple(problems),
         matrices=matrices, sigma=tuple(sigmas), mu=tuple(mus),
         group_n=tuple(int(f.n) for f in stats.fits),
-        extra={"robust": robust, "naive_acov": np.linalg.pinv(bread)},
+        extra={"robust": robust},
     )
 
 
