@@ -38,6 +38,7 @@ from scipy import stats as _st
 from ..errors import ConvergenceWarning, EstimationError, ImproperSolutionWarning
 from ..fit import FitStats, cfi, rmsea, rmsea_interval, tli
 from ..model.spec import ModelSpec
+from ..ordinal.polychoric import _single_thread
 from ..ordinal.stats import OrdinalStats
 from ..results import FitResult
 from .dwls import DWLSObjective, ordinal_start_values
@@ -136,6 +137,11 @@ def fit_dwls(
         ``estimator='dwls'``; ``acov`` is the robust sandwich; ``extra['robust']``
         holds the adjusted statistics and indices described in the module docstring.
     """
+    with _single_thread():  # small products: BLAS threads only add overhead
+        return _fit_dwls(spec, stats, start=start, max_iter=max_iter)
+
+
+def _fit_dwls(spec, stats, *, start, max_iter) -> FitResult:
     if tuple(stats.names) != tuple(spec.groups):
         stats = stats.subset(spec.groups)
     obj = DWLSObjective(spec, stats)
@@ -236,6 +242,11 @@ def dwls_difference(restricted: FitResult, free: FitResult, stats: OrdinalStats)
         (mean-scaled), ``nesting_gap`` (the free model's DWLS value at the restricted
         model's implied statistics: 0 for nested models).
     """
+    with _single_thread():
+        return _difference(restricted, free, stats)
+
+
+def _difference(restricted: FitResult, free: FitResult, stats: OrdinalStats) -> dict:
     if tuple(stats.names) != tuple(restricted.spec.groups):
         stats = stats.subset(restricted.spec.groups)
     ddf = int(restricted.fit.df - free.fit.df)

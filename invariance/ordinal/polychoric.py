@@ -22,6 +22,7 @@ the correlations of the pairs (i, j), i < j, in ``numpy.triu_indices(p, 1)`` ord
 
 from __future__ import annotations
 
+from contextlib import nullcontext
 from dataclasses import dataclass
 
 import numpy as np
@@ -29,6 +30,15 @@ from scipy.special import ndtri
 
 from ..errors import DataError, EstimationError
 from .bivariate import BIG, bvn_cdf, bvn_dcdf_dh, bvn_pdf
+
+try:  # small matrix products: BLAS threads only cost time (and thrash a shared machine)
+    from threadpoolctl import threadpool_limits as _limits
+except ImportError:  # pragma: no cover
+    _limits = None
+
+
+def _single_thread():
+    return _limits(limits=1, user_api="blas") if _limits is not None else nullcontext()
 
 __all__ = [
     "PolychoricFit",
@@ -168,8 +178,9 @@ def polychoric_pairs(
 ) -> tuple[np.ndarray, int]:
     """Pairwise ML correlations with thresholds fixed (Olsson 1979, two-step).
 
-    Fisher scoring on rho, vectorized over pairs; a step that lowers the pairwise
-    likelihood is halved (per pair).
+    Fisher scoring on rho, vectorized over pairs; one evaluation of the cell
+    probabilities (and their rho derivatives) per iteration. A step that lowers a
+    pair's likelihood is halved for that pair.
 
     Returns
     -------
@@ -179,37 +190,35 @@ def polychoric_pairs(
     npair = tables.shape[0]
     n = tables.sum(axis=(1, 2))
     rho = np.zeros(npair) if start is None else np.clip(np.asarray(start, float), -0.95, 0.95)
-
-    def loglik(r):
-        P = cell_probabilities(lim_i, lim_j, r)
-        logp = np.where(P > 0, np.log(np.where(P > 0, P, 1.0)), -np.inf)
-        with np.errstate(invalid="ignore"):
-            return np.where(tables > 0, tables * logp, 0.0).sum(axis=(1, 2))
-
-    ll = loglik(rho)
+    prev_rho = rho.copy()
+    prev_ll = np.full(npair, -np.inf)
+    step = np.zeros(npair)
     active = np.ones(npair, dtype=bool)
+    halvings = np.zeros(npair, dtype=int)
     for it in range(1, max_iter + 1):
-        P, dP, _, _ = cell_probabilities(lim_i, lim_j, rho, derivatives=True)
+        P = cell_probabilities(lim_i, lim_j, rho)
+        f = bvn_pdf(lim_i[:, :, None], lim_j[:, None, :], rho[:, None, None])
+        dP = np.diff(np.diff(f, axis=1), axis=2)
         pos = P > 0
         Ps = np.where(pos, P, 1.0)
+        with np.errstate(invalid="ignore"):
+            ll = np.where(tables > 0, tables * np.where(pos, np.log(Ps), -np.inf), 0.0).sum(axis=(1, 2))
+        worse = active & (ll < prev_ll - 1e-12 * np.abs(prev_ll)) & (halvings < 30)
+        if worse.any():
+            # back-track the pairs whose likelihood fell, keep the others
+            step = np.where(worse, step / 2.0, step)
+            halvings = np.where(worse, halvings + 1, halvings)
+            rho = np.where(worse, np.clip(prev_rho + step, -_RHO_MAX, _RHO_MAX), rho)
+            continue
+        halvings[:] = 0
         score = np.where(pos, tables * dP / Ps, 0.0).sum(axis=(1, 2))
         info = n * np.where(pos, dP * dP / Ps, 0.0).sum(axis=(1, 2))
         step = np.where(active, score / np.maximum(info, 1e-300), 0.0)
-        t = np.ones(npair)
-        new = np.clip(rho + step, -_RHO_MAX, _RHO_MAX)
-        ll_new = loglik(new)
-        for _ in range(30):
-            bad = (ll_new < ll - 1e-12 * np.abs(ll)) & active
-            if not bad.any():
-                break
-            t = np.where(bad, t / 2.0, t)
-            new = np.where(bad, np.clip(rho + t * step, -_RHO_MAX, _RHO_MAX), new)
-            ll_new = np.where(bad, loglik(new), ll_new)
-        done = np.abs(new - rho) < tol
-        rho, ll = new, ll_new
-        active &= ~done
+        active &= np.abs(step) >= tol
         if not active.any():
             return rho, it
+        prev_rho, prev_ll = rho, ll
+        rho = np.clip(rho + step, -_RHO_MAX, _RHO_MAX)
     raise EstimationError(
         f"Polychoric correlations did not converge in {max_iter} iterations; "
         "check for items with nearly empty categories and merge them."
@@ -230,6 +239,11 @@ def polychoric(codes: np.ndarray, n_categories) -> PolychoricFit:
     -------
     PolychoricFit
     """
+    with _single_thread():
+        return _polychoric(codes, n_categories)
+
+
+def _polychoric(codes, n_categories) -> PolychoricFit:
     codes = np.asarray(codes)
     if not np.issubdtype(codes.dtype, np.integer):
         codes = codes.astype(np.int64)
