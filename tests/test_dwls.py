@@ -114,3 +114,26 @@ def test_group_order_does_not_change_fit():
     rb = fit_dwls(build_ordinal_level(st, ["b", "a"], "scalar", b.n_categories, reference="a"), b)
     assert ra.fit.chi2 == pytest.approx(rb.fit.chi2, rel=1e-7)
     assert ra.extra["robust"]["chi2_scaled_shifted"] == pytest.approx(rb.extra["robust"]["chi2_scaled_shifted"], rel=1e-6)
+
+
+def test_robust_se_and_difference_monte_carlo():
+    # Monte Carlo under a true metric-invariant two-group population: the sandwich SE of a
+    # loading matches the spread of its estimates, and the Satorra (2000) scale-shifted
+    # difference thresholds -> metric has mean close to its df
+    from invariance.estimate.dwls_robust import dwls_difference
+
+    rng = np.random.default_rng(99)
+    st, items = _one_factor(5)
+    loads = np.array([0.7, 0.6, 0.5, 0.65, 0.55])
+    est, se, dadj = [], [], []
+    for _ in range(60):
+        arrs = [simulate_one_factor(rng, 500, loads, CUTS4[:5]), simulate_one_factor(rng, 500, loads, CUTS4[:5], mean=0.3)]
+        ost = ordinal_stats_from_arrays(arrs, ["a", "b"], items)
+        thr = fit_dwls(build_ordinal_level(st, ["a", "b"], "thresholds", ost.n_categories), ost)
+        met = fit_dwls(build_ordinal_level(st, ["a", "b"], "metric", ost.n_categories), ost)
+        j = met.spec.param_labels.index("loading:y1<-f")
+        est.append(met.theta[j])
+        se.append(met.se[j])
+        dadj.append(dwls_difference(met, thr, ost)["chi2"])
+    assert np.std(est) == pytest.approx(np.mean(se), rel=0.2)
+    assert np.mean(dadj) == pytest.approx(4.0, rel=0.25)       # ddf = p - 1 = 4
