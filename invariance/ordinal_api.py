@@ -16,6 +16,7 @@ from typing import Iterable, Mapping, Sequence
 import numpy as np
 
 from .errors import SpecificationError
+from .estimate.dwls import ordinal_start_values, start_from
 from .estimate.dwls_robust import dwls_difference, fit_dwls
 from .model.spec import Release
 from .model.structure import Structure
@@ -99,11 +100,15 @@ def fit_ordinal_levels(
     """
     stats = _stats(data, structure, group, merge)
     released = tuple(released)
-    fits = {
-        lv: fit_dwls(build_ordinal_level(structure, stats.names, lv, stats.n_categories,
-                                         reference=reference, released=released, fixed_means=fixed_means), stats)
-        for lv in levels
-    }
+    fits: dict[str, FitResult] = {}
+    prev = None
+    for lv in levels:
+        spec = build_ordinal_level(structure, stats.names, lv, stats.n_categories,
+                                   reference=reference, released=released, fixed_means=fixed_means)
+        x0 = ordinal_start_values(spec, stats)
+        if prev is not None:
+            x0 = start_from(prev.spec.param_labels, prev.theta, spec, x0)
+        fits[lv] = prev = fit_dwls(spec, stats, start=x0)
     return fits, stats
 
 
@@ -185,7 +190,8 @@ def release_tests(
                                    released=released + (cand,), fixed_means=fixed_means)
         if spec.df == base.fit.df:
             continue  # the release changes nothing at this level
-        free = fit_dwls(spec, stats, start=None)
+        x0 = start_from(base.spec.param_labels, base.theta, spec, ordinal_start_values(spec, stats))
+        free = fit_dwls(spec, stats, start=x0)
         d = dwls_difference(base, free, stats)
         rows.append({"parameter": cand.parameter, "item": cand.item, **d})
     rows.sort(key=lambda r: (r["pvalue"], -r["chi2"]))

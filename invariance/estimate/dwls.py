@@ -24,7 +24,7 @@ from ..ordinal.stats import OrdinalStats
 from .kernels import compile_spec, group_matrices, implied_moments, moment_jacobian
 from .start import _group_starts
 
-__all__ = ["DWLSObjective", "ordinal_start_values"]
+__all__ = ["DWLSObjective", "ordinal_start_values", "start_from"]
 
 
 class DWLSObjective:
@@ -187,3 +187,29 @@ def ordinal_start_values(spec: ModelSpec, stats: OrdinalStats) -> np.ndarray:
                 total[j] += v
                 count[j] += 1
     return np.where(count > 0, total / np.maximum(count, 1), 0.0)
+
+
+def start_from(previous_labels, previous_theta, spec: ModelSpec, default: np.ndarray) -> np.ndarray:
+    """Starting values for ``spec`` taken from a related fit, by parameter label.
+
+    A label of ``spec`` found in the previous fit takes its estimate; a group-specific
+    label ``name|group`` whose shared ``name`` was estimated takes that; the rest keep
+    ``default``; a shared label whose group-specific versions were estimated takes
+    their average. Used to warm-start the refits of a release search and the next
+    level of a sequence.
+    """
+    prev = dict(zip(previous_labels, np.asarray(previous_theta, float)))
+    by_base: dict[str, list[float]] = {}
+    for lab, v in prev.items():
+        if "|" in lab:
+            by_base.setdefault(lab.split("|", 1)[0], []).append(v)
+    out = np.asarray(default, float).copy()
+    for j, lab in enumerate(spec.param_labels):
+        base = lab.split("|", 1)[0]
+        if lab in prev:
+            out[j] = prev[lab]
+        elif base in prev:
+            out[j] = prev[base]
+        elif lab == base and base in by_base:
+            out[j] = float(np.mean(by_base[base]))
+    return out
