@@ -137,3 +137,15 @@ def test_robust_se_and_difference_monte_carlo():
         dadj.append(dwls_difference(met, thr, ost)["chi2"])
     assert np.std(est) == pytest.approx(np.mean(se), rel=0.2)
     assert np.mean(dadj) == pytest.approx(4.0, rel=0.25)       # ddf = p - 1 = 4
+
+
+def test_fit_front_door_dispatches_ordinal_stats():
+    from invariance.estimate import fit
+
+    rng = np.random.default_rng(6)
+    st, items = _one_factor(4)
+    ost = ordinal_stats_from_arrays([simulate_one_factor(rng, 300, np.full(4, 0.6), CUTS4[:4])], ["all"], items)
+    spec = build_ordinal_level(st, ["all"], "configural", ost.n_categories)
+    res = fit(spec, ost)
+    assert res.estimator == "dwls" and res.converged
+    assert res.fit.chi2 == pytest.approx(fit_dwls(spec, ost).fit.chi2, rel=1e-9)

@@ -22,6 +22,7 @@ import numpy as np
 from ..model.spec import ALPHA, LAMBDA, NU, PSI, TAU, THETA, ModelSpec
 from ..ordinal.stats import OrdinalStats
 from .kernels import compile_spec, group_matrices, implied_moments, moment_jacobian
+from .linalg import partition
 from .start import _group_starts
 
 __all__ = ["DWLSObjective", "ordinal_start_values", "start_from"]
@@ -47,6 +48,8 @@ class DWLSObjective:
         self.stats = stats
         self.layouts = compile_spec(spec)
         self.n_params = spec.n_params
+        #: shared vs group-local parameters: the information is arrow-shaped
+        self.partition = partition([lay.params for lay in self.layouts], self.n_params)
         self.n = stats.n
         p = len(spec.items)
         self.K = stats.n_categories

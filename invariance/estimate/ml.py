@@ -107,7 +107,18 @@ def fit(
     Returns
     -------
     FitResult
+
+    Notes
+    -----
+    Ordinal statistics (:class:`~invariance.ordinal.OrdinalStats`) dispatch to the DWLS
+    estimator, :func:`invariance.estimate.dwls_robust.fit_dwls`.
     """
+    from ..ordinal.stats import OrdinalStats
+
+    if isinstance(stats, OrdinalStats):
+        from .dwls_robust import fit_dwls
+
+        return fit_dwls(spec, stats, start=start, max_iter=max_iter)
     if information not in ("expected", "observed"):
         raise SpecificationError(
             f"The information for standard errors must be 'expected' or 'observed'; got {information!r}."
