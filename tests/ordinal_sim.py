@@ -27,4 +27,4 @@ def simulate_one_factor(rng, n, loads, cuts, *, mean=0.0):
     p = len(loads)
     f = rng.normal(mean, 1.0, n)
     y = loads * f[:, None] + rng.normal(size=(n, p)) * np.sqrt(1 - loads**2)
-    return (y[:, :, None] > np.asarray(cuts)[None]).sum(2) + 1
+    return np.stack([(y[:, i, None] > np.asarray(c, float)[None, :]).sum(1) for i, c in enumerate(cuts)], 1) + 1

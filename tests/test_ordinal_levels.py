@@ -22,7 +22,7 @@ GROUPS = ["east", "west", "south"]
 
 
 def _one_factor_stats(rng, cuts, n=500):
-    p = cuts.shape[0]
+    p = len(cuts)
     items = [f"y{i + 1}" for i in range(p)]
     loads = np.linspace(0.5, 0.75, p)
     arrs = [simulate_one_factor(rng, n, loads, cuts, mean=m) for m in (0.0, 0.3, -0.2)]
@@ -32,6 +32,7 @@ def _one_factor_stats(rng, cuts, n=500):
 @pytest.mark.parametrize("cuts", [
     np.array([[-0.6, 0.5], [-0.2, 0.9], [-1.0, 0.1], [-0.4, 0.6], [-0.8, 0.3]]),     # three categories
     np.array([[0.2], [-0.3], [0.5], [0.0], [-0.6]]),                                   # binary
+    [[-0.6, 0.5], [0.3], [-1.0, 0.1], [-0.4], [-0.8, 0.3]],                             # mixed
 ])
 def test_thresholds_level_is_equivalent_to_configural(cuts):
     # Wu & Estabrook (2016): with three categories (and for binary items, whose
