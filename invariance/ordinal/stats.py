@@ -15,7 +15,15 @@ from ..errors import DataError
 from .categories import CategoryMap, category_maps, encode
 from .polychoric import PolychoricFit, polychoric
 
-__all__ = ["OrdinalStats", "ordinal_stats", "ordinal_stats_from_arrays"]
+__all__ = ["GroupCount", "OrdinalStats", "ordinal_stats", "ordinal_stats_from_arrays"]
+
+
+@dataclass(frozen=True)
+class GroupCount:
+    """Name and cases of one group (the part of a group summary every estimator shares)."""
+
+    name: str
+    n: int
 
 
 @dataclass(frozen=True, eq=False)
@@ -50,6 +58,11 @@ class OrdinalStats:
     @property
     def n_total(self) -> int:
         return int(self.n.sum())
+
+    @property
+    def groups(self) -> tuple[GroupCount, ...]:
+        """Per group name and cases (as ``SampleStats.groups`` offers them)."""
+        return tuple(GroupCount(name, int(f.n)) for name, f in zip(self.names, self.fits))
 
     def subset(self, names: Sequence[str]) -> "OrdinalStats":
         by = dict(zip(self.names, self.fits))
