@@ -13,6 +13,7 @@ from .errors import (
 )
 from .estimate import fit
 from .model import LEVELS, ModelSpec, Release, Structure, build_level
+from .pipeline import PipelineSpec, RunResult, check, load_pipeline, run
 from .results import FitResult
 
 __version__ = "0.1.0"
@@ -27,13 +28,18 @@ __all__ = [
     "InvarianceError",
     "InvarianceWarning",
     "ModelSpec",
+    "PipelineSpec",
     "Release",
+    "RunResult",
     "SampleStats",
     "SpecificationError",
     "Structure",
     "build_level",
+    "check",
     "fit",
     "fit_level",
     "fit_levels",
+    "load_pipeline",
+    "run",
     "sample_stats",
 ]

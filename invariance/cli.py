@@ -1,0 +1,136 @@
+"""The command line: ``invariance run | check | new | demo``.
+
+Exit codes: 0 the command ran (whatever the invariance verdict), 2 bad input (one line
+on stderr, no traceback), 1 internal error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import pathlib
+import sys
+import warnings
+
+from .errors import InvarianceError
+
+__all__ = ["main", "build_parser"]
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str):  # one line, exit 2
+        raise _Usage(f"{self.prog}: {message}; see --help")
+
+
+class _Usage(Exception):
+    pass
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="invariance", description="Measurement invariance testing from one pipeline file.")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    r = sub.add_parser("run", help="fit the levels of a pipeline, decide, write the outputs")
+    r.add_argument("pipeline", help="pipeline YAML file")
+    r.add_argument("--out", help="output folder (default: output.folder, else results/<pipeline name>)")
+    r.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    r.add_argument(
+        "--second-opinion",
+        action="store_true",
+        help="also refit each group's configural model in semopy and report the agreement",
+    )
+    c = sub.add_parser("check", help="validate the pipeline and its data; fit nothing")
+    c.add_argument("pipeline", help="pipeline YAML file")
+    n = sub.add_parser("new", help="write a starter pipeline from a data file's columns")
+    n.add_argument("data", help="data file (.csv, .tsv, .dta, .sav)")
+    n.add_argument("--group", required=True, help="grouping column")
+    n.add_argument("--out", help="pipeline file to write (default: print it)")
+    d = sub.add_parser("demo", help="write the demo data and pipelines (invented scenario)")
+    d.add_argument("--out", default="invariance-demo", help="folder to write into (default: invariance-demo)")
+    d.add_argument("--seed", type=int, default=20261201, help="random seed")
+    d.add_argument("--n-per-site", type=int, default=400, help="respondents per site")
+    return p
+
+
+def _cmd_run(args) -> int:
+    from .pipeline.runner import run
+
+    run(args.pipeline, out=args.out, quiet=args.quiet, crosscheck=args.second_opinion)
+    return 0
+
+
+def _cmd_check(args) -> int:
+    from .pipeline.runner import check
+
+    info = check(args.pipeline)
+    print(f"Pipeline {info['pipeline']}: valid. Data {info['data_file']}: {len(info['items'])} items, "
+          f"group column {info['group_column']!r}, reference group {info['reference_group']}, model {info['family']}.")
+    print(f"Levels to fit: {', '.join(info['levels'])}.")
+    print(f"{'group':<16}{'rows':>7}{'complete':>10}  missing values by item")
+    for g, rows in info["rows"].items():
+        miss = {k: v for k, v in info["missing"][g].items() if v}
+        text = ", ".join(f"{k} {v}" for k, v in miss.items()) or "none"
+        print(f"{g:<16}{rows:>7}{info['groups'][g]:>10}  {text}")
+    for w in info["warnings"]:
+        print(f"note: {w}")
+    return 0
+
+
+def _cmd_new(args) -> int:
+    from .pipeline.starter import starter_pipeline
+
+    text = starter_pipeline(args.data, group=args.group, out=args.out)
+    if args.out:
+        print(f"Wrote {args.out}; edit the factors, then run: invariance check {args.out}")
+    else:
+        sys.stdout.write(text)
+    return 0
+
+
+def _cmd_demo(args) -> int:
+    from .demo import write_demo
+
+    paths = write_demo(args.out, seed=args.seed, n_per_site=args.n_per_site)
+    for p in paths:
+        print(f"wrote {p}")
+    print(f"run: invariance run {paths[1]}")
+    return 0
+
+
+COMMANDS = {"run": _cmd_run, "check": _cmd_check, "new": _cmd_new, "demo": _cmd_demo}
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line; returns the exit code."""
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+        if not args.command:
+            parser.print_help()
+            return 2
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            return COMMANDS[args.command](args)
+    except SystemExit as exc:  # --help
+        return int(exc.code or 0)
+    except (_Usage, InvarianceError) as exc:
+        print(f"error: {_one_line(str(exc))}", file=sys.stderr)
+        return 2
+    except FileNotFoundError as exc:
+        print(f"error: file not found: {exc.filename}; check the path", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("error: interrupted", file=sys.stderr)
+        return 1
+    except Exception as exc:  # internal error: keep the traceback for a bug report
+        import traceback
+
+        traceback.print_exc()
+        print(f"internal error: {type(exc).__name__}: {exc}; please report it", file=sys.stderr)
+        return 1
+
+
+def _one_line(text: str) -> str:
+    return " ".join(text.split())
+
+
+if __name__ == "__main__":  # pragma: no cover
+    raise SystemExit(main())

@@ -1,0 +1,187 @@
+"""Checks run on the data before any model is fitted.
+
+Each problem raises a one-line :class:`~invariance.errors.DataError` that names the
+column and group concerned and the fix. Problems that weaken the analysis without
+preventing it (small groups, rows without a group) come back as warning strings.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Sequence
+
+import numpy as np
+
+from ..errors import DataError
+
+__all__ = ["CheckedData", "check_data", "SMALL_GROUP"]
+
+#: Groups smaller than this make the tests weak (common practice: about 200 per group).
+SMALL_GROUP = 200
+
+
+@dataclass(frozen=True, eq=False)
+class CheckedData:
+    """Data that passed the checks.
+
+    Attributes
+    ----------
+    frame
+        Item columns as floats (NaN = missing) plus the group column as strings, rows
+        without a group removed.
+    items, group, groups
+        Item columns in model order, the grouping column, the group names in order.
+    rows
+        Group -> rows in the data.
+    complete
+        Group -> rows with every item observed (the rows complete-case fitting uses).
+    missing
+        Group -> item -> number of missing values.
+    warnings
+        Warnings about the data (small groups, rows without a group).
+    """
+
+    frame: object
+    items: tuple[str, ...]
+    group: str
+    groups: tuple[str, ...]
+    rows: dict
+    complete: dict
+    missing: dict
+    warnings: tuple[str, ...] = field(default=())
+
+
+def _group_label(value) -> str:
+    if isinstance(value, float) and value.is_integer():
+        return str(int(value))
+    return str(value)
+
+
+def check_data(
+    frame,
+    *,
+    items: Sequence[str],
+    group: str,
+    reference: str | None = None,
+    groups: Sequence[str] | None = None,
+) -> CheckedData:
+    """Check the data for a multi-group analysis and return it cleaned.
+
+    Parameters
+    ----------
+    frame
+        The data with missing codes already replaced by NaN.
+    items
+        Item columns, in model order.
+    group
+        The grouping column.
+    reference
+        The reference group, which must be present.
+    groups
+        Groups to analyse, in this order (default: every group, sorted).
+
+    Returns
+    -------
+    CheckedData
+    """
+    import pandas as pd
+
+    items = tuple(str(i) for i in items)
+    cols = list(frame.columns)
+    for col in (group,) + items:
+        if col not in cols:
+            near = [c for c in cols if c.lower() == col.lower()]
+            hint = f" (did you mean {near[0]!r}?)" if near else ""
+            raise DataError(
+                f"Column {col!r} is not in the data{hint}; check the pipeline's column names "
+                f"against the data file."
+            )
+    if group in items:
+        raise DataError(f"Column {group!r} is both the group column and an item; use another group column.")
+    warnings: list[str] = []
+    keys = frame[group]
+    no_group = int(keys.isna().sum())
+    if no_group:
+        warnings.append(f"{no_group} rows have no value in group column {group!r} and were left out")
+    frame = frame.loc[keys.notna()]
+    labels = frame[group].map(_group_label)
+    out = pd.DataFrame({group: labels.to_numpy()}, index=frame.index)
+    for col in items:
+        raw = frame[col]
+        num = pd.to_numeric(raw, errors="coerce")
+        bad = raw.notna() & num.isna()
+        if bad.any():
+            example = raw[bad].iloc[0]
+            raise DataError(
+                f"Item {col!r} holds non-numeric values such as {str(example)!r}; recode them or "
+                f"list them under data.missing."
+            )
+        out[col] = num.astype(float)
+    present = sorted(set(labels), key=_sort_key)
+    if groups is None:
+        groups = present
+    else:
+        groups = [str(g) for g in groups]
+        for g in groups:
+            if g not in present:
+                raise DataError(
+                    f"Group {g!r} is not in column {group!r}; the groups there are {', '.join(present)}."
+                )
+        out = out.loc[out[group].isin(groups)]
+    if len(groups) < 2:
+        raise DataError(
+            f"Column {group!r} has {len(groups)} group(s) ({', '.join(groups) or 'none'}); invariance "
+            "testing needs at least two groups: check data.group."
+        )
+    if reference is not None and str(reference) not in groups:
+        raise DataError(
+            f"Reference group {str(reference)!r} is not in column {group!r}; choose one of {', '.join(groups)}."
+        )
+    p = len(items)
+    rows, complete, missing = {}, {}, {}
+    for g in groups:
+        block = out.loc[out[group] == g, list(items)].to_numpy(dtype=float)
+        rows[g] = int(block.shape[0])
+        obs = ~np.isnan(block)
+        missing[g] = {it: int((~obs[:, j]).sum()) for j, it in enumerate(items)}
+        for j, it in enumerate(items):
+            vals = block[obs[:, j], j]
+            if vals.size == 0:
+                raise DataError(
+                    f"Item {it!r} is entirely missing in group {g!r}; drop the item or the group, "
+                    "or check the missing codes."
+                )
+            if np.ptp(vals) == 0:
+                raise DataError(
+                    f"Item {it!r} is constant ({_group_label(float(vals[0]))}) in group {g!r}; "
+                    "drop the item or the group."
+                )
+        n_ok = int(obs.all(axis=1).sum())
+        complete[g] = n_ok
+        if n_ok <= p:
+            raise DataError(
+                f"Group {g!r} has {n_ok} complete cases for {p} items; a covariance matrix needs more "
+                "cases than items: collect more data, merge the group with another, or drop it."
+            )
+        if n_ok < SMALL_GROUP:
+            warnings.append(
+                f"group {g} has {n_ok} complete cases; under about {SMALL_GROUP} per group "
+                "(common practice) every test here is weak"
+            )
+    return CheckedData(
+        frame=out,
+        items=items,
+        group=group,
+        groups=tuple(groups),
+        rows=rows,
+        complete=complete,
+        missing=missing,
+        warnings=tuple(warnings),
+    )
+
+
+def _sort_key(label: str):
+    try:
+        return (0, float(label), label)
+    except ValueError:
+        return (1, 0.0, label)

@@ -1,0 +1,356 @@
+"""Loading a pipeline: YAML text or a dict -> a validated, immutable :class:`PipelineSpec`.
+
+YAML is read with ``yaml.safe_load`` only, so no tag can ever construct a Python object:
+a file using such a tag is refused. The document is validated against the JSON Schema
+kept in ``schema.json`` next to this module (unknown keys are errors that name the key
+and the allowed ones), then checked for meaning (levels in order, items and factors that
+exist, releases that name real parameters).
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import pathlib
+from dataclasses import dataclass
+from functools import lru_cache
+from types import MappingProxyType
+from typing import Any, Mapping
+
+import yaml
+
+from ..compare import DecisionRule, make_rule
+from ..errors import SpecificationError
+from ..model.levels import LEVELS, build_level
+from ..model.spec import Release
+from ..model.structure import Structure
+
+__all__ = ["PipelineSpec", "load_pipeline", "parse_yaml", "schema", "validate_document", "thaw"]
+
+SCHEMA_PATH = pathlib.Path(__file__).with_name("schema.json")
+
+
+@lru_cache(maxsize=1)
+def schema() -> dict:
+    """The pipeline JSON Schema (read once)."""
+    return json.loads(SCHEMA_PATH.read_text(encoding="utf-8"))
+
+
+def _freeze(obj):
+    if isinstance(obj, Mapping):
+        return MappingProxyType({k: _freeze(v) for k, v in obj.items()})
+    if isinstance(obj, (list, tuple)):
+        return tuple(_freeze(v) for v in obj)
+    return obj
+
+
+def thaw(obj):
+    """Plain dicts and lists from a frozen document."""
+    if isinstance(obj, Mapping):
+        return {k: thaw(v) for k, v in obj.items()}
+    if isinstance(obj, tuple):
+        return [thaw(v) for v in obj]
+    return obj
+
+
+@dataclass(frozen=True, eq=False)
+class PipelineSpec:
+    """A validated pipeline.
+
+    Attributes
+    ----------
+    document
+        The validated document, deeply frozen (read-only mappings and tuples).
+    text
+        The pipeline as run (the file text, or YAML written from a dict).
+    source
+        The pipeline file (``None`` for a dict).
+    base_dir
+        Folder that relative paths are resolved against.
+    data_path, data_format, group, groups, reference, missing
+        Data settings (``missing`` a tuple of codes or a column -> codes mapping).
+    structure
+        The measurement structure.
+    released
+        Constraints released up front.
+    estimator, levels
+        Estimator name and the levels to fit, in order.
+    rule
+        The decision rule.
+    stop_at_failure
+        Stop at the first level that fails.
+    output_folder
+        Where outputs go (``None``: not named by the pipeline).
+    seed
+        Random seed recorded with the run (used by stages that draw random numbers).
+    title
+        Name of the analysis.
+    """
+
+    document: Mapping[str, Any]
+    text: str
+    source: pathlib.Path | None
+    base_dir: pathlib.Path
+    data_path: pathlib.Path
+    data_format: str | None
+    group: str
+    groups: tuple[str, ...] | None
+    reference: str | None
+    missing: Any
+    structure: Structure
+    released: tuple[Release, ...]
+    estimator: str
+    levels: tuple[str, ...]
+    rule: DecisionRule
+    stop_at_failure: bool
+    output_folder: pathlib.Path | None
+    seed: int | None
+    title: str
+
+    def section(self, name: str, default=None):
+        """A top-level section of the document (for stages added later)."""
+        return self.document.get(name, default)
+
+    def to_dict(self) -> dict:
+        """The validated document as plain dicts and lists."""
+        return thaw(self.document)
+
+
+def parse_yaml(text: str, *, name: str = "pipeline") -> dict:
+    """Parse pipeline YAML safely (no object construction) into a dict."""
+    try:
+        doc = yaml.safe_load(text)
+    except yaml.constructor.ConstructorError as exc:
+        tag = getattr(exc, "problem", "") or ""
+        mark = getattr(exc, "problem_mark", None)
+        where = f" (line {mark.line + 1})" if mark is not None else ""
+        raise SpecificationError(
+            f"{name}{where}: refused YAML tag ({tag.strip()}); tags that construct objects are never "
+            "executed: remove the tag and write plain values."
+        ) from None
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark is not None else ""
+        problem = getattr(exc, "problem", None) or str(exc).splitlines()[0]
+        raise SpecificationError(f"{name} is not valid YAML{where}: {problem}; fix the syntax.") from None
+    if not isinstance(doc, dict):
+        kind = "empty" if doc is None else f"a {type(doc).__name__}"
+        raise SpecificationError(f"{name} is {kind}, not a mapping of sections; start from `invariance new`.")
+    return doc
+
+
+def _path_text(path) -> str:
+    parts = [str(p) for p in path]
+    return ".".join(parts) if parts else "(top level)"
+
+
+def _schema_at(path) -> dict:
+    """The sub-schema at a document path (following properties only)."""
+    node = schema()
+    for key in path:
+        props = node.get("properties", {})
+        if key in props:
+            node = props[key]
+        else:
+            return {}
+    return node
+
+
+def validate_document(doc: Mapping) -> None:
+    """Validate a pipeline document against the schema; raise one clear error."""
+    import jsonschema
+
+    validator = jsonschema.Draft202012Validator(schema())
+    errors = sorted(validator.iter_errors(doc), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
+    if not errors:
+        return
+    err = errors[0]
+    # unknown keys come first: they are the most common mistake
+    for e in errors:
+        if e.validator == "additionalProperties":
+            err = e
+            break
+    while err.context:
+        flat = list(_descendants(err))
+        unknown = [c for c in flat if c.validator == "additionalProperties"]
+        if unknown:
+            err = unknown[0]
+            break
+        # prefer the branch whose type matched: drop bare type/enum mismatches
+        matched = [c for c in err.context if c.validator not in ("type", "enum")]
+        err = matched[0] if matched else jsonschema.exceptions.best_match(err.context)
+        if not err.context:
+            break
+    where = _path_text(err.absolute_path)
+    if err.validator == "additionalProperties":
+        allowed = sorted(err.schema.get("properties", {}))
+        extra = sorted(set(err.instance) - set(allowed))
+        sect = "the pipeline" if not err.absolute_path else f"section {where!r}"
+        raise SpecificationError(
+            f"Unknown key {extra[0]!r} in {sect}; allowed keys: {', '.join(allowed)}."
+        )
+    if err.validator == "required":
+        sect = "the pipeline" if not err.absolute_path else f"section {where!r}"
+        missing = err.message.split("'")[1] if "'" in err.message else err.message
+        raise SpecificationError(f"Required key {missing!r} is missing from {sect}; add it.")
+    raise SpecificationError(f"Invalid value for {where}: {err.message}; fix it (see the pipeline reference in README.md).")
+
+
+def _descendants(err):
+    for c in err.context or ():
+        yield c
+        yield from _descendants(c)
+
+
+def _levels(levels) -> tuple[str, ...]:
+    levels = tuple(levels)
+    if levels[0] != "configural":
+        raise SpecificationError(
+            f"levels must start with configural (the baseline every step is compared with); got {levels[0]!r} first."
+        )
+    ranks = [LEVELS.index(lv) for lv in levels]
+    if ranks != sorted(ranks):
+        raise SpecificationError(
+            f"levels must be in order {', '.join(LEVELS)}; got {', '.join(levels)}."
+        )
+    return levels
+
+
+def _structure(model: Mapping) -> Structure:
+    factors = {str(k): tuple(v) for k, v in model["factors"].items()}
+    general = model.get("general")
+    family = model.get("family")
+    if family is None:
+        family = "bifactor" if general else ("single" if len(factors) == 1 else "correlated")
+    if family == "bifactor" and not general:
+        raise SpecificationError("model.family bifactor needs model.general, the name of the general factor; add it.")
+    if family == "second_order" and not general:
+        raise SpecificationError("model.family second_order needs model.general, the name of the higher-order factor; add it.")
+    if family in ("single", "correlated") and general:
+        raise SpecificationError(
+            f"model.general is set but model.family is {family!r}; drop model.general or use bifactor or second_order."
+        )
+    try:
+        return Structure(
+            factors=factors,
+            family=family,
+            general=general,
+            regressions=tuple(tuple(p) for p in model.get("paths", ())),
+            residual_covariances=tuple(tuple(p) for p in model.get("residual_covariances", ())),
+        )
+    except SpecificationError as exc:
+        raise SpecificationError(f"model: {exc}") from None
+
+
+def _releases(model: Mapping, structure: Structure) -> tuple[Release, ...]:
+    out = []
+    for r in model.get("released", ()):
+        groups = r.get("groups")
+        rel = Release(
+            parameter=r["parameter"],
+            item=str(r["item"]),
+            factor=r.get("factor"),
+            groups=None if groups is None else tuple(str(g) for g in groups),
+        )
+        if rel.item not in structure.items:
+            raise SpecificationError(
+                f"model.released names item {rel.item!r}, which is not in model.factors; check the spelling."
+            )
+        try:
+            build_level(structure, ("_a", "_b"), "strict", released=[Release(rel.parameter, rel.item, rel.factor)])
+        except SpecificationError as exc:
+            raise SpecificationError(f"model.released: {exc}") from None
+        out.append(rel)
+    return tuple(out)
+
+
+def _missing(data: Mapping):
+    m = data.get("missing")
+    if m is None:
+        return ()
+    if isinstance(m, Mapping):
+        return MappingProxyType({str(k): tuple(v) for k, v in m.items()})
+    return tuple(m)
+
+
+def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir: pathlib.Path) -> PipelineSpec:
+    """Validate a document and build the :class:`PipelineSpec`."""
+    validate_document(doc)
+    doc = copy.deepcopy(dict(doc))
+    data, model = doc["data"], doc["model"]
+    structure = _structure(model)
+    if data["group"] in structure.items:
+        raise SpecificationError(f"data.group {data['group']!r} is also an item in model.factors; use another column.")
+    levels = _levels(doc.get("levels", LEVELS))
+    dec = doc.get("decision", {})
+    rule = make_rule(
+        criteria=dec.get("criteria"),
+        combine=dec.get("combine", "all"),
+        alpha=dec.get("alpha", 0.05),
+        cutoffs=dec.get("cutoffs"),
+        configural_fit=dec.get("configural_fit"),
+    )
+    out = doc.get("output", {}).get("folder")
+    groups = data.get("groups")
+    ref = data.get("reference")
+    return PipelineSpec(
+        document=_freeze(doc),
+        text=text,
+        source=source,
+        base_dir=base_dir,
+        data_path=(base_dir / data["path"]).resolve(),
+        data_format=data.get("format"),
+        group=data["group"],
+        groups=None if groups is None else tuple(str(g) for g in groups),
+        reference=None if ref is None else str(ref),
+        missing=_missing(data),
+        structure=structure,
+        released=_releases(model, structure),
+        estimator=doc.get("estimator", "ml"),
+        levels=levels,
+        rule=rule,
+        stop_at_failure=bool(dec.get("stop_at_failure", True)),
+        output_folder=None if out is None else (base_dir / out).resolve(),
+        seed=doc.get("seed"),
+        title=doc.get("title") or (source.stem if source is not None else "invariance analysis"),
+    )
+
+
+def load_pipeline(pipeline, *, base_dir: str | pathlib.Path | None = None) -> PipelineSpec:
+    """Load and validate a pipeline.
+
+    Parameters
+    ----------
+    pipeline
+        A path to a YAML file, a dict, or an already loaded :class:`PipelineSpec`.
+    base_dir
+        Folder for relative paths of a dict pipeline (default: the working directory);
+        a file's paths are relative to the file.
+
+    Returns
+    -------
+    PipelineSpec
+    """
+    if isinstance(pipeline, PipelineSpec):
+        return pipeline
+    if isinstance(pipeline, Mapping):
+        doc = thaw(pipeline)
+        text = yaml.safe_dump(doc, sort_keys=False, allow_unicode=True)
+        base = pathlib.Path(base_dir) if base_dir is not None else pathlib.Path.cwd()
+        return build_spec(doc, text=text, source=None, base_dir=base.resolve())
+    if isinstance(pipeline, (str, pathlib.Path)):
+        path = pathlib.Path(pipeline)
+        if not path.is_file():
+            raise SpecificationError(f"Pipeline file {str(path)!r} does not exist; check the path.")
+        try:
+            text = path.read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError) as exc:
+            raise SpecificationError(f"Cannot read pipeline file {path.name!r}: {exc}; check the file.") from None
+        doc = parse_yaml(text, name=f"Pipeline file {path.name!r}")
+        base = pathlib.Path(base_dir) if base_dir is not None else path.resolve().parent
+        return build_spec(doc, text=text, source=path.resolve(), base_dir=base)
+    raise SpecificationError(
+        f"A pipeline is a file path or a dict; got {type(pipeline).__name__}."
+    )
+
+

@@ -1,0 +1,222 @@
+"""Running a pipeline: stages in order, results frozen, outputs written atomically."""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import pathlib
+from dataclasses import dataclass
+from types import MappingProxyType
+from typing import Any, Mapping
+
+from .load import PipelineSpec, load_pipeline, thaw
+from .output import format_table, level_table, to_json, write_outputs
+from .stages import STAGES, stage_data, stage_stats
+
+__all__ = ["RunResult", "run", "check", "default_out_dir"]
+
+
+def _freeze(obj):
+    if isinstance(obj, dict):
+        return MappingProxyType({k: _freeze(v) for k, v in obj.items()})
+    if isinstance(obj, list):
+        return tuple(_freeze(v) for v in obj)
+    return obj
+
+
+@dataclass(frozen=True, eq=False)
+class RunResult:
+    """The frozen result of a pipeline run.
+
+    Attributes
+    ----------
+    results
+        Everything in results.json, deeply read-only.
+    estimates
+        Every parameter estimate by level and group (a DataFrame).
+    fits
+        Level -> :class:`~invariance.results.FitResult` of every fitted level.
+    spec
+        The validated pipeline.
+    out_dir
+        The output folder (``None`` when nothing was written).
+    """
+
+    results: Mapping[str, Any]
+    estimates: Any
+    fits: Mapping[str, Any]
+    spec: PipelineSpec
+    out_dir: pathlib.Path | None
+
+    def to_dict(self) -> dict:
+        """results.json as plain dicts and lists."""
+        return thaw(self.results)
+
+    @property
+    def supported_level(self) -> str | None:
+        return self.results["supported_level"]
+
+    def table(self):
+        """The stepwise level table as a DataFrame."""
+        return level_table(self.to_dict())
+
+    def summary(self) -> str:
+        """The stepwise table and verdict as text (what the terminal shows)."""
+        return format_table(self.to_dict())
+
+
+def default_out_dir(spec: PipelineSpec) -> pathlib.Path | None:
+    """Output folder: the pipeline's output.folder, else results/<pipeline name> beside
+    the file; ``None`` for a dict pipeline that names none."""
+    if spec.output_folder is not None:
+        return spec.output_folder
+    if spec.source is not None:
+        return spec.source.parent / "results" / spec.source.stem
+    return None
+
+
+def _estimates(fits: Mapping[str, Any]):
+    import pandas as pd
+
+    frames = []
+    for lv, res in fits.items():
+        est = res.estimates()
+        est.insert(0, "level", lv)
+        frames.append(est)
+    if not frames:
+        return pd.DataFrame()
+    return pd.concat(frames, ignore_index=True)
+
+
+def _context(spec: PipelineSpec, results: dict, quiet: bool) -> dict:
+    st = spec.structure
+    return {
+        "pipeline_text": spec.text,
+        "data_file": str(spec.data_path),
+        "data_sha256": results["data"]["sha256"],
+        "seed": spec.seed,
+        "structure": {
+            "factors": {f: list(v) for f, v in st.factors.items()},
+            "general": st.general,
+            "family": st.family,
+            "regressions": [list(p) for p in st.regressions],
+            "residual_covariances": [list(p) for p in st.residual_covariances],
+        },
+        "created": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat(),
+        "quiet": bool(quiet),
+    }
+
+
+def run_stages(spec: PipelineSpec, stages=None, *, extra: dict | None = None) -> tuple[dict, dict]:
+    """Run stages in order; returns (results, state)."""
+    from .. import __version__
+
+    state: dict = {"warnings": [], **(extra or {})}
+    results: dict = {
+        "invariance_version": __version__,
+        "title": spec.title,
+        "estimator": spec.estimator,
+        "seed": spec.seed,
+    }
+    for _name, stage in stages if stages is not None else STAGES:
+        results.update(stage(spec, state))
+    results["warnings"] = list(dict.fromkeys(state["warnings"]))
+    return results, state
+
+
+def run(
+    pipeline,
+    *,
+    out: str | pathlib.Path | None = None,
+    quiet: bool = False,
+    crosscheck: bool = False,
+    write: bool | None = None,
+) -> RunResult:
+    """Run a pipeline: fit the levels, decide, and write the outputs.
+
+    Parameters
+    ----------
+    pipeline
+        Path to a pipeline YAML file, or the same content as a dict (paths relative to
+        the working directory).
+    out
+        Output folder; default the pipeline's ``output.folder``, else
+        ``results/<pipeline name>`` beside the pipeline file. A dict pipeline without
+        either writes nothing.
+    quiet
+        Do not print the stepwise table.
+    crosscheck
+        Also refit each group's configural model in semopy and record the agreement
+        (``results["crosscheck"]``).
+    write
+        Force writing (``True``) or not writing (``False``) the output folder.
+
+    Returns
+    -------
+    RunResult
+    """
+    spec = load_pipeline(pipeline)
+    stages = list(STAGES)
+    if crosscheck:
+        from .crosscheck import stage_crosscheck
+
+        stages.append(("crosscheck", stage_crosscheck))
+    results, state = run_stages(spec, stages)
+    results = json.loads(to_json(results))
+    estimates = _estimates(state["fits"])
+    out_dir = pathlib.Path(out).resolve() if out is not None else default_out_dir(spec)
+    if write is False:
+        out_dir = None
+    if out_dir is not None:
+        from ..report import write_reports
+
+        context = _context(spec, results, quiet)
+
+        def files(folder: pathlib.Path):
+            (folder / "results.json").write_text(to_json(results), encoding="utf-8")
+            level_table(results).to_csv(folder / "levels.csv", index=False)
+            estimates.to_csv(folder / "estimates.csv", index=False)
+            (folder / "pipeline.yaml").write_text(spec.text, encoding="utf-8")
+            write_reports(folder, results, estimates, context)
+
+        out_dir = write_outputs(out_dir, [files])
+    if not quiet:
+        print(format_table(results))
+        if out_dir is not None:
+            print(f"\nOutputs written to {out_dir}")
+    return RunResult(
+        results=_freeze(results),
+        estimates=estimates,
+        fits=MappingProxyType(dict(state["fits"])),
+        spec=spec,
+        out_dir=out_dir,
+    )
+
+
+def check(pipeline) -> dict:
+    """Validate a pipeline and its data without fitting anything.
+
+    Returns
+    -------
+    dict
+        ``groups`` (group -> N complete), ``rows``, ``missing`` (group -> item -> count),
+        ``reference_group``, ``items`` and ``warnings``.
+    """
+    spec = load_pipeline(pipeline)
+    results, state = run_stages(spec, [("data", stage_data), ("stats", stage_stats)])
+    checked = state["checked"]
+    return {
+        "pipeline": str(spec.source) if spec.source else None,
+        "data_file": str(spec.data_path),
+        "items": list(checked.items),
+        "group_column": spec.group,
+        "reference_group": results["reference_group"],
+        "rows": dict(checked.rows),
+        "groups": results["groups"],
+        "missing": {g: dict(v) for g, v in checked.missing.items()},
+        "levels": list(spec.levels),
+        "family": spec.structure.family,
+        "warnings": results["warnings"],
+    }
+
+
