@@ -87,6 +87,9 @@ def stage_stats(spec: PipelineSpec, state: dict) -> dict:
                 "categories": {m.item: list(m.labels) for m in stats.categories},
                 "statistics": "thresholds and polychoric correlations per group (two-step pairwise ML), "
                 "asymptotic covariance from casewise influence values",
+                "reported": "chi2: mean-and-variance adjusted DWLS statistic (Asparouhov & Muthen 2010); "
+                "cfi, tli, rmsea: robust versions from T - tr(UV) (Brosseau-Liard, Savalei & Li 2012); "
+                "delta chi2: Satorra (2000) difference, scale-shifted; unadjusted values under 'dwls'",
             },
         }
     stats = sample_stats(checked.frame, checked.items, checked.group, groups=checked.groups)
