@@ -111,3 +111,21 @@ def test_standard_error_monte_carlo():
         se.append(np.sqrt(f.acov[-1, -1]))
     assert np.std(est) == pytest.approx(np.mean(se), rel=0.12)
     assert np.mean(est) == pytest.approx(0.5, abs=0.01)
+
+
+def test_boundary_correlation_stops_and_warns():
+    # two copies of one item: the pairwise ML sits at the boundary; a warning names the pair
+    import warnings
+
+    from invariance.errors import ImproperSolutionWarning
+    from invariance.ordinal import ordinal_stats_from_arrays
+
+    rng = np.random.default_rng(1)
+    z = rng.normal(size=(500, 2))
+    x = np.digitize(z, [-0.5, 0.5])
+    arr = np.column_stack([x[:, 0], x[:, 0], x[:, 1]])
+    with warnings.catch_warnings(record=True) as rec:
+        warnings.simplefilter("always")
+        st = ordinal_stats_from_arrays([arr], ["g"], ["a", "b", "c"])
+    assert st.fits[0].corr[0, 1] > 0.999
+    assert any(issubclass(w.category, ImproperSolutionWarning) and "a and b" in str(w.message) for w in rec)

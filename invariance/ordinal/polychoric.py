@@ -214,7 +214,9 @@ def polychoric_pairs(
         score = np.where(pos, tables * dP / Ps, 0.0).sum(axis=(1, 2))
         info = n * np.where(pos, dP * dP / Ps, 0.0).sum(axis=(1, 2))
         step = np.where(active, score / np.maximum(info, 1e-300), 0.0)
-        active &= np.abs(step) >= tol
+        # a pair pushed against |rho| = _RHO_MAX stays there (reported by the caller)
+        edge = (np.abs(rho) >= _RHO_MAX - 1e-12) & (np.sign(step) == np.sign(rho))
+        active &= (np.abs(step) >= tol) & ~edge
         if not active.any():
             return rho, it
         prev_rho, prev_ll = rho, ll

@@ -11,7 +11,9 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
-from ..errors import DataError
+import warnings
+
+from ..errors import DataError, ImproperSolutionWarning
 from .categories import CategoryMap, category_maps, encode
 from .polychoric import PolychoricFit, polychoric
 
@@ -103,6 +105,17 @@ def ordinal_stats_from_arrays(
     maps = category_maps(clean, names, items, merge=merge)
     K = np.array([m.n_categories for m in maps])
     fits = tuple(polychoric(encode(x, maps), K) for x in clean)
+    for name, f in zip(names, fits):
+        i, j = f.pairs
+        edge = np.flatnonzero(np.abs(f.corr[i, j]) > 0.999)
+        if edge.size:
+            a, b = items[i[edge[0]]], items[j[edge[0]]]
+            warnings.warn(
+                f"The polychoric correlation of {a} and {b} in group {name!r} is at the boundary (|r| > .999); "
+                "the two items may be redundant or a category nearly empty: drop one item or merge categories.",
+                ImproperSolutionWarning,
+                stacklevel=2,
+            )
     return OrdinalStats(items, names, fits, maps)
 
 
