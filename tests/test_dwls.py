@@ -149,3 +149,17 @@ def test_fit_front_door_dispatches_ordinal_stats():
     res = fit(spec, ost)
     assert res.estimator == "dwls" and res.converged
     assert res.fit.chi2 == pytest.approx(fit_dwls(spec, ost).fit.chi2, rel=1e-9)
+
+
+def test_robust_rmsea_interval_brackets_the_estimate():
+    # Brosseau-Liard, Savalei & Li (2012): interval of T/c inverted, scaled by c; the
+    # point estimate sqrt(max(T - c df, 0)/(N df)) lies inside it
+    rng = np.random.default_rng(17)
+    st, items = _one_factor(6)
+    loads = np.array([0.7, 0.6, 0.5, 0.65, 0.55, 0.6])
+    x = simulate_one_factor(rng, 600, loads, CUTS4)
+    x[:, 5] = simulate_one_factor(rng, 600, loads, CUTS4)[:, 5]   # one item off the factor: misfit
+    ost = ordinal_stats_from_arrays([x], ["all"], items)
+    rob = fit_dwls(build_ordinal_level(st, ["all"], "configural", ost.n_categories), ost).extra["robust"]
+    lo, hi = rob["rmsea_robust_ci90"]
+    assert lo <= rob["rmsea_robust"] <= hi and hi > lo

@@ -183,6 +183,10 @@ def _fit_dwls(spec, stats, *, start, max_iter) -> FitResult:
         "cfi_robust": float(1.0 - max(ncp, 0.0) / max(t_b - df_b, ncp, 0.0)) if max(t_b - df_b, ncp, 0.0) > 0 else 1.0,
         "tli_robust": float(1.0 - (ncp / df) / ((t_b - df_b) / df_b)) if df > 0 else float("nan"),
         "rmsea_robust": float(np.sqrt(G) * np.sqrt(max(ncp, 0.0) / (N * df))) if df > 0 else float("nan"),
+        "rmsea_robust_ci90": (
+            tuple(float(np.sqrt(rob["c"]) * v) for v in rmsea_interval(rob["chi2_mean"], df, N, G))
+            if df > 0 and np.isfinite(rob["c"]) else (float("nan"), float("nan"))
+        ),
         "cfi_scaled": cfi(rob["chi2"], df, base["chi2"], df_b) if df > 0 else float("nan"),
         "tli_scaled": tli(rob["chi2"], df, base["chi2"], df_b) if df > 0 else float("nan"),
         "rmsea_scaled": rmsea(rob["chi2"], df, N, G) if df > 0 else float("nan"),

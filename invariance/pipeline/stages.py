@@ -180,7 +180,7 @@ def _dwls_row(row: dict, res) -> None:
         "cfi": _num(rob["cfi_robust"]),
         "tli": _num(rob["tli_robust"]),
         "rmsea": _num(rob["rmsea_robust"]),
-        "rmsea_ci90": None,
+        "rmsea_ci90": [_num(v) for v in rob["rmsea_robust_ci90"]],
     })
 
 
