@@ -106,3 +106,9 @@ def test_fixed_means_in_continuous_levels():
     assert fixed.df - free.df == 2 * 2
     with pytest.raises(SpecificationError, match="fixed_means"):
         load_pipeline(_doc(model={"fixed_means": ["nope"]}), base_dir=".")
+
+
+def test_check_reports_categories(tmp_path):
+    _frame().to_csv(tmp_path / "survey.csv", index=False)
+    out = invariance.check(write_yaml(tmp_path / "p.yaml", _doc()))
+    assert out["categories"]["q9"] == ["1", "2", "3", "4", "5"]

@@ -200,7 +200,8 @@ def check(pipeline) -> dict:
     -------
     dict
         ``groups`` (group -> N complete), ``rows``, ``missing`` (group -> item -> count),
-        ``reference_group``, ``items`` and ``warnings``.
+        ``reference_group``, ``items``, ``categories`` (ordinal pipelines: item -> category
+        labels; ``None`` otherwise) and ``warnings``.
     """
     spec = load_pipeline(pipeline)
     results, state = run_stages(spec, [("data", stage_data), ("stats", stage_stats)])
@@ -216,6 +217,7 @@ def check(pipeline) -> dict:
         "missing": {g: dict(v) for g, v in checked.missing.items()},
         "levels": list(spec.levels),
         "family": spec.structure.family,
+        "categories": results.get("ordinal", {}).get("categories"),
         "warnings": results["warnings"],
     }
 
