@@ -261,6 +261,8 @@ def ordinal_effects(result: FitResult, stats: OrdinalStats, *, focal: str, refer
     from .ordinal.effects import bifactor_indices_latent, category_sd, dmacs_expected_score, dmacs_latent
 
     spec = result.spec
+    if tuple(stats.items) != tuple(spec.items):
+        stats = stats.reorder_items(spec.items)
     ref = reference or spec.reference
     gr, gf = spec.groups.index(ref), spec.groups.index(focal)
     mats = {g: result.matrices[g] for g in (gr, gf)}

@@ -163,3 +163,17 @@ def test_robust_rmsea_interval_brackets_the_estimate():
     rob = fit_dwls(build_ordinal_level(st, ["all"], "configural", ost.n_categories), ost).extra["robust"]
     lo, hi = rob["rmsea_robust_ci90"]
     assert lo <= rob["rmsea_robust"] <= hi and hi > lo
+
+
+def test_item_order_does_not_change_fit():
+    # property: relabelling (reordering) items leaves the fit unchanged
+    rng = np.random.default_rng(21)
+    st, items = _one_factor(5)
+    cuts = [CUTS4[0], CUTS4[1][:2], CUTS4[2], CUTS4[3][:1], CUTS4[4]]
+    x = simulate_one_factor(rng, 500, np.array([0.7, 0.6, 0.5, 0.65, 0.55]), cuts)
+    ost = ordinal_stats_from_arrays([x], ["all"], items)
+    rev = ordinal_stats_from_arrays([x[:, ::-1]], ["all"], items[::-1])
+    a = fit_dwls(build_ordinal_level(st, ["all"], "configural", ost.n_categories), ost)
+    b = fit_dwls(build_ordinal_level(st, ["all"], "configural", ost.n_categories), rev)   # reordered inside
+    assert a.fit.chi2 == pytest.approx(b.fit.chi2, rel=1e-8)
+    np.testing.assert_allclose(rev.reorder_items(items).fits[0].acov, ost.fits[0].acov, atol=1e-14)

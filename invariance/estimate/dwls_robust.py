@@ -144,6 +144,8 @@ def fit_dwls(
 def _fit_dwls(spec, stats, *, start, max_iter) -> FitResult:
     if tuple(stats.names) != tuple(spec.groups):
         stats = stats.subset(spec.groups)
+    if tuple(stats.items) != tuple(spec.items):
+        stats = stats.reorder_items(spec.items)
     obj = DWLSObjective(spec, stats)
     x0 = ordinal_start_values(spec, stats) if start is None else np.asarray(start, float)
     out = minimize(obj, x0, max_iter=max_iter)
@@ -253,6 +255,8 @@ def dwls_difference(restricted: FitResult, free: FitResult, stats: OrdinalStats)
 def _difference(restricted: FitResult, free: FitResult, stats: OrdinalStats) -> dict:
     if tuple(stats.names) != tuple(restricted.spec.groups):
         stats = stats.subset(restricted.spec.groups)
+    if tuple(stats.items) != tuple(restricted.spec.items):
+        stats = stats.reorder_items(restricted.spec.items)
     ddf = int(restricted.fit.df - free.fit.df)
     dT = float(restricted.fit.chi2 - free.fit.chi2)
     obj0 = DWLSObjective(restricted.spec, stats)

@@ -66,9 +66,46 @@ class OrdinalStats:
         """Per group name and cases (as ``SampleStats.groups`` offers them)."""
         return tuple(GroupCount(name, int(f.n)) for name, f in zip(self.names, self.fits))
 
+    def reorder_items(self, order: Sequence[str]) -> "OrdinalStats":
+        """The same statistics with the items in ``order`` (statistic vectors, ACOV and
+        influence values permuted accordingly)."""
+        order = tuple(str(i) for i in order)
+        if sorted(order) != sorted(self.items):
+            raise DataError("The model items differ from the items of the ordinal statistics; recompute them.")
+        perm = np.array([self.items.index(i) for i in order])
+        fits = tuple(_reorder(f, perm) for f in self.fits)
+        maps = tuple(self.categories[k] for k in perm)
+        return OrdinalStats(order, self.names, fits, maps)
+
     def subset(self, names: Sequence[str]) -> "OrdinalStats":
         by = dict(zip(self.names, self.fits))
         return OrdinalStats(self.items, tuple(names), tuple(by[n] for n in names), self.categories)
+
+
+def _reorder(f: PolychoricFit, perm: np.ndarray) -> PolychoricFit:
+    """Permute the items of one group's statistics (new item a = old item perm[a])."""
+    p = perm.size
+    K = f.n_categories
+    start = np.concatenate([[0], np.cumsum(K - 1)])
+    nt = int(start[-1])
+    old_pairs = {(int(a), int(b)): q for q, (a, b) in enumerate(zip(*f.pairs))}
+    idx = [start[perm[a]] + k for a in range(p) for k in range(K[perm[a]] - 1)]
+    pairs = np.triu_indices(p, 1)
+    for a, b in zip(*pairs):
+        i, j = sorted((int(perm[a]), int(perm[b])))
+        idx.append(nt + old_pairs[(i, j)])
+    idx = np.asarray(idx)
+    return PolychoricFit(
+        n=f.n,
+        n_categories=K[perm],
+        thresholds=f.thresholds[perm],
+        corr=f.corr[np.ix_(perm, perm)],
+        pairs=pairs,
+        stats=f.stats[idx],
+        acov=f.acov[np.ix_(idx, idx)],
+        influence=f.influence[:, idx],
+        iterations=f.iterations,
+    )
 
 
 def ordinal_stats_from_arrays(
