@@ -53,8 +53,10 @@ class DWLSObjective:
         self.n = stats.n
         p = len(spec.items)
         self.K = stats.n_categories
-        self.kmax = int(self.K.max())
+        self.kmax = max(int(self.K.max()), 2)
         self.valid = np.arange(self.kmax - 1)[None, :] < (self.K - 1)[:, None]
+        #: continuous items of a mixed set (K = 0): their means and variances are observed
+        self.cont = self.K == 0
         self.pairs = np.triu_indices(p, 1)
         self.s = [np.asarray(f.stats, float) for f in stats.fits] if targets is None else [np.asarray(t, float) for t in targets]
         self.V = [f.acov for f in stats.fits]
@@ -93,7 +95,8 @@ class DWLSObjective:
         i, j = self.pairs
         thr = (tau - mu[:, None]) / sd[:, None]
         corr = sigma[i, j] / (sd[i] * sd[j])
-        implied = np.concatenate([thr[self.valid], corr])
+        c = self.cont
+        implied = np.concatenate([thr[self.valid], mu[c], d[c], corr])
         if not jac:
             return implied, None
         dS, dm = moment_jacobian(lay, mats, G, A)            # (u, p, p), (u, p)
@@ -105,7 +108,10 @@ class DWLSObjective:
         dvar = np.einsum("uii->ui", dS) / d[None, :]          # dSigma_ii / Sigma_ii
         dthr = (dtau - dm[:, :, None]) / sd[None, :, None] - thr[None] * dvar[:, :, None] / 2.0
         dcorr = dS[:, i, j] / (sd[i] * sd[j])[None] - corr[None] * (dvar[:, i] + dvar[:, j]) / 2.0
-        delta = np.concatenate([dthr[:, self.valid], dcorr], axis=1).T   # (q_g, u)
+        c = self.cont
+        delta = np.concatenate(
+            [dthr[:, self.valid], dm[:, c], np.einsum("uii->ui", dS)[:, c], dcorr], axis=1
+        ).T   # (q_g, u)
         return implied, delta
 
     def implied(self, theta: np.ndarray) -> list[np.ndarray]:
@@ -171,14 +177,25 @@ def ordinal_start_values(spec: ModelSpec, stats: OrdinalStats) -> np.ndarray:
         lam[rows[sel], cols[sel]] = st[sel]
         h2 = np.clip((lam**2).sum(axis=1), 0.0, 0.85)
         scale = 1.0 / np.sqrt(1.0 - h2)
+        cont = stats.n_categories == 0
+        nt = fit.n_thresholds
+        nc = int(cont.sum())
+        mean_c = np.zeros(p)
+        var_c = np.ones(p)
+        mean_c[cont] = fit.stats[nt : nt + nc]
+        var_c[cont] = fit.stats[nt + nc : nt + 2 * nc]
+        # continuous items: loadings in item units, residual (1 - h2) var, intercept = mean
+        scale = np.where(cont, np.sqrt(var_c), scale)
         for k, (m, r, c) in enumerate(zip(mats, rows, cols)):
             if m == LAMBDA:
                 st[k] = lam[r, c] * scale[r]
             elif m == TAU:
                 st[k] = fit.thresholds[r, c] * scale[r]
             elif m == THETA:
-                st[k] = 1.0 if r == c else 0.0
-            elif m in (NU, ALPHA):
+                st[k] = ((1.0 - h2[r]) * var_c[r] if cont[r] else 1.0) if r == c else 0.0
+            elif m == NU:
+                st[k] = mean_c[r] if cont[r] else 0.0
+            elif m == ALPHA:
                 st[k] = 0.0
             elif m == PSI and r == c:
                 st[k] = 1.0

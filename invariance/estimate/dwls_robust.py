@@ -99,7 +99,7 @@ def _scale_shift(t: float, df: int, M: np.ndarray) -> dict:
 def _baseline(stats: OrdinalStats) -> tuple[float, int, dict]:
     t_b, df_b, tr2 = 0.0, 0, 0.0
     for f in stats.fits:
-        nt = f.n_thresholds
+        nt = f.corr_start
         rho = f.stats[nt:]
         Vr = f.acov[nt:, nt:]
         d = np.diag(Vr)
@@ -197,7 +197,7 @@ def _fit_dwls(spec, stats, *, start, max_iter) -> FitResult:
     imp = obj.implied(theta)
     sr = 0.0
     for g, f in enumerate(stats.fits):
-        nt = f.n_thresholds
+        nt = f.corr_start
         res = f.stats[nt:] - imp[g][nt:]
         sr += f.n * np.sqrt(np.mean(res**2)) if res.size else 0.0
     srmr = float(sr / N)

@@ -83,7 +83,10 @@ def build_ordinal_level(
     level
         One of :data:`ORDINAL_LEVELS`.
     n_categories
-        Categories per item (structure item order).
+        Categories per item (structure item order); 0 marks a continuous item, whose
+        mean and variance are observed too: its intercept and residual variance are
+        free per group until the scalar and strict levels hold them equal (as for
+        continuous items, METHODS section 3).
     reference
         Reference group (first by default).
     released
@@ -98,7 +101,7 @@ def build_ordinal_level(
     -------
     ModelSpec
         With threshold entries (matrix code ``TAU``) and ``moment_count`` set to
-        G [sum_i (K_i - 1) + p(p - 1)/2].
+        G [sum_i (K_i - 1) + 2 (continuous items) + p(p - 1)/2].
     """
     rank = ordinal_level_rank(level)
     groups = tuple(str(g) for g in groups)
@@ -109,8 +112,10 @@ def build_ordinal_level(
         raise SpecificationError(f"The reference group {ref!r} is not among the groups ({', '.join(groups)}).")
     items = structure.items
     K = [int(k) for k in n_categories]
-    if len(K) != len(items) or min(K) < 2:
-        raise SpecificationError("Give the number of categories (two or more) of every item, in model order.")
+    if len(K) != len(items) or any(k == 1 or k < 0 for k in K):
+        raise SpecificationError(
+            "Give the number of categories (two or more; 0 for a continuous item) of every item, in model order."
+        )
     released = tuple(released)
     for r in released:
         if r.parameter not in ORDINAL_RELEASES:
@@ -119,6 +124,8 @@ def build_ordinal_level(
             )
         if r.item not in items:
             raise SpecificationError(f"The release names {r.item!r}, which is not an item of the model.")
+        if r.parameter == "threshold" and K[items.index(r.item)] == 0:
+            raise SpecificationError(f"Item {r.item!r} is continuous: it has no thresholds to release.")
         if r.parameter == "residual" and K[items.index(r.item)] == 2:
             raise SpecificationError(
                 f"Item {r.item!r} is binary: its unique variance is fixed for identification and cannot be released."
@@ -175,6 +182,15 @@ def build_ordinal_level(
                     add(g, PSI, r, c, True, f"covariance:{factors[r]}~{factors[c]}{tag}")
         for it in items:
             i = it_ix[it]
+            if K[i] == 0:
+                # continuous item: intercept and residual variance as in the continuous levels
+                lab = f"intercept:{it}"
+                shared = rank >= 3 and not is_released("intercept", it, gname)
+                add(g, NU, i, 0, True, lab if shared else lab + tag)
+                lab = f"residual:{it}"
+                shared = rank >= 4 and not is_released("residual", it, gname)
+                add(g, THETA, i, i, True, lab if shared else lab + tag)
+                continue
             tau_shared = rank >= 1 and not is_released("threshold", it, gname)
             # thresholds
             for k in range(K[i] - 1):
@@ -205,7 +221,7 @@ def build_ordinal_level(
                 add(g, ALPHA, f_ix[f], 0, True, f"mean:{f}{tag}")
     g_, m_, r_, c_, fr_, lb_, v_ = zip(*rows)
     p = len(items)
-    moments = len(groups) * (sum(k - 1 for k in K) + p * (p - 1) // 2)
+    moments = len(groups) * (sum(k - 1 if k else 2 for k in K) + p * (p - 1) // 2)
     return ModelSpec(
         items=items,
         factors=factors,

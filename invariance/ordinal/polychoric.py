@@ -76,6 +76,9 @@ class PolychoricFit:
         Casewise influence values (n, len(stats)); ``acov = influence' influence / n^2``.
     iterations
         Scoring iterations used by the correlations.
+    continuous
+        Mixed statistics only: (p,) booleans marking continuous items, whose means and
+        variances follow the thresholds in ``stats`` (``None``: all items ordered).
     """
 
     n: int
@@ -87,10 +90,21 @@ class PolychoricFit:
     acov: np.ndarray
     influence: np.ndarray
     iterations: int
+    continuous: np.ndarray | None = None
 
     @property
     def n_thresholds(self) -> int:
         return int(np.sum(self.n_categories - 1))
+
+    @property
+    def n_continuous(self) -> int:
+        """Continuous items (mixed statistics, :mod:`invariance.ordinal.polyserial`)."""
+        return 0 if self.continuous is None else int(np.sum(self.continuous))
+
+    @property
+    def corr_start(self) -> int:
+        """Index of the first correlation in ``stats``."""
+        return self.n_thresholds + 2 * self.n_continuous
 
 
 def marginal_thresholds(codes: np.ndarray, n_categories: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

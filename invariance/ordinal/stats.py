@@ -16,6 +16,7 @@ import warnings
 from ..errors import DataError, ImproperSolutionWarning
 from .categories import CategoryMap, category_maps, encode
 from .polychoric import PolychoricFit, polychoric
+from .polyserial import mixed_statistics
 
 __all__ = ["GroupCount", "OrdinalStats", "ordinal_stats", "ordinal_stats_from_arrays"]
 
@@ -41,7 +42,8 @@ class OrdinalStats:
     fits
         One :class:`~invariance.ordinal.polychoric.PolychoricFit` per group.
     categories
-        One :class:`~invariance.ordinal.categories.CategoryMap` per item.
+        One :class:`~invariance.ordinal.categories.CategoryMap` per item (``None`` for a
+        continuous item of a mixed set).
     """
 
     items: tuple[str, ...]
@@ -51,7 +53,8 @@ class OrdinalStats:
 
     @property
     def n_categories(self) -> np.ndarray:
-        return np.array([m.n_categories for m in self.categories])
+        """Categories per item; 0 marks a continuous item (mixed statistics)."""
+        return np.array([0 if m is None else m.n_categories for m in self.categories])
 
     @property
     def n(self) -> np.ndarray:
@@ -86,14 +89,21 @@ def _reorder(f: PolychoricFit, perm: np.ndarray) -> PolychoricFit:
     """Permute the items of one group's statistics (new item a = old item perm[a])."""
     p = perm.size
     K = f.n_categories
+    cont = np.zeros(p, bool) if f.continuous is None else np.asarray(f.continuous, bool)
     start = np.concatenate([[0], np.cumsum(K - 1)])
     nt = int(start[-1])
+    old_c = np.flatnonzero(cont)
+    nc = old_c.size
+    pos_c = {int(c): k for k, c in enumerate(old_c)}
     old_pairs = {(int(a), int(b)): q for q, (a, b) in enumerate(zip(*f.pairs))}
     idx = [start[perm[a]] + k for a in range(p) for k in range(K[perm[a]] - 1)]
+    new_c = [int(perm[a]) for a in range(p) if cont[perm[a]]]
+    idx += [nt + pos_c[c] for c in new_c]
+    idx += [nt + nc + pos_c[c] for c in new_c]
     pairs = np.triu_indices(p, 1)
     for a, b in zip(*pairs):
         i, j = sorted((int(perm[a]), int(perm[b])))
-        idx.append(nt + old_pairs[(i, j)])
+        idx.append(nt + 2 * nc + old_pairs[(i, j)])
     idx = np.asarray(idx)
     return PolychoricFit(
         n=f.n,
@@ -105,6 +115,7 @@ def _reorder(f: PolychoricFit, perm: np.ndarray) -> PolychoricFit:
         acov=f.acov[np.ix_(idx, idx)],
         influence=f.influence[:, idx],
         iterations=f.iterations,
+        continuous=None if f.continuous is None else cont[perm],
     )
 
 
@@ -114,6 +125,7 @@ def ordinal_stats_from_arrays(
     items: Sequence[str],
     *,
     merge: Mapping[str, Sequence[Sequence[float]]] | None = None,
+    continuous: Sequence[str] = (),
 ) -> OrdinalStats:
     """Ordinal statistics from one (n_g, p) value array per group.
 
@@ -126,6 +138,9 @@ def ordinal_stats_from_arrays(
     merge
         Item -> lists of adjacent values to merge (see
         :func:`invariance.ordinal.categories.category_maps`).
+    continuous
+        Items measured on a continuous scale (means, variances, Pearson and polyserial
+        correlations; :mod:`invariance.ordinal.polyserial`); the others are ordered.
     """
     items = tuple(str(i) for i in items)
     names = tuple(str(n) for n in names)
@@ -139,9 +154,28 @@ def ordinal_stats_from_arrays(
                 "collect more data for this group, merge it with another, or drop it."
             )
         clean.append(x)
-    maps = category_maps(clean, names, items, merge=merge)
-    K = np.array([m.n_categories for m in maps])
-    fits = tuple(polychoric(encode(x, maps), K) for x in clean)
+    cont = np.array([it in set(continuous) for it in items])
+    bad = [c for c in continuous if c not in items]
+    if bad:
+        raise DataError(f"The continuous item {bad[0]!r} is not among the items; check the spelling.")
+    if cont.all():
+        raise DataError("Every item is continuous; fit them by ML instead of DWLS.")
+    oi = np.flatnonzero(~cont)
+    omaps = category_maps([x[:, oi] for x in clean], names, [items[i] for i in oi], merge=merge)
+    maps_list: list = [None] * len(items)
+    for k, i in enumerate(oi):
+        maps_list[i] = omaps[k]
+    maps = tuple(maps_list)
+    K = np.array([0 if m is None else m.n_categories for m in maps])
+    if cont.any():
+        fits = []
+        for x in clean:
+            xx = x.copy()
+            xx[:, oi] = encode(x[:, oi], omaps)
+            fits.append(mixed_statistics(xx, ~cont, K))
+        fits = tuple(fits)
+    else:
+        fits = tuple(polychoric(encode(x, maps), K) for x in clean)
     for name, f in zip(names, fits):
         i, j = f.pairs
         edge = np.flatnonzero(np.abs(f.corr[i, j]) > 0.999)
@@ -163,16 +197,19 @@ def ordinal_stats(
     *,
     groups: Sequence[str] | None = None,
     merge: Mapping[str, Sequence[Sequence[float]]] | None = None,
+    continuous: Sequence[str] = (),
 ) -> OrdinalStats:
-    """Ordinal statistics from a pandas DataFrame (``group`` names the grouping column)."""
+    """Ordinal statistics from a pandas DataFrame (``group`` names the grouping column;
+    ``continuous`` names items that are not ordered)."""
     items = [str(i) for i in items]
     missing = [c for c in items + ([group] if group else []) if c not in frame.columns]
     if missing:
         raise DataError(f"Column {missing[0]!r} is not in the data; check the spelling or the data file.")
     if group is None:
-        return ordinal_stats_from_arrays([frame[items].to_numpy(dtype=float)], ["all"], items, merge=merge)
+        return ordinal_stats_from_arrays([frame[items].to_numpy(dtype=float)], ["all"], items, merge=merge,
+                                         continuous=continuous)
     keys = frame[group]
     if groups is None:
         groups = list(dict.fromkeys(keys.dropna().tolist()))
     arrays = [frame.loc[keys == g, items].to_numpy(dtype=float) for g in groups]
-    return ordinal_stats_from_arrays(arrays, [str(g) for g in groups], items, merge=merge)
+    return ordinal_stats_from_arrays(arrays, [str(g) for g in groups], items, merge=merge, continuous=continuous)
