@@ -10,7 +10,7 @@ shift) and ``crew`` (so07-so12: help and fairness within the shift crew). Respon
 Planted effects (on the continuous response scale, before cutting into five categories):
 
 * site ridge: the general-factor loading of so04 is 0.22 instead of 0.62;
-* site mesa: the intercepts of so03 and so09 are shifted up by 0.70;
+* site mesa: the intercepts of so03 and so09 are shifted up by 0.50;
 * occupation maintenance: the intercept of so11 is shifted up by 0.80.
 
 Sites also differ in the mean and variance of the general factor (true differences,
@@ -44,8 +44,8 @@ _CUTS = np.array([-1.4, -0.5, 0.4, 1.3])
 #: The planted effects, as (grouping, group, parameter, item, factor, size).
 PLANTED = (
     ("site", "ridge", "loading", "so04", GENERAL, -0.40),
-    ("site", "mesa", "intercept", "so03", None, 0.70),
-    ("site", "mesa", "intercept", "so09", None, 0.70),
+    ("site", "mesa", "intercept", "so03", None, 0.50),
+    ("site", "mesa", "intercept", "so09", None, 0.50),
     ("occupation", "maintenance", "intercept", "so11", None, 0.80),
 )
 
