@@ -39,7 +39,7 @@ def test_results_json_sections(hs_run):
     scr = data["screening"]
     assert {g["group"]: g["n"] for g in scr["groups"]} == {"Grant-White": 145, "Pasteur": 156}
     assert scr["groups"][0]["mardia"]["p"] == 9
-    assert scr["recommendation"]["estimator"] in ("ml", "robust_ml")
+    assert scr["recommendation"]["estimator"] in ("ml", "ml_robust")
     # structures: configural correlated model = 115.851 on 48 df (METHODS 12)
     rows = {(r["structure"], r["group"]): r for r in data["structures"]}
     assert rows[("correlated", "all")]["chi2"] == pytest.approx(115.851, abs=2e-3)
@@ -114,4 +114,4 @@ def test_scores_follow_full_information_cases(tmp_path):
     doc["data"]["incomplete"] = "listwise"
     res = invariance.run(doc, quiet=True).to_dict()
     assert res["n_total"] == res["scores"]["n_cases"] == 298
-    assert res["screening"]["recommendation"]["missing"] == "fiml"
+    assert res["screening"]["recommendation"]["missing"] == "full_information"

@@ -56,7 +56,7 @@ def stage_screening(spec: PipelineSpec, state: dict) -> dict:
         rules=opts.get("rules"),
     )
     rec = out["recommendation"]
-    if rec["estimator"] == "robust_ml" and spec.estimator == "ml":
+    if rec["estimator"] == "ml_robust" and spec.estimator == "ml":
         state.setdefault("warnings", []).append("screening: " + rec["notes"][0])
     if rec["ordinal_items"]:
         state.setdefault("warnings", []).append(
