@@ -1,4 +1,4 @@
-"""The command line: ``invariance run | check | new | demo``.
+"""The command line: ``invariance run | check | new | demo | batch | plan``.
 
 Exit codes: 0 the command ran (whatever the invariance verdict), 2 bad input (one line
 on stderr, no traceback), 1 internal error.
@@ -49,6 +49,9 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--out", default="invariance-demo", help="folder to write into (default: invariance-demo)")
     d.add_argument("--seed", type=int, default=20261201, help="random seed")
     d.add_argument("--n-per-site", type=int, default=400, help="respondents per site")
+    from .batch.commands import add_commands
+
+    add_commands(sub)  # batch, plan
     return p
 
 
@@ -99,7 +102,11 @@ def _cmd_demo(args) -> int:
     return 0
 
 
-COMMANDS = {"run": _cmd_run, "check": _cmd_check, "new": _cmd_new, "demo": _cmd_demo}
+def _cmd_many(args) -> int:
+    return args.handler(args)
+
+
+COMMANDS = {"run": _cmd_run, "check": _cmd_check, "new": _cmd_new, "demo": _cmd_demo, "batch": _cmd_many, "plan": _cmd_many}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -70,16 +70,25 @@ def _bad_cases(hs_frame, folder):
     ]
 
 
+#: Cases also run in-process through main() (the subprocess runs cover the first 16).
+N_SUBPROCESS = 16
+
+
+def _write_case(folder, name, body):
+    p = folder / f"{name}.yaml"
+    if isinstance(body, str):
+        p.write_text(body)
+    else:
+        write_yaml(p, body)
+    return p
+
+
 def test_bad_inputs_exit_2_with_one_line(hs_dir, hs_frame):
-    cases = _bad_cases(hs_frame, hs_dir)
+    cases = _bad_cases(hs_frame, hs_dir)[:N_SUBPROCESS]
     assert len({c[0] for c in cases}) >= 15
     commands = []
     for name, body, _ in cases:
-        p = hs_dir / f"{name}.yaml"
-        if isinstance(body, str):
-            p.write_text(body)
-        else:
-            write_yaml(p, body)
+        p = _write_case(hs_dir, name, body)
         commands.append(("run", p, "--out", hs_dir / f"out_{name}"))
     # at most a few at a time: the machine is shared
     procs = []
@@ -87,6 +96,19 @@ def test_bad_inputs_exit_2_with_one_line(hs_dir, hs_frame):
         procs += run_cli_many(commands[k : k + 4])
     for (name, _, needle), proc in zip(cases, procs):
         _assert_bad_input(proc, hs_dir / f"out_{name}", needle)
+
+
+def test_more_bad_inputs_in_process(hs_dir, hs_frame, capsys):
+    from invariance.cli import main
+
+    for name, body, needle in _bad_cases(hs_frame, hs_dir)[N_SUBPROCESS:]:
+        p = _write_case(hs_dir, name, body)
+        out = hs_dir / f"out_{name}"
+        code = main(["run", str(p), "--out", str(out)])
+        err = capsys.readouterr().err
+        assert code == 2, (name, err)
+        assert len(err.strip().splitlines()) == 1 and needle in err, (name, err)
+        assert not out.exists()
 
 
 def test_missing_pipeline_and_usage_errors(tmp_path):
@@ -170,3 +192,14 @@ def test_demo_command_writes_data_and_pipelines(tmp_path):
     assert proc.returncode == 0, proc.stderr
     names = sorted(p.name for p in (tmp_path / "d").iterdir())
     assert names == ["shift_outlook.csv", "shift_outlook_by_occupation.yaml", "shift_outlook_by_site.yaml"]
+
+
+def test_internal_error_exits_1(monkeypatch, capsys, tmp_path):
+    import invariance.cli as cli
+
+    def boom(args):
+        raise RuntimeError("bug")
+
+    monkeypatch.setitem(cli.COMMANDS, "check", boom)
+    assert cli.main(["check", str(tmp_path / "p.yaml")]) == 1
+    assert "internal error: RuntimeError: bug" in capsys.readouterr().err

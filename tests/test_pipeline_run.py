@@ -84,7 +84,10 @@ def test_output_folder_files(hs_all_levels):
     path, res = hs_all_levels
     out = path.parent / "out"
     assert res.out_dir == out.resolve()
-    assert sorted(p.name for p in out.iterdir()) == ["estimates.csv", "levels.csv", "pipeline.yaml", "report.md", "results.json"]
+    assert sorted(p.name for p in out.iterdir()) == [
+        "estimates.csv", "figures", "levels.csv", "pipeline.yaml", "report.html", "report.md", "results.json",
+        "table_levels.csv", "table_levels.md", "table_levels.tex",
+    ]
     table = pd.read_csv(out / "levels.csv")
     assert table["level"].tolist() == ["configural", "metric", "scalar", "strict"]
     est = pd.read_csv(out / "estimates.csv")
@@ -163,7 +166,7 @@ def test_check_fits_nothing(hs_dir):
 
 def test_stages_are_extensible():
     names = [n for n, _ in runner.STAGES]
-    assert names == ["data", "screening", "stats", "group_fit", "structures", "levels", "fits", "summary", "scores"]
+    assert names == ["data", "screening", "stats", "group_fit", "structures", "levels", "fits", "effects", "alignment", "summary", "scores"]
 
 
 def test_existing_foreign_folder_is_never_replaced(hs_dir):
@@ -220,3 +223,19 @@ def test_unconverged_configural_is_not_called_noninvariance(hs_dir, monkeypatch)
     assert [lv["decision"] for lv in d["levels"][1:]] == ["not_tested"] * 3
     assert d["supported_level"] is None
     assert "did not converge" in d["verdict"]
+
+
+@pytest.mark.parametrize(
+    "extra, df",
+    [
+        ({"general": "g", "family": "second_order"}, 24),  # 3 first-order factors: same fit as correlated
+        ({"residual_covariances": [["x7", "x8"]]}, 23),
+    ],
+)
+def test_crosscheck_other_structures(hs_dir, extra, df):
+    doc = hs_doc(str(hs_dir / "hs.csv"), levels=["configural"])
+    doc["model"].update(extra)
+    d = invariance.run(doc, quiet=True, crosscheck=True).to_dict()
+    for r in d["crosscheck"]["groups"]:
+        assert r["df"] == df
+        assert r["agreement"] == "agree"  # semopy, an independent reference

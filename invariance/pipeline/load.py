@@ -24,6 +24,7 @@ from ..errors import SpecificationError
 from ..model.levels import LEVELS, build_level
 from ..model.spec import Release
 from ..model.structure import Structure
+from .align_stage import check_alignment_section
 
 __all__ = ["PipelineSpec", "load_pipeline", "parse_yaml", "schema", "validate_document", "thaw"]
 
@@ -270,6 +271,7 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
     if data["group"] in structure.items:
         raise SpecificationError(f"data.group {data['group']!r} is also an item in model.factors; use another column.")
     levels = _levels(doc.get("levels", LEVELS))
+    check_alignment_section(doc, structure)
     dec = doc.get("decision", {})
     rule = make_rule(
         criteria=dec.get("criteria"),

@@ -98,6 +98,23 @@ def _num(v, fmt: str) -> str:
     return "" if v is None else format(v, fmt)
 
 
+def _partial_lines(results: dict) -> list[str]:
+    """Flagged items and structural levels (written by the partial-invariance stage)."""
+    out = []
+    if results.get("flagged"):
+        out += ["", "Flagged (released by the score-test search):"]
+        for f in results["flagged"]:
+            size = "" if f.get("dmacs_max") is None else f", dMACS up to {f['dmacs_max']:.2f}"
+            out.append(f"  {_release_text(f)} at {f['level']}: score test {f['statistic']:.2f} "
+                       f"on {f['df']} df, p {f['pvalue']:.2g}{size}")
+    for s in results.get("structural") or []:
+        if s == results["structural"][0]:
+            out += ["", "Structural levels:"]
+        rel = "; ".join(_release_text(r) for r in s.get("released", []))
+        out.append(f"  {s['level']}: {s['decision']} ({s.get('reason', '')})" + (f"; released {rel}" if rel else ""))
+    return out
+
+
 def format_table(results: dict) -> str:
     """The stepwise table and the verdict as terminal text."""
     from .robust_stage import display_note, display_view
@@ -132,6 +149,7 @@ def format_table(results: dict) -> str:
             out.append(f"  {lv['level']}: {lv['decision']} ({lv['reason']})")
     out.append("")
     out.append(results["verdict"])
+    out.extend(_partial_lines(results))
     cc = results.get("crosscheck")
     if cc:
         out.append("")

@@ -26,7 +26,9 @@ from ..data.read import apply_missing, file_sha256, read_table
 from ..errors import DataError, InvarianceWarning, SpecificationError
 from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
+from ..partial.stage import stage_effects
 from .before_after import stage_group_fit, stage_scores, stage_screening, stage_structures
+from .align_stage import stage_alignment
 from .load import PipelineSpec, thaw
 from . import robust_stage as _rs
 
@@ -169,21 +171,35 @@ def _not_tested(level: str, why: str) -> dict:
 
 
 def stage_fits(spec: PipelineSpec, state: dict) -> dict:
-    """Fit the levels in order; compare each with the previous accepted level and judge it."""
+    """Fit the levels in order; compare each with the previous accepted level and judge it.
+
+    With a ``partial:`` section, a failed measurement level is handed to the release
+    search (:mod:`invariance.partial`); its releases are carried into the later levels.
+    """
+    from ..partial.stage import partial_settings, release_rows, search_level
+
     stats = state["stats"]
     rule = spec.rule
+    partial = partial_settings(spec.section("partial"))
     fits, rows = {}, []
     accepted = None  # (level, row) of the last level that held
     stopped = None
     robust = spec.estimator == "ml_robust"
     h1_cache: dict = {}
+    carried: tuple = ()  # releases made by the search, carried to later levels
+    searches = []
     for lv in spec.levels:
         if stopped is not None:
             rows.append(_not_tested(lv, stopped))
             continue
-        res, notes = _fit_one(state["models"][lv], stats, spec.estimator)
+        model = state["models"][lv]
+        if carried:
+            model = build_level(spec.structure, stats.names, lv, reference=state["reference"],
+                                released=spec.released + carried)
+        res, notes = _fit_one(model, stats, spec.estimator)
         fits[lv] = res
         row = _level_row(lv, res, res.spec.released)
+        search = None
         if lv == "configural":
             view = _rs.decision_view(row) if robust else row
             verdict = judge_configural(view, rule, converged=res.converged, problems=res.problems)
@@ -202,11 +218,29 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
             improper = [p for p in res.problems if not p.startswith("not converged")]
             if improper and res.converged:
                 verdict["reason"] += "; caution, improper solution: " + "; ".join(improper)
+            if partial.searches(verdict["decision"]) and res.converged and spec.estimator == "ml":
+
+                def verdict_of(f, lv=lv, base_row=base_row):
+                    r = _level_row(lv, f, f.spec.released)
+                    return judge_step(level_delta(r, base_row), lv, rule, converged=f.converged)
+
+                search = search_level(res, stats, verdict_of, partial)
+                searches.append(search)
+                if search.releases:
+                    res = search.fit
+                    fits[lv] = res
+                    row = _level_row(lv, res, res.spec.released)
+                    delta = level_delta(row, base_row)
+                    verdict = {**verdict_of(res), "decision": search.decision}
+                carried = carried + search.released
+                row["partial"] = {k: v for k, v in search.to_dict().items() if k not in ("fit", "releases", "released")}
+            if partial.enabled:
+                row["released"] = release_rows(res, search, spec.released)
             row.update({"delta": delta, "compared_with": base_level})
         row.update(verdict)
         rows.append(row)
         state.setdefault("warnings", []).extend(n if n.startswith(f"{lv}:") else f"{lv}: {n}" for n in notes)
-        if verdict["decision"] == "holds":
+        if verdict["decision"] in ("holds", "holds_partially"):
             accepted = (lv, row)
         elif lv == "configural":
             stopped = "the configural model was not supported"
@@ -214,6 +248,7 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
             stopped = f"{lv} failed and decision.stop_at_failure is true"
     state["fits"] = fits
     state["level_rows"] = rows
+    state["searches"] = searches
     return {"levels": rows, "flagged": []}
 
 
@@ -270,6 +305,8 @@ STAGES: list[tuple[str, Stage]] = [
     ("structures", stage_structures),
     ("levels", stage_levels),
     ("fits", stage_fits),
+    ("effects", stage_effects),
+    ("alignment", stage_alignment),
     ("summary", stage_summary),
     ("scores", stage_scores),
 ]
