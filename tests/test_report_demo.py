@@ -19,7 +19,7 @@ from PIL import Image
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "pipelines" / "shift_outlook_by_site.yaml"
-SECTIONS = ["summary", "data", "model", "levels", "changes", "profiles", "cautions", "provenance"]
+SECTIONS = ["summary", "data", "screening", "model", "levels", "changes", "profiles", "further", "cautions", "provenance"]
 
 
 @pytest.fixture(scope="module")
