@@ -32,6 +32,10 @@ from ..estimate.robust import H1Moments, robust_difference
 
 __all__ = [
     "INCOMPLETE",
+    "ROBUST_KEYS",
+    "stats_method",
+    "display_view",
+    "display_note",
     "incomplete_choice",
     "difference_choice",
     "cases_used_text",
