@@ -138,8 +138,9 @@ def check_data(
             "testing needs at least two groups: check data.group."
         )
     if reference is not None and str(reference) not in groups:
+        where = f"column {group!r}" if str(reference) not in present else "the groups selected by data.groups"
         raise DataError(
-            f"Reference group {str(reference)!r} is not in column {group!r}; choose one of {', '.join(groups)}."
+            f"Reference group {str(reference)!r} is not in {where}; choose one of {', '.join(groups)}."
         )
     p = len(items)
     rows, complete, missing = {}, {}, {}
