@@ -14,10 +14,10 @@ from .results import FitResult
 __all__ = ["fit_level", "fit_levels"]
 
 
-def _stats(data, structure: Structure, group: str | None) -> SampleStats:
+def _stats(data, structure: Structure, group: str | None, missing: str = "listwise") -> SampleStats:
     if isinstance(data, SampleStats):
         return data
-    return sample_stats(data, structure.items, group)
+    return sample_stats(data, structure.items, group, missing=missing)
 
 
 def fit_level(
@@ -29,6 +29,8 @@ def fit_level(
     reference: str | None = None,
     released: Iterable[Release] = (),
     information: str = "expected",
+    estimator: str = "ml",
+    missing: str = "listwise",
 ) -> FitResult:
     """Fit one invariance level.
 
@@ -44,10 +46,14 @@ def fit_level(
     group, reference, released, information
         Grouping column, reference group, constraints released up front, and the
         information used for standard errors.
+    estimator
+        ``"ml"`` or ``"ml_robust"`` (see :func:`invariance.estimate.fit`).
+    missing
+        ``"listwise"`` (default) or ``"fiml"`` (full-information ML) for a DataFrame.
     """
-    stats = _stats(data, structure, group)
+    stats = _stats(data, structure, group, missing)
     spec = build_level(structure, stats.names, level, reference=reference, released=released)
-    return fit(spec, stats, information=information)
+    return fit(spec, stats, information=information, estimator=estimator)
 
 
 def fit_levels(
@@ -58,11 +64,16 @@ def fit_levels(
     group: str | None = None,
     reference: str | None = None,
     released: Iterable[Release] = (),
+    estimator: str = "ml",
+    missing: str = "listwise",
 ) -> dict[str, FitResult]:
-    """Fit several levels on the same statistics; returns level -> result."""
-    stats = _stats(data, structure, group)
+    """Fit several levels on the same statistics; returns level -> result.
+
+    ``estimator`` and ``missing`` as in :func:`fit_level`.
+    """
+    stats = _stats(data, structure, group, missing)
     released = tuple(released)
     return {
-        lv: fit(build_level(structure, stats.names, lv, reference=reference, released=released), stats)
+        lv: fit(build_level(structure, stats.names, lv, reference=reference, released=released), stats, estimator=estimator)
         for lv in levels
     }

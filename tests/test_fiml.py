@@ -119,7 +119,7 @@ def test_fiml_gradient_against_finite_differences(hs):
 def test_em_solution_is_a_stationary_point_of_the_likelihood(hs):
     # the saturated ML estimate (EM) has zero score: central differences of the
     # casewise log-likelihood (scipy densities) in every mean and covariance entry
-    X = _delete(hs, 0.2, 3)[ITEMS[:4]].to_numpy(dtype=float)
+    X = _delete(hs, 0.2, 3)[ITEMS[:4]].to_numpy(dtype=float)[:150]
     X = X[~np.isnan(X).all(axis=1)]
     em = em_saturated(X)
     assert em.converged
@@ -220,12 +220,13 @@ def test_fiml_hessian_against_finite_differences_of_the_gradient(hs, level):
     theta = start_values(spec, s) * 1.05
     H = obj.hessian(theta)
     h = 1e-6
+    cols = np.linspace(0, spec.n_params - 1, 12).astype(int)  # a spread of parameters of every kind
     fd = np.column_stack([
         (obj.derivatives(theta + h * e, information=False)[1] - obj.derivatives(theta - h * e, information=False)[1]) / (2 * h)
-        for e in np.eye(spec.n_params)
+        for e in np.eye(spec.n_params)[cols]
     ])
     # central differences of the analytic gradient (checked above against the value)
-    assert np.allclose(H, fd, rtol=1e-5, atol=1e-6 * np.abs(fd).max())
+    assert np.allclose(H[:, cols], fd, rtol=1e-5, atol=1e-6 * np.abs(fd).max())
     # with complete data it is the complete-data ML Hessian
     full = FIMLObjective(spec, sample_stats(hs, ITEMS, "school", missing="fiml")).hessian(theta)
     ref = MLObjective(spec, sample_stats(hs, ITEMS, "school")).hessian(theta)

@@ -280,3 +280,14 @@ def test_saturated_observed_information_equals_expected_at_complete_data_mle(hs)
     A = saturated_information(pat, g.mean, g.cov)
     B = saturated_observed_information(g.raw, pat, g.mean, g.cov)
     assert np.allclose(A, B, rtol=1e-5, atol=1e-6 * np.abs(A).max())
+
+
+def test_api_passes_estimator_and_missing_through(hs):
+    from invariance import fit_levels
+
+    r = fit_levels(hs, STRUCT, ["configural"], group="school", estimator="ml_robust", missing="fiml")
+    s = sample_stats(hs, ITEMS, "school")
+    ref = fit(build_level(STRUCT, s.names, "configural"), s, estimator="ml_robust")
+    assert r["configural"].estimator == "ml_robust"
+    assert r["configural"].extra["scaling_factor"] == pytest.approx(ref.extra["scaling_factor"], rel=1e-8)
+    assert r["configural"].extra["missing"][s.names[0]]["method"] == "fiml"

@@ -12,12 +12,13 @@ coverage of each item and the cases dropped because nothing was observed.
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 from typing import Sequence
 
 import numpy as np
 
-from ..errors import DataError
+from ..errors import ConvergenceWarning, DataError
 from .em import em_saturated, missing_patterns
 
 __all__ = ["GroupStats", "MissingInfo", "SampleStats", "sample_stats", "stats_from_arrays"]
@@ -224,6 +225,13 @@ def _full_information(name: str, x: np.ndarray, items: Sequence[str]) -> GroupSt
         raise DataError(f"Item {items[const[0]]!r} is constant in group {name!r}; drop the item or the group.")
     pat = missing_patterns(xu)
     em = em_saturated(xu, patterns=pat)
+    if not em.converged:
+        warnings.warn(
+            f"EM for the saturated model of group {name!r} stopped after {em.iterations} updates "
+            f"before converging; the test statistic may be slightly off: check items with low coverage.",
+            ConvergenceWarning,
+            stacklevel=3,
+        )
     sdv = np.sqrt(np.diag(em.cov))
     if np.linalg.eigvalsh(em.cov / np.outer(sdv, sdv))[0] <= 1e-10:
         raise DataError(

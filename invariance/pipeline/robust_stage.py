@@ -28,10 +28,15 @@ from typing import Mapping
 import numpy as np
 
 from ..data.mcar import little_mcar, missing_report
+from ..errors import EstimationError
 from ..estimate.robust import H1Moments, robust_difference
 
 __all__ = [
     "INCOMPLETE",
+    "ROBUST_KEYS",
+    "stats_method",
+    "display_view",
+    "display_note",
     "incomplete_choice",
     "difference_choice",
     "cases_used_text",
@@ -109,9 +114,14 @@ def robust_delta(delta: dict, res, base_res, stats, *, method: str, cache: dict)
     key = id(stats)
     if key not in cache:
         cache[key] = H1Moments(stats)
-    d = robust_difference(res, base_res, stats, method=method, h1=cache[key])
     out = dict(delta)
     out["pvalue_normal"] = delta.get("pvalue")
+    try:
+        d = robust_difference(res, base_res, stats, method=method, h1=cache[key])
+    except EstimationError as exc:
+        # no scaled test can be formed: decide on the normal-theory difference and say so
+        out.update({"chi2_scaled": None, "scaling": None, "test": "normal_theory", "note": str(exc)})
+        return out
     out["chi2_scaled"] = None if not np.isfinite(d.chi2) else float(d.chi2)
     out["scaling"] = None if not np.isfinite(d.scaling) else float(d.scaling)
     out["test"] = d.test
