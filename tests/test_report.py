@@ -326,3 +326,25 @@ def test_pipeline_layouts_of_effects_sections(tmp_path):
     bif = html.split('<section id="bifactor">')[1].split("</section>")[0]
     assert "\u03c9HS" in bif and "FD" in bif and "under the metric model" in bif
     assert "figures/bifactor-quality.png" in {p.relative_to(tmp_path).as_posix() for p in paths}
+
+
+def test_alignment_section_from_the_alignment_module(tmp_path):
+    # alignment of the configural H&S model by school (invariance.alignment, Asparouhov & Muthen 2014)
+    import json as _json
+    import warnings as _w
+
+    from invariance.alignment import align
+    from invariance import Structure, fit_level
+    from _report_cases import THREE, hs_data
+
+    with _w.catch_warnings():
+        _w.simplefilter("ignore")
+        conf = fit_level(hs_data(), Structure(factors=THREE), "configural", group="school")
+        al = _json.loads(_json.dumps(align(conf, random_starts=1).to_dict(), default=str))
+    results, est, ctx = cached_case("three")
+    write_reports(tmp_path, dict(results, alignment={"enabled": True, **al}), est, ctx)
+    html = (tmp_path / "report.html").read_text(encoding="utf-8")
+    sec = html.split('<section id="alignment">')[1].split("</section>")[0]
+    assert "Aligned factor means and variances" in sec and "approximately invariant" in sec
+    assert f"{al['means']['textual']['Grant-White']:.3f}" in sec
+    assert "alignment-means" in html or "data:image/png" in sec

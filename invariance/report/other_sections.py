@@ -264,10 +264,65 @@ def section_latent_means(inp: ReportInput) -> Section | None:
     return Section("latent_means", "Latent mean differences", tuple(parts))
 
 
+def _alignment_parts(obj: Mapping[str, Any], inp: ReportInput) -> list:
+    """The alignment stage's layout: ``means``/``variances`` (factor -> group -> value) with
+    ``means_se``/``variances_se``, ``parameters`` (per item parameter: ``invariant`` and
+    ``noninvariant`` groups, ``r2``), ``notes``, ``settings``, ``reference``."""
+    means, var = obj["means"], obj.get("variances") or {}
+    mse, vse = obj.get("means_se") or {}, obj.get("variances_se") or {}
+    ref = str(obj.get("reference") or inp.reference)
+    parts: list = []
+    rows, plot_rows = [], []
+    for f, by in means.items():
+        if not isinstance(by, Mapping):
+            continue
+        for g, m in by.items():
+            se = fnum((mse.get(f) or {}).get(g))
+            v, vs = (var.get(f) or {}).get(g), fnum((vse.get(f) or {}).get(g))
+            rows.append((str(f), str(g), cell(m), "" if not se else cell(se), cell(v), "" if not vs else cell(vs),
+                         "reference" if str(g) == ref else ""))
+            if str(g) != ref and fnum(m) is not None:
+                lo = hi = None
+                if se:
+                    lo, hi = fnum(m) - 1.959964 * se, fnum(m) + 1.959964 * se
+                plot_rows.append((f"{f}: {g}", fnum(m), lo, hi))
+    png = forest_chart(plot_rows, xlabel="aligned mean (reference group 0, variance 1)")
+    if png is not None:
+        parts.append(Figure("alignment-means", png, alt="Aligned factor means with intervals",
+                            caption=f"Aligned factor means with 95% intervals; the reference group ({ref}) has mean 0 "
+                                    "and variance 1."))
+    parts.append(Table(("Factor", "Group", "Mean", "SE", "Variance", "SE", ""), tuple(rows),
+                       caption="Aligned factor means and variances", numeric=(False, False, True, True, True, True, False)))
+    params = [p for p in obj.get("parameters") or [] if isinstance(p, Mapping)]
+    if params:
+        nonin = [p for p in params if p.get("noninvariant")]
+        parts.append(Text(
+            f"{len(params) - len(nonin)} of {len(params)} loadings and intercepts are approximately invariant in every "
+            f"group ({100 * len(nonin) / len(params):.0f}% noninvariant somewhere; common practice treats the aligned "
+            "means as trustworthy below about 25%, Asparouhov & Muth\u00e9n 2014).", style="note"))
+        parts.append(Table(("Factor", "Item", "Parameter", "Invariant in", "Noninvariant in", "R\u00b2"), tuple(
+            (str(p.get("factor", "")), str(p.get("item", "")), str(p.get("parameter", "")),
+             ", ".join(map(str, p.get("invariant") or [])), ", ".join(map(str, p.get("noninvariant") or [])),
+             cell(p.get("r2")))
+            for p in params), caption="Approximate invariance of each parameter",
+            numeric=(False, False, False, False, False, True)))
+    if obj.get("notes"):
+        parts.append(Bullets(tuple(str(n) for n in obj["notes"])))
+    if isinstance(obj.get("settings"), Mapping):
+        parts.append(Table(("Setting", "Value"), tuple((str(k), cell(v)) for k, v in obj["settings"].items()),
+                           caption="Alignment settings"))
+    return parts
+
+
 def section_alignment(inp: ReportInput) -> Section | None:
-    """Alignment results (approximate invariance for many groups), shown as given."""
+    """Alignment results (approximate invariance for many groups)."""
     obj = inp.results.get("alignment")
-    parts = generic_parts(obj, key_name="group")
+    if isinstance(obj, Mapping) and isinstance(obj.get("means"), Mapping):
+        parts = _alignment_parts(obj, inp)
+    elif isinstance(obj, Mapping) and obj.get("error"):
+        parts = [Text(f"Alignment was not run: {obj['error']}.", style="caution")]
+    else:
+        parts = generic_parts(obj, key_name="group")
     if not parts:
         return None
     parts.append(Text("Alignment: Asparouhov & Muth\u00e9n (2014).", style="note"))
