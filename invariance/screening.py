@@ -245,8 +245,9 @@ def recommend(groups: Sequence[dict], *, rules: Mapping[str, float]) -> dict:
     Returns
     -------
     dict
-        ``estimator`` (``ml`` or ``robust_ml``), ``ordinal_items``, ``missing``
-        (``complete_cases`` or ``fiml``), and ``notes`` (one sentence each).
+        ``estimator`` (``ml`` or ``ml_robust``), ``ordinal_items``, ``missing``
+        (``listwise`` or ``full_information``; the names of the pipeline's
+        ``estimator`` and ``data.incomplete`` keys), and ``notes`` (one sentence each).
     """
     notes: list[str] = []
     kurt_groups, item_flags = [], []
@@ -295,7 +296,11 @@ def recommend(groups: Sequence[dict], *, rules: Mapping[str, float]) -> dict:
             why.append("multivariate kurtosis is marked in group " + ", ".join(kurt_groups))
         if item_flags:
             why.append("items are strongly skewed or kurtotic: " + ", ".join(item_flags))
-        head.append("Use robust ML (scaled test statistics, sandwich standard errors): " + "; ".join(why) + ".")
+        head.append(
+            "Use robust ML (estimator: ml_robust; scaled test statistics, sandwich standard errors): "
+            + "; ".join(why)
+            + "."
+        )
     else:
         head.append("Normal-theory ML is reasonable: no marked multivariate kurtosis and no extreme item.")
     if ordinal:
@@ -304,11 +309,13 @@ def recommend(groups: Sequence[dict], *, rules: Mapping[str, float]) -> dict:
             f"{int(rules['ordinal_below_categories'])} categories): " + ", ".join(sorted(ordinal)) + "."
         )
     if any_missing:
-        head.append("Some values are missing: prefer full-information ML to complete cases.")
+        head.append(
+            "Some values are missing: prefer full-information ML (data.incomplete: full_information) to complete cases."
+        )
     return {
-        "estimator": "robust_ml" if robust else "ml",
+        "estimator": "ml_robust" if robust else "ml",
         "ordinal_items": sorted(ordinal),
-        "missing": "fiml" if any_missing else "complete_cases",
+        "missing": "full_information" if any_missing else "listwise",
         "kurtosis_groups": kurt_groups,
         "notes": head + notes,
     }

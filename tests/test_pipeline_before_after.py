@@ -39,7 +39,7 @@ def test_results_json_sections(hs_run):
     scr = data["screening"]
     assert {g["group"]: g["n"] for g in scr["groups"]} == {"Grant-White": 145, "Pasteur": 156}
     assert scr["groups"][0]["mardia"]["p"] == 9
-    assert scr["recommendation"]["estimator"] in ("ml", "robust_ml")
+    assert scr["recommendation"]["estimator"] in ("ml", "ml_robust")
     # structures: configural correlated model = 115.851 on 48 df (METHODS 12)
     rows = {(r["structure"], r["group"]): r for r in data["structures"]}
     assert rows[("correlated", "all")]["chi2"] == pytest.approx(115.851, abs=2e-3)
@@ -98,3 +98,20 @@ def test_group_fit_rule_follows_configural_fit(hs_dir):
     d = invariance.run(doc, quiet=True).to_dict()
     # Grant-White CFI .941 and Pasteur CFI .903 (this fit) are both below .95
     assert d["group_fit"]["failing"] == ["Grant-White", "Pasteur"]
+
+
+def test_scores_follow_full_information_cases(tmp_path):
+    # every case with an observed item enters a full-information fit, so every such case is scored
+    from semopy.examples import holzinger39
+
+    d = holzinger39.get_data()
+    d.iloc[[0, 5, 9], d.columns.get_loc("x2")] = float("nan")
+    d.to_csv(tmp_path / "hsm.csv", index=False)
+    doc = hs_doc(str(tmp_path / "hsm.csv"), levels=["configural"], scores={"id": "id"})
+    res = invariance.run(doc, quiet=True).to_dict()
+    assert res["n_total"] == 301
+    assert res["scores"]["n_cases"] == 301
+    doc["data"]["incomplete"] = "listwise"
+    res = invariance.run(doc, quiet=True).to_dict()
+    assert res["n_total"] == res["scores"]["n_cases"] == 298
+    assert res["screening"]["recommendation"]["missing"] == "full_information"

@@ -127,7 +127,7 @@ def test_screen_records_and_recommendation():
     assert a["items"][3]["floor"] == pytest.approx((d[d.grp == "a"].o1 == 0).mean())
     rec = out["recommendation"]
     assert rec["ordinal_items"] == ["o1"]
-    assert rec["missing"] == "fiml"
+    assert rec["missing"] == "full_information"
     assert any("category 2" in n and "group b" in n for n in rec["notes"])
     assert any("under 200" in n for n in rec["notes"])
 
@@ -137,7 +137,7 @@ def test_screen_flags_kurtosis():
     x = rng.standard_t(3, size=(1000, 4))
     d = pd.DataFrame(x, columns=list("abcd"))
     out = screen(d, list("abcd"))
-    assert out["recommendation"]["estimator"] == "robust_ml"
+    assert out["recommendation"]["estimator"] == "ml_robust"
     y = pd.DataFrame(rng.normal(size=(1000, 4)), columns=list("abcd"))
     assert screen(y, list("abcd"))["recommendation"]["estimator"] == "ml"
 

@@ -4,14 +4,17 @@
   options under ``screening:`` (``bounds``, ``rules``). results.json ``screening``.
 * ``group_fit`` (before the configural model): the chosen structure in each group on its
   own, :func:`invariance.structures.group_fit`; a warning naming each group that does not
-  fit acceptably; rule under ``compare: {group_fit: {cfi_min, rmsea_max}}``.
+  fit acceptably; rule under ``compare: {group_fit: {cfi, rmsea}}``, else
+  ``decision.configural_fit``, else CFI >= .90 and RMSEA <= .10 (common practice).
   results.json ``group_fit``.
 * ``structures`` (only with ``compare: {structures: [...]}``): rival structures per group and
   as configural models, :func:`invariance.structures.compare_structures`. results.json
   ``structures`` (rows) and ``structure_notes`` (equivalences and problems).
 * ``scores`` (only with ``scores: {method, id}``): factor scores from the final accepted
   model (``state["final_fit"]`` when a partial-invariance stage leaves one, else the fit of
-  the supported level), :func:`invariance.scores.factor_scores`; the table goes to
+  the supported level), :func:`invariance.scores.factor_scores`; cases with missing items
+  are scored from their observed items when the fit was full-information (or with
+  ``scores.incomplete: true``); the table goes to
   scores.csv in the run folder, the summary (level, released constraints, determinacy,
   the statement of what the scores compare) to results.json ``scores``.
 """
@@ -55,7 +58,7 @@ def stage_screening(spec: PipelineSpec, state: dict) -> dict:
         rules=opts.get("rules"),
     )
     rec = out["recommendation"]
-    if rec["estimator"] == "robust_ml" and spec.estimator == "ml":
+    if rec["estimator"] == "ml_robust" and spec.estimator == "ml":
         state.setdefault("warnings", []).append("screening: " + rec["notes"][0])
     if rec["ordinal_items"]:
         state.setdefault("warnings", []).append(
@@ -143,6 +146,8 @@ def stage_scores(spec: PipelineSpec, state: dict) -> dict:
         )
         return {"scores": None}
     checked = state["checked"]
+    # a full-information fit used every case with an observed item: score those cases too
+    fiml = any(getattr(g, "has_missing", False) for g in state["stats"].groups)
     frame = checked.frame.copy()
     id_col = opts.get("id")
     if id_col is None:
@@ -164,7 +169,7 @@ def stage_scores(spec: PipelineSpec, state: dict) -> dict:
         group=checked.group,
         method=opts.get("method", "regression"),
         id=id_col,
-        incomplete=bool(opts.get("incomplete", False)),
+        incomplete=bool(opts.get("incomplete", fiml)),
     )
     state["scores_table"] = fs.table
     state.setdefault("warnings", []).extend(f"scores: {n}" for n in fs.notes)
