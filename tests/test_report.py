@@ -296,3 +296,55 @@ def test_latent_means_read_from_estimates_once_scalar_holds(tmp_path):
     out = tmp_path / "failing"
     write_reports(out, failing, est, ctx)
     assert "latent_means" not in section_ids((out / "report.html").read_text(encoding="utf-8"))
+
+
+def test_pipeline_layouts_of_effects_sections(tmp_path):
+    # the layouts the effects stage writes: latent {means: [...ci_low, ci_high]}, scale_bias
+    # records, flagged records with per-group expected changes (epc), reliability per group
+    results, est, ctx = cached_case("bifactor")
+    res = copy.deepcopy(results)
+    del res["bifactor"]
+    res["latent"] = {"level": "scalar", "reference": "Pasteur", "means": [
+        {"factor": "speed", "group": "Grant-White", "difference": -0.25, "se": 0.1, "pvalue": 0.012,
+         "ci_low": -0.45, "ci_high": -0.05}]}
+    res["scale_bias"] = [{"scale": "speed", "items": ["x7", "x8", "x9"], "group": "Grant-White",
+                          "reference": "Pasteur", "bias": 0.123}]
+    res["flagged"] = [{"item": "x7", "parameter": "intercept", "factor": None, "groups": ["Pasteur", "Grant-White"],
+                       "level": "scalar", "test": "score", "statistic": 12.3, "df": 1, "pvalue": 0.00045,
+                       "adjusted_pvalue": 0.004, "epc": [{"group": "Grant-White", "epc": 0.3, "epc_std": 0.25}],
+                       "dmacs": {"Grant-White": 0.31}, "dmacs_max": 0.31}]
+    res["reliability"] = {"level": "metric", "family": "bifactor", "groups": {
+        g: {"overall": {"omega": 0.9, "omega_h": 0.7, "ecv": 0.6, "puc": 0.5},
+            "factors": {"general": {"ecv": 0.6, "H": 0.85, "determinacy": 0.9},
+                        "speed": {"omega_s": 0.8, "omega_hs": 0.3, "H": 0.6}}} for g in ("Pasteur", "Grant-White")}}
+    paths = write_reports(tmp_path, res, est, ctx)
+    html = (tmp_path / "report.html").read_text(encoding="utf-8")
+    ids = section_ids(html)
+    assert {"latent_means", "effects", "flagged", "bifactor"} <= set(ids) and "further" not in ids
+    assert "[\u22120.450, \u22120.050]" in html and "0.123" in html and "p (adjusted)" in html and ".004" in html
+    assert "epc_std" not in html  # the per-group lists stay out of the flagged table
+    bif = html.split('<section id="bifactor">')[1].split("</section>")[0]
+    assert "\u03c9HS" in bif and "FD" in bif and "under the metric model" in bif
+    assert "figures/bifactor-quality.png" in {p.relative_to(tmp_path).as_posix() for p in paths}
+
+
+def test_alignment_section_from_the_alignment_module(tmp_path):
+    # alignment of the configural H&S model by school (invariance.alignment, Asparouhov & Muthen 2014)
+    import json as _json
+    import warnings as _w
+
+    from invariance.alignment import align
+    from invariance import Structure, fit_level
+    from _report_cases import THREE, hs_data
+
+    with _w.catch_warnings():
+        _w.simplefilter("ignore")
+        conf = fit_level(hs_data(), Structure(factors=THREE), "configural", group="school")
+        al = _json.loads(_json.dumps(align(conf, random_starts=1).to_dict(), default=str))
+    results, est, ctx = cached_case("three")
+    write_reports(tmp_path, dict(results, alignment={"enabled": True, **al}), est, ctx)
+    html = (tmp_path / "report.html").read_text(encoding="utf-8")
+    sec = html.split('<section id="alignment">')[1].split("</section>")[0]
+    assert "Aligned factor means and variances" in sec and "approximately invariant" in sec
+    assert f"{al['means']['textual']['Grant-White']:.3f}" in sec
+    assert "alignment-means" in html or "data:image/png" in sec

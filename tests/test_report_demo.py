@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import base64
 import io
+import json
 import os
 import re
 import subprocess
@@ -19,7 +20,10 @@ from PIL import Image
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "pipelines" / "shift_outlook_by_site.yaml"
-SECTIONS = ["summary", "data", "screening", "model", "levels", "changes", "profiles", "further", "cautions", "provenance"]
+CORE = ["summary", "data", "model", "levels", "changes", "profiles", "cautions", "provenance"]
+# results.json key -> the report section that shows it (when the key has content)
+OPTIONAL = {"screening": "screening", "group_fit": "group_fit", "reliability": "bifactor",
+            "scale_bias": "effects", "flagged": "flagged"}
 
 
 @pytest.fixture(scope="module")
@@ -50,7 +54,12 @@ def test_demo_report_has_every_section(demo_run):
     out, _ = demo_run
     html = (out / "report.html").read_text(encoding="utf-8")
     md = (out / "report.md").read_text(encoding="utf-8")
-    assert re.findall(r'<section id="([a-z_]+)">', html) == SECTIONS
+    ids = re.findall(r'<section id="([a-z_]+)">', html)
+    assert [i for i in ids if i in CORE] == CORE
+    results = json.loads((out / "results.json").read_text(encoding="utf-8"))
+    for key, sid in OPTIONAL.items():
+        assert (sid in ids) == bool(results.get(key)), (key, sid)
+    assert "further" not in ids  # every results key of the demo has its own section
     titles = re.findall(r"<h2>\d+\. (.*?)</h2>", html)
     assert re.findall(r"^## \d+\. (.*)$", md, flags=re.M) == titles
     assert "could not be drawn" not in html

@@ -59,8 +59,10 @@ OPTIONAL_KEYS = {
     "missing": ("missing_data", "missing", "missingness"),
     "screening": ("screening", "data_checks", "checks"),
     "effects": ("effects", "dmacs", "effect_sizes"),
-    "bifactor": ("bifactor", "bifactor_quality", "bifactor_indices", "quality"),
-    "latent_means": ("latent_means", "latent_mean_differences", "means"),
+    "bifactor": ("reliability", "bifactor", "bifactor_quality", "bifactor_indices", "quality"),
+    "latent_means": ("latent", "latent_means", "latent_mean_differences", "means"),
+    "scale_bias": ("scale_bias",),
+    "group_fit": ("group_fit",),
     "alignment": ("alignment",),
 }
 

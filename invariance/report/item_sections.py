@@ -7,7 +7,7 @@ from typing import Any, Mapping
 
 from . import inputs as I
 from .formatting import fmt_bounded, fnum, level_label
-from .parts import Figure, Section, Table, Text, records_table
+from .parts import Figure, Section, Table, Text, cell, records_table
 from .plots import dmacs_heatmap, profile_chart
 from .sections import ReportInput
 
@@ -16,8 +16,11 @@ __all__ = ["dmacs_values", "section_effects", "section_flagged", "section_profil
 FLAG_NAMES = {
     "item": "Item", "parameter": "Parameter", "factor": "Factor", "groups": "Groups", "level": "Level",
     "statistic": "Statistic", "lm": "Score test", "score": "Score test", "df": "df", "pvalue": "p",
-    "p": "p", "p_adjusted": "p (adjusted)", "dmacs": "dMACS",
+    "p": "p", "p_adjusted": "p (adjusted)", "adjusted_pvalue": "p (adjusted)", "dmacs": "dMACS",
+    "dmacs_max": "dMACS (largest)", "test": "Test", "lr_statistic": "LR \u03c7\u00b2", "lr_pvalue": "p (LR)",
 }
+#: Flag fields left out of the table (long per-group lists shown elsewhere).
+FLAG_HIDDEN = ("epc",)
 #: Most markers (rows x groups) in one profile figure: larger sets are split so each fits a page.
 MAX_MARKERS = 90
 KIND_TITLES = {"loading": "Loadings", "intercept": "Intercepts", "threshold": "Thresholds"}
@@ -28,7 +31,8 @@ def section_flagged(inp: ReportInput) -> Section | None:
     flagged = [f for f in inp.results.get("flagged") or [] if isinstance(f, Mapping)]
     if not flagged:
         return None
-    tab = records_table(flagged, names=FLAG_NAMES, caption="Parameters flagged as differing across groups")
+    shown = [{k: v for k, v in f.items() if k not in FLAG_HIDDEN} for f in flagged]
+    tab = records_table(shown, names=FLAG_NAMES, caption="Parameters flagged as differing across groups")
     first = ["Item", "Parameter", "Factor", "Groups", "Level"]
     order = [tab.columns.index(c) for c in first if c in tab.columns]
     order += [k for k in range(len(tab.columns)) if k not in order]
@@ -155,8 +159,13 @@ def dmacs_values(inp: ReportInput) -> dict[tuple[str, str], float]:
 def section_effects(inp: ReportInput) -> Section | None:
     """Items-by-groups heat map of dMACS."""
     vals = dmacs_values(inp)
+    bias = _scale_bias_table(inp)
     if not vals:
-        return None
+        if bias is None:
+            return None
+        return Section("effects", "Size of the differences", (bias, Text(
+            "Expected bias of a scale's sum score: the sum of its items' mean differences at equal latent "
+            "values (raw units; zero where every item's intercept and loading are held equal).", style="note")))
     seen_items = {i for i, _ in vals}
     items = list(inp.items) + sorted(seen_items - set(inp.items))
     focal = [g for g in inp.groups if g != inp.reference]
@@ -172,4 +181,22 @@ def section_effects(inp: ReportInput) -> Section | None:
     rows = tuple((i, g, fmt_bounded(v)) for (i, g), v in sorted(vals.items(), key=lambda kv: -kv[1]))
     parts.append(Table(("Item", "Focal group", "dMACS"), rows, caption="dMACS, largest first",
                        numeric=(False, False, True)))
+    if bias is not None:
+        parts.append(bias)
     return Section("effects", "Size of the differences (dMACS)", tuple(parts))
+
+
+def _scale_bias_table(inp: ReportInput) -> Table | None:
+    """Expected sum-score bias per scale and group (results key ``scale_bias``: records with
+    ``scale``, ``items``, ``group``, ``reference``, ``bias``)."""
+    recs = I.first_key(inp.results, I.OPTIONAL_KEYS["scale_bias"])
+    if not isinstance(recs, list) or not recs or not all(isinstance(r, Mapping) for r in recs):
+        return None
+    rows = tuple(
+        (str(r.get("scale", "")), str(len(r.get("items") or [])), str(r.get("group", "")),
+         str(r.get("reference", inp.reference)), cell(r.get("bias")))
+        for r in recs
+    )
+    return Table(("Scale", "Items", "Group", "Reference", "Expected bias"), rows,
+                 caption="Expected bias of each scale's sum score (raw units)",
+                 numeric=(False, True, False, False, True))

@@ -64,10 +64,17 @@ def section_bifactor(inp: ReportInput) -> Section | None:
     obj = I.first_key(inp.results, I.OPTIONAL_KEYS["bifactor"])
     if obj is None:
         return None
+    top = obj if isinstance(obj, Mapping) else {}
     if isinstance(obj, Mapping) and isinstance(obj.get("groups"), (Mapping, list)):
         obj = obj["groups"]
-    recs = _records(obj, "group")
     parts: list = []
+    if isinstance(obj, Mapping) and obj and all(
+        isinstance(v, Mapping) and ("overall" in v or "factors" in v) for v in obj.values()
+    ):
+        parts += _reliability_parts(obj, inp, top)
+        title = "Bifactor quality indices" if top.get("family", inp.structure.get("family")) == "bifactor" else "Reliability"
+        return Section("bifactor", title, tuple(parts))
+    recs = _records(obj, "group")
     if recs:
         png = _bifactor_chart(recs, inp)
         if png is not None:
@@ -110,13 +117,57 @@ def _bifactor_chart(recs: list[dict], inp: ReportInput) -> bytes | None:
     return guide_chart(order, groups, values, guides=guides, ylabel="index")
 
 
+_FACTOR_COLUMNS = ("omega", "omega_s", "omega_hs", "ecv", "ecv_subscale", "H", "determinacy")
+
+
+def _reliability_parts(groups: Mapping[str, Any], inp: ReportInput, top: Mapping[str, Any]) -> list:
+    """The effects stage's layout: per group ``overall`` {omega, omega_h, ecv, puc} and
+    ``factors`` {factor: {omega_s, omega_hs, ecv, ecv_subscale, H, determinacy, omega}}."""
+    parts: list = []
+    level = top.get("level")
+    where = f" under the {level} model" if level else ""
+    general = str(inp.structure.get("general") or "")
+    recs = []
+    for g, v in groups.items():
+        rec = {"group": g, **dict(v.get("overall") or {})}
+        fac = v.get("factors") or {}
+        if general and isinstance(fac.get(general), Mapping) and fac[general].get("H") is not None:
+            rec["H"] = {general: fac[general]["H"]}
+        recs.append(rec)
+    png = _bifactor_chart(recs, inp)
+    if png is not None:
+        parts.append(Figure("bifactor-quality", png, alt="Bifactor quality indices per group",
+                            caption=f"Bifactor quality per group{where}; dashed lines: the common-practice guides "
+                                    "(\u03c9H .80; ECV, PUC and H .70)."))
+    overall = [{"group": g, **dict(v.get("overall") or {})} for g, v in groups.items() if v.get("overall")]
+    if overall:
+        tab = records_table(overall, first="group", caption=f"Whole scale per group{where} (standardized solution)")
+        parts.append(Table(tuple(_pretty(c) for c in tab.columns), tab.rows, caption=tab.caption, numeric=tab.numeric))
+    rows = []
+    seen = [c for v in groups.values() for f in (v.get("factors") or {}).values() if isinstance(f, Mapping) for c in f]
+    cols = [c for c in _FACTOR_COLUMNS if c in seen] + [c for c in dict.fromkeys(seen) if c not in _FACTOR_COLUMNS]
+    for g, v in groups.items():
+        for f, vals in (v.get("factors") or {}).items():
+            if isinstance(vals, Mapping):
+                rows.append((str(g), str(f), *(cell(vals.get(c)) for c in cols)))
+    if rows:
+        names = {"ecv_subscale": "ECV (within factor)", "determinacy": "FD"}
+        parts.append(Table(("Group", "Factor", *(names.get(c, _pretty(c)) for c in cols)), tuple(rows),
+                           caption=f"Each factor per group{where}", numeric=(False, False) + (True,) * len(cols)))
+    parts.append(Text(
+        "Formulas: Rodriguez, Reise & Haviland (2016); H: Hancock & Mueller (2001); FD: factor determinacy, "
+        "Grice (2001). Common practice: ECV and PUC above .70 suggest an essentially unidimensional scale; "
+        "\u03c9H above .80 and H above .70 suggest a well-defined factor.", style="note"))
+    return parts
+
+
 def _interval(rec: Mapping[str, Any]) -> tuple[float | None, float | None, str]:
     for key, label in (("ci95", "95%"), ("ci", "95%"), ("interval", "95%"), ("ci90", "90%")):
         v = rec.get(key)
         if isinstance(v, (list, tuple)) and len(v) == 2:
             return fnum(v[0]), fnum(v[1]), label
-    lo = I.first_key(rec, ("lower", "ci_lower", "lo"))
-    hi = I.first_key(rec, ("upper", "ci_upper", "hi"))
+    lo = I.first_key(rec, ("lower", "ci_lower", "ci_low", "lo"))
+    hi = I.first_key(rec, ("upper", "ci_upper", "ci_high", "hi"))
     if fnum(lo) is not None and fnum(hi) is not None:
         return fnum(lo), fnum(hi), str(rec.get("level_ci", "95%"))
     est, se = fnum(I.first_key(rec, ("estimate", "difference", "value", "d"))), fnum(rec.get("se"))
@@ -126,8 +177,11 @@ def _interval(rec: Mapping[str, Any]) -> tuple[float | None, float | None, str]:
 
 
 def _mean_records(obj: Any, groups: Mapping[str, Any]) -> list[dict]:
-    if isinstance(obj, Mapping) and isinstance(obj.get("differences"), (list, Mapping)):
-        obj = obj["differences"]
+    if isinstance(obj, Mapping):
+        for key in ("differences", "means"):
+            if isinstance(obj.get(key), (list, Mapping)):
+                obj = obj[key]
+                break
     if isinstance(obj, (list, tuple)):
         return [dict(x) for x in obj if isinstance(x, Mapping)]
     out = []
@@ -210,10 +264,65 @@ def section_latent_means(inp: ReportInput) -> Section | None:
     return Section("latent_means", "Latent mean differences", tuple(parts))
 
 
+def _alignment_parts(obj: Mapping[str, Any], inp: ReportInput) -> list:
+    """The alignment stage's layout: ``means``/``variances`` (factor -> group -> value) with
+    ``means_se``/``variances_se``, ``parameters`` (per item parameter: ``invariant`` and
+    ``noninvariant`` groups, ``r2``), ``notes``, ``settings``, ``reference``."""
+    means, var = obj["means"], obj.get("variances") or {}
+    mse, vse = obj.get("means_se") or {}, obj.get("variances_se") or {}
+    ref = str(obj.get("reference") or inp.reference)
+    parts: list = []
+    rows, plot_rows = [], []
+    for f, by in means.items():
+        if not isinstance(by, Mapping):
+            continue
+        for g, m in by.items():
+            se = fnum((mse.get(f) or {}).get(g))
+            v, vs = (var.get(f) or {}).get(g), fnum((vse.get(f) or {}).get(g))
+            rows.append((str(f), str(g), cell(m), "" if not se else cell(se), cell(v), "" if not vs else cell(vs),
+                         "reference" if str(g) == ref else ""))
+            if str(g) != ref and fnum(m) is not None:
+                lo = hi = None
+                if se:
+                    lo, hi = fnum(m) - 1.959964 * se, fnum(m) + 1.959964 * se
+                plot_rows.append((f"{f}: {g}", fnum(m), lo, hi))
+    png = forest_chart(plot_rows, xlabel="aligned mean (reference group 0, variance 1)")
+    if png is not None:
+        parts.append(Figure("alignment-means", png, alt="Aligned factor means with intervals",
+                            caption=f"Aligned factor means with 95% intervals; the reference group ({ref}) has mean 0 "
+                                    "and variance 1."))
+    parts.append(Table(("Factor", "Group", "Mean", "SE", "Variance", "SE", ""), tuple(rows),
+                       caption="Aligned factor means and variances", numeric=(False, False, True, True, True, True, False)))
+    params = [p for p in obj.get("parameters") or [] if isinstance(p, Mapping)]
+    if params:
+        nonin = [p for p in params if p.get("noninvariant")]
+        parts.append(Text(
+            f"{len(params) - len(nonin)} of {len(params)} loadings and intercepts are approximately invariant in every "
+            f"group ({100 * len(nonin) / len(params):.0f}% noninvariant somewhere; common practice treats the aligned "
+            "means as trustworthy below about 25%, Asparouhov & Muth\u00e9n 2014).", style="note"))
+        parts.append(Table(("Factor", "Item", "Parameter", "Invariant in", "Noninvariant in", "R\u00b2"), tuple(
+            (str(p.get("factor", "")), str(p.get("item", "")), str(p.get("parameter", "")),
+             ", ".join(map(str, p.get("invariant") or [])), ", ".join(map(str, p.get("noninvariant") or [])),
+             cell(p.get("r2")))
+            for p in params), caption="Approximate invariance of each parameter",
+            numeric=(False, False, False, False, False, True)))
+    if obj.get("notes"):
+        parts.append(Bullets(tuple(str(n) for n in obj["notes"])))
+    if isinstance(obj.get("settings"), Mapping):
+        parts.append(Table(("Setting", "Value"), tuple((str(k), cell(v)) for k, v in obj["settings"].items()),
+                           caption="Alignment settings"))
+    return parts
+
+
 def section_alignment(inp: ReportInput) -> Section | None:
-    """Alignment results (approximate invariance for many groups), shown as given."""
+    """Alignment results (approximate invariance for many groups)."""
     obj = inp.results.get("alignment")
-    parts = generic_parts(obj, key_name="group")
+    if isinstance(obj, Mapping) and isinstance(obj.get("means"), Mapping):
+        parts = _alignment_parts(obj, inp)
+    elif isinstance(obj, Mapping) and obj.get("error"):
+        parts = [Text(f"Alignment was not run: {obj['error']}.", style="caution")]
+    else:
+        parts = generic_parts(obj, key_name="group")
     if not parts:
         return None
     parts.append(Text("Alignment: Asparouhov & Muth\u00e9n (2014).", style="note"))

@@ -142,7 +142,8 @@ def _flat(d: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
     return out
 
 
-P_KEYS = ("p", "pvalue", "p_value", "p_adjusted", "p_adj", "p_holm", "p_bonferroni")
+P_KEYS = ("p", "pvalue", "p_value", "p_adjusted", "p_adj", "p_holm", "p_bonferroni", "adjusted_pvalue", "lr_pvalue",
+          "pvalue_scaled", "pvalue_normal")
 
 
 def _pcell(col: str, v: Any) -> str:

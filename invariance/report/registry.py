@@ -25,7 +25,7 @@ from .other_sections import (
     section_provenance,
 )
 from .parts import Section, Text
-from .screening_section import section_screening
+from .screening_section import section_group_fit, section_screening
 from .sections import (
     ReportInput,
     section_changes,
@@ -42,6 +42,7 @@ SECTIONS: tuple[tuple[str, Callable[[ReportInput], Section | None]], ...] = (
     ("summary", section_summary),
     ("data", section_data),
     ("screening", section_screening),
+    ("group_fit", section_group_fit),
     ("model", section_model),
     ("levels", section_levels),
     ("changes", section_changes),

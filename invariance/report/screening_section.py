@@ -8,11 +8,11 @@ from __future__ import annotations
 from typing import Any, Mapping
 
 from . import inputs as I
-from .formatting import fmt_p, fnum
+from .formatting import fmt_bounded, fmt_int, fmt_p, fmt_stat, fnum
 from .parts import Bullets, Section, Table, Text, cell, generic_parts
 from .sections import ReportInput
 
-__all__ = ["missing_parts", "section_screening"]
+__all__ = ["missing_parts", "section_group_fit", "section_screening"]
 
 ITEM_COLUMNS = (
     ("item", "Item"), ("n", "n"), ("missing", "Missing"), ("mean", "Mean"), ("sd", "SD"),
@@ -114,3 +114,44 @@ def missing_parts(obj: Any, items: list[str]) -> list:
         parts.append(Table(("Item", *cov), tuple((i, *(_share(c.get(i)) for c in cov.values())) for i in order),
                            caption="Share of each item observed, per group", numeric=(False,) + (True,) * len(cov)))
     return parts
+
+
+def section_group_fit(inp: ReportInput) -> Section | None:
+    """The model fitted in each group alone (results key ``group_fit``: ``rule`` and
+    ``groups``, records with ``group``, ``structure``, ``chi2``, ``df``, ``pvalue``,
+    ``cfi``, ``rmsea`` (``rmsea_lower``/``rmsea_upper``), ``srmr``, ``n``, ``acceptable``,
+    ``reasons``, ``problems``)."""
+    obj = I.first_key(inp.results, I.OPTIONAL_KEYS["group_fit"])
+    recs = obj.get("groups") if isinstance(obj, Mapping) else obj
+    if not isinstance(recs, list) or not recs or not all(isinstance(r, Mapping) for r in recs):
+        parts = generic_parts(obj)
+        return Section("group_fit", "The model in each group", tuple(parts)) if parts else None
+    rows, styles = [], []
+    for r in recs:
+        rm = fmt_bounded(r.get("rmsea"))
+        if fnum(r.get("rmsea_lower")) is not None and fnum(r.get("rmsea_upper")) is not None:
+            rm += f" [{fmt_bounded(r['rmsea_lower'])}, {fmt_bounded(r['rmsea_upper'])}]"
+        ok = r.get("acceptable")
+        why = "; ".join(str(x) for x in (r.get("reasons") or []) + (r.get("problems") or []))
+        rows.append((str(r.get("group", "")), str(r.get("structure", "")), cell(r.get("n")), fmt_stat(r.get("chi2")),
+                     fmt_int(r.get("df")), fmt_p(r.get("pvalue")), fmt_bounded(r.get("cfi")), rm,
+                     fmt_bounded(r.get("srmr")), "" if ok is None else ("yes" if ok else "no"), why))
+        styles.append("" if ok is None else ("ok" if ok else "bad"))
+    parts: list = [Table(
+        ("Group", "Structure", "N", "\u03c7\u00b2", "df", "p", "CFI", "RMSEA [90% CI]", "SRMR", "Acceptable", "Why not"),
+        tuple(rows), caption="The model fitted in each group separately",
+        numeric=(False, False) + (True,) * 7 + (False, False), row_styles=tuple(styles))]
+    rule = obj.get("rule") if isinstance(obj, Mapping) else None
+    if isinstance(rule, Mapping):
+        bits = []
+        if fnum(rule.get("cfi_min")) is not None:
+            bits.append(f"CFI \u2265 {fmt_bounded(rule['cfi_min'])}")
+        if fnum(rule.get("rmsea_max")) is not None:
+            bits.append(f"RMSEA \u2264 {fmt_bounded(rule['rmsea_max'])}")
+        if rule.get("also"):
+            bits.append(str(rule["also"]))
+        text = "Acceptable when " + ", ".join(bits) if bits else "Rule"
+        if rule.get("source"):
+            text += f" ({rule['source']})"
+        parts.append(Text(text + ". The configural model needs the structure to hold in every group.", style="note"))
+    return Section("group_fit", "The model in each group", tuple(parts))
