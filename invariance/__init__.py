@@ -13,6 +13,8 @@ from .errors import (
 )
 from .estimate import fit
 from .model import LEVELS, ModelSpec, Release, Structure, build_level
+from .ordinal import ORDINAL_LEVELS, OrdinalStats, build_ordinal_level, ordinal_stats
+from .ordinal_api import fit_ordinal_level, fit_ordinal_levels
 from .pipeline import PipelineSpec, RunResult, check, load_pipeline, run
 from .results import FitResult
 
@@ -20,6 +22,8 @@ __version__ = "0.1.0"
 
 __all__ = [
     "LEVELS",
+    "ORDINAL_LEVELS",
+    "OrdinalStats",
     "ConvergenceWarning",
     "DataError",
     "EstimationError",
@@ -35,11 +39,15 @@ __all__ = [
     "SpecificationError",
     "Structure",
     "build_level",
+    "build_ordinal_level",
     "check",
     "fit",
     "fit_level",
     "fit_levels",
+    "fit_ordinal_level",
+    "fit_ordinal_levels",
     "load_pipeline",
+    "ordinal_stats",
     "run",
     "sample_stats",
 ]

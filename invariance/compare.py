@@ -90,6 +90,8 @@ PERMITS = {
     "questionnaire may not measure the same thing in every group",
     "configural": "the same factor structure holds in every group; no group comparison of "
     "scores, relations or means is justified",
+    "thresholds": "thresholds are equal (ordered items): the response categories divide the latent "
+    "responses alike in every group; no group comparison of scores, relations or means is justified yet",
     "metric": "loadings are equal: relations (correlations, regressions, covariances) of the "
     "factors can be compared across groups, but not their means",
     "scalar": "loadings and intercepts are equal: latent (factor) means can be compared across groups",

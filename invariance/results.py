@@ -13,24 +13,27 @@ from .model.spec import ALPHA, BETA, LAMBDA, NU, PSI, THETA, ModelSpec
 
 __all__ = ["FitResult", "standardize"]
 
-MATRIX_NAMES = ("lambda", "beta", "psi", "theta", "nu", "alpha")
+MATRIX_NAMES = ("lambda", "beta", "psi", "theta", "nu", "alpha", "tau")
 
 
 def standardize(mats: tuple[np.ndarray, ...]) -> tuple[np.ndarray, ...]:
     """Completely standardized matrices of one group (items and factors to unit variance).
 
+    Ordinal models carry a seventh matrix, the thresholds (p, Kmax - 1), which is
+    divided by the item SDs like the intercepts.
+
     Loadings lambda_ij sd(F_j) / sd(x_i); paths b_ij sd(F_j) / sd(F_i); Psi entries
     divided by the total factor SDs (disturbance variances become the unexplained
     share); Theta by the item SDs; intercepts nu_i / sd(x_i); means alpha_j / sd(F_j).
     """
-    lam, beta, psi, theta, nu, alpha = mats
+    lam, beta, psi, theta, nu, alpha = mats[:6]
     m = beta.shape[0]
     A = np.linalg.inv(np.eye(m) - beta)
     phi = A @ psi @ A.T
     sigma = lam @ phi @ lam.T + theta
     sf = np.sqrt(np.clip(np.diag(phi), 1e-300, None))
     sx = np.sqrt(np.clip(np.diag(sigma), 1e-300, None))
-    return (
+    out = (
         lam * sf[None, :] / sx[:, None],
         beta * sf[None, :] / sf[:, None],
         psi / np.outer(sf, sf),
@@ -38,6 +41,9 @@ def standardize(mats: tuple[np.ndarray, ...]) -> tuple[np.ndarray, ...]:
         nu / sx,
         alpha / sf,
     )
+    if len(mats) > 6:  # ordinal models: thresholds on the latent-response SD scale
+        out = out + (mats[6] / sx[:, None],)
+    return out
 
 
 @dataclass(frozen=True, eq=False)
@@ -115,7 +121,7 @@ class FitResult:
 
     def factor_covariance(self, group: str) -> np.ndarray:
         """Total factor covariance A Psi A' of one group."""
-        lam, beta, psi, *_ = self.matrices[self.group_index(group)]
+        lam, beta, psi = self.matrices[self.group_index(group)][:3]
         A = np.linalg.inv(np.eye(beta.shape[0]) - beta)
         return A @ psi @ A.T
 

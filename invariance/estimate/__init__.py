@@ -1,5 +1,7 @@
 """Estimation: objectives, the optimizer and the :func:`fit` front door."""
 
+from .dwls import DWLSObjective, ordinal_start_values
+from .dwls_robust import dwls_difference, fit_dwls
 from .fiml import FIMLObjective
 from .ml import ESTIMATORS, diagnose, fit
 from .objective import MLObjective
@@ -10,13 +12,17 @@ from .start import start_values
 __all__ = [
     "ESTIMATORS",
     "DifferenceTest",
+    "DWLSObjective",
     "FIMLObjective",
     "MLObjective",
     "STATUS",
     "Outcome",
     "diagnose",
+    "dwls_difference",
+    "fit_dwls",
     "fit",
     "minimize",
+    "ordinal_start_values",
     "robust_difference",
     "scaled_difference",
     "start_values",

@@ -65,6 +65,8 @@ def compile_spec(spec: ModelSpec) -> tuple[GroupLayout, ...]:
         fixed = idx[~spec.free[idx]]
         for k in fixed:
             mat, r, c, v = spec.matrix[k], spec.row[k], spec.col[k], spec.value[k]
+            if mat > ALPHA:  # thresholds (ordinal models) are handled by their own kernels
+                continue
             if mat in (NU, ALPHA):
                 base[mat][r] = v
             else:

@@ -131,7 +131,18 @@ def fit(
     Returns
     -------
     FitResult
+
+    Notes
+    -----
+    Ordinal statistics (:class:`~invariance.ordinal.OrdinalStats`) dispatch to the DWLS
+    estimator, :func:`invariance.estimate.dwls_robust.fit_dwls`.
     """
+    from ..ordinal.stats import OrdinalStats
+
+    if isinstance(stats, OrdinalStats):
+        from .dwls_robust import fit_dwls
+
+        return fit_dwls(spec, stats, start=start, max_iter=max_iter)
     if estimator not in ESTIMATORS:
         raise SpecificationError(
             f"The estimator must be one of {', '.join(ESTIMATORS)}; got {estimator!r}."

@@ -52,6 +52,7 @@ def build_level(
     *,
     reference: str | None = None,
     released: Iterable[Release] = (),
+    fixed_means: Sequence[str] = (),
 ) -> ModelSpec:
     """Build the multi-group model of one invariance level.
 
@@ -67,6 +68,9 @@ def build_level(
         The reference group (variances 1 and means 0 there); the first group by default.
     released
         Constraints released up front (known partial invariance).
+    fixed_means
+        Factors whose means stay 0 in every group (for example the specific factors of
+        a bifactor model, whose means are weakly identified next to the general mean).
 
     Returns
     -------
@@ -141,7 +145,7 @@ def build_level(
         # factor means: only the top of the hierarchy gets a free mean at scalar+
         for f in factors:
             top = not (structure.family == "second_order" and f in structure.factors)
-            if rank >= 2 and not is_ref and top:
+            if rank >= 2 and not is_ref and top and f not in fixed_means:
                 add(g, ALPHA, f_ix[f], 0, True, f"mean:{f}{tag}")
     g_, m_, r_, c_, fr_, lb_, v_ = zip(*rows)
     spec = ModelSpec(

@@ -24,11 +24,14 @@ import numpy as np
 
 from ..errors import SpecificationError
 
-__all__ = ["ModelSpec", "Release", "MATRICES", "PARAMETER_KINDS", "LAMBDA", "BETA", "PSI", "THETA", "NU", "ALPHA"]
+__all__ = ["ModelSpec", "Release", "MATRICES", "PARAMETER_KINDS", "LAMBDA", "BETA", "PSI", "THETA", "NU", "ALPHA", "TAU"]
 
 #: Matrix codes in the entry table.
 LAMBDA, BETA, PSI, THETA, NU, ALPHA = range(6)
-MATRICES = ("lambda", "beta", "psi", "theta", "nu", "alpha")
+#: Thresholds of ordered items (row = item, col = threshold index 0 .. K_i - 2). Only
+#: ordinal models (:mod:`invariance.ordinal.levels`) use it; the continuous kernels skip it.
+TAU = 6
+MATRICES = ("lambda", "beta", "psi", "theta", "nu", "alpha", "tau")
 
 #: Names of the parameter kinds an entry can be (what a reader calls it).
 PARAMETER_KINDS = (
@@ -40,6 +43,7 @@ PARAMETER_KINDS = (
     "residual_cov", # Theta[i, j]
     "intercept",    # nu[i]
     "mean",         # alpha[f]: factor mean or intercept
+    "threshold",    # tau[i, k]: threshold k of an ordered item
 )
 
 
@@ -96,6 +100,10 @@ class ModelSpec:
         Name of the reference group (informational; identification is in the table).
     released
         The :class:`Release` records applied so far.
+    moment_count
+        Number of observed statistics when they are not G p(p+3)/2 covariances and
+        means (ordinal models: thresholds and polychoric correlations); ``None`` for
+        the continuous count.
     """
 
     items: tuple[str, ...]
@@ -111,6 +119,7 @@ class ModelSpec:
     level: str = ""
     reference: str = ""
     released: tuple[Release, ...] = ()
+    moment_count: int | None = None
     _param: np.ndarray = field(init=False, repr=False)
     _labels: tuple[str, ...] = field(init=False, repr=False)
 
@@ -150,7 +159,9 @@ class ModelSpec:
 
     @property
     def n_moments(self) -> int:
-        """Observed moments: G * p(p+3)/2 (covariances and means)."""
+        """Observed moments: G * p(p+3)/2 (covariances and means), or ``moment_count``."""
+        if self.moment_count is not None:
+            return int(self.moment_count)
         p = len(self.items)
         return len(self.groups) * p * (p + 3) // 2
 
@@ -163,7 +174,7 @@ class ModelSpec:
         """Parameter kind of every entry (see :data:`PARAMETER_KINDS`)."""
         diag = self.row == self.col
         # matrix code -> kind, with the symmetric matrices split by diagonal
-        table = np.array(["loading", "path", "covariance", "residual_cov", "intercept", "mean"], dtype=object)
+        table = np.array(["loading", "path", "covariance", "residual_cov", "intercept", "mean", "threshold"], dtype=object)
         out = table[self.matrix]
         out[(self.matrix == PSI) & diag] = "variance"
         out[(self.matrix == THETA) & diag] = "residual"
@@ -175,7 +186,7 @@ class ModelSpec:
         items = np.array(self.items + (None,), dtype=object)
         facs = np.array(self.factors + (None,), dtype=object)
         m, r, c = self.matrix, self.row, self.col
-        item_row = np.isin(m, (LAMBDA, THETA, NU))
+        item_row = np.isin(m, (LAMBDA, THETA, NU, TAU))
         lhs = np.where(item_row, items[np.where(item_row, r, -1)], facs[np.where(item_row, -1, r)])
         rhs = np.full(m.size, None, dtype=object)
         sel = m == LAMBDA
@@ -184,6 +195,8 @@ class ModelSpec:
         rhs[sel] = facs[c[sel]]
         sel = (m == THETA) & (r != c)
         rhs[sel] = items[c[sel]]
+        for k in np.flatnonzero(m == TAU):
+            rhs[k] = f"t{c[k] + 1}"
         return lhs.astype(object), rhs
 
     def group_entries(self, g: int) -> np.ndarray:

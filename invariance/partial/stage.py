@@ -29,6 +29,8 @@ import warnings
 from dataclasses import dataclass
 from typing import Any, Callable, Mapping
 
+import numpy as np
+
 from ..errors import InvarianceWarning, SpecificationError
 from ..results import FitResult
 from .search import CORRECTIONS, RELEASE_MODES, UNTIL, SearchResult, release_search
@@ -261,6 +263,9 @@ def stage_effects(spec, state: dict) -> dict:
     rows = state.get("level_rows", [])
     searches = state.get("searches", [])
     final = _last_supported(rows, fits)
+    if any(f.estimator == "dwls" for f in fits.values()):
+        # ordinal items: the continuous-item effect sizes below do not apply
+        return _ordinal_effects(spec, state, final)
     scalar_ok = final is not None and final.level in ("scalar", "strict")
     out: dict = {"flagged": flagged_items(searches, stats, final=final if scalar_ok else None)}
     source = final if final is not None else fits.get("configural")
@@ -288,4 +293,32 @@ def stage_effects(spec, state: dict) -> dict:
                                   "reason": "structural levels need (partial) scalar invariance"} for s in steps]
     else:
         out["structural"] = []
+    return out
+
+
+def _ordinal_effects(spec, state: dict, final) -> dict:
+    """Effects section for ordinal (DWLS) runs: latent-response bifactor indices of the
+    last supported level; dMACS of flagged items comes with the ordinal search."""
+    from ..ordinal.effects import bifactor_indices_latent
+
+    out: dict = {"flagged": [], "scale_bias": [], "structural": []}
+    out["latent"] = {"level": None, "means": [], "variances": [], "notes": [
+        "latent mean comparisons for ordinal items are reported by the ordinal search only"]}
+    out["reliability"] = None
+    source = final if final is not None else state.get("fits", {}).get("configural")
+    st = spec.structure
+    if source is not None and st.family == "bifactor":
+        groups = {}
+        for g in source.groups:
+            std = source.standardized(g)
+            lam = std["lambda"]
+            f_ix = {f: k for k, f in enumerate(source.spec.factors)}
+            specifics = {f: (f_ix[f], *[source.spec.items.index(i) for i in its]) for f, its in st.factors.items()}
+            try:
+                groups[g] = bifactor_indices_latent(
+                    lam, np.diag(std["theta"]), general=f_ix[st.general], specifics=specifics
+                )
+            except Exception as exc:  # noqa: BLE001 - reported, not fatal
+                groups[g] = {"error": str(exc).splitlines()[0]}
+        out["reliability"] = {"level": source.level, "family": st.family, "scale": "latent response", "groups": groups}
     return out

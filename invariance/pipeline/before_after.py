@@ -18,6 +18,8 @@
 
 from __future__ import annotations
 
+from ..ordinal.stats import OrdinalStats
+
 from ..compare import supported_level
 from ..errors import DataError, SpecificationError
 from ..scores import factor_scores
@@ -69,6 +71,12 @@ def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
     The rule is ``compare.group_fit``, else ``decision.configural_fit``, else CFI >= .90
     and RMSEA <= .10 (common practice).
     """
+    if isinstance(state["stats"], OrdinalStats):
+        # ordinal statistics: per-group fit is part of the configural DWLS model only
+        state.setdefault("warnings", []).append(
+            "group_fit: per-group fit before the configural model is computed for continuous items only"
+        )
+        return {}
     rule = _section(spec, "compare").get("group_fit") or _section(spec, "decision").get("configural_fit") or {}
     gf = group_fit(
         state["stats"],
@@ -88,6 +96,10 @@ def stage_structures(spec: PipelineSpec, state: dict) -> dict:
     fams = _section(spec, "compare").get("structures")
     if not fams:
         return {}
+    if isinstance(state["stats"], OrdinalStats):
+        raise SpecificationError(
+            "compare.structures works on continuous items only; remove it or data.ordinal from the pipeline."
+        )
     st = spec.structure
     try:
         cmp_ = compare_structures(

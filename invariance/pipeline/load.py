@@ -25,6 +25,7 @@ from ..model.levels import LEVELS, build_level
 from ..model.spec import Release
 from ..model.structure import Structure
 from .align_stage import check_alignment_section
+from ..ordinal.levels import ORDINAL_LEVELS, build_ordinal_level
 
 __all__ = ["PipelineSpec", "load_pipeline", "parse_yaml", "schema", "validate_document", "thaw"]
 
@@ -86,6 +87,12 @@ class PipelineSpec:
         Random seed recorded with the run (used by stages that draw random numbers).
     title
         Name of the analysis.
+    ordinal
+        The ordered-categorical items (every model item) or ``None`` for continuous items.
+    merge
+        Ordinal items: item -> tuples of adjacent category values merged into one.
+    fixed_means
+        Factors whose means stay 0 in every group.
     """
 
     document: Mapping[str, Any]
@@ -107,6 +114,9 @@ class PipelineSpec:
     output_folder: pathlib.Path | None
     seed: int | None
     title: str
+    ordinal: tuple[str, ...] | None = None
+    merge: Mapping[str, tuple[tuple[float, ...], ...]] | None = None
+    fixed_means: tuple[str, ...] = ()
 
     def section(self, name: str, default=None):
         """A top-level section of the document (for stages added later)."""
@@ -191,18 +201,53 @@ def _descendants(err):
         yield from _descendants(c)
 
 
-def _levels(levels) -> tuple[str, ...]:
+def _levels(levels, *, ordinal: bool = False) -> tuple[str, ...]:
     levels = tuple(levels)
+    order = ORDINAL_LEVELS if ordinal else LEVELS
     if levels[0] != "configural":
         raise SpecificationError(
             f"levels must start with configural (the baseline every step is compared with); got {levels[0]!r} first."
         )
-    ranks = [LEVELS.index(lv) for lv in levels]
+    if not ordinal and "thresholds" in levels:
+        raise SpecificationError(
+            "The thresholds level is for ordered-categorical items; set data.ordinal or drop the level."
+        )
+    ranks = [order.index(lv) for lv in levels]
     if ranks != sorted(ranks):
         raise SpecificationError(
-            f"levels must be in order {', '.join(LEVELS)}; got {', '.join(levels)}."
+            f"levels must be in order {', '.join(order)}; got {', '.join(levels)}."
         )
     return levels
+
+
+def _ordinal(data: Mapping, structure: Structure, estimator: str | None):
+    """(ordinal items or None, merge mapping or None, estimator) from the data section."""
+    spec = data.get("ordinal")
+    merge = data.get("merge")
+    if spec is None:
+        if merge is not None:
+            raise SpecificationError("data.merge is for ordinal items; set data.ordinal or drop data.merge.")
+        if estimator == "dwls":
+            raise SpecificationError("estimator dwls fits ordered-categorical items; set data.ordinal (all or the items).")
+        return None, None, estimator or "ml"
+    items = structure.items if spec == "all" else tuple(str(i) for i in spec)
+    unknown = [i for i in items if i not in structure.items]
+    if unknown:
+        raise SpecificationError(f"data.ordinal names {unknown[0]!r}, which is not in model.factors; check the spelling.")
+    if set(items) != set(structure.items):
+        rest = [i for i in structure.items if i not in items]
+        raise SpecificationError(
+            f"data.ordinal leaves out {', '.join(rest)}; mixing continuous and ordinal items is not supported: "
+            "list every model item (or write all), or treat all items as continuous."
+        )
+    if estimator not in (None, "dwls"):
+        raise SpecificationError(f"Ordinal items are fitted by estimator dwls, not {estimator}; set estimator: dwls or drop it.")
+    if merge is not None:
+        bad = [k for k in merge if k not in items]
+        if bad:
+            raise SpecificationError(f"data.merge names {bad[0]!r}, which is not an ordinal item; check the spelling.")
+        merge = MappingProxyType({str(k): tuple(tuple(float(x) for x in b) for b in v) for k, v in merge.items()})
+    return tuple(structure.items), merge, "dwls"
 
 
 def _structure(model: Mapping) -> Structure:
@@ -231,7 +276,7 @@ def _structure(model: Mapping) -> Structure:
         raise SpecificationError(f"model: {exc}") from None
 
 
-def _releases(model: Mapping, structure: Structure) -> tuple[Release, ...]:
+def _releases(model: Mapping, structure: Structure, *, ordinal: bool = False) -> tuple[Release, ...]:
     out = []
     for r in model.get("released", ()):
         groups = r.get("groups")
@@ -246,11 +291,27 @@ def _releases(model: Mapping, structure: Structure) -> tuple[Release, ...]:
                 f"model.released names item {rel.item!r}, which is not in model.factors; check the spelling."
             )
         try:
-            build_level(structure, ("_a", "_b"), "strict", released=[Release(rel.parameter, rel.item, rel.factor)])
+            if ordinal:
+                build_ordinal_level(structure, ("_a", "_b"), "strict", [3] * len(structure.items),
+                                    released=[Release(rel.parameter, rel.item, rel.factor)])
+            elif rel.parameter == "threshold":
+                raise SpecificationError("thresholds belong to ordinal items; set data.ordinal or release another parameter")
+            else:
+                build_level(structure, ("_a", "_b"), "strict", released=[Release(rel.parameter, rel.item, rel.factor)])
         except SpecificationError as exc:
             raise SpecificationError(f"model.released: {exc}") from None
         out.append(rel)
     return tuple(out)
+
+
+def _fixed_means(model: Mapping, structure: Structure) -> tuple[str, ...]:
+    names = tuple(str(f) for f in model.get("fixed_means", ()))
+    bad = [f for f in names if f not in structure.factor_names]
+    if bad:
+        raise SpecificationError(
+            f"model.fixed_means names {bad[0]!r}, which is not a factor; use any of {', '.join(structure.factor_names)}."
+        )
+    return names
 
 
 def _missing(data: Mapping):
@@ -270,7 +331,8 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
     structure = _structure(model)
     if data["group"] in structure.items:
         raise SpecificationError(f"data.group {data['group']!r} is also an item in model.factors; use another column.")
-    levels = _levels(doc.get("levels", LEVELS))
+    ordinal, merge, estimator = _ordinal(data, structure, doc.get("estimator"))
+    levels = _levels(doc.get("levels", ORDINAL_LEVELS if ordinal else LEVELS), ordinal=ordinal is not None)
     check_alignment_section(doc, structure)
     dec = doc.get("decision", {})
     rule = make_rule(
@@ -295,14 +357,17 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
         reference=None if ref is None else str(ref),
         missing=_missing(data),
         structure=structure,
-        released=_releases(model, structure),
-        estimator=doc.get("estimator", "ml"),
+        released=_releases(model, structure, ordinal=ordinal is not None),
+        estimator=estimator,
         levels=levels,
         rule=rule,
         stop_at_failure=bool(dec.get("stop_at_failure", True)),
         output_folder=None if out is None else (base_dir / out).resolve(),
         seed=doc.get("seed"),
         title=doc.get("title") or (source.stem if source is not None else "invariance analysis"),
+        ordinal=ordinal,
+        merge=merge,
+        fixed_means=_fixed_means(model, structure),
     )
 
 

@@ -209,6 +209,7 @@ def check(pipeline) -> dict:
     dict
         ``groups`` (group -> cases used), ``rows``, ``missing`` (group -> item -> count),
         ``cases_used`` (how incomplete rows are handled), ``reference_group``, ``items``
+        ``categories`` (ordinal pipelines: item -> category labels; ``None`` otherwise)
         and ``warnings``.
     """
     spec = load_pipeline(pipeline)
@@ -227,6 +228,7 @@ def check(pipeline) -> dict:
         "levels": list(spec.levels),
         "family": spec.structure.family,
         "free_parameters": results["free_parameters"],
+        "categories": results.get("ordinal", {}).get("categories"),
         "warnings": results["warnings"],
     }
 

@@ -19,16 +19,21 @@ import functools
 import warnings
 from typing import Callable
 
+import numpy as np
+
 from ..compare import PERMITS, judge_configural, judge_step, level_delta, supported_level
 from ..data.checks import check_data
 from ..data.moments import sample_stats
 from ..data.read import apply_missing, file_sha256, read_table
 from ..errors import DataError, InvarianceWarning, SpecificationError
+from ..estimate.dwls_robust import dwls_difference
 from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
 from ..partial.stage import stage_effects
 from .before_after import stage_group_fit, stage_scores, stage_screening, stage_structures
 from .align_stage import stage_alignment
+from ..ordinal.levels import build_ordinal_level
+from ..ordinal.stats import ordinal_stats
 from .load import PipelineSpec, thaw
 from . import robust_stage as _rs
 
@@ -41,6 +46,7 @@ Stage = Callable[[PipelineSpec, dict], dict]
 FITTERS: dict[str, Callable] = {
     "ml": ml_fit,
     "ml_robust": functools.partial(ml_fit, estimator="ml_robust"),
+    "dwls": ml_fit,  # ordinal statistics dispatch to the DWLS estimator
 }
 
 #: Fit statistics copied into each level of results.json.
@@ -91,6 +97,23 @@ def stage_data(spec: PipelineSpec, state: dict) -> dict:
 def stage_stats(spec: PipelineSpec, state: dict) -> dict:
     """Per-group statistics: complete cases, or every case with an observed item (FIML)."""
     checked = state["checked"]
+    if spec.ordinal is not None:
+        # thresholds, polychoric correlations and their ACOV per group (METHODS section 7)
+        merge = None if spec.merge is None else {k: [list(b) for b in v] for k, v in spec.merge.items()}
+        stats = ordinal_stats(checked.frame, checked.items, checked.group, groups=checked.groups, merge=merge)
+        state["stats"] = stats
+        return {
+            "groups": {g.name: int(g.n) for g in stats.groups},
+            "n_total": int(stats.n_total),
+            "ordinal": {
+                "categories": {m.item: list(m.labels) for m in stats.categories},
+                "statistics": "thresholds and polychoric correlations per group (two-step pairwise ML), "
+                "asymptotic covariance from casewise influence values",
+                "reported": "chi2: mean-and-variance adjusted DWLS statistic (Asparouhov & Muthen 2010); "
+                "cfi, tli, rmsea: robust versions from T - tr(UV) (Brosseau-Liard, Savalei & Li 2012); "
+                "delta chi2: Satorra (2000) difference, scale-shifted; unadjusted values under 'dwls'",
+            },
+        }
     method = _rs.stats_method(spec, checked)
     stats = sample_stats(checked.frame, checked.items, checked.group, groups=checked.groups, missing=method)
     state["stats"] = stats
@@ -106,10 +129,19 @@ def stage_levels(spec: PipelineSpec, state: dict) -> dict:
     st = spec.structure
     groups = state["stats"].names
     try:
-        models = {
-            lv: build_level(st, groups, lv, reference=state["reference"], released=spec.released)
-            for lv in spec.levels
-        }
+        if spec.ordinal is not None:
+            K = state["stats"].n_categories
+            models = {
+                lv: build_ordinal_level(st, groups, lv, K, reference=state["reference"], released=spec.released,
+                                        fixed_means=spec.fixed_means)
+                for lv in spec.levels
+            }
+        else:
+            models = {
+                lv: build_level(st, groups, lv, reference=state["reference"], released=spec.released,
+                                fixed_means=spec.fixed_means)
+                for lv in spec.levels
+            }
     except SpecificationError as exc:
         raise SpecificationError(f"model: {exc}") from None
     state["models"] = models
@@ -122,6 +154,7 @@ def stage_levels(spec: PipelineSpec, state: dict) -> dict:
             "paths": [list(p) for p in st.regressions],
             "residual_covariances": [list(p) for p in st.residual_covariances],
             "released": [r.to_dict() for r in spec.released],
+            "fixed_means": list(spec.fixed_means),
         },
         "free_parameters": {lv: int(m.n_params) for lv, m in models.items()},
     }
@@ -147,9 +180,53 @@ def _level_row(level: str, res, released) -> dict:
     for k in FIT_KEYS:
         row[k] = fs.get(k)
     row.update(_rs.robust_level_fields(res))
+    if res.estimator == "dwls":
+        _dwls_row(row, res)
     row["problems"] = list(res.problems)
     row["released"] = [r.to_dict() for r in released]
     return row
+
+
+def _num(v):
+    return None if v is None or not np.isfinite(v) else float(v)
+
+
+def _dwls_row(row: dict, res) -> None:
+    """DWLS rows report the robust statistics (invariance.estimate.dwls_robust): chi2 is
+    the mean-and-variance adjusted statistic, cfi/tli/rmsea the robust indices; the
+    unadjusted DWLS value and the scaled indices are kept under ``dwls``."""
+    rob = res.extra["robust"]
+    row["dwls"] = {
+        "chi2_unadjusted": row["chi2"],
+        "pvalue_unadjusted": row["pvalue"],
+        "chi2_mean_scaled": _num(rob["chi2_mean_scaled"]),
+        "pvalue_mean_scaled": _num(rob["pvalue_mean_scaled"]),
+        "scaling_factor": _num(rob["scaling_factor"]),
+        "scale": _num(rob["scale"]),
+        "shift": _num(rob["shift"]),
+        "cfi_scaled": _num(rob["cfi_scaled"]),
+        "tli_scaled": _num(rob["tli_scaled"]),
+        "rmsea_scaled": _num(rob["rmsea_scaled"]),
+    }
+    row.update({
+        "chi2": _num(rob["chi2_scaled_shifted"]),
+        "pvalue": _num(rob["pvalue_scaled_shifted"]),
+        "cfi": _num(rob["cfi_robust"]),
+        "tli": _num(rob["tli_robust"]),
+        "rmsea": _num(rob["rmsea_robust"]),
+        "rmsea_ci90": [_num(v) for v in rob["rmsea_robust_ci90"]],
+    })
+
+
+def _dwls_delta(delta: dict, res, base, stats) -> dict:
+    """Replace the chi-square difference by the robust one (Satorra 2000, scale-shifted)."""
+    d = dwls_difference(res, base, stats)
+    out = dict(delta)
+    out["chi2_unadjusted"] = d["delta_chi2"]
+    out["chi2"] = _num(d["chi2"])
+    out["df"] = int(d["delta_df"])
+    out["pvalue"] = _num(d["pvalue"]) if d["delta_df"] > 0 else None
+    return out
 
 
 def _not_tested(level: str, why: str) -> dict:
@@ -206,7 +283,9 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
             row.update({"delta": None, "compared_with": None})
         else:
             base_level, base_row = accepted
-            if robust:
+            if res.estimator == "dwls":
+                delta = _dwls_delta(level_delta(row, base_row), res, fits[base_level], stats)
+            elif robust:
                 # decisions on the scaled difference and the robust indices
                 delta = level_delta(_rs.decision_view(row), _rs.decision_view(base_row))
                 delta = _rs.robust_delta(
@@ -214,7 +293,8 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
                 )
             else:
                 delta = level_delta(row, base_row)
-            verdict = judge_step(delta, lv, rule, converged=res.converged)
+            # the thresholds step is judged with the location (intercept-step) cutoffs
+            verdict = judge_step(delta, "scalar" if lv == "thresholds" else lv, rule, converged=res.converged)
             improper = [p for p in res.problems if not p.startswith("not converged")]
             if improper and res.converged:
                 verdict["reason"] += "; caution, improper solution: " + "; ".join(improper)
