@@ -150,3 +150,28 @@ def test_existing_cluster_by_scheduler_address():
         assert res.backend == f"Dask scheduler {cluster.scheduler_address}"
     ser = run_batch(_tasks(2), seed=11, workers=0, quiet=True)
     assert res.values == ser.values
+
+
+def test_dask_executor_runs_the_lr_verification_refits():
+    # the partial search's likelihood-ratio refits (issue 8: "on the same executor"):
+    # a Dask executor gives the same search as the plain in-process map
+    from invariance import build_level, fit
+    from invariance.batch import DaskExecutor, Shift, simulate_groups
+    from invariance.data.moments import stats_from_arrays
+    from invariance.partial import release_search
+    from scipy import stats as st
+
+    pop = _population().shifted(Shift("intercept", "b", 0.5))
+    data = simulate_groups(pop, (400, 400), seed=5)
+    stats = stats_from_arrays(data, pop.groups, STRUCT.items)
+    metric = fit(build_level(STRUCT, stats.names, "metric"), stats)
+    scalar = fit(build_level(STRUCT, stats.names, "scalar"), stats)
+    judge = lambda x: st.chi2.sf(x.fit.chi2 - metric.fit.chi2, x.spec.df - metric.spec.df) > 0.05
+    plain = release_search(scalar, stats, judge, verify=True)
+    with DaskExecutor(workers=2) as ex:
+        on_dask = release_search(scalar, stats, judge, verify=True, executor=ex)
+    assert [(s.item, s.parameter) for s in plain.releases] == [("b", "intercept")]
+    assert [(s.item, s.parameter, s.lr_statistic) for s in on_dask.releases] == \
+        [(s.item, s.parameter, s.lr_statistic) for s in plain.releases]
+    with pytest.raises(SpecificationError, match="with block"):
+        DaskExecutor().map(abs, [1])

@@ -7,12 +7,14 @@
 """
 
 from .runner import BatchResult, Task, TaskOutcome, highest_level, run_batch, task_seed
+from .executor import DaskExecutor
 from .population import Population, Shift, simulate_groups
 from .simulate import PlanResult, plan, replicate
 from .tasks import pipeline_task
 
 __all__ = [
     "BatchResult",
+    "DaskExecutor",
     "PlanResult",
     "Population",
     "Shift",
