@@ -72,9 +72,9 @@ def test_ordinal_pipeline_runs_the_wu_estabrook_sequence(tmp_path):
     assert d["supported_level"] == "metric"
 
 
-def test_mixed_items_and_wrong_estimator_rejected(tmp_path):
-    with pytest.raises(SpecificationError, match="leaves out"):
-        load_pipeline(_doc(data={"ordinal": ITEMS[:4]}), base_dir=tmp_path)
+def test_wrong_ordinal_settings_rejected(tmp_path):
+    with pytest.raises(SpecificationError, match="not in model.factors"):
+        load_pipeline(_doc(data={"ordinal": ["q1", "zz"]}), base_dir=tmp_path)
     with pytest.raises(SpecificationError, match="estimator dwls"):
         load_pipeline(_doc(estimator="ml"), base_dir=tmp_path)
     doc = _doc()

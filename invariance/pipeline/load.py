@@ -87,7 +87,8 @@ class PipelineSpec:
     title
         Name of the analysis.
     ordinal
-        The ordered-categorical items (every model item) or ``None`` for continuous items.
+        The ordered-categorical items (model order; the other items are continuous) or
+        ``None`` when every item is continuous.
     merge
         Ordinal items: item -> tuples of adjacent category values merged into one.
     fixed_means
@@ -245,12 +246,7 @@ def _ordinal(data: Mapping, structure: Structure, estimator: str | None):
     unknown = [i for i in items if i not in structure.items]
     if unknown:
         raise SpecificationError(f"data.ordinal names {unknown[0]!r}, which is not in model.factors; check the spelling.")
-    if set(items) != set(structure.items):
-        rest = [i for i in structure.items if i not in items]
-        raise SpecificationError(
-            f"data.ordinal leaves out {', '.join(rest)}; mixing continuous and ordinal items is not supported: "
-            "list every model item (or write all), or treat all items as continuous."
-        )
+
     if estimator not in (None, "dwls"):
         raise SpecificationError(f"Ordinal items are fitted by estimator dwls, not {estimator}; set estimator: dwls or drop it.")
     if merge is not None:
@@ -258,7 +254,8 @@ def _ordinal(data: Mapping, structure: Structure, estimator: str | None):
         if bad:
             raise SpecificationError(f"data.merge names {bad[0]!r}, which is not an ordinal item; check the spelling.")
         merge = MappingProxyType({str(k): tuple(tuple(float(x) for x in b) for b in v) for k, v in merge.items()})
-    return tuple(structure.items), merge, "dwls"
+    # model order; the items not listed are continuous (polyserial / Pearson correlations)
+    return tuple(i for i in structure.items if i in items), merge, "dwls"
 
 
 def _structure(model: Mapping) -> Structure:

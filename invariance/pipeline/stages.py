@@ -78,14 +78,18 @@ def stage_stats(spec: PipelineSpec, state: dict) -> dict:
     if spec.ordinal is not None:
         # thresholds, polychoric correlations and their ACOV per group (METHODS section 7)
         merge = None if spec.merge is None else {k: [list(b) for b in v] for k, v in spec.merge.items()}
-        stats = ordinal_stats(checked.frame, checked.items, checked.group, groups=checked.groups, merge=merge)
+        continuous = [i for i in checked.items if i not in spec.ordinal]
+        stats = ordinal_stats(checked.frame, checked.items, checked.group, groups=checked.groups, merge=merge,
+                              continuous=continuous)
         state["stats"] = stats
         return {
             "groups": {g.name: int(g.n) for g in stats.groups},
             "n_total": int(stats.n_total),
             "ordinal": {
-                "categories": {m.item: list(m.labels) for m in stats.categories},
-                "statistics": "thresholds and polychoric correlations per group (two-step pairwise ML), "
+                "categories": {m.item: list(m.labels) for m in stats.categories if m is not None},
+                "continuous_items": [i for i in checked.items if i not in spec.ordinal],
+                "statistics": "thresholds and polychoric correlations per group (two-step pairwise ML); "
+                "continuous items: means, variances, Pearson and two-step polyserial correlations; "
                 "asymptotic covariance from casewise influence values",
                 "reported": "chi2: mean-and-variance adjusted DWLS statistic (Asparouhov & Muthen 2010); "
                 "cfi, tli, rmsea: robust versions from T - tr(UV) (Brosseau-Liard, Savalei & Li 2012); "
