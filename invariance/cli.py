@@ -1,4 +1,4 @@
-"""The command line: ``invariance run | check | new | demo``.
+"""The command line: ``invariance run | check | new | demo | batch | plan``.
 
 Exit codes: 0 the command ran (whatever the invariance verdict), 2 bad input (one line
 on stderr, no traceback), 1 internal error.
@@ -7,7 +7,6 @@ on stderr, no traceback), 1 internal error.
 from __future__ import annotations
 
 import argparse
-import pathlib
 import sys
 import warnings
 
@@ -27,6 +26,9 @@ class _Usage(Exception):
 
 def build_parser() -> argparse.ArgumentParser:
     p = _Parser(prog="invariance", description="Measurement invariance testing from one pipeline file.")
+    from . import __version__
+
+    p.add_argument("--version", action="version", version=f"invariance {__version__}")
     sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     r = sub.add_parser("run", help="fit the levels of a pipeline, decide, write the outputs")
     r.add_argument("pipeline", help="pipeline YAML file")
@@ -47,6 +49,9 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--out", default="invariance-demo", help="folder to write into (default: invariance-demo)")
     d.add_argument("--seed", type=int, default=20261201, help="random seed")
     d.add_argument("--n-per-site", type=int, default=400, help="respondents per site")
+    from .batch.commands import add_commands
+
+    add_commands(sub)  # batch, plan
     return p
 
 
@@ -63,12 +68,14 @@ def _cmd_check(args) -> int:
     info = check(args.pipeline)
     print(f"Pipeline {info['pipeline']}: valid. Data {info['data_file']}: {len(info['items'])} items, "
           f"group column {info['group_column']!r}, reference group {info['reference_group']}, model {info['family']}.")
-    print(f"Levels to fit: {', '.join(info['levels'])}.")
-    print(f"{'group':<16}{'rows':>7}{'complete':>10}  missing values by item")
+    print("Levels to fit: " + ", ".join(f"{lv} ({q} free parameters)" for lv, q in info["free_parameters"].items()) + ".")
+    print(f"{'group':<16}{'rows':>7}{'used':>10}  missing values by item")
     for g, rows in info["rows"].items():
         miss = {k: v for k, v in info["missing"][g].items() if v}
         text = ", ".join(f"{k} {v}" for k, v in miss.items()) or "none"
         print(f"{g:<16}{rows:>7}{info['groups'][g]:>10}  {text}")
+    if info.get("cases_used"):
+        print(f"Cases used: {info['cases_used']}.")
     for w in info["warnings"]:
         print(f"note: {w}")
     return 0
@@ -95,7 +102,11 @@ def _cmd_demo(args) -> int:
     return 0
 
 
-COMMANDS = {"run": _cmd_run, "check": _cmd_check, "new": _cmd_new, "demo": _cmd_demo}
+def _cmd_many(args) -> int:
+    return args.handler(args)
+
+
+COMMANDS = {"run": _cmd_run, "check": _cmd_check, "new": _cmd_new, "demo": _cmd_demo, "batch": _cmd_many, "plan": _cmd_many}
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -116,6 +127,10 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     except FileNotFoundError as exc:
         print(f"error: file not found: {exc.filename}; check the path", file=sys.stderr)
+        return 2
+    except OSError as exc:  # unreadable input, unwritable output folder
+        where = f": {exc.filename}" if getattr(exc, "filename", None) else ""
+        print(f"error: {exc.strerror or exc}{where}; check the path and its permissions", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("error: interrupted", file=sys.stderr)

@@ -231,8 +231,9 @@ def _statement(level: str, released: Sequence[dict], method: str) -> str:
         )
     if method == "regression":
         s += (
-            " Regression scores are shrunk towards each group's mean by the group's own "
-            "determinacy; for comparing score means across groups, Bartlett scores are unbiased."
+            " Regression scores are shrunk towards each group's mean by that group's own "
+            "determinacy; Bartlett scores are conditionally unbiased and suit comparisons of "
+            "score levels where the level permits them."
         )
     return s
 

@@ -28,7 +28,7 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass, field
-from typing import Mapping, Sequence
+from typing import Callable, Mapping, Sequence
 
 import numpy as np
 
@@ -85,6 +85,11 @@ def build_structure(
         return Structure(factors={name: tuple(items)}, family="single", residual_covariances=rc)
     if family == "correlated":
         return Structure(factors=factors, family="correlated", residual_covariances=rc)
+    if family == "bifactor" and len(factors) < 2:
+        raise SpecificationError(
+            "A bifactor structure over one specific factor is not identified (general and specific "
+            "factor load on the same items); give at least two specific factors or compare 'single' instead."
+        )
     return Structure(factors=factors, family=family, general=gen, residual_covariances=rc)
 
 
@@ -117,13 +122,14 @@ def equivalences(structures: Mapping[str, Structure]) -> list[dict]:
     return out
 
 
-def _quiet_fit(structure: Structure, stats: SampleStats) -> tuple[FitResult | None, list[str]]:
+def _quiet_fit(structure: Structure, stats: SampleStats, fitter: Callable | None = None) -> tuple[FitResult | None, list[str]]:
     """Configural fit with warnings collected instead of emitted."""
+    fitter = fit if fitter is None else fitter
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
             spec = build_level(structure, stats.names, "configural")
-            res = fit(spec, stats)
+            res = fitter(spec, stats)
         except (EstimationError, np.linalg.LinAlgError) as exc:
             return None, [str(exc)]
     problems = list(res.problems)
@@ -231,6 +237,7 @@ def compare_structures(
     general: str | None = None,
     residual_covariances: Sequence[tuple[str, str]] = (),
     per_group: bool = True,
+    fitter: Callable | None = None,
 ) -> StructureComparison:
     """Fit rival structures from one set of factors and items.
 
@@ -251,6 +258,9 @@ def compare_structures(
         Correlated residuals added to every structure.
     per_group
         Also fit each structure in each group separately (several groups only).
+    fitter
+        Estimation function ``(ModelSpec, SampleStats) -> FitResult``; default ML
+        (:func:`invariance.estimate.fit`).
 
     Returns
     -------
@@ -273,10 +283,10 @@ def compare_structures(
         st = built[s]
         if multi and per_group:
             for g in names:
-                res, probs = _quiet_fit(st, stats.subset([g]))
+                res, probs = _quiet_fit(st, stats.subset([g]), fitter)
                 results[(s, g)] = res
                 rows.append(_row(s, g, res, probs))
-        res, probs = _quiet_fit(st, stats)
+        res, probs = _quiet_fit(st, stats, fitter)
         results[(s, "all")] = res
         rows.append(_row(s, "all", res, probs))
     _mark_best(rows)
@@ -359,13 +369,15 @@ def group_fit(
     cfi_min: float = 0.90,
     rmsea_max: float = 0.10,
     warn: bool = True,
+    fitter: Callable | None = None,
 ) -> GroupFit:
     """Fit ``structure`` in every group separately and judge each fit.
 
     A group fits acceptably when its solution converged, nothing is improper, CFI is
     at least ``cfi_min`` and RMSEA at most ``rmsea_max`` (defaults .90 and .10, common
     practice). Each failing group gets an :class:`~invariance.errors.InvarianceWarning`
-    naming it, unless ``warn`` is false.
+    naming it, unless ``warn`` is false. ``fitter`` is the estimation function
+    ``(ModelSpec, SampleStats) -> FitResult`` (default ML).
     """
     for name, v in (("cfi_min", cfi_min), ("rmsea_max", rmsea_max)):
         if not (isinstance(v, (int, float)) and 0 <= v <= 1):
@@ -373,7 +385,7 @@ def group_fit(
     stats = _stats_for(data, structure.items, group)
     rows, results, messages = [], {}, []
     for g in stats.names:
-        res, probs = _quiet_fit(structure, stats.subset([g]))
+        res, probs = _quiet_fit(structure, stats.subset([g]), fitter)
         results[g] = res
         row = _row(structure.family, g, res, probs)
         for c in CRITERIA:

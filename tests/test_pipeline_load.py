@@ -69,7 +69,7 @@ def test_paths_relative_to_pipeline_file(tmp_path, hs_frame):
 @pytest.mark.parametrize(
     "edit, message",
     [
-        (lambda d: d.update(colour="red"), "Unknown key 'colour' in the pipeline; allowed keys: data, decision"),
+        (lambda d: d.update(colour="red"), "Unknown key 'colour' in the pipeline; allowed keys: alignment, compare, data, decision"),
         (lambda d: d["data"].update(grp="x"), "Unknown key 'grp' in section 'data'; allowed keys: format, group"),
         (lambda d: d.update(decision={"cutoffs": {"cfi": 0.01, "gfi": 0.01}}), "Unknown key 'gfi'"),
         (lambda d: d.update(decision={"cutoffs": {"srmr": {"weak": 0.03}}}), "Unknown key 'weak'"),

@@ -37,6 +37,26 @@ def test_levels_reproduce_check_values(hs_all_levels):
     assert metric["delta"]["df"] == 6
     assert metric["delta"]["cfi"] == pytest.approx(metric["cfi"] - d["levels"][0]["cfi"])
     assert scalar["delta"]["chi2"] == pytest.approx(164.103 - 124.044, abs=3e-3)
+    # Cheung & Rensvold (2002) / Chen (2007): the scalar dCFI (about -0.04) is far past -0.01
+    assert [lv["decision"] for lv in d["levels"]] == ["holds", "holds", "fails", "fails"]
+    # with stop_at_failure false, strict is compared with the last accepted level (metric)
+    strict = d["levels"][3]
+    assert strict["compared_with"] == "metric"
+    assert strict["delta"]["df"] == 69 - 54
+    assert strict["delta"]["chi2"] == pytest.approx(181.511 - 124.044, abs=3e-3)
+    assert d["supported_level"] == "metric"
+
+
+def test_group_order_and_reference_do_not_change_fit(hs_dir, hs_all_levels):
+    # property check (STYLE 7): the chi-square of each level does not depend on group order
+    _, res = hs_all_levels
+    doc = hs_doc(str(hs_dir / "hs.csv"), levels=["configural", "metric", "scalar"])
+    doc["data"]["groups"] = ["Pasteur", "Grant-White"]
+    doc["data"]["reference"] = "Pasteur"
+    d = invariance.run(doc, quiet=True).to_dict()
+    assert d["reference_group"] == "Pasteur" and list(d["groups"]) == ["Pasteur", "Grant-White"]
+    for a, b in zip(d["levels"], res.to_dict()["levels"]):
+        assert a["chi2"] == pytest.approx(b["chi2"], rel=1e-6)
 
 
 def test_results_json_has_every_field(hs_all_levels):
@@ -64,7 +84,10 @@ def test_output_folder_files(hs_all_levels):
     path, res = hs_all_levels
     out = path.parent / "out"
     assert res.out_dir == out.resolve()
-    assert sorted(p.name for p in out.iterdir()) == ["estimates.csv", "levels.csv", "pipeline.yaml", "report.md", "results.json"]
+    assert sorted(p.name for p in out.iterdir()) == [
+        "estimates.csv", "figures", "levels.csv", "pipeline.yaml", "report.html", "report.md", "results.json",
+        "table_levels.csv", "table_levels.md", "table_levels.tex",
+    ]
     table = pd.read_csv(out / "levels.csv")
     assert table["level"].tolist() == ["configural", "metric", "scalar", "strict"]
     est = pd.read_csv(out / "estimates.csv")
@@ -143,4 +166,76 @@ def test_check_fits_nothing(hs_dir):
 
 def test_stages_are_extensible():
     names = [n for n, _ in runner.STAGES]
-    assert names == ["data", "stats", "levels", "fits", "summary"]
+    assert names == ["data", "screening", "stats", "group_fit", "structures", "levels", "fits", "effects", "alignment", "summary", "scores"]
+
+
+def test_existing_foreign_folder_is_never_replaced(hs_dir):
+    from invariance.errors import SpecificationError
+
+    keep = hs_dir / "mine"
+    keep.mkdir()
+    (keep / "thesis.tex").write_text("precious")
+    doc = hs_doc(str(hs_dir / "hs.csv"), levels=["configural"])
+    with pytest.raises(SpecificationError, match="not the output of an earlier run"):
+        invariance.run(doc, out=keep, quiet=True)
+    assert (keep / "thesis.tex").read_text() == "precious"
+    # an earlier run's folder is replaced
+    first = invariance.run(doc, out=hs_dir / "again", quiet=True)
+    second = invariance.run(doc, out=hs_dir / "again", quiet=True)
+    assert first.out_dir == second.out_dir and (second.out_dir / "results.json").is_file()
+
+
+def test_spss_without_extra_gives_clear_error(tmp_path, monkeypatch):
+    import builtins
+
+    from invariance.data import read_table
+    from invariance.errors import DataError
+
+    real = builtins.__import__
+
+    def fake(name, *a, **k):
+        if name == "pyreadstat":
+            raise ImportError("no pyreadstat")
+        return real(name, *a, **k)
+
+    (tmp_path / "x.sav").write_bytes(b"not really")
+    monkeypatch.setattr(builtins, "__import__", fake)
+    with pytest.raises(DataError, match=r"optional extra 'spss'"):
+        read_table(tmp_path / "x.sav")
+
+
+def test_unconverged_configural_is_not_called_noninvariance(hs_dir, monkeypatch):
+    from invariance.pipeline import stages
+
+    real = stages.FITTERS["ml"]
+
+    def no_convergence(model, stats):
+        import dataclasses
+
+        res = real(model, stats)
+        msg = "iteration limit reached before convergence"
+        return dataclasses.replace(res, converged=False, status=msg, problems=(f"not converged: {msg}",))
+
+    monkeypatch.setitem(stages.FITTERS, "ml", no_convergence)
+    d = invariance.run(hs_doc(str(hs_dir / "hs.csv")), quiet=True).to_dict()
+    assert d["levels"][0]["converged"] is False
+    assert d["levels"][0]["decision"] == "fails"
+    assert [lv["decision"] for lv in d["levels"][1:]] == ["not_tested"] * 3
+    assert d["supported_level"] is None
+    assert "did not converge" in d["verdict"]
+
+
+@pytest.mark.parametrize(
+    "extra, df",
+    [
+        ({"general": "g", "family": "second_order"}, 24),  # 3 first-order factors: same fit as correlated
+        ({"residual_covariances": [["x7", "x8"]]}, 23),
+    ],
+)
+def test_crosscheck_other_structures(hs_dir, extra, df):
+    doc = hs_doc(str(hs_dir / "hs.csv"), levels=["configural"])
+    doc["model"].update(extra)
+    d = invariance.run(doc, quiet=True, crosscheck=True).to_dict()
+    for r in d["crosscheck"]["groups"]:
+        assert r["df"] == df
+        assert r["agreement"] == "agree"  # semopy, an independent reference

@@ -181,3 +181,33 @@ def test_bifactor_scores_unbiased_and_determinacy():
     r = score_cases(mats, x, method="regression")
     for f in range(m):
         assert np.corrcoef(r[:, f], eta[:, f])[0, 1] == pytest.approx(rho[f], abs=0.015)
+
+
+def test_regression_scores_against_semopy():
+    # semopy 2.3 Model.predict_factors (MAP: (L'T^-1 L + Phi^-1)^-1 L'T^-1 x, which is the
+    # regression method by the Woodbury identity). semopy fixes first loadings at 1, so the
+    # scores differ by a scale per factor: compare by correlation.
+    import semopy
+
+    hs = semopy.examples.holzinger39.get_data()
+    m = semopy.Model("visual =~ x1 + x2 + x3\ntextual =~ x4 + x5 + x6\nspeed =~ x7 + x8 + x9")
+    m.fit(hs)
+    ref = m.predict_factors(hs)
+    st = Structure(factors={"visual": ("x1", "x2", "x3"), "textual": ("x4", "x5", "x6"), "speed": ("x7", "x8", "x9")})
+    mine = factor_scores(fit_level(hs, st), hs, method="regression").table
+    for f in ("visual", "textual", "speed"):
+        assert np.corrcoef(mine[f], ref[f])[0, 1] > 0.9999
+    bart = factor_scores(fit_level(hs, st), hs, method="bartlett").table
+    assert np.corrcoef(bart["visual"], ref["visual"])[0, 1] < 0.999  # a different method, not a copy
+
+
+def test_woodbury_form_of_regression_weights():
+    # Phi L' Sigma^-1 = (L' Theta^-1 L + Phi^-1)^-1 L' Theta^-1 (Woodbury identity)
+    from invariance.scores import score_weights
+
+    lam, beta, psi, theta, nu, alpha = _population()
+    sigma = lam @ psi @ lam.T + theta
+    W = score_weights(lam, theta, psi, sigma, method="regression")
+    Ti = np.linalg.inv(theta)
+    alt = np.linalg.solve(lam.T @ Ti @ lam + np.linalg.inv(psi), lam.T @ Ti)
+    assert np.allclose(W, alt)

@@ -43,6 +43,14 @@ def test_mardia_matches_direct_formulas():
     assert out["kurtosis_z"] == pytest.approx(z)
 
 
+def test_mardia_skewness_routes_agree():
+    # sum_ij (z_i'z_j)^3 = sum_abc (sum_i z_ia z_ib z_ic)^2 (algebraic identity)
+    from invariance.screening import _cube_sum
+
+    z = np.random.default_rng(8).normal(size=(300, 4))
+    assert _cube_sum(z, route="tensor", block=64) == pytest.approx(_cube_sum(z, route="pairs", block=64), rel=1e-10)
+
+
 def test_mardia_normal_sample_property():
     # Mardia (1970): under multivariate normality E[b2p] -> p(p+2) and b1p -> 0
     rng = np.random.default_rng(2)

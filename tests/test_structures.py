@@ -92,6 +92,8 @@ def test_build_structure_defaults():
     assert build_structure(FACTORS, "second_order", general="g").general == "g"
     with pytest.raises(SpecificationError, match="family must be one of"):
         build_structure(FACTORS, "tree")
+    with pytest.raises(SpecificationError, match="bifactor structure over one specific factor"):
+        build_structure({"a": ("x1", "x2", "x3", "x4")}, "bifactor")
     with pytest.raises(SpecificationError, match="listed twice"):
         compare_structures(HS, FACTORS, ["single", "single"])
 

@@ -64,6 +64,7 @@ def check_data(
     group: str,
     reference: str | None = None,
     groups: Sequence[str] | None = None,
+    complete_cases_needed: bool = True,
 ) -> CheckedData:
     """Check the data for a multi-group analysis and return it cleaned.
 
@@ -79,6 +80,9 @@ def check_data(
         The reference group, which must be present.
     groups
         Groups to analyse, in this order (default: every group, sorted).
+    complete_cases_needed
+        ``True`` (default): the size checks count complete rows (listwise deletion).
+        ``False`` (full-information ML): they count rows with at least one observed item.
 
     Returns
     -------
@@ -134,8 +138,9 @@ def check_data(
             "testing needs at least two groups: check data.group."
         )
     if reference is not None and str(reference) not in groups:
+        where = f"column {group!r}" if str(reference) not in present else "the groups selected by data.groups"
         raise DataError(
-            f"Reference group {str(reference)!r} is not in column {group!r}; choose one of {', '.join(groups)}."
+            f"Reference group {str(reference)!r} is not in {where}; choose one of {', '.join(groups)}."
         )
     p = len(items)
     rows, complete, missing = {}, {}, {}
@@ -158,14 +163,16 @@ def check_data(
                 )
         n_ok = int(obs.all(axis=1).sum())
         complete[g] = n_ok
-        if n_ok <= p:
+        n_use = n_ok if complete_cases_needed else int(obs.any(axis=1).sum())
+        what = "complete cases" if complete_cases_needed else "cases with an observed item"
+        if n_use <= p:
             raise DataError(
-                f"Group {g!r} has {n_ok} complete cases for {p} items; a covariance matrix needs more "
+                f"Group {g!r} has {n_use} {what} for {p} items; a covariance matrix needs more "
                 "cases than items: collect more data, merge the group with another, or drop it."
             )
-        if n_ok < SMALL_GROUP:
+        if n_use < SMALL_GROUP:
             warnings.append(
-                f"group {g} has {n_ok} complete cases; under about {SMALL_GROUP} per group "
+                f"group {g} has {n_use} {what}; under about {SMALL_GROUP} per group "
                 "(common practice) every test here is weak"
             )
     return CheckedData(

@@ -2,6 +2,12 @@
 
 Covariances use divisor N (not N - 1): this is what the ML discrepancy and its
 published check values use (METHODS section 2).
+
+Missing values: by default (``missing="listwise"``) only complete cases enter, as
+before. With ``missing="fiml"`` every case with at least one observed item is kept
+(raw rows with NaN), the means and covariance are the saturated-model ML estimates by
+EM (:mod:`invariance.data.em`), and :class:`MissingInfo` records the patterns, the
+coverage of each item and the cases dropped because nothing was observed.
 """
 
 from __future__ import annotations
@@ -12,8 +18,72 @@ from typing import Sequence
 import numpy as np
 
 from ..errors import DataError
+from .em import em_saturated, missing_patterns
 
-__all__ = ["GroupStats", "SampleStats", "sample_stats", "stats_from_arrays"]
+__all__ = ["GroupStats", "MissingInfo", "SampleStats", "sample_stats", "stats_from_arrays"]
+
+MISSING_METHODS = ("listwise", "fiml")
+
+
+@dataclass(frozen=True, eq=False)
+class MissingInfo:
+    """How a group's incomplete cases were handled.
+
+    Attributes
+    ----------
+    method
+        ``"listwise"`` (complete cases only) or ``"fiml"`` (every case with an
+        observed item).
+    n_input
+        Rows of the group in the data.
+    n_dropped
+        Rows not used: incomplete rows under listwise deletion, rows with no observed
+        item under ``fiml``.
+    observed
+        (K, p) boolean patterns of observed items among the cases used.
+    pattern_counts
+        (K,) cases per pattern.
+    coverage
+        (p,) share of the cases used that observe each item.
+    loglik_h1
+        Saturated-model log-likelihood of the cases used (EM under ``fiml``).
+    em_iterations, em_converged
+        EM run (0 and True when no EM was needed).
+    """
+
+    method: str
+    n_input: int
+    n_dropped: int
+    observed: np.ndarray
+    pattern_counts: np.ndarray
+    coverage: np.ndarray
+    loglik_h1: float
+    em_iterations: int = 0
+    em_converged: bool = True
+
+    @property
+    def n_patterns(self) -> int:
+        return int(self.observed.shape[0])
+
+    def reorder(self, ix: Sequence[int]) -> "MissingInfo":
+        """The same record with items in the order ``ix``."""
+        ix = list(ix)
+        return MissingInfo(
+            self.method, self.n_input, self.n_dropped, self.observed[:, ix], self.pattern_counts,
+            self.coverage[ix], self.loglik_h1, self.em_iterations, self.em_converged,
+        )
+
+    def to_dict(self, items: Sequence[str]) -> dict:
+        """Plain types for results files."""
+        return {
+            "method": self.method,
+            "n_input": int(self.n_input),
+            "n_used": int(self.n_input - self.n_dropped),
+            "n_dropped": int(self.n_dropped),
+            "n_patterns": self.n_patterns,
+            "coverage": {str(i): float(c) for i, c in zip(items, self.coverage)},
+            "em_converged": bool(self.em_converged),
+        }
 
 
 @dataclass(frozen=True, eq=False)
@@ -33,6 +103,8 @@ class GroupStats:
     raw
         The cases used, shape (n, p), kept for casewise methods (robust corrections,
         full-information ML, scores); may hold NaN where items are missing.
+    missing
+        How incomplete cases were handled (``None`` when built by hand).
     """
 
     name: str
@@ -40,6 +112,12 @@ class GroupStats:
     mean: np.ndarray
     cov: np.ndarray
     raw: np.ndarray | None = None
+    missing: MissingInfo | None = None
+
+    @property
+    def has_missing(self) -> bool:
+        """True when the cases used hold missing values (full-information ML applies)."""
+        return self.raw is not None and bool(np.isnan(self.raw).any())
 
 
 @dataclass(frozen=True, eq=False)
@@ -66,7 +144,10 @@ class SampleStats:
         """The same statistics with items in ``order``."""
         ix = [self.items.index(i) for i in order]
         gs = tuple(
-            GroupStats(g.name, g.n, g.mean[ix], g.cov[np.ix_(ix, ix)], None if g.raw is None else g.raw[:, ix])
+            GroupStats(
+                g.name, g.n, g.mean[ix], g.cov[np.ix_(ix, ix)], None if g.raw is None else g.raw[:, ix],
+                None if g.missing is None else g.missing.reorder(ix),
+            )
             for g in self.groups
         )
         return SampleStats(tuple(order), gs)
@@ -97,21 +178,99 @@ def _group_moments(name: str, x: np.ndarray, items: Sequence[str]) -> GroupStats
     return GroupStats(name, int(n), mean, cov, x)
 
 
+def _check_method(missing: str) -> None:
+    if missing not in MISSING_METHODS:
+        raise DataError(
+            f"The missing-data method must be one of {', '.join(MISSING_METHODS)}; got {missing!r}."
+        )
+
+
+def _listwise(name: str, x: np.ndarray, items: Sequence[str]) -> GroupStats:
+    keep = ~np.isnan(x).any(axis=1)
+    gs = _group_moments(name, x[keep], items)
+    n, p = gs.raw.shape
+    ll = -0.5 * n * (p * np.log(2 * np.pi) + np.linalg.slogdet(gs.cov)[1] + p)
+    info = MissingInfo(
+        "listwise", int(x.shape[0]), int((~keep).sum()), np.ones((1, p), dtype=bool),
+        np.array([n]), np.ones(p), float(ll),
+    )
+    return GroupStats(gs.name, gs.n, gs.mean, gs.cov, gs.raw, info)
+
+
+def _full_information(name: str, x: np.ndarray, items: Sequence[str]) -> GroupStats:
+    obs = ~np.isnan(x)
+    keep = obs.any(axis=1)
+    xu, obs = x[keep], obs[keep]
+    n, p = xu.shape
+    if n <= p:
+        raise DataError(
+            f"Group {name!r} has {n} cases with an observed item for {p} items; collect more data "
+            f"for this group, merge it with another, or drop it."
+        )
+    count = obs.sum(axis=0)
+    for j in np.flatnonzero(count < 2):
+        raise DataError(f"Item {items[j]!r} is observed in fewer than 2 cases of group {name!r}; drop the item or the group.")
+    pair = obs.T.astype(float) @ obs.astype(float)
+    lo = np.argwhere(np.tril(pair == 0, -1))
+    if lo.size:
+        a, b = lo[0]
+        raise DataError(
+            f"Items {items[b]!r} and {items[a]!r} are never observed together in group {name!r}, "
+            f"so their covariance cannot be estimated; drop one of them."
+        )
+    sd = np.nanstd(xu, axis=0)
+    const = np.flatnonzero(sd <= 1e-12 * np.maximum(1.0, np.abs(np.nanmean(xu, axis=0))))
+    if const.size:
+        raise DataError(f"Item {items[const[0]]!r} is constant in group {name!r}; drop the item or the group.")
+    pat = missing_patterns(xu)
+    em = em_saturated(xu, patterns=pat)
+    sdv = np.sqrt(np.diag(em.cov))
+    if np.linalg.eigvalsh(em.cov / np.outer(sdv, sdv))[0] <= 1e-10:
+        raise DataError(
+            f"The estimated covariance matrix of group {name!r} is singular (an item is a linear "
+            f"combination of others, or too few cases observe some pairs); drop the redundant item."
+        )
+    info = MissingInfo(
+        "fiml", int(x.shape[0]), int((~keep).sum()), pat.observed, pat.counts, count / n,
+        em.loglik, em.iterations, em.converged,
+    )
+    return GroupStats(name, int(n), em.mean, em.cov, xu, info)
+
+
 def stats_from_arrays(
-    arrays: Sequence[np.ndarray], names: Sequence[str], items: Sequence[str]
+    arrays: Sequence[np.ndarray], names: Sequence[str], items: Sequence[str], *, missing: str = "listwise"
 ) -> SampleStats:
-    """Complete-case statistics from one (n_g, p) array per group."""
+    """Per-group statistics from one (n_g, p) array per group (NaN = missing).
+
+    Parameters
+    ----------
+    arrays, names, items
+        The data of each group, the group names and the item names.
+    missing
+        ``"listwise"`` (default): complete cases only. ``"fiml"``: every case with at
+        least one observed item, moments by EM, for full-information ML.
+    """
+    _check_method(missing)
     items = tuple(str(i) for i in items)
     out = []
     for name, x in zip(names, arrays):
         x = np.asarray(x, dtype=float)
-        x = x[~np.isnan(x).any(axis=1)]
-        out.append(_group_moments(str(name), x, items))
+        if missing == "fiml":
+            out.append(_full_information(str(name), x, items))
+        else:
+            out.append(_listwise(str(name), x, items))
     return SampleStats(items, tuple(out))
 
 
-def sample_stats(frame, items: Sequence[str], group: str | None = None, *, groups: Sequence[str] | None = None) -> SampleStats:
-    """Complete-case per-group statistics from a pandas DataFrame.
+def sample_stats(
+    frame,
+    items: Sequence[str],
+    group: str | None = None,
+    *,
+    groups: Sequence[str] | None = None,
+    missing: str = "listwise",
+) -> SampleStats:
+    """Per-group statistics from a pandas DataFrame (complete cases by default).
 
     Parameters
     ----------
@@ -123,15 +282,18 @@ def sample_stats(frame, items: Sequence[str], group: str | None = None, *, group
         Grouping column; ``None`` for a single group called ``"all"``.
     groups
         Group order (default: order of first appearance).
+    missing
+        ``"listwise"`` (default) or ``"fiml"``; see :func:`stats_from_arrays`.
     """
     items = [str(i) for i in items]
-    missing = [c for c in items + ([group] if group else []) if c not in frame.columns]
-    if missing:
-        raise DataError(f"Column {missing[0]!r} is not in the data; check the spelling or the data file.")
+    _check_method(missing)
+    absent = [c for c in items + ([group] if group else []) if c not in frame.columns]
+    if absent:
+        raise DataError(f"Column {absent[0]!r} is not in the data; check the spelling or the data file.")
     if group is None:
-        return stats_from_arrays([frame[items].to_numpy(dtype=float)], ["all"], items)
+        return stats_from_arrays([frame[items].to_numpy(dtype=float)], ["all"], items, missing=missing)
     keys = frame[group]
     if groups is None:
         groups = list(dict.fromkeys(keys.dropna().tolist()))
     arrays = [frame.loc[keys == g, items].to_numpy(dtype=float) for g in groups]
-    return stats_from_arrays(arrays, [str(g) for g in groups], items)
+    return stats_from_arrays(arrays, [str(g) for g in groups], items, missing=missing)

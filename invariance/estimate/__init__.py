@@ -2,9 +2,29 @@
 
 from .dwls import DWLSObjective, ordinal_start_values
 from .dwls_robust import dwls_difference, fit_dwls
-from .ml import diagnose, fit
+from .fiml import FIMLObjective
+from .ml import ESTIMATORS, diagnose, fit
 from .objective import MLObjective
 from .optimize import STATUS, Outcome, minimize
+from .robust import DifferenceTest, robust_difference, scaled_difference, strictly_positive_difference
 from .start import start_values
 
-__all__ = ["fit", "fit_dwls", "dwls_difference", "DWLSObjective", "ordinal_start_values", "diagnose", "MLObjective", "STATUS", "Outcome", "minimize", "start_values"]
+__all__ = [
+    "DWLSObjective",
+    "dwls_difference",
+    "fit_dwls",
+    "ordinal_start_values",
+    "ESTIMATORS",
+    "DifferenceTest",
+    "FIMLObjective",
+    "MLObjective",
+    "STATUS",
+    "Outcome",
+    "diagnose",
+    "fit",
+    "minimize",
+    "robust_difference",
+    "scaled_difference",
+    "start_values",
+    "strictly_positive_difference",
+]

@@ -4,26 +4,41 @@ Complete-data ML from sufficient statistics; standard errors from the expected
 information (or, on request, the observed information: the finite-difference Jacobian
 of the analytic gradient). Improper solutions are named in ``FitResult.problems`` and
 emitted as :class:`~invariance.errors.ImproperSolutionWarning`.
+
+When the statistics carry missing values (built with ``missing="fiml"``) the fit is
+full-information ML (:mod:`invariance.estimate.fiml`). ``estimator="ml_robust"`` adds
+the sandwich covariance, the scaled statistic and robust fit indices
+(:mod:`invariance.estimate.robust`), with or without missing data (Yuan & Bentler 2000).
 """
 
 from __future__ import annotations
 
+import dataclasses
 import warnings
 
 import numpy as np
+from scipy import stats as _st
 
 from ..data.moments import SampleStats
 from ..errors import ConvergenceWarning, EstimationError, ImproperSolutionWarning, SpecificationError
-from ..fit import compute_fit
+from ..data.mcar import missing_report
+from ..fit import cfi as _cfi
+from ..fit import compute_fit, information_criteria
+from ..fit import tli as _tli
 from ..model.spec import ModelSpec
 from ..results import FitResult
 from .kernels import group_matrices, implied_moments
+from .fiml import FIMLObjective, independence_loglik
 from .linalg import arrow_inverse, arrow_min_eigen
 from .objective import MLObjective
 from .optimize import minimize
+from .robust import H1Moments, baseline_trace, robust_indices, sandwich, scaling_trace, score_products
 from .start import start_values
 
-__all__ = ["fit", "diagnose", "observed_information"]
+__all__ = ["ESTIMATORS", "fit", "diagnose", "observed_information"]
+
+#: Estimators accepted by :func:`fit`.
+ESTIMATORS = ("ml", "ml_robust")
 
 
 def observed_information(obj, theta: np.ndarray, h: float = 1e-6) -> np.ndarray:
@@ -88,6 +103,7 @@ def fit(
     information: str = "expected",
     start: np.ndarray | None = None,
     max_iter: int = 200,
+    estimator: str = "ml",
 ) -> FitResult:
     """Estimate a multi-group model by maximum likelihood.
 
@@ -103,6 +119,14 @@ def fit(
         Starting parameter vector; chosen from the data when omitted.
     max_iter
         Iteration limit of the scoring runs.
+    estimator
+        ``"ml"`` (normal theory, default) or ``"ml_robust"``: sandwich ``acov`` from
+        casewise scores, and in ``extra`` the scaled statistic ``chi2_scaled``, its
+        ``scaling_factor`` and ``pvalue_scaled``, and ``cfi_robust``, ``tli_robust``,
+        ``rmsea_robust``; the normal-theory covariance stays in ``extra["acov_normal"]``.
+        Full-information ML is used automatically when the statistics hold missing
+        values; ``extra["missing"]`` then reports, per group, the cases used, the
+        patterns, the coverage of each item and Little's MCAR test.
 
     Returns
     -------
@@ -119,6 +143,10 @@ def fit(
         from .dwls_robust import fit_dwls
 
         return fit_dwls(spec, stats, start=start, max_iter=max_iter)
+    if estimator not in ESTIMATORS:
+        raise SpecificationError(
+            f"The estimator must be one of {', '.join(ESTIMATORS)}; got {estimator!r}."
+        )
     if information not in ("expected", "observed"):
         raise SpecificationError(
             f"The information for standard errors must be 'expected' or 'observed'; got {information!r}."
@@ -127,9 +155,15 @@ def fit(
         stats = stats.subset(spec.groups)
     if tuple(stats.items) != tuple(spec.items):
         stats = stats.reorder_items(spec.items)
-    obj = MLObjective(spec, stats)
+    full_info = any(g.has_missing for g in stats.groups)
+    obj = FIMLObjective(spec, stats) if full_info else MLObjective(spec, stats)
     x0 = start_values(spec, stats) if start is None else np.asarray(start, dtype=float)
-    out = minimize(obj, x0, max_iter=max_iter)
+    tol = 1e-12
+    if full_info:
+        # T is a difference of casewise log-likelihoods of size |logL_H1|: allow for their
+        # rounding error in the convergence test (it is far below any reported digit)
+        tol = max(tol, 2e-14 * abs(2.0 * obj.loglik_h1) / max(1.0, float(spec.df)))
+    out = minimize(obj, x0, max_iter=max_iter, tol=tol)
     if not np.isfinite(out.fun):
         raise EstimationError(
             f"The {spec.level or 'model'} model could not be estimated: {out.message}; "
@@ -172,9 +206,17 @@ def fit(
         mus,
         obj.n,
     )
+    extra: dict = {}
+    if full_info:
+        fs = _full_information_fit(fs, obj, spec)
+        extra["likelihood"] = "full_information"
+    if any(g.missing is not None for g in stats.groups):
+        extra["missing"] = missing_report(stats)
+    if estimator == "ml_robust":
+        acov = _robust(extra, spec, stats, theta, info_se, acov, fs)
     return FitResult(
         spec=spec,
-        estimator="ml",
+        estimator=estimator,
         theta=theta,
         acov=acov,
         converged=out.converged,
@@ -186,4 +228,49 @@ def fit(
         sigma=sigmas,
         mu=mus,
         group_n=tuple(int(g.n) for g in stats.groups),
+        extra=extra,
     )
+
+
+def _full_information_fit(fs, obj: FIMLObjective, spec: ModelSpec):
+    """Fit statistics whose likelihoods are the casewise (full-information) ones."""
+    ll_h1 = obj.loglik_h1
+    loglik = ll_h1 - 0.5 * fs.chi2
+    t_b = -2.0 * sum(independence_loglik(d.x) for d in obj.data) + 2.0 * ll_h1
+    aic, bic, sabic = information_criteria(loglik, spec.n_params, fs.n)
+    return dataclasses.replace(
+        fs,
+        loglik=float(loglik),
+        loglik_saturated=float(ll_h1),
+        aic=aic,
+        bic=bic,
+        sabic=sabic,
+        baseline_chi2=float(t_b),
+        cfi=_cfi(fs.chi2, fs.df, t_b, fs.baseline_df),
+        tli=_tli(fs.chi2, fs.df, t_b, fs.baseline_df),
+    )
+
+
+def _robust(extra: dict, spec: ModelSpec, stats: SampleStats, theta, info_se, acov, fs):
+    """Fill ``extra`` with the robust statistics; return the sandwich covariance."""
+    h1 = H1Moments(stats)
+    df = spec.df
+    tr = scaling_trace(spec, theta, h1)
+    c = tr / df if df > 0 else float("nan")
+    tr_b = baseline_trace(h1)
+    c_b = tr_b / fs.baseline_df if fs.baseline_df > 0 else float("nan")
+    t_s = fs.chi2 / c if df > 0 else float("nan")
+    extra.update(
+        chi2_scaled=float(t_s),
+        scaling_factor=float(c),
+        pvalue_scaled=float(_st.chi2.sf(t_s, df)) if df > 0 else float("nan"),
+        baseline_chi2_scaled=float(fs.baseline_chi2 / c_b),
+        baseline_scaling_factor=float(c_b),
+        **robust_indices(fs.chi2, df, c, fs.baseline_chi2, fs.baseline_df, c_b, fs.n, len(spec.groups)),
+    )
+    extra["acov_normal"] = acov
+    if acov is None:
+        return None
+    B = score_products(spec, theta, h1)
+    # info_se is the Hessian of T = -2 logL + const: the information of logL is half of it
+    return sandwich(info_se / 2.0, B)

@@ -2,6 +2,6 @@
 
 from .load import PipelineSpec, load_pipeline, schema
 from .runner import RunResult, check, run
-from .stages import STAGES
+from .stages import STAGES, add_stage
 
-__all__ = ["PipelineSpec", "RunResult", "STAGES", "check", "load_pipeline", "run", "schema"]
+__all__ = ["PipelineSpec", "RunResult", "STAGES", "add_stage", "check", "load_pipeline", "run", "schema"]

@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import warnings
 
-import numpy as np
 
 from ..errors import InvarianceWarning
 from ..estimate.ml import fit as ml_fit
@@ -60,7 +59,6 @@ def stage_crosscheck(spec: PipelineSpec, state: dict) -> dict:
     import pandas as pd
     import semopy
 
-    checked = state["checked"]
     stats = state["stats"]
     desc = semopy_description(spec.structure)
     rows = []
@@ -98,5 +96,4 @@ def stage_crosscheck(spec: PipelineSpec, state: dict) -> dict:
         except Exception as exc:  # semopy's own failures are reported, not raised
             row["agreement"] = f"semopy failed: {str(exc).splitlines()[0] if str(exc) else type(exc).__name__}"
         rows.append(row)
-    del checked
     return {"crosscheck": {"engine": f"semopy {semopy.__version__}", "model": desc, "groups": rows}}

@@ -25,6 +25,7 @@ from ..model.levels import LEVELS, build_level
 from ..model.spec import Release
 from ..model.structure import Structure
 from ..ordinal.levels import ORDINAL_LEVELS, build_ordinal_level
+from .align_stage import check_alignment_section
 
 __all__ = ["PipelineSpec", "load_pipeline", "parse_yaml", "schema", "validate_document", "thaw"]
 
@@ -153,18 +154,6 @@ def parse_yaml(text: str, *, name: str = "pipeline") -> dict:
 def _path_text(path) -> str:
     parts = [str(p) for p in path]
     return ".".join(parts) if parts else "(top level)"
-
-
-def _schema_at(path) -> dict:
-    """The sub-schema at a document path (following properties only)."""
-    node = schema()
-    for key in path:
-        props = node.get("properties", {})
-        if key in props:
-            node = props[key]
-        else:
-            return {}
-    return node
 
 
 def validate_document(doc: Mapping) -> None:
@@ -341,6 +330,7 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
         raise SpecificationError(f"data.group {data['group']!r} is also an item in model.factors; use another column.")
     ordinal, merge, estimator = _ordinal(data, structure, doc.get("estimator"))
     levels = _levels(doc.get("levels", ORDINAL_LEVELS if ordinal else LEVELS), ordinal=ordinal is not None)
+    check_alignment_section(doc, structure)
     dec = doc.get("decision", {})
     rule = make_rule(
         criteria=dec.get("criteria"),

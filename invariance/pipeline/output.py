@@ -15,7 +15,7 @@ import shutil
 import tempfile
 from typing import Callable
 
-__all__ = ["level_table", "write_outputs", "format_table", "to_json"]
+__all__ = ["check_destination", "level_table", "write_outputs", "format_table", "to_json"]
 
 TABLE_COLUMNS = (
     "level", "decision", "compared_with", "converged", "chi2", "df", "pvalue", "cfi", "tli",
@@ -76,7 +76,16 @@ def level_table(results: dict):
                 "reason": lv.get("reason", ""),
             }
         )
-    return pd.DataFrame(rows, columns=list(TABLE_COLUMNS))
+        if results.get("estimator") == "ml_robust":
+            rows[-1].update(
+                {k: lv.get(k) for k in ("chi2_scaled", "scaling_factor", "pvalue_scaled", "cfi_robust", "tli_robust", "rmsea_robust")}
+            )
+            rows[-1].update({"d_chi2_scaled": d.get("chi2_scaled"), "d_test": d.get("test")})
+    cols = list(TABLE_COLUMNS)
+    if results.get("estimator") == "ml_robust":
+        cols += ["chi2_scaled", "scaling_factor", "pvalue_scaled", "cfi_robust", "tli_robust", "rmsea_robust",
+                 "d_chi2_scaled", "d_test"]
+    return pd.DataFrame(rows, columns=cols)
 
 
 def _release_text(r: dict) -> str:
@@ -89,8 +98,29 @@ def _num(v, fmt: str) -> str:
     return "" if v is None else format(v, fmt)
 
 
+def _partial_lines(results: dict) -> list[str]:
+    """Flagged items and structural levels (written by the partial-invariance stage)."""
+    out = []
+    if results.get("flagged"):
+        out += ["", "Flagged (released by the score-test search):"]
+        for f in results["flagged"]:
+            size = "" if f.get("dmacs_max") is None else f", dMACS up to {f['dmacs_max']:.2f}"
+            out.append(f"  {_release_text(f)} at {f['level']}: score test {f['statistic']:.2f} "
+                       f"on {f['df']} df, p {f['pvalue']:.2g}{size}")
+    for s in results.get("structural") or []:
+        if s == results["structural"][0]:
+            out += ["", "Structural levels:"]
+        rel = "; ".join(_release_text(r) for r in s.get("released", []))
+        out.append(f"  {s['level']}: {s['decision']} ({s.get('reason', '')})" + (f"; released {rel}" if rel else ""))
+    return out
+
+
 def format_table(results: dict) -> str:
     """The stepwise table and the verdict as terminal text."""
+    from .robust_stage import display_note, display_view
+
+    note = display_note(results)
+    results = display_view(results)
     head = f"{'level':<11}{'chi2':>10}{'df':>5}{'CFI':>7}{'RMSEA':>7}{'SRMR':>7}{'dchi2':>9}{'ddf':>5}{'p':>7}{'dCFI':>8}{'dRMSEA':>8}{'dSRMR':>8}  decision"
     lines = [head, "-" * len(head)]
     for lv in results["levels"]:
@@ -106,10 +136,11 @@ def format_table(results: dict) -> str:
         )
     groups = ", ".join(f"{g} {n}" for g, n in results["groups"].items())
     out = [
-        f"{results.get('title', 'invariance')}: {results['estimator']} on complete cases; "
+        f"{results.get('title', 'invariance')}: {results['estimator']} on {results.get('data', {}).get('cases_used', 'complete cases')}; "
         f"groups (N used): {groups}; reference {results['reference_group']}",
         "",
         *lines,
+        *([note] if note else []),
         "",
         f"Rule: {results['decision_rule']['rule']}",
     ]
@@ -118,6 +149,7 @@ def format_table(results: dict) -> str:
             out.append(f"  {lv['level']}: {lv['decision']} ({lv['reason']})")
     out.append("")
     out.append(results["verdict"])
+    out.extend(_partial_lines(results))
     cc = results.get("crosscheck")
     if cc:
         out.append("")
@@ -131,6 +163,25 @@ def format_table(results: dict) -> str:
     return "\n".join(out)
 
 
+#: A folder holding this file is the output of an earlier run and may be replaced.
+MARKER = "results.json"
+
+
+def check_destination(out_dir: pathlib.Path) -> None:
+    """Refuse to replace anything but an empty folder or an earlier run's output folder."""
+    from ..errors import SpecificationError
+
+    if not out_dir.exists():
+        return
+    if not out_dir.is_dir():
+        raise SpecificationError(f"Output folder {str(out_dir)!r} is an existing file; choose another --out.")
+    if any(out_dir.iterdir()) and not (out_dir / MARKER).is_file():
+        raise SpecificationError(
+            f"Output folder {str(out_dir)!r} exists and is not the output of an earlier run; "
+            "choose a new or empty folder for --out (or output.folder)."
+        )
+
+
 def write_outputs(
     out_dir: pathlib.Path,
     writers: list[Callable[[pathlib.Path], list[pathlib.Path] | pathlib.Path]],
@@ -140,8 +191,9 @@ def write_outputs(
     Parameters
     ----------
     out_dir
-        Destination. An existing folder there is replaced only after every file of the
-        new run was written.
+        Destination. An existing folder there (empty, or an earlier run's output with its
+        results.json) is replaced only after every file of the new run was written; any
+        other existing path is refused.
     writers
         Functions that write their files into the folder they are given.
 
@@ -151,6 +203,7 @@ def write_outputs(
         ``out_dir``.
     """
     out_dir = pathlib.Path(out_dir).resolve()
+    check_destination(out_dir)
     out_dir.parent.mkdir(parents=True, exist_ok=True)
     tmp = pathlib.Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.", suffix=".partial", dir=out_dir.parent))
     try:

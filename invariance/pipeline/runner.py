@@ -10,8 +10,8 @@ from types import MappingProxyType
 from typing import Any, Mapping
 
 from .load import PipelineSpec, load_pipeline, thaw
-from .output import format_table, level_table, to_json, write_outputs
-from .stages import STAGES, stage_data, stage_stats
+from .output import check_destination, format_table, level_table, to_json, write_outputs
+from .stages import STAGES, stage_data, stage_levels, stage_stats
 
 __all__ = ["RunResult", "run", "check", "default_out_dir"]
 
@@ -156,6 +156,11 @@ def run(
     RunResult
     """
     spec = load_pipeline(pipeline)
+    out_dir = pathlib.Path(out).resolve() if out is not None else default_out_dir(spec)
+    if write is False:
+        out_dir = None
+    if out_dir is not None:
+        check_destination(out_dir)
     stages = list(STAGES)
     if crosscheck:
         from .crosscheck import stage_crosscheck
@@ -164,9 +169,6 @@ def run(
     results, state = run_stages(spec, stages)
     results = json.loads(to_json(results))
     estimates = _estimates(state["fits"])
-    out_dir = pathlib.Path(out).resolve() if out is not None else default_out_dir(spec)
-    if write is False:
-        out_dir = None
     if out_dir is not None:
         from ..report import write_reports
 
@@ -177,13 +179,19 @@ def run(
             level_table(results).to_csv(folder / "levels.csv", index=False)
             estimates.to_csv(folder / "estimates.csv", index=False)
             (folder / "pipeline.yaml").write_text(spec.text, encoding="utf-8")
+            if state.get("scores_table") is not None:
+                state["scores_table"].to_csv(folder / "scores.csv", index=False)
             write_reports(folder, results, estimates, context)
 
         out_dir = write_outputs(out_dir, [files])
     if not quiet:
         print(format_table(results))
         if out_dir is not None:
-            print(f"\nOutputs written to {out_dir}")
+            try:
+                shown = out_dir.relative_to(pathlib.Path.cwd().resolve())
+            except ValueError:
+                shown = out_dir
+            print(f"\nOutputs written to {shown}")
     return RunResult(
         results=_freeze(results),
         estimates=estimates,
@@ -199,12 +207,13 @@ def check(pipeline) -> dict:
     Returns
     -------
     dict
-        ``groups`` (group -> N complete), ``rows``, ``missing`` (group -> item -> count),
-        ``reference_group``, ``items``, ``categories`` (ordinal pipelines: item -> category
-        labels; ``None`` otherwise) and ``warnings``.
+        ``groups`` (group -> cases used), ``rows``, ``missing`` (group -> item -> count),
+        ``cases_used`` (how incomplete rows are handled), ``reference_group``, ``items``,
+        ``categories`` (ordinal pipelines: item -> category labels; ``None`` otherwise)
+        and ``warnings``.
     """
     spec = load_pipeline(pipeline)
-    results, state = run_stages(spec, [("data", stage_data), ("stats", stage_stats)])
+    results, state = run_stages(spec, [("data", stage_data), ("stats", stage_stats), ("levels", stage_levels)])
     checked = state["checked"]
     return {
         "pipeline": str(spec.source) if spec.source else None,
@@ -215,9 +224,11 @@ def check(pipeline) -> dict:
         "rows": dict(checked.rows),
         "groups": results["groups"],
         "missing": {g: dict(v) for g, v in checked.missing.items()},
+        "cases_used": results["data"]["cases_used"],
         "levels": list(spec.levels),
         "family": spec.structure.family,
         "categories": results.get("ordinal", {}).get("categories"),
+        "free_parameters": results["free_parameters"],
         "warnings": results["warnings"],
     }
 

@@ -1,102 +1,132 @@
-"""Reports of a run (minimal version: report.md).
+"""The report: a self-contained HTML file, the same content in Markdown, and
+publication tables of the stepwise results.
 
-:func:`write_reports` is the one entry point the pipeline runner calls; it only reads
-the results it is given.
+Front door: :func:`write_reports`. Files written into ``out_dir``:
+
+``report.html``
+    One self-contained page (images inlined as base64 PNG, no script, no network).
+``report.md`` and ``figures/*.png``
+    The same sections in Markdown, linking the figures written beside it.
+``table_levels.csv``, ``table_levels.md``, ``table_levels.tex``
+    The stepwise table (levels as rows) for papers (:mod:`invariance.report.tables`).
+
+Sections, in order, are listed in :data:`invariance.report.registry.SECTIONS`; each is
+one builder function, and a section whose data are absent is skipped. The keys read
+from the results dict are documented in :mod:`invariance.report.inputs` and in each
+builder's docstring.
 """
 
 from __future__ import annotations
 
-import pathlib
+import re
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Mapping
 
-__all__ = ["write_reports", "CAUTIONS"]
+import pandas as pd
 
-#: Cautions shown with every report (METHODS section 13).
-CAUTIONS = (
-    "Invariance results are evidence for a decision about comparing groups, not the decision itself.",
-    "Fairness of a test used for hiring, admission, clinical or legal purposes is judged under "
-    "professional testing standards (AERA/APA/NCME Standards for Educational and Psychological "
-    "Testing, 2014; ITC Guidelines for Translating and Adapting Tests, 2nd ed., 2017) and local law.",
-    "Small groups (under about 200 cases per group; common practice) make every test here weak.",
-)
+from ..progress import Progress
+from .formatting import estimator_label
+from .inputs import display_results
+from .parts import Figure, Section
+from .registry import SECTIONS, build_sections
+from .render import render_html, render_markdown
+from .sections import ReportInput
+from .tables import LEVEL_TABLE_FILES, write_level_tables
 
+__all__ = ["LEVEL_TABLE_FILES", "SECTIONS", "ReportInput", "build_report", "write_reports"]
 
-def _f(v, fmt: str) -> str:
-    return "" if v is None else format(v, fmt)
-
-
-def _table(results: dict) -> list[str]:
-    lines = [
-        "| level | chi2 | df | p | CFI | TLI | RMSEA [90% CI] | SRMR | dchi2 (ddf) | p | dCFI | dRMSEA | dSRMR | decision |",
-        "|---|---:|---:|---:|---:|---:|---|---:|---|---:|---:|---:|---:|---|",
-    ]
-    for lv in results["levels"]:
-        d = lv.get("delta") or {}
-        ci = lv.get("rmsea_ci90") or [None, None]
-        rm = "" if lv["rmsea"] is None else f"{lv['rmsea']:.3f} [{_f(ci[0], '.3f')}, {_f(ci[1], '.3f')}]"
-        dd = "" if not d else f"{d['chi2']:.2f} ({d['df']})"
-        lines.append(
-            f"| {lv['level']} | {_f(lv['chi2'], '.2f')} | {_f(lv['df'], 'd')} | {_f(lv['pvalue'], '.3f')} | "
-            f"{_f(lv['cfi'], '.3f')} | {_f(lv['tli'], '.3f')} | {rm} | {_f(lv['srmr'], '.3f')} | {dd} | "
-            f"{_f(d.get('pvalue'), '.3f')} | {_f(d.get('cfi'), '+.4f')} | {_f(d.get('rmsea'), '+.4f')} | "
-            f"{_f(d.get('srmr'), '+.4f')} | {lv['decision']} |"
-        )
-    return lines
+REPORT_HTML = "report.html"
+REPORT_MD = "report.md"
+FIGURE_DIR = "figures"
 
 
-def write_reports(out_dir: pathlib.Path, results: dict, estimates, context: dict) -> list[pathlib.Path]:
-    """Write the report files of a run into ``out_dir``.
+def _meta(inp: ReportInput) -> dict[str, Any]:
+    from .. import __version__
+
+    ctx = inp.context
+    bits = []
+    if ctx.get("data_file"):
+        bits.append(f"Data: {Path(str(ctx['data_file'])).name}")
+    if inp.groups:
+        bits.append(f"{len(inp.groups)} groups")
+    if inp.results.get("estimator"):
+        bits.append(f"estimator {estimator_label(inp.results['estimator'])}")
+    if ctx.get("created"):
+        bits.append(f"run {ctx['created']}")
+    return {
+        "title": str(ctx.get("title") or inp.results.get("title") or "Measurement invariance report"),
+        "subtitle": " \u00b7 ".join(bits),
+        "version": __version__,
+        "written": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+    }
+
+
+def build_report(
+    results: Mapping[str, Any],
+    estimates: pd.DataFrame | None,
+    context: Mapping[str, Any],
+    *,
+    progress: Progress | None = None,
+) -> tuple[list[Section], dict[str, Any]]:
+    """The report's sections and page metadata, without writing anything."""
+    est = estimates if isinstance(estimates, pd.DataFrame) else pd.DataFrame()
+    inp = ReportInput(results=display_results(results or {}), estimates=est, context=dict(context or {}))
+    return build_sections(inp, progress=progress), _meta(inp)
+
+
+def _figures(sections: list[Section]) -> list[Figure]:
+    return [p for s in sections for p in s.parts if isinstance(p, Figure)]
+
+
+def write_reports(out_dir: Path, results: dict, estimates: pd.DataFrame, context: dict) -> list[Path]:
+    """Write report.html, report.md (with its figures) and the publication tables.
 
     Parameters
     ----------
     out_dir
-        The (temporary) output folder of the run.
+        Folder to write into (created if needed).
     results
-        The content of results.json.
+        The results.json dict: ``estimator``, ``groups`` (group -> N used),
+        ``reference_group``, ``levels``, ``flagged``, ``decision_rule`` and optional
+        sections (see :mod:`invariance.report.inputs`).
     estimates
-        Every estimate by level and group (DataFrame).
+        All estimates, with columns level, group, parameter, lhs, rhs, label, free,
+        estimate, se, z, pvalue, std.
     context
         ``pipeline_text``, ``data_file``, ``data_sha256``, ``seed``, ``structure``,
-        ``created``, ``quiet``.
+        ``created``, ``quiet`` (no progress line when true), optional ``title``.
 
     Returns
     -------
-    list of pathlib.Path
-        The files written.
+    list of Path
+        Every file written: report.html, report.md, the three tables, the figures.
     """
-    out_dir = pathlib.Path(out_dir)
-    st = context["structure"]
-    groups = ", ".join(f"{g} (N = {n})" for g, n in results["groups"].items())
-    lines = [
-        f"# {results.get('title', 'Measurement invariance')}",
-        "",
-        f"Created {context['created']}. Data: `{pathlib.Path(context['data_file']).name}` "
-        f"(SHA-256 `{context['data_sha256'][:16]}...`). Estimator: {results['estimator']} on complete cases.",
-        "",
-        f"Groups: {groups}; reference group {results['reference_group']}.",
-        f"Model: {st['family']} with factors "
-        + "; ".join(f"{f}: {', '.join(v)}" for f, v in st["factors"].items())
-        + (f"; general factor {st['general']} over all items" if st["general"] and st["family"] == "bifactor" else "")
-        + ".",
-        "",
-        "## Stepwise results",
-        "",
-        *_table(results),
-        "",
-        f"Decision rule: {results['decision_rule']['rule']}.",
-        "",
-        "## Decisions",
-        "",
-    ]
-    for lv in results["levels"]:
-        comp = f" (compared with {lv['compared_with']})" if lv.get("compared_with") else ""
-        lines.append(f"- **{lv['level']}**{comp}: {lv['decision']}: {lv['reason']}.")
-        for p in lv.get("problems", []):
-            lines.append(f"  - problem: {p}")
-    lines += ["", "## Conclusion", "", results["verdict"], ""]
-    if results.get("warnings"):
-        lines += ["## Notes", ""] + [f"- {w}" for w in results["warnings"]] + [""]
-    lines += ["## Cautions", ""] + [f"- {c}" for c in CAUTIONS] + [""]
-    lines += ["## Pipeline as run", "", "```yaml", context["pipeline_text"].rstrip(), "```", ""]
-    path = out_dir / "report.md"
-    path.write_text("\n".join(lines), encoding="utf-8")
-    return [path]
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    quiet = bool((context or {}).get("quiet", False))
+    with Progress(len(SECTIONS) + 3, label="report", quiet=quiet) as bar:
+        sections, meta = build_report(results, estimates, context, progress=bar)
+        figs = _figures(sections)
+        written: list[Path] = []
+        fig_paths: dict[str, str] = {}
+        if figs:
+            (out_dir / FIGURE_DIR).mkdir(exist_ok=True)
+        for fig in figs:
+            stem = re.sub(r"[^A-Za-z0-9-]+", "-", fig.name).strip("-") or "figure"
+            name, k = f"{stem}.png", 2
+            while f"{FIGURE_DIR}/{name}" in fig_paths.values():
+                name, k = f"{stem}-{k}.png", k + 1
+            path = out_dir / FIGURE_DIR / name
+            path.write_bytes(fig.png)
+            fig_paths[fig.name] = f"{FIGURE_DIR}/{name}"
+            written.append(path)
+        html = out_dir / REPORT_HTML
+        html.write_text(render_html(sections, meta), encoding="utf-8")
+        bar.update(note=REPORT_HTML)
+        md = out_dir / REPORT_MD
+        md.write_text(render_markdown(sections, meta, fig_paths), encoding="utf-8")
+        bar.update(note=REPORT_MD)
+        tables = write_level_tables(out_dir, results)
+        bar.update(note="tables")
+    return [html, md, *tables, *written]

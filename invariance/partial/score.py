@@ -1,0 +1,413 @@
+"""Score (Lagrange multiplier) tests for the equality constraints of a fitted level.
+
+METHODS section 8 (Sorbom 1989; Bentler's LM test). The restricted model is the fitted
+level; its *unconstrained parameterization* gives every label shared across groups one
+copy per group (and frees every fixed entry that carries a label: an equality with a
+fixed reference value, as the structural levels of :mod:`invariance.model.structural`
+write equal variances and means). At the restricted estimates, with T = sum_g N_g F_g,
+``g`` the gradient of T and ``H`` its expected Hessian in the unconstrained
+parameterization and ``M`` the map theta_U = M theta_R, freeing a set D of copies adds
+free deviations delta_D, and
+
+    C      = H_DD - H_DR H_RR^-1 H_RD           (H_RR = M' H M, H_DR = (H M)_D)
+    s      = g_D - H_DR H_RR^-1 g_R             (g_R = M' g, ~0 at convergence)
+    LM     = s' C^-1 s / 2                       chi-square on |D| df
+    EPC    = -C^-1 s                             expected change of each freed copy
+
+(T = -2 logL + const, so the logL score is -g/2 and its information H/2.) One copy gives
+the univariate test (one group's parameter against the rest, df 1); all copies but one of
+an item parameter give the multivariate test across groups (df = groups sharing it - 1).
+Nothing is refitted.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+
+import numpy as np
+from scipy import stats as _st
+
+from ..data.moments import SampleStats
+from ..errors import SpecificationError
+from ..estimate.objective import MLObjective
+from ..model.spec import ALPHA, BETA, LAMBDA, NU, PSI, THETA, ModelSpec, Release
+from ..results import FitResult
+
+__all__ = [
+    "Constraint",
+    "CopyTest",
+    "SetTest",
+    "ScoreTests",
+    "constraints",
+    "score_tests",
+    "release_constraint",
+    "map_theta",
+]
+
+_SEP = "@@"  # separator of group copies in the unconstrained parameterization
+
+
+@dataclass(frozen=True)
+class Constraint:
+    """One cross-group equality: entries that share a label in several groups.
+
+    Attributes
+    ----------
+    label
+        The shared label.
+    parameter, item, factor
+        Parameter kind, its left-hand name (item, or factor for variances, means and
+        paths) and right-hand name (factor of a loading, predictor of a path, the
+        other variable of a covariance; ``None`` otherwise).
+    groups
+        Groups that share the label.
+    fixed
+        ``True`` when the entries are fixed at a common value (the reference group's
+        identification value) rather than one free parameter.
+    entries
+        Entry indices in the spec.
+    anchor
+        For a fixed equality, the group whose fixed entry stays (the reference group
+        when it shares the label); ``None`` otherwise.
+    """
+
+    label: str
+    parameter: str
+    item: str
+    factor: str | None
+    groups: tuple[str, ...]
+    fixed: bool
+    entries: tuple[int, ...]
+    anchor: str | None = None
+
+    @property
+    def testable_groups(self) -> tuple[str, ...]:
+        """Groups whose copy can be released on its own (for a fixed equality, all but
+        the ``anchor`` group, the reference, whose entry sets the scale)."""
+        return tuple(g for g in self.groups if g != self.anchor) if self.fixed else self.groups
+
+    def release(self, groups: tuple[str, ...] | None = None) -> Release:
+        """The :class:`Release` record that frees this constraint (in ``groups``)."""
+        return Release(self.parameter, self.item, self.factor, None if groups is None else tuple(groups))
+
+
+@dataclass(frozen=True)
+class CopyTest:
+    """Univariate score test: one group's copy of a constraint set free (df 1)."""
+
+    constraint: Constraint
+    group: str
+    statistic: float
+    pvalue: float
+    epc: float
+    epc_std: float
+
+    df: int = 1
+
+    def to_dict(self) -> dict:
+        c = self.constraint
+        return {
+            "label": c.label,
+            "parameter": c.parameter,
+            "item": c.item,
+            "factor": c.factor,
+            "group": self.group,
+            "statistic": self.statistic,
+            "df": self.df,
+            "pvalue": self.pvalue,
+            "epc": self.epc,
+            "epc_std": self.epc_std,
+        }
+
+
+@dataclass(frozen=True)
+class SetTest:
+    """Multivariate score test: the parameter free in every group that shares it.
+
+    ``epc`` lists the expected change of each freed copy; for a shared free parameter
+    the first group's copy keeps the common value, so the changes are the other
+    groups' expected deviations from it (for a fixed equality: from the fixed value).
+    """
+
+    constraint: Constraint
+    statistic: float
+    df: int
+    pvalue: float
+    epc: tuple[tuple[str, float, float], ...]  # (group, epc, epc_std), groups freed
+
+    def to_dict(self) -> dict:
+        c = self.constraint
+        return {
+            "label": c.label,
+            "parameter": c.parameter,
+            "item": c.item,
+            "factor": c.factor,
+            "groups": list(c.groups),
+            "statistic": self.statistic,
+            "df": self.df,
+            "pvalue": self.pvalue,
+            "epc": [{"group": g, "epc": e, "epc_std": s} for g, e, s in self.epc],
+        }
+
+
+@dataclass(frozen=True)
+class ScoreTests:
+    """All score tests of one fitted level.
+
+    Attributes
+    ----------
+    level
+        The level's name.
+    univariate
+        One :class:`CopyTest` per group copy of every tested constraint.
+    multivariate
+        One :class:`SetTest` per tested constraint.
+    restricted_gradient
+        Largest absolute gradient of T in the restricted parameterization at the
+        estimates (about 0 at convergence; the tests assume it is).
+    """
+
+    level: str
+    univariate: tuple[CopyTest, ...]
+    multivariate: tuple[SetTest, ...]
+    restricted_gradient: float
+
+    def to_dict(self) -> dict:
+        return {
+            "level": self.level,
+            "restricted_gradient": self.restricted_gradient,
+            "univariate": [t.to_dict() for t in self.univariate],
+            "multivariate": [t.to_dict() for t in self.multivariate],
+        }
+
+    def frame(self, which: str = "univariate"):
+        """The tests as a pandas DataFrame (``which``: univariate or multivariate)."""
+        import pandas as pd
+
+        if which not in ("univariate", "multivariate"):
+            raise SpecificationError(f"'which' must be 'univariate' or 'multivariate'; got {which!r}.")
+        rows = [t.to_dict() for t in getattr(self, which)]
+        return pd.DataFrame(rows)
+
+
+# ------------------------------------------------------------------ constraints
+def constraints(spec: ModelSpec, *, parameters: tuple[str, ...] | None = None) -> tuple[Constraint, ...]:
+    """The cross-group equality constraints of a spec.
+
+    Free entries sharing a label across groups, and fixed entries sharing a (non-empty)
+    label across groups. ``parameters`` keeps only those kinds.
+    """
+    kinds = spec.kinds()
+    lhs, rhs = spec.entry_names()
+    out = []
+    by_label: dict[tuple[bool, str], list[int]] = {}
+    for k in range(spec.group.size):
+        lab = spec.label[k]
+        if lab:
+            by_label.setdefault((bool(spec.free[k]), lab), []).append(k)
+    for (free, lab), ents in by_label.items():
+        gs = sorted({int(spec.group[k]) for k in ents})
+        if len(gs) < 2:
+            continue
+        k0 = ents[0]
+        if parameters is not None and kinds[k0] not in parameters:
+            continue
+        groups = [spec.groups[g] for g in gs]
+        anchor = None
+        if not free:
+            anchor = spec.reference if spec.reference in groups else groups[0]
+            groups.remove(anchor)
+            groups.insert(0, anchor)
+        out.append(
+            Constraint(
+                label=lab,
+                parameter=str(kinds[k0]),
+                item=str(lhs[k0]),
+                factor=None if rhs[k0] is None else str(rhs[k0]),
+                groups=tuple(groups),
+                fixed=not free,
+                entries=tuple(ents),
+                anchor=anchor,
+            )
+        )
+    return tuple(out)
+
+
+def map_theta(old_spec: ModelSpec, old_theta: np.ndarray, new_spec: ModelSpec) -> np.ndarray:
+    """Carry estimates to a relabelled spec (starting values for a refit).
+
+    Each new parameter takes the old value of its first entry (the old estimate when the
+    entry was free, its fixed value otherwise).
+    """
+    out = np.empty(new_spec.n_params)
+    seen = np.zeros(new_spec.n_params, dtype=bool)
+    op, npar = old_spec.param_index, new_spec.param_index
+    for k in np.flatnonzero(npar >= 0):
+        j = npar[k]
+        if not seen[j]:
+            out[j] = old_theta[op[k]] if op[k] >= 0 else old_spec.value[k]
+            seen[j] = True
+    return out
+
+
+def release_constraint(spec: ModelSpec, constraint: Constraint, groups: tuple[str, ...] | None = None) -> ModelSpec:
+    """Release one constraint: the entries of ``groups`` (default: every group that can
+    be freed) get group-specific free parameters; a :class:`Release` is recorded."""
+    free_groups = constraint.testable_groups if groups is None else tuple(groups)
+    unknown = [g for g in free_groups if g not in constraint.groups]
+    if unknown:
+        raise SpecificationError(
+            f"Group {unknown[0]!r} does not share {constraint.label!r}; choose among {', '.join(constraint.groups)}."
+        )
+    label = spec.label.copy()
+    free = spec.free.copy()
+    gi = {spec.groups.index(g) for g in free_groups}
+    for k in constraint.entries:
+        if spec.group[k] in gi:
+            base = label[k].split("|", 1)[0]
+            label[k] = f"{base}|{spec.groups[spec.group[k]]}"
+            free[k] = True
+    rec = constraint.release(None if groups is None and not constraint.fixed else free_groups)
+    return replace(spec, label=label, free=free, released=spec.released + (rec,))
+
+
+# ----------------------------------------------------------------- the tests
+def _unconstrained(spec: ModelSpec, cons: tuple[Constraint, ...]) -> tuple[ModelSpec, dict]:
+    """Relabel: every constraint entry gets a per-group copy. Returns the spec and
+    (constraint index, group) -> the entries of that copy."""
+    label = spec.label.copy()
+    free = spec.free.copy()
+    copies: dict[tuple[int, str], list[int]] = {}
+    for c_i, c in enumerate(cons):
+        for k in c.entries:
+            g = spec.groups[spec.group[k]]
+            if c.fixed and g not in c.testable_groups:
+                continue
+            label[k] = f"{c.label}{_SEP}{g}"
+            free[k] = True
+            copies.setdefault((c_i, g), []).append(k)
+    return replace(spec, label=label, free=free), copies
+
+
+def _std_factor(mats: tuple[np.ndarray, ...], matrix: int, r: int, c: int) -> float:
+    """Multiplier that puts a raw parameter of one group on the standardized scale."""
+    lam, beta, psi, theta, *_ = mats
+    m = beta.shape[0]
+    A = np.linalg.inv(np.eye(m) - beta)
+    phi = A @ psi @ A.T
+    sx = np.sqrt(np.diag(lam @ phi @ lam.T + theta))
+    sf = np.sqrt(np.clip(np.diag(phi), 1e-300, None))
+    if matrix == LAMBDA:
+        return sf[c] / sx[r]
+    if matrix == BETA:
+        return sf[c] / sf[r]
+    if matrix == PSI:
+        return 1.0 / (sf[r] * sf[c])
+    if matrix == THETA:
+        return 1.0 / (sx[r] * sx[c])
+    if matrix == NU:
+        return 1.0 / sx[r]
+    if matrix == ALPHA:
+        return 1.0 / sf[r]
+    raise ValueError(matrix)
+
+
+def _align(fit: FitResult, stats: SampleStats) -> SampleStats:
+    spec = fit.spec
+    if tuple(stats.names) != tuple(spec.groups):
+        stats = stats.subset(spec.groups)
+    if tuple(stats.items) != tuple(spec.items):
+        stats = stats.reorder_items(spec.items)
+    return stats
+
+
+def score_tests(
+    fit: FitResult,
+    stats: SampleStats,
+    *,
+    parameters: tuple[str, ...] | None = None,
+) -> ScoreTests:
+    """Score tests for every cross-group equality constraint of a fitted level.
+
+    Parameters
+    ----------
+    fit
+        The fitted (restricted) level.
+    stats
+        The sample statistics it was fitted to.
+    parameters
+        Parameter kinds to test (for example ``("intercept",)``); all by default.
+
+    Returns
+    -------
+    ScoreTests
+    """
+    if not str(fit.estimator).startswith("ml"):
+        raise SpecificationError(
+            f"Score tests use the normal-theory ML information; this fit used {fit.estimator!r}: "
+            "refit the level with ML to locate noninvariance."
+        )
+    spec = fit.spec
+    stats = _align(fit, stats)
+    cons = constraints(spec, parameters=parameters)
+    uspec, copies = _unconstrained(spec, cons)
+    q_r, q_u = spec.n_params, uspec.n_params
+    upar, rpar = uspec.param_index, spec.param_index
+    theta_u = map_theta(spec, fit.theta, uspec)
+    M = np.zeros((q_u, q_r))
+    for k in np.flatnonzero(upar >= 0):
+        if rpar[k] >= 0:
+            M[upar[k], rpar[k]] = 1.0
+    _, g, H = MLObjective(uspec, stats).derivatives(theta_u)
+    HM = H @ M
+    Hrr = M.T @ HM
+    g_r = M.T @ g
+    try:
+        Hrr_inv = np.linalg.inv(Hrr)
+    except np.linalg.LinAlgError:
+        Hrr_inv = np.linalg.pinv(Hrr)
+    P = HM @ Hrr_inv                # (q_u, q_r)
+    s_all = g - P @ g_r
+    cu = {key: int(upar[ents[0]]) for key, ents in copies.items()}
+    std = {
+        key: _std_factor(fit.matrices[spec.group[ents[0]]], spec.matrix[ents[0]], spec.row[ents[0]], spec.col[ents[0]])
+        for key, ents in copies.items()
+    }
+
+    def block(D: list[int]):
+        C = H[np.ix_(D, D)] - P[D] @ HM[D].T
+        s = s_all[D]
+        try:
+            w, v = np.linalg.eigh((C + C.T) / 2)
+        except np.linalg.LinAlgError:
+            return np.nan, None
+        scale = max(abs(w).max(), 1e-300)
+        if w.min() <= 1e-9 * scale:
+            return np.nan, None  # releasing this set would not be identified
+        Cinv = (v / w) @ v.T
+        return float(s @ Cinv @ s / 2.0), -(Cinv @ s)
+
+    uni, multi = [], []
+    for c_i, c in enumerate(cons):
+        gs = [g_ for g_ in c.testable_groups if (c_i, g_) in cu]
+        for g_ in gs:
+            lm, epc = block([cu[(c_i, g_)]])
+            e = float(epc[0]) if epc is not None else np.nan
+            pv = float(_st.chi2.sf(lm, 1)) if np.isfinite(lm) else np.nan
+            uni.append(CopyTest(c, g_, lm, pv, e, float(e * std[(c_i, g_)])))
+        free_set = gs if c.fixed else gs[1:]
+        if not free_set:
+            continue
+        lm, epc = block([cu[(c_i, g_)] for g_ in free_set])
+        df = len(free_set)
+        if epc is None:
+            epcs = tuple((g_, np.nan, np.nan) for g_ in free_set)
+        else:
+            epcs = tuple((g_, float(e), float(e) * std[(c_i, g_)]) for g_, e in zip(free_set, epc))
+        multi.append(SetTest(c, lm, df, float(_st.chi2.sf(lm, df)) if np.isfinite(lm) else np.nan, epcs))
+    return ScoreTests(
+        level=spec.level,
+        univariate=tuple(uni),
+        multivariate=tuple(multi),
+        restricted_gradient=float(np.max(np.abs(g_r))) if g_r.size else 0.0,
+    )

@@ -1,0 +1,70 @@
+"""The pipeline stage of the alignment (``alignment: {enabled: true}``).
+
+Runs :func:`invariance.alignment.align` on the configural fit and puts the result under
+``alignment`` in results.json: ``means`` and ``variances`` map factor -> group -> value
+(reference group 0 and 1), with their standard errors, per-parameter agreement and the
+settings used.
+"""
+
+from __future__ import annotations
+
+from typing import TYPE_CHECKING
+
+from ..alignment import align
+from ..errors import SpecificationError
+
+if TYPE_CHECKING:  # load.py imports this module
+    from .load import PipelineSpec
+
+__all__ = ["stage_alignment", "check_alignment_section"]
+
+
+def check_alignment_section(doc, structure) -> None:
+    """Refuse, when the pipeline is loaded, an alignment the model cannot have.
+
+    Alignment works factor by factor, so it needs single-factor or correlated-factor
+    models whose items each load on one factor.
+    """
+    opts = doc.get("alignment") or {}
+    if not opts.get("enabled", False):
+        return
+    family = structure.family
+    if family not in ("single", "correlated"):
+        raise SpecificationError(
+            f"alignment.enabled needs a single-factor or correlated-factor model, not {family}: an item's "
+            "intercept there depends on several factor means; set alignment.enabled to false."
+        )
+    seen: dict[str, str] = {}
+    for f, its in structure.factors.items():
+        for it in its:
+            if it in seen:
+                raise SpecificationError(
+                    f"alignment.enabled needs each item on one factor; {it} loads on {seen[it]} and {f}: "
+                    "drop the cross-loading or set alignment.enabled to false."
+                )
+            seen[it] = f
+
+
+def stage_alignment(spec: "PipelineSpec", state: dict) -> dict:
+    """Align the groups of the configural model when the pipeline asks for it."""
+    opts = spec.section("alignment") or {}
+    if not opts.get("enabled", False):
+        return {}
+    check_alignment_section(spec.document, spec.structure)
+    res = state.get("fits", {}).get("configural")
+    if res is None or not res.converged:
+        why = "was not fitted" if res is None else "did not converge"
+        state.setdefault("warnings", []).append(f"alignment skipped: the configural model {why}")
+        return {"alignment": {"enabled": True, "error": f"the configural model {why}"}}
+    ref = opts.get("reference")
+    al = align(
+        res,
+        reference=None if ref is None else str(ref),
+        alpha_pairwise=float(opts.get("alpha_pairwise", 0.01)),
+        alpha_set=float(opts.get("alpha_set", 0.001)),
+        random_starts=int(opts.get("random_starts", 4)),
+        seed=int(spec.seed or 0),
+    )
+    state["alignment"] = al
+    state.setdefault("warnings", []).extend(f"alignment: {n}" for n in al.notes)
+    return {"alignment": {"enabled": True, **al.to_dict()}}

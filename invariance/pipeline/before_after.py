@@ -1,0 +1,159 @@
+"""Pipeline stages before and after the invariance sequence.
+
+* ``screening`` (before any model): item screening per group, :func:`invariance.screening.screen`;
+  options under ``screening:`` (``bounds``, ``rules``). results.json ``screening``.
+* ``group_fit`` (before the configural model): the chosen structure in each group on its
+  own, :func:`invariance.structures.group_fit`; a warning naming each group that does not
+  fit acceptably; rule under ``compare: {group_fit: {cfi_min, rmsea_max}}``.
+  results.json ``group_fit``.
+* ``structures`` (only with ``compare: {structures: [...]}``): rival structures per group and
+  as configural models, :func:`invariance.structures.compare_structures`. results.json
+  ``structures`` (rows) and ``structure_notes`` (equivalences and problems).
+* ``scores`` (only with ``scores: {method, id}``): factor scores from the final accepted
+  model (``state["final_fit"]`` when a partial-invariance stage leaves one, else the fit of
+  the supported level), :func:`invariance.scores.factor_scores`; the table goes to
+  scores.csv in the run folder, the summary (level, released constraints, determinacy,
+  the statement of what the scores compare) to results.json ``scores``.
+"""
+
+from __future__ import annotations
+
+from ..compare import supported_level
+from ..errors import DataError, SpecificationError
+from ..scores import factor_scores
+from ..screening import screen
+from ..structures import compare_structures, group_fit
+from .load import PipelineSpec, thaw
+
+__all__ = ["stage_screening", "stage_group_fit", "stage_structures", "stage_scores"]
+
+
+def _section(spec: PipelineSpec, name: str) -> dict:
+    return thaw(spec.section(name) or {})
+
+
+def _fitter(spec: PipelineSpec):
+    """The pipeline's estimator (the per-group and rival fits use the same one)."""
+    from .stages import FITTERS  # stages imports this module: look up at run time
+
+    return FITTERS.get(spec.estimator, FITTERS["ml"])
+
+
+def stage_screening(spec: PipelineSpec, state: dict) -> dict:
+    """Screen the items of every group (before any model is fitted)."""
+    checked = state["checked"]
+    opts = _section(spec, "screening")
+    out = screen(
+        checked.frame,
+        list(checked.items),
+        checked.group,
+        groups=list(checked.groups),
+        scales={f: list(v) for f, v in spec.structure.factors.items()},
+        bounds={k: tuple(v) for k, v in (opts.get("bounds") or {}).items()},
+        rules=opts.get("rules"),
+    )
+    rec = out["recommendation"]
+    if rec["estimator"] == "robust_ml" and spec.estimator == "ml":
+        state.setdefault("warnings", []).append("screening: " + rec["notes"][0])
+    if rec["ordinal_items"]:
+        state.setdefault("warnings", []).append(
+            "screening: items with fewer than five categories are fitted as continuous: "
+            + ", ".join(rec["ordinal_items"])
+        )
+    return {"screening": out}
+
+
+def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
+    """Fit the structure in each group separately, before the configural model.
+
+    The rule is ``compare.group_fit``, else ``decision.configural_fit``, else CFI >= .90
+    and RMSEA <= .10 (common practice).
+    """
+    rule = _section(spec, "compare").get("group_fit") or _section(spec, "decision").get("configural_fit") or {}
+    gf = group_fit(
+        state["stats"],
+        spec.structure,
+        cfi_min=float(rule.get("cfi", 0.90)),
+        rmsea_max=float(rule.get("rmsea", 0.10)),
+        warn=False,
+        fitter=_fitter(spec),
+    )
+    state["group_fit"] = gf
+    state.setdefault("warnings", []).extend(gf.messages)
+    return {"group_fit": gf.to_dict()}
+
+
+def stage_structures(spec: PipelineSpec, state: dict) -> dict:
+    """Rival structures (only when ``compare.structures`` lists some)."""
+    fams = _section(spec, "compare").get("structures")
+    if not fams:
+        return {}
+    st = spec.structure
+    try:
+        cmp_ = compare_structures(
+            state["stats"],
+            st.factors,
+            fams,
+            general=st.general,
+            residual_covariances=st.residual_covariances,
+            fitter=_fitter(spec),
+        )
+    except SpecificationError as exc:
+        raise SpecificationError(f"compare.structures: {exc}") from None
+    state["structures"] = cmp_
+    notes = list(cmp_.notes)
+    if st.regressions:
+        notes.insert(0, "Rival structures are compared on the measurement part only (factor regressions left out).")
+    return {
+        "structures": cmp_.to_records(),
+        "structure_notes": {"equivalent": list(cmp_.equivalent), "notes": notes},
+    }
+
+
+def _final_fit(state: dict):
+    """The final accepted model: a partial model if a later stage left one, else the supported level."""
+    final = state.get("final_fit")
+    if final is not None:
+        return final
+    best = supported_level(state["level_rows"])
+    return None if best is None else state["fits"].get(best)
+
+
+def stage_scores(spec: PipelineSpec, state: dict) -> dict:
+    """Factor scores per case from the final accepted model (only with a ``scores`` section)."""
+    if spec.section("scores") is None:
+        return {}
+    opts = _section(spec, "scores")
+    res = _final_fit(state)
+    if res is None:
+        state.setdefault("warnings", []).append(
+            "scores: no level was supported, so no factor scores were written"
+        )
+        return {"scores": None}
+    checked = state["checked"]
+    frame = checked.frame.copy()
+    id_col = opts.get("id")
+    if id_col is None:
+        # row number in the data file (from 0); checked.frame keeps the original row index
+        id_col = "row" if "row" not in frame.columns else "case_row"
+        frame[id_col] = frame.index.to_numpy()
+    else:
+        full = state["frame"]
+        if id_col not in full.columns:
+            raise DataError(f"scores.id names column {id_col!r}, which is not in the data; check the spelling.")
+        if id_col in frame.columns:
+            raise SpecificationError(
+                f"scores.id names column {id_col!r}, which is an item or the group column; name an identifier column."
+            )
+        frame[id_col] = full.loc[frame.index, id_col].to_numpy()
+    fs = factor_scores(
+        res,
+        frame,
+        group=checked.group,
+        method=opts.get("method", "regression"),
+        id=id_col,
+        incomplete=bool(opts.get("incomplete", False)),
+    )
+    state["scores_table"] = fs.table
+    state.setdefault("warnings", []).extend(f"scores: {n}" for n in fs.notes)
+    return {"scores": fs.to_dict()}

@@ -1,0 +1,175 @@
+"""Item-level sections: flagged items, parameter profiles across groups, dMACS heat map."""
+
+from __future__ import annotations
+
+import math
+from typing import Any, Mapping
+
+from . import inputs as I
+from .formatting import fmt_bounded, fnum, level_label
+from .parts import Figure, Section, Table, Text, records_table
+from .plots import dmacs_heatmap, profile_chart
+from .sections import ReportInput
+
+__all__ = ["dmacs_values", "section_effects", "section_flagged", "section_profiles"]
+
+FLAG_NAMES = {
+    "item": "Item", "parameter": "Parameter", "factor": "Factor", "groups": "Groups", "level": "Level",
+    "statistic": "Statistic", "lm": "Score test", "score": "Score test", "df": "df", "pvalue": "p",
+    "p": "p", "p_adjusted": "p (adjusted)", "dmacs": "dMACS",
+}
+#: Most markers (rows x groups) in one profile figure: larger sets are split so each fits a page.
+MAX_MARKERS = 90
+KIND_TITLES = {"loading": "Loadings", "intercept": "Intercepts", "threshold": "Thresholds"}
+
+
+def section_flagged(inp: ReportInput) -> Section | None:
+    """Items whose parameters were flagged as differing across groups."""
+    flagged = [f for f in inp.results.get("flagged") or [] if isinstance(f, Mapping)]
+    if not flagged:
+        return None
+    tab = records_table(flagged, names=FLAG_NAMES, caption="Parameters flagged as differing across groups")
+    first = ["Item", "Parameter", "Factor", "Groups", "Level"]
+    order = [tab.columns.index(c) for c in first if c in tab.columns]
+    order += [k for k in range(len(tab.columns)) if k not in order]
+    tab = Table(
+        tuple(tab.columns[k] for k in order),
+        tuple(tuple(r[k] for k in order) for r in tab.rows),
+        caption=tab.caption,
+        numeric=tuple(tab.is_numeric(k) for k in order),
+    )
+    return Section("flagged", "Flagged items", (
+        tab,
+        Text("A flag says the data disagree with an equality constraint; its size is in the dMACS column "
+             "(rough guides .2 small, .4 medium, .6 large: Nye, Bradburn, Olenick, Bialko & Drasgow 2019).",
+             style="note"),
+    ))
+
+
+def _released_rows(entry: Mapping[str, Any] | None, kind: str, rows: dict[str, tuple[str, str]]) -> list[str]:
+    out = []
+    for r in (entry or {}).get("released") or []:
+        if not isinstance(r, Mapping) or str(r.get("parameter")) != kind:
+            continue
+        for name, (item, fac) in rows.items():
+            if item == str(r.get("item")) and (r.get("factor") in (None, "") or str(r.get("factor")) == fac):
+                out.append(name)
+    return out
+
+
+def section_profiles(inp: ReportInput) -> Section | None:
+    """Loadings and intercepts (or thresholds) of every item across groups."""
+    acc = inp.accepted
+    level = acc.get("level") if acc else None
+    est = inp.estimates_at(level)
+    if est.empty:
+        level = "configural"
+        est = inp.estimates_at(level)
+    if est.empty or "parameter" not in est:
+        return None
+    groups = [g for g in inp.groups] or [str(g) for g in dict.fromkeys(est["group"].astype(str))]
+    parts: list = []
+    for kind in ("loading", "threshold", "intercept"):
+        sub = est[est["parameter"] == kind]
+        if sub.empty:
+            continue
+        rows: dict[str, tuple[str, str]] = {}
+        values: dict[tuple[str, str], tuple[float, float | None]] = {}
+        for _, r in sub.iterrows():
+            item = str(r["lhs"])
+            other = r.get("rhs")
+            other = "" if other is None or (isinstance(other, float) and other != other) else str(other)
+            name = f"{item} \u2190 {other}" if kind == "loading" and other else (f"{item} {other}".strip())
+            rows.setdefault(name, (item, other))
+            v = fnum(r.get("estimate"))
+            if v is not None:
+                values[(name, str(r["group"]))] = (v, fnum(r.get("se")))
+        rel = _released_rows(acc, kind, rows)
+        names = list(rows)
+        per = max(4, int(MAX_MARKERS / max(len(groups), 1)))
+        per = math.ceil(len(names) / math.ceil(len(names) / per))  # even split
+        chunks = [names[k:k + per] for k in range(0, len(names), per)]
+        for n_chunk, chunk in enumerate(chunks, start=1):
+            part_of = f" ({n_chunk} of {len(chunks)})" if len(chunks) > 1 else ""
+            png = profile_chart(chunk, groups, values, released=[r for r in rel if r in chunk],
+                                title=KIND_TITLES[kind] + part_of, xlabel=f"{kind} (unstandardized, 95% interval)")
+            if png is None:
+                continue
+            cap = (f"{KIND_TITLES[kind]}{part_of} per group under the "
+                   f"{level_label(acc or {'level': level}).lower()} model. "
+                   "Constrained parameters are equal across groups by construction")
+            cap += "; released ones (\u2020, shaded) are estimated per group." if rel else "; none were released."
+            stem = f"profile-{kind}" + (f"-{n_chunk}" if len(chunks) > 1 else "")
+            parts.append(Figure(stem, png, alt=f"{KIND_TITLES[kind]}{part_of} of each item in each group", caption=cap))
+    if not parts:
+        return None
+    return Section("profiles", "Item profiles across groups", tuple(parts))
+
+
+def _add(out: dict, item: Any, group: Any, value: Any) -> None:
+    v = fnum(value)
+    if v is None or item is None:
+        return
+    out[(str(item), "(all focal)" if group in (None, "", "all") else str(group))] = v
+
+
+def dmacs_values(inp: ReportInput) -> dict[tuple[str, str], float]:
+    """``(item, focal group) -> dMACS`` from the effects section or the flagged items."""
+    out: dict[tuple[str, str], float] = {}
+    eff = I.first_key(inp.results, I.OPTIONAL_KEYS["effects"])
+    if isinstance(eff, Mapping) and "dmacs" in eff:
+        eff = eff["dmacs"]
+    if isinstance(eff, Mapping):
+        for item, v in eff.items():
+            if isinstance(v, Mapping):
+                for g, x in v.items():
+                    _add(out, item, g, x)
+            else:
+                _add(out, item, None, v)
+    elif isinstance(eff, (list, tuple)):
+        for rec in eff:
+            if isinstance(rec, Mapping):
+                val = I.first_key(rec, ("dmacs", "value", "estimate"))
+                g = I.first_key(rec, ("group", "focal", "focal_group"))
+                if isinstance(val, Mapping):
+                    for gg, x in val.items():
+                        _add(out, rec.get("item"), gg, x)
+                else:
+                    _add(out, rec.get("item"), g, val)
+    for f in inp.results.get("flagged") or []:
+        if not isinstance(f, Mapping) or f.get("dmacs") is None:
+            continue
+        d = f["dmacs"]
+        if isinstance(d, Mapping):
+            for g, x in d.items():
+                if fnum(x) is not None:
+                    out.setdefault((str(f.get("item")), str(g)), fnum(x))
+        else:
+            gs = [g for g in (f.get("groups") or []) if str(g) != inp.reference]
+            key_g = gs[0] if len(gs) == 1 else None
+            if fnum(d) is not None:
+                out.setdefault((str(f.get("item")), "(all focal)" if key_g is None else str(key_g)), fnum(d))
+    return out
+
+
+def section_effects(inp: ReportInput) -> Section | None:
+    """Items-by-groups heat map of dMACS."""
+    vals = dmacs_values(inp)
+    if not vals:
+        return None
+    seen_items = {i for i, _ in vals}
+    items = list(inp.items) + sorted(seen_items - set(inp.items))
+    focal = [g for g in inp.groups if g != inp.reference]
+    seen_groups = {g for _, g in vals}
+    groups = [g for g in focal if g in seen_groups] + sorted(seen_groups - set(focal))
+    png = dmacs_heatmap(items, groups, vals)
+    parts: list = []
+    if png is not None:
+        parts.append(Figure("dmacs", png, alt="Heat map of dMACS by item and focal group",
+                            caption="dMACS (Nye & Drasgow 2011): the expected difference in an item's mean at equal latent "
+                                    "values, in pooled SD units. White lines on the scale mark the rough guides .2, .4, .6 "
+                                    "(Nye et al. 2019); a dash: not computed."))
+    rows = tuple((i, g, fmt_bounded(v)) for (i, g), v in sorted(vals.items(), key=lambda kv: -kv[1]))
+    parts.append(Table(("Item", "Focal group", "dMACS"), rows, caption="dMACS, largest first",
+                       numeric=(False, False, True)))
+    return Section("effects", "Size of the differences (dMACS)", tuple(parts))

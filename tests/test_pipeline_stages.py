@@ -1,0 +1,38 @@
+"""Extending a run with a stage: one call, its dict merged into results.json."""
+
+import pytest
+
+import invariance
+from invariance.pipeline import stages
+
+from conftest import hs_doc
+
+
+@pytest.fixture()
+def restore_stages():
+    saved = list(stages.STAGES)
+    yield
+    stages.STAGES[:] = saved
+
+
+def test_added_stage_sees_fits_and_its_result_is_merged(hs_dir, restore_stages):
+    seen = {}
+
+    def extra(spec, state):
+        seen["levels"] = sorted(state["fits"])
+        # a later stage may refine level entries in place (e.g. partial invariance)
+        state["level_rows"][0]["note"] = "seen"
+        return {"extra_section": {"n_fits": len(state["fits"])}}
+
+    invariance.pipeline.add_stage("extra", extra, after="fits")
+    names = [n for n, _ in stages.STAGES]
+    assert names.index("extra") == names.index("fits") + 1
+    d = invariance.run(hs_doc(str(hs_dir / "hs.csv"), levels=["configural", "metric"]), quiet=True).to_dict()
+    assert seen["levels"] == ["configural", "metric"]
+    assert d["extra_section"] == {"n_fits": 2}
+    assert d["levels"][0]["note"] == "seen"
+
+
+def test_add_stage_rejects_unknown_anchor(restore_stages):
+    with pytest.raises(ValueError, match="Unknown stage"):
+        invariance.pipeline.add_stage("x", lambda s, st: {}, after="nope")
