@@ -43,10 +43,10 @@ DEFAULT_RELEASE_KINDS = {
 }
 
 
-def _stats(data, structure: Structure, group, merge) -> OrdinalStats:
+def _stats(data, structure: Structure, group, merge, continuous=()) -> OrdinalStats:
     if isinstance(data, OrdinalStats):
         return data
-    return ordinal_stats(data, structure.items, group, merge=merge)
+    return ordinal_stats(data, structure.items, group, merge=merge, continuous=continuous)
 
 
 def fit_ordinal_level(
@@ -59,6 +59,7 @@ def fit_ordinal_level(
     released: Iterable[Release] = (),
     merge: Mapping[str, Sequence[Sequence[float]]] | None = None,
     fixed_means: Sequence[str] = (),
+    continuous: Sequence[str] = (),
 ) -> FitResult:
     """Fit one ordinal level by DWLS.
 
@@ -68,14 +69,14 @@ def fit_ordinal_level(
         A pandas DataFrame (``group`` names the grouping column) or
         :class:`~invariance.ordinal.OrdinalStats`.
     structure
-        The measurement structure; all its items are treated as ordered.
+        The measurement structure; its items are ordered unless named in ``continuous``.
     level
         One of :data:`~invariance.ordinal.ORDINAL_LEVELS`.
-    group, reference, released, merge, fixed_means
+    group, reference, released, merge, fixed_means, continuous
         Grouping column, reference group, releases, category merges, factors whose
-        means stay 0.
+        means stay 0, and items measured on a continuous scale (the rest are ordered).
     """
-    stats = _stats(data, structure, group, merge)
+    stats = _stats(data, structure, group, merge, continuous)
     spec = build_ordinal_level(structure, stats.names, level, stats.n_categories,
                                reference=reference, released=released, fixed_means=fixed_means)
     return fit_dwls(spec, stats)
@@ -91,6 +92,7 @@ def fit_ordinal_levels(
     released: Iterable[Release] = (),
     merge: Mapping[str, Sequence[Sequence[float]]] | None = None,
     fixed_means: Sequence[str] = (),
+    continuous: Sequence[str] = (),
 ) -> tuple[dict[str, FitResult], OrdinalStats]:
     """Fit several ordinal levels on the same statistics.
 
@@ -98,7 +100,7 @@ def fit_ordinal_levels(
     -------
     (dict level -> FitResult, OrdinalStats)
     """
-    stats = _stats(data, structure, group, merge)
+    stats = _stats(data, structure, group, merge, continuous)
     released = tuple(released)
     fits: dict[str, FitResult] = {}
     prev = None
@@ -136,7 +138,8 @@ def _candidates(structure: Structure, stats: OrdinalStats, kinds, released) -> l
         if kind not in ORDINAL_RELEASES:
             raise SpecificationError(f"Ordinal models release {', '.join(ORDINAL_RELEASES)}; got {kind!r}.")
         for i, it in enumerate(structure.items):
-            if (kind, it) in done or (kind == "residual" and stats.n_categories[i] == 2):
+            K = stats.n_categories[i]
+            if (kind, it) in done or (kind == "residual" and K == 2) or (kind == "threshold" and K == 0):
                 continue
             out.append(Release(kind, it))
     return out
@@ -279,11 +282,13 @@ def ordinal_effects(result: FitResult, stats: OrdinalStats, *, focal: str, refer
         sd_lat = [np.sqrt(result.sigma[g][i, i]) for g in (gr, gf)]
         sd_obs = [category_sd(fits[g].thresholds[i]) for g in (gr, gf)]
         pooled = float(np.sqrt(((nr - 1) * sd_obs[0] ** 2 + (nf - 1) * sd_obs[1] ** 2) / (nr + nf - 2)))
-        dm[it] = {
-            "latent": dmacs_latent(pr["nu"], pr["lam"], pf["nu"], pf["lam"], alpha_f, phi_f,
-                                   sd_r=sd_lat[0], sd_f=sd_lat[1], n_r=nr, n_f=nf),
-            "expected_score": dmacs_expected_score(pr, pf, alpha_f, phi_f, sd_pooled=pooled),
-        }
+        lat = dmacs_latent(pr["nu"], pr["lam"], pf["nu"], pf["lam"], alpha_f, phi_f,
+                           sd_r=sd_lat[0], sd_f=sd_lat[1], n_r=nr, n_f=nf)
+        if stats.n_categories[i] == 0:
+            # a continuous item is its own response scale: the two versions coincide
+            dm[it] = {"latent": lat, "expected_score": lat}
+            continue
+        dm[it] = {"latent": lat, "expected_score": dmacs_expected_score(pr, pf, alpha_f, phi_f, sd_pooled=pooled)}
     out = {"reference": ref, "focal": focal, "dmacs": dm}
     p = len(spec.items)
     lam0 = result.matrices[0][0]

@@ -70,11 +70,17 @@ def test_ordinal_pipeline_runs_the_wu_estabrook_sequence(tmp_path):
     assert scal["delta"]["pvalue"] < 1e-6
     assert scal["dwls"]["chi2_unadjusted"] is not None and scal["chi2"] is not None
     assert d["supported_level"] == "metric"
+    # effects on the latent-response / expected-score scales from the metric model
+    eff = d["effects"]["ordinal"]
+    assert eff["level"] == "metric" and set(eff["by_group"]) == {"upland"}
+    es = {it: v["expected_score"] for it, v in eff["by_group"]["upland"]["dmacs"].items()}
+    assert max(es, key=es.get) == "q5"
+    assert d["group_fit"] is None          # per-group continuous fits are skipped for ordinal items
 
 
-def test_mixed_items_and_wrong_estimator_rejected(tmp_path):
-    with pytest.raises(SpecificationError, match="leaves out"):
-        load_pipeline(_doc(data={"ordinal": ITEMS[:4]}), base_dir=tmp_path)
+def test_wrong_ordinal_settings_rejected(tmp_path):
+    with pytest.raises(SpecificationError, match="not in model.factors"):
+        load_pipeline(_doc(data={"ordinal": ["q1", "zz"]}), base_dir=tmp_path)
     with pytest.raises(SpecificationError, match="estimator dwls"):
         load_pipeline(_doc(estimator="ml"), base_dir=tmp_path)
     doc = _doc()

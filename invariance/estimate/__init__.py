@@ -10,6 +10,10 @@ from .robust import DifferenceTest, robust_difference, scaled_difference, strict
 from .start import start_values
 
 __all__ = [
+    "DWLSObjective",
+    "dwls_difference",
+    "fit_dwls",
+    "ordinal_start_values",
     "ESTIMATORS",
     "DifferenceTest",
     "DWLSObjective",

@@ -24,8 +24,8 @@ from ..errors import SpecificationError
 from ..model.levels import LEVELS, build_level
 from ..model.spec import Release
 from ..model.structure import Structure
-from .align_stage import check_alignment_section
 from ..ordinal.levels import ORDINAL_LEVELS, build_ordinal_level
+from .align_stage import check_alignment_section
 
 __all__ = ["PipelineSpec", "load_pipeline", "parse_yaml", "schema", "validate_document", "thaw"]
 
@@ -88,7 +88,8 @@ class PipelineSpec:
     title
         Name of the analysis.
     ordinal
-        The ordered-categorical items (every model item) or ``None`` for continuous items.
+        The ordered-categorical items (model order; the other items are continuous) or
+        ``None`` when every item is continuous.
     merge
         Ordinal items: item -> tuples of adjacent category values merged into one.
     fixed_means
@@ -234,12 +235,7 @@ def _ordinal(data: Mapping, structure: Structure, estimator: str | None):
     unknown = [i for i in items if i not in structure.items]
     if unknown:
         raise SpecificationError(f"data.ordinal names {unknown[0]!r}, which is not in model.factors; check the spelling.")
-    if set(items) != set(structure.items):
-        rest = [i for i in structure.items if i not in items]
-        raise SpecificationError(
-            f"data.ordinal leaves out {', '.join(rest)}; mixing continuous and ordinal items is not supported: "
-            "list every model item (or write all), or treat all items as continuous."
-        )
+
     if estimator not in (None, "dwls"):
         raise SpecificationError(f"Ordinal items are fitted by estimator dwls, not {estimator}; set estimator: dwls or drop it.")
     if merge is not None:
@@ -247,7 +243,8 @@ def _ordinal(data: Mapping, structure: Structure, estimator: str | None):
         if bad:
             raise SpecificationError(f"data.merge names {bad[0]!r}, which is not an ordinal item; check the spelling.")
         merge = MappingProxyType({str(k): tuple(tuple(float(x) for x in b) for b in v) for k, v in merge.items()})
-    return tuple(structure.items), merge, "dwls"
+    # model order; the items not listed are continuous (polyserial / Pearson correlations)
+    return tuple(i for i in structure.items if i in items), merge, "dwls"
 
 
 def _structure(model: Mapping) -> Structure:

@@ -208,7 +208,7 @@ def check(pipeline) -> dict:
     -------
     dict
         ``groups`` (group -> cases used), ``rows``, ``missing`` (group -> item -> count),
-        ``cases_used`` (how incomplete rows are handled), ``reference_group``, ``items``
+        ``cases_used`` (how incomplete rows are handled), ``reference_group``, ``items``,
         ``categories`` (ordinal pipelines: item -> category labels; ``None`` otherwise)
         and ``warnings``.
     """
@@ -227,8 +227,8 @@ def check(pipeline) -> dict:
         "cases_used": results["data"]["cases_used"],
         "levels": list(spec.levels),
         "family": spec.structure.family,
-        "free_parameters": results["free_parameters"],
         "categories": results.get("ordinal", {}).get("categories"),
+        "free_parameters": results["free_parameters"],
         "warnings": results["warnings"],
     }
 

@@ -26,14 +26,14 @@ from ..data.checks import check_data
 from ..data.moments import sample_stats
 from ..data.read import apply_missing, file_sha256, read_table
 from ..errors import DataError, InvarianceWarning, SpecificationError
-from ..estimate.dwls_robust import dwls_difference
+from ..estimate.dwls_robust import dwls_difference, fit_dwls
 from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
+from ..ordinal.levels import build_ordinal_level
+from ..ordinal.stats import ordinal_stats
 from ..partial.stage import stage_effects
 from .before_after import stage_group_fit, stage_scores, stage_screening, stage_structures
 from .align_stage import stage_alignment
-from ..ordinal.levels import build_ordinal_level
-from ..ordinal.stats import ordinal_stats
 from .load import PipelineSpec, thaw
 from . import robust_stage as _rs
 
@@ -46,7 +46,7 @@ Stage = Callable[[PipelineSpec, dict], dict]
 FITTERS: dict[str, Callable] = {
     "ml": ml_fit,
     "ml_robust": functools.partial(ml_fit, estimator="ml_robust"),
-    "dwls": ml_fit,  # ordinal statistics dispatch to the DWLS estimator
+    "dwls": fit_dwls,
 }
 
 #: Fit statistics copied into each level of results.json.
@@ -100,19 +100,24 @@ def stage_stats(spec: PipelineSpec, state: dict) -> dict:
     if spec.ordinal is not None:
         # thresholds, polychoric correlations and their ACOV per group (METHODS section 7)
         merge = None if spec.merge is None else {k: [list(b) for b in v] for k, v in spec.merge.items()}
-        stats = ordinal_stats(checked.frame, checked.items, checked.group, groups=checked.groups, merge=merge)
+        continuous = [i for i in checked.items if i not in spec.ordinal]
+        stats = ordinal_stats(checked.frame, checked.items, checked.group, groups=checked.groups, merge=merge,
+                              continuous=continuous)
         state["stats"] = stats
         return {
             "groups": {g.name: int(g.n) for g in stats.groups},
             "n_total": int(stats.n_total),
             "ordinal": {
-                "categories": {m.item: list(m.labels) for m in stats.categories},
-                "statistics": "thresholds and polychoric correlations per group (two-step pairwise ML), "
+                "categories": {m.item: list(m.labels) for m in stats.categories if m is not None},
+                "continuous_items": [i for i in checked.items if i not in spec.ordinal],
+                "statistics": "thresholds and polychoric correlations per group (two-step pairwise ML); "
+                "continuous items: means, variances, Pearson and two-step polyserial correlations; "
                 "asymptotic covariance from casewise influence values",
                 "reported": "chi2: mean-and-variance adjusted DWLS statistic (Asparouhov & Muthen 2010); "
                 "cfi, tli, rmsea: robust versions from T - tr(UV) (Brosseau-Liard, Savalei & Li 2012); "
                 "delta chi2: Satorra (2000) difference, scale-shifted; unadjusted values under 'dwls'",
             },
+            "missing_data": {"method": "listwise", "by_group": {}},
         }
     method = _rs.stats_method(spec, checked)
     stats = sample_stats(checked.frame, checked.items, checked.group, groups=checked.groups, missing=method)
@@ -283,17 +288,17 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
             row.update({"delta": None, "compared_with": None})
         else:
             base_level, base_row = accepted
-            if res.estimator == "dwls":
-                delta = _dwls_delta(level_delta(row, base_row), res, fits[base_level], stats)
-            elif robust:
+            if robust:
                 # decisions on the scaled difference and the robust indices
                 delta = level_delta(_rs.decision_view(row), _rs.decision_view(base_row))
                 delta = _rs.robust_delta(
                     delta, res, fits[base_level], stats, method=_rs.difference_choice(spec), cache=h1_cache
                 )
+            elif res.estimator == "dwls":
+                delta = _dwls_delta(level_delta(row, base_row), res, fits[base_level], stats)
             else:
                 delta = level_delta(row, base_row)
-            # the thresholds step is judged with the location (intercept-step) cutoffs
+            # the thresholds step (ordered items) is judged with the location (intercept-step) cutoffs
             verdict = judge_step(delta, "scalar" if lv == "thresholds" else lv, rule, converged=res.converged)
             improper = [p for p in res.problems if not p.startswith("not converged")]
             if improper and res.converged:
@@ -377,18 +382,58 @@ def stage_summary(spec: PipelineSpec, state: dict) -> dict:
 
 
 #: The stages of a run, in order: (name, function).
+def _continuous_only(stage: Stage, name: str) -> Stage:
+    """A stage that needs continuous-item statistics: skipped (with a note) for ordinal items."""
+
+    def wrapped(spec: PipelineSpec, state: dict) -> dict:
+        if spec.ordinal is None:
+            return stage(spec, state)
+        if name in ("structures", "alignment", "scores") and spec.section(name) is None:
+            return {}
+        state.setdefault("warnings", []).append(
+            f"{name}: not available for ordered-categorical items yet; skipped"
+        )
+        return {name: None}
+
+    wrapped.__name__ = getattr(stage, "__name__", name)
+    wrapped.__doc__ = stage.__doc__
+    return wrapped
+
+
+def stage_ordinal_effects(spec: PipelineSpec, state: dict) -> dict:
+    """Ordinal pipelines: dMACS per item (latent-response and expected-score scales) of
+    every group against the reference, and latent-response bifactor indices, from the
+    highest supported level that is metric or higher (:func:`invariance.ordinal_api.ordinal_effects`)."""
+    if spec.ordinal is None:
+        return stage_effects(spec, state)
+    from ..ordinal_api import ordinal_effects
+
+    fits = state.get("fits", {})
+    rows = state.get("level_rows", [])
+    best = supported_level(rows)
+    if best not in ("metric", "scalar", "strict") or best not in fits:
+        return {"effects": None}
+    res = fits[best]
+    out = {}
+    for g in res.spec.groups:
+        if g != res.spec.reference:
+            eff = ordinal_effects(res, state["stats"], focal=g)
+            out[g] = {"dmacs": eff["dmacs"], "bifactor": eff.get("bifactor")}
+    return {"effects": {"ordinal": {"level": best, "reference": res.spec.reference, "by_group": out}}}
+
+
 STAGES: list[tuple[str, Stage]] = [
     ("data", stage_data),
     ("screening", stage_screening),
     ("stats", stage_stats),
-    ("group_fit", stage_group_fit),
-    ("structures", stage_structures),
+    ("group_fit", _continuous_only(stage_group_fit, "group_fit")),
+    ("structures", _continuous_only(stage_structures, "structures")),
     ("levels", stage_levels),
     ("fits", stage_fits),
-    ("effects", stage_effects),
-    ("alignment", stage_alignment),
+    ("effects", stage_ordinal_effects),
+    ("alignment", _continuous_only(stage_alignment, "alignment")),
     ("summary", stage_summary),
-    ("scores", stage_scores),
+    ("scores", _continuous_only(stage_scores, "scores")),
 ]
 
 
