@@ -36,3 +36,15 @@ def test_readme_shows_what_the_site_demo_prints(tmp_path):
     assert len(shown) == 4
     assert shown == [line for line in printed if re.match(r"^(configural|metric|scalar|strict) ", line)]
     assert all(not lv["problems"] for lv in res.to_dict()["levels"] if lv["converged"] is not None)
+
+
+def test_partial_demo_flags_exactly_the_planted_site_effects(tmp_path):
+    # recovery check on the invented demo (planted effects declared in invariance.demo.PLANTED)
+    res = invariance.run(ROOT / "pipelines" / "shift_outlook_by_site_partial.yaml", out=tmp_path / "p", quiet=True)
+    d = res.to_dict()
+    flagged = {(f["parameter"], f["item"]) for f in d["flagged"]}
+    planted = {(p, item) for grouping, _, p, item, *_ in PLANTED if grouping == "site"}
+    assert flagged == planted
+    scalar = next(lv for lv in d["levels"] if lv["level"] == "scalar")
+    assert scalar["decision"] in ("holds", "holds_partially")
+    assert all(f["dmacs_max"] > 0.2 for f in d["flagged"])  # .2 small guide, Nye et al. (2019)
