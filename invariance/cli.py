@@ -39,6 +39,14 @@ def build_parser() -> argparse.ArgumentParser:
         action="store_true",
         help="also refit each group's configural model in semopy and report the agreement",
     )
+    r.add_argument(
+        "--workers",
+        type=int,
+        default=0,
+        help="run the partial-invariance likelihood-ratio refits (partial.verify) on a local Dask cluster "
+        "with this many workers (default 0: serial)",
+    )
+    r.add_argument("--scheduler", help="address of an existing Dask scheduler for those refits")
     c = sub.add_parser("check", help="validate the pipeline and its data; fit nothing")
     c.add_argument("pipeline", help="pipeline YAML file")
     n = sub.add_parser("new", help="write a starter pipeline from a data file's columns")
@@ -58,6 +66,16 @@ def build_parser() -> argparse.ArgumentParser:
 def _cmd_run(args) -> int:
     from .pipeline.runner import run
 
+    from .errors import SpecificationError
+
+    if args.workers < 0:
+        raise SpecificationError(f"--workers must be 0 or more; got {args.workers}.")
+    if args.workers or args.scheduler:
+        from .batch.executor import DaskExecutor
+
+        with DaskExecutor(scheduler=args.scheduler, workers=max(args.workers, 1)) as ex:
+            run(args.pipeline, out=args.out, quiet=args.quiet, crosscheck=args.second_opinion, executor=ex)
+        return 0
     run(args.pipeline, out=args.out, quiet=args.quiet, crosscheck=args.second_opinion)
     return 0
 

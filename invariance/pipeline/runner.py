@@ -131,6 +131,7 @@ def run(
     quiet: bool = False,
     crosscheck: bool = False,
     write: bool | None = None,
+    executor=None,
 ) -> RunResult:
     """Run a pipeline: fit the levels, decide, and write the outputs.
 
@@ -150,6 +151,10 @@ def run(
         (``results["crosscheck"]``).
     write
         Force writing (``True``) or not writing (``False``) the output folder.
+    executor
+        An object with a ``map(fn, iterable)`` method (for example
+        :class:`invariance.batch.executor.DaskExecutor`) on which the partial-invariance
+        search runs its likelihood-ratio refits (``partial.verify: true``); serial otherwise.
 
     Returns
     -------
@@ -166,7 +171,7 @@ def run(
         from .crosscheck import stage_crosscheck
 
         stages.append(("crosscheck", stage_crosscheck))
-    results, state = run_stages(spec, stages)
+    results, state = run_stages(spec, stages, extra={"executor": executor})
     results = json.loads(to_json(results))
     estimates = _estimates(state["fits"])
     if out_dir is not None:

@@ -309,7 +309,7 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
                     r = _level_row(lv, f, f.spec.released)
                     return judge_step(level_delta(r, base_row), lv, rule, converged=f.converged)
 
-                search = search_level(res, stats, verdict_of, partial)
+                search = search_level(res, stats, verdict_of, partial, executor=state.get("executor"))
                 searches.append(search)
                 if search.releases:
                     res = search.fit
