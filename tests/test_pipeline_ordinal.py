@@ -118,3 +118,24 @@ def test_check_reports_categories(tmp_path):
     _frame().to_csv(tmp_path / "survey.csv", index=False)
     out = invariance.check(write_yaml(tmp_path / "p.yaml", _doc()))
     assert out["categories"]["q9"] == ["1", "2", "3", "4", "5"]
+
+
+@pytest.mark.parametrize("shift", [(4, 0.6), None])
+def test_partial_search_locates_the_shifted_item(tmp_path, shift):
+    # invented population: item q5's thresholds all shifted by 0.6 in one site. Under the
+    # Wu & Estabrook (2016) identification a uniform shift is a change of the item's
+    # location, absorbed by the free intercept at the thresholds level and released at the
+    # scalar level; with nothing planted nothing is flagged.
+    _frame(shift=shift).to_csv(tmp_path / "survey.csv", index=False)
+    doc = _doc(levels=["configural", "thresholds", "metric", "scalar"],
+               partial={"enabled": True, "max_releases": 3, "until": "clean"})
+    path = write_yaml(tmp_path / "p.yaml", doc)
+    d = invariance.run(path, quiet=True, write=False).to_dict()
+    flagged = [(f["item"], f["parameter"], f["level"]) for f in d["flagged"]]
+    scalar = next(lv for lv in d["levels"] if lv["level"] == "scalar")
+    if shift is None:
+        assert flagged == [] and scalar["decision"] == "holds"
+    else:
+        assert flagged == [("q5", "intercept", "scalar")]
+        assert scalar["decision"] == "holds_partially"
+        assert [(r["item"], r["source"]) for r in scalar["released"]] == [("q5", "search")]

@@ -301,7 +301,7 @@ def _ordinal_effects(spec, state: dict, final) -> dict:
     last supported level; dMACS of flagged items comes with the ordinal search."""
     from ..ordinal.effects import bifactor_indices_latent
 
-    out: dict = {"flagged": [], "scale_bias": [], "structural": []}
+    out: dict = {"flagged": list(state.get("ordinal_flags", [])), "scale_bias": [], "structural": []}
     out["latent"] = {"level": None, "means": [], "variances": [], "notes": [
         "latent mean comparisons for ordinal items are reported by the ordinal search only"]}
     out["reliability"] = None

@@ -276,8 +276,13 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
             continue
         model = state["models"][lv]
         if carried:
-            model = build_level(spec.structure, stats.names, lv, reference=state["reference"],
-                                released=spec.released + carried)
+            if spec.ordinal is not None:
+                model = build_ordinal_level(spec.structure, stats.names, lv, stats.n_categories,
+                                            reference=state["reference"], released=spec.released + carried,
+                                            fixed_means=spec.fixed_means)
+            else:
+                model = build_level(spec.structure, stats.names, lv, reference=state["reference"],
+                                    released=spec.released + carried, fixed_means=spec.fixed_means)
         res, notes = _fit_one(model, stats, spec.estimator)
         fits[lv] = res
         row = _level_row(lv, res, res.spec.released)
@@ -319,8 +324,27 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
                     verdict = {**verdict_of(res), "decision": search.decision}
                 carried = carried + search.released
                 row["partial"] = {k: v for k, v in search.to_dict().items() if k not in ("fit", "releases", "released")}
+            elif partial.searches(verdict["decision"]) and res.converged and res.estimator == "dwls":
+                # ordered items: releases rebuild the item's identification (Wu & Estabrook 2016),
+                # so candidates are refitted rather than score-tested
+                found = _ordinal_search(spec, state, lv, partial, carried)
+                new = tuple(found["released"][len(spec.released) + len(carried):])
+                if new:
+                    res = found["fit"]
+                    fits[lv] = res
+                    row = _level_row(lv, res, res.spec.released)
+                    delta = _dwls_delta(level_delta(row, base_row), res, fits[base_level], stats)
+                    verdict = judge_step(delta, "scalar" if lv == "thresholds" else lv, rule, converged=res.converged)
+                    if verdict["decision"] == "holds":
+                        verdict["decision"] = "holds_partially"
+                    carried = carried + new
+                state.setdefault("ordinal_flags", []).extend(_ordinal_flag(found, r, lv) for r in new)
+                row["partial"] = {"method": "likelihood-ratio refits (DWLS difference), Bonferroni per round",
+                                  "rounds": len(found["steps"])}
             if partial.enabled:
-                row["released"] = release_rows(res, search, spec.released)
+                row["released"] = release_rows(res, search, spec.released) if search is not None or res.estimator != "dwls" else [
+                    {**r.to_dict(), "source": "pipeline" if r in set(spec.released) else "search"} for r in res.spec.released
+                ]
             row.update({"delta": delta, "compared_with": base_level})
         row.update(verdict)
         rows.append(row)
@@ -334,7 +358,35 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
     state["fits"] = fits
     state["level_rows"] = rows
     state["searches"] = searches
-    return {"levels": rows, "flagged": []}
+    return {"levels": rows, "flagged": list(state.get("ordinal_flags", []))}
+
+
+def _ordinal_search(spec: PipelineSpec, state: dict, level: str, partial, carried: tuple) -> dict:
+    from ..ordinal_api import release_search as ordinal_release_search
+
+    return ordinal_release_search(
+        spec.structure, state["stats"], level, alpha=partial.alpha, released=spec.released + carried,
+        reference=state["reference"], max_releases=partial.max_releases, fixed_means=spec.fixed_means,
+    )
+
+
+def _ordinal_flag(found: dict, release, level: str) -> dict:
+    """A flagged record for an ordinal release, from the round that chose it."""
+    step = next((st for st in found["steps"] if st["candidates"] and st["candidates"][0]["item"] == release.item
+                 and st["candidates"][0]["parameter"] == release.parameter), None)
+    best = step["candidates"][0] if step else {}
+    return {
+        "item": release.item,
+        "parameter": release.parameter,
+        "factor": release.factor,
+        "groups": list(release.groups) if release.groups else None,
+        "level": level,
+        "statistic": _num(best.get("chi2", best.get("statistic"))),
+        "df": best.get("delta_df"),
+        "pvalue": _num(best.get("pvalue")),
+        "test": "DWLS difference of the refit with the constraint released",
+        "dmacs": None,
+    }
 
 
 def stage_summary(spec: PipelineSpec, state: dict) -> dict:
