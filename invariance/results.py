@@ -9,7 +9,7 @@ import numpy as np
 from scipy import stats as _st
 
 from .fit import FitStats
-from .model.spec import ALPHA, BETA, LAMBDA, NU, PSI, THETA, ModelSpec
+from .model.spec import ALPHA, NU, ModelSpec
 
 __all__ = ["FitResult", "standardize"]
 

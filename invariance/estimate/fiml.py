@@ -23,7 +23,15 @@ import numpy as np
 from ..data.em import em_saturated, missing_patterns, pattern_loglik
 from ..data.moments import SampleStats
 from ..model.spec import ModelSpec
-from .kernels import compile_spec, group_matrices, implied_moments, ml_derivatives, ml_hessian, moment_jacobian
+from .kernels import (
+    compile_spec,
+    group_matrices,
+    implied_moments,
+    layout_jacobians,
+    ml_derivatives,
+    ml_hessian,
+    moment_jacobian,
+)
 from .linalg import partition
 
 __all__ = ["FIMLObjective", "independence_loglik"]
@@ -129,13 +137,7 @@ class FIMLObjective:
 
     def jacobians(self, theta: np.ndarray):
         """Per group: (matrices, Sigma, mu, dS, dm) at ``theta`` (local parameters)."""
-        out = []
-        for lay in self.layouts:
-            mats = group_matrices(lay, theta)
-            sigma, mu, G, A = implied_moments(mats)
-            dS, dm = moment_jacobian(lay, mats, G, A)
-            out.append((mats, sigma, mu, dS, dm))
-        return out
+        return layout_jacobians(self.layouts, theta)
 
     def derivatives(self, theta: np.ndarray, *, information: bool = True):
         q = self.n_params

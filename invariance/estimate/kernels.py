@@ -24,6 +24,7 @@ __all__ = [
     "group_matrices",
     "implied_moments",
     "moment_jacobian",
+    "layout_jacobians",
     "ml_discrepancy",
     "ml_derivatives",
     "ml_hessian",
@@ -322,3 +323,14 @@ def ml_hessian(
     if not (lay.P.shape[0] == lay.P.shape[1] and np.array_equal(lay.P, np.eye(k))):
         Ke = lay.P.T @ Ke @ lay.P
     return H + Ke
+
+
+def layout_jacobians(layouts, theta: np.ndarray) -> list[tuple]:
+    """Per group: (matrices, Sigma, mu, dS, dm) at ``theta``, over each group's local parameters."""
+    out = []
+    for lay in layouts:
+        mats = group_matrices(lay, theta)
+        sigma, mu, G, A = implied_moments(mats)
+        dS, dm = moment_jacobian(lay, mats, G, A)
+        out.append((mats, sigma, mu, dS, dm))
+    return out

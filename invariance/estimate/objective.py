@@ -22,6 +22,7 @@ from .kernels import (
     compile_spec,
     group_matrices,
     implied_moments,
+    layout_jacobians,
     ml_derivatives,
     ml_discrepancy,
     ml_hessian,
@@ -74,13 +75,7 @@ class MLObjective:
 
     def jacobians(self, theta: np.ndarray):
         """Per group: (matrices, Sigma, mu, dS, dm) at ``theta`` (local parameters)."""
-        out = []
-        for lay in self.layouts:
-            mats = group_matrices(lay, theta)
-            sigma, mu, G, A = implied_moments(mats)
-            dS, dm = moment_jacobian(lay, mats, G, A)
-            out.append((mats, sigma, mu, dS, dm))
-        return out
+        return layout_jacobians(self.layouts, theta)
 
     def derivatives(self, theta: np.ndarray, *, information: bool = True):
         q = self.n_params
