@@ -23,7 +23,7 @@ from ..model.spec import ALPHA, LAMBDA, NU, PSI, TAU, THETA, ModelSpec
 from ..ordinal.stats import OrdinalStats
 from .kernels import compile_spec, group_matrices, implied_moments, moment_jacobian
 from .linalg import partition
-from .start import _group_starts
+from .start import _group_starts, pool_starts
 
 __all__ = ["DWLSObjective", "ordinal_start_values", "start_from"]
 
@@ -164,10 +164,8 @@ def ordinal_start_values(spec: ModelSpec, stats: OrdinalStats) -> np.ndarray:
     thresholds the sample thresholds times 1 / sqrt(1 - h^2). Intercepts and factor
     means start at 0, variances at 1; shared labels average their group starts.
     """
-    total = np.zeros(spec.n_params)
-    count = np.zeros(spec.n_params)
-    param = spec.param_index
     p = len(spec.items)
+    per_group = []
     for g, fit in enumerate(stats.fits):
         idx = spec.group_entries(g)
         st = _group_starts(spec, g, fit.corr, np.zeros(p))
@@ -199,14 +197,8 @@ def ordinal_start_values(spec: ModelSpec, stats: OrdinalStats) -> np.ndarray:
                 st[k] = 0.0
             elif m == PSI and r == c:
                 st[k] = 1.0
-        given = spec.value[idx]
-        st = np.where(np.isfinite(given), given, st)
-        for k, v in zip(idx, st):
-            j = param[k]
-            if j >= 0 and np.isfinite(v):
-                total[j] += v
-                count[j] += 1
-    return np.where(count > 0, total / np.maximum(count, 1), 0.0)
+        per_group.append(st)
+    return pool_starts(spec, per_group)
 
 
 def start_from(previous_labels, previous_theta, spec: ModelSpec, default: np.ndarray) -> np.ndarray:

@@ -13,7 +13,7 @@ import numpy as np
 from ..data.moments import SampleStats
 from ..model.spec import ALPHA, BETA, LAMBDA, NU, PSI, THETA, ModelSpec
 
-__all__ = ["start_values"]
+__all__ = ["start_values", "pool_starts"]
 
 
 def _mean_offdiag(block: np.ndarray) -> np.ndarray:
@@ -85,18 +85,19 @@ def _group_starts(spec: ModelSpec, g: int, S: np.ndarray, mean: np.ndarray) -> n
     return out
 
 
-def start_values(spec: ModelSpec, stats: SampleStats) -> np.ndarray:
-    """A starting parameter vector for ``spec`` given the sample statistics.
+def pool_starts(spec: ModelSpec, group_starts) -> np.ndarray:
+    """Parameter vector from per-group entry starts: entries with a finite value in
+    ``spec.value`` keep it, and a label shared by several groups starts at the average
+    of its per-group values (0 where no start is known).
 
-    Entries with a finite start in ``spec.value`` keep it; a label shared by several
-    groups starts at the average of its per-group values.
+    ``group_starts`` yields, per group ``g``, the start of every entry of
+    ``spec.group_entries(g)`` (nan where not applicable).
     """
     total = np.zeros(spec.n_params)
     count = np.zeros(spec.n_params)
     param = spec.param_index
-    for g, gs in enumerate(stats.groups):
+    for g, st in enumerate(group_starts):
         idx = spec.group_entries(g)
-        st = _group_starts(spec, g, gs.cov, gs.mean)
         given = spec.value[idx]
         st = np.where(np.isfinite(given), given, st)
         for k, v in zip(idx, st):
@@ -104,5 +105,13 @@ def start_values(spec: ModelSpec, stats: SampleStats) -> np.ndarray:
             if j >= 0 and np.isfinite(v):
                 total[j] += v
                 count[j] += 1
-    theta = np.where(count > 0, total / np.maximum(count, 1), 0.0)
-    return theta
+    return np.where(count > 0, total / np.maximum(count, 1), 0.0)
+
+
+def start_values(spec: ModelSpec, stats: SampleStats) -> np.ndarray:
+    """A starting parameter vector for ``spec`` given the sample statistics.
+
+    Entries with a finite start in ``spec.value`` keep it; a label shared by several
+    groups starts at the average of its per-group values.
+    """
+    return pool_starts(spec, (_group_starts(spec, g, gs.cov, gs.mean) for g, gs in enumerate(stats.groups)))

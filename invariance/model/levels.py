@@ -147,20 +147,6 @@ def build_level(
             top = not (structure.family == "second_order" and f in structure.factors)
             if rank >= 2 and not is_ref and top and f not in fixed_means:
                 add(g, ALPHA, f_ix[f], 0, True, f"mean:{f}{tag}")
-    g_, m_, r_, c_, fr_, lb_, v_ = zip(*rows)
-    spec = ModelSpec(
-        items=items,
-        factors=factors,
-        groups=groups,
-        group=np.array(g_),
-        matrix=np.array(m_),
-        row=np.array(r_),
-        col=np.array(c_),
-        free=np.array(fr_),
-        label=np.array(lb_, dtype=object),
-        value=np.array(v_, dtype=float),
-        level=level,
-        reference=ref,
-    )
+    spec = ModelSpec.from_rows(rows, items=items, factors=factors, groups=groups, level=level, reference=ref)
     spec = spec.release_all(released)
     return spec

@@ -141,6 +141,22 @@ class ModelSpec:
         for arr in (self.group, self.matrix, self.row, self.col, self.free, self.label, self.value, param):
             arr.setflags(write=False)
 
+    @classmethod
+    def from_rows(cls, rows, **names) -> "ModelSpec":
+        """Build a spec from ``(group, matrix, row, col, free, label, value)`` tuples;
+        ``names`` are the remaining fields (items, factors, groups, level, reference, ...)."""
+        g_, m_, r_, c_, fr_, lb_, v_ = zip(*rows)
+        return cls(
+            group=np.array(g_),
+            matrix=np.array(m_),
+            row=np.array(r_),
+            col=np.array(c_),
+            free=np.array(fr_),
+            label=np.array(lb_, dtype=object),
+            value=np.array(v_, dtype=float),
+            **names,
+        )
+
     # ----------------------------------------------------------------- basics
     @property
     def n_params(self) -> int:

@@ -219,22 +219,9 @@ def build_ordinal_level(
             top = not (structure.family == "second_order" and f in structure.factors)
             if rank >= 3 and not is_ref and top and f not in fixed_means:
                 add(g, ALPHA, f_ix[f], 0, True, f"mean:{f}{tag}")
-    g_, m_, r_, c_, fr_, lb_, v_ = zip(*rows)
     p = len(items)
     moments = len(groups) * (sum(k - 1 if k else 2 for k in K) + p * (p - 1) // 2)
-    return ModelSpec(
-        items=items,
-        factors=factors,
-        groups=groups,
-        group=np.array(g_),
-        matrix=np.array(m_),
-        row=np.array(r_),
-        col=np.array(c_),
-        free=np.array(fr_),
-        label=np.array(lb_, dtype=object),
-        value=np.array(v_, dtype=float),
-        level=level,
-        reference=ref,
-        released=released,
-        moment_count=moments,
+    return ModelSpec.from_rows(
+        rows, items=items, factors=factors, groups=groups, level=level, reference=ref,
+        released=released, moment_count=moments,
     )

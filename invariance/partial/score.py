@@ -86,6 +86,10 @@ class Constraint:
         the ``anchor`` group, the reference, whose entry sets the scale)."""
         return tuple(g for g in self.groups if g != self.anchor) if self.fixed else self.groups
 
+    def describe(self) -> dict:
+        """What the constraint is, as plain types (the leading keys of every test record)."""
+        return {"label": self.label, "parameter": self.parameter, "item": self.item, "factor": self.factor}
+
     def release(self, groups: tuple[str, ...] | None = None) -> Release:
         """The :class:`Release` record that frees this constraint (in ``groups``)."""
         return Release(self.parameter, self.item, self.factor, None if groups is None else tuple(groups))
@@ -105,12 +109,8 @@ class CopyTest:
     df: int = 1
 
     def to_dict(self) -> dict:
-        c = self.constraint
         return {
-            "label": c.label,
-            "parameter": c.parameter,
-            "item": c.item,
-            "factor": c.factor,
+            **self.constraint.describe(),
             "group": self.group,
             "statistic": self.statistic,
             "df": self.df,
@@ -136,13 +136,9 @@ class SetTest:
     epc: tuple[tuple[str, float, float], ...]  # (group, epc, epc_std), groups freed
 
     def to_dict(self) -> dict:
-        c = self.constraint
         return {
-            "label": c.label,
-            "parameter": c.parameter,
-            "item": c.item,
-            "factor": c.factor,
-            "groups": list(c.groups),
+            **self.constraint.describe(),
+            "groups": list(self.constraint.groups),
             "statistic": self.statistic,
             "df": self.df,
             "pvalue": self.pvalue,
