@@ -1,6 +1,6 @@
 """invariance: measurement invariance testing for multi-group factor models."""
 
-from .api import fit_level, fit_levels
+from .estimate.api import fit_level, fit_levels
 from .data import SampleStats, sample_stats
 from .errors import (
     ConvergenceWarning,
@@ -13,10 +13,11 @@ from .errors import (
 )
 from .estimate import fit
 from .model import LEVELS, ModelSpec, Release, Structure, build_level
-from .ordinal import ORDINAL_LEVELS, OrdinalStats, build_ordinal_level, ordinal_stats
-from .ordinal_api import fit_ordinal_level, fit_ordinal_levels
+from .model.ordinal_levels import ORDINAL_LEVELS, build_ordinal_level
+from .data.ordinal_stats import OrdinalStats, ordinal_stats
+from .estimate.ordinal_api import fit_ordinal_level, fit_ordinal_levels
 from .pipeline import PipelineSpec, RunResult, check, load_pipeline, run
-from .results import FitResult
+from .estimate.result import FitResult
 
 __version__ = "0.1.0"
 

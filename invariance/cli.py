@@ -57,7 +57,7 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--out", default="invariance-demo", help="folder to write into (default: invariance-demo)")
     d.add_argument("--seed", type=int, default=20261201, help="random seed")
     d.add_argument("--n-per-site", type=int, default=400, help="respondents per site")
-    from .batch.commands import add_commands
+    from .pipeline.batch.commands import add_commands
 
     add_commands(sub)  # batch, plan
     return p
@@ -71,7 +71,7 @@ def _cmd_run(args) -> int:
     if args.workers < 0:
         raise SpecificationError(f"--workers must be 0 or more; got {args.workers}.")
     if args.workers or args.scheduler:
-        from .batch.executor import DaskExecutor
+        from .pipeline.batch.executor import DaskExecutor
 
         with DaskExecutor(scheduler=args.scheduler, workers=max(args.workers, 1)) as ex:
             run(args.pipeline, out=args.out, quiet=args.quiet, crosscheck=args.second_opinion, executor=ex)
@@ -100,7 +100,7 @@ def _cmd_check(args) -> int:
 
 
 def _cmd_new(args) -> int:
-    from .pipeline.starter import starter_pipeline
+    from .spec.starter import starter_pipeline
 
     text = starter_pipeline(args.data, group=args.group, out=args.out)
     if args.out:

@@ -1,7 +1,7 @@
 """Realistic report inputs built with the engine on the Holzinger & Swineford (1939) data.
 
 The data ship with semopy (semopy.examples.holzinger39); the levels are fitted by school
-with invariance.api.fit_levels. The results dict follows the results.json layout the
+with invariance.estimate.api.fit_levels. The results dict follows the results.json layout the
 pipeline writes; deltas and decisions are computed here simply (Chen 2007 cutoffs for
 N > 300: loadings dCFI -.010 with dRMSEA .015 or dSRMR .030; intercepts and residuals
 dCFI -.010 with dRMSEA .015 or dSRMR .010; METHODS section 5). dMACS follows Nye &

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from invariance import SpecificationError, Structure, build_level, fit
-from invariance.alignment import align, alignment_loss, simplicity
+from invariance.partial.alignment import align, alignment_loss, simplicity
 from invariance.data.moments import stats_from_arrays
 
 G, P, N = 20, 6, 400
@@ -116,7 +116,7 @@ def test_refuses_non_configural_and_bifactor():
 def test_implicit_derivative_matches_resolving():
     # the delta-method Jacobian (implicit function theorem) against re-solving the
     # alignment at perturbed configural estimates (central differences)
-    from invariance.alignment import implicit_jacobian, solve_alignment
+    from invariance.partial.alignment import implicit_jacobian, solve_alignment
 
     rng = np.random.default_rng(7)
     G, k = 5, 4
@@ -137,7 +137,7 @@ def test_implicit_derivative_matches_resolving():
 
 def test_group_order_does_not_change_the_solution():
     # property check (STYLE habit 7): permuting the groups permutes the solution
-    from invariance.alignment import solve_alignment
+    from invariance.partial.alignment import solve_alignment
 
     rng = np.random.default_rng(11)
     G, k = 6, 4

@@ -10,8 +10,8 @@ import pandas as pd
 import pytest
 
 from invariance import SpecificationError, Structure
-from invariance.batch import Population, Task, highest_level, replicate, run_batch, task_seed
-from invariance.batch.runner import BatchResult
+from invariance.pipeline.batch import Population, Task, highest_level, replicate, run_batch, task_seed
+from invariance.pipeline.batch.runner import BatchResult
 
 STRUCT = Structure({"F": ("a", "b", "c", "d")}, family="single")
 LAM = np.array([[0.7], [0.6], [0.8], [0.65]])
@@ -90,7 +90,7 @@ def test_summary_levels_and_flagged():
               {"level": "scalar", "decision": "fails"}, {"level": "strict", "decision": "holds"}]
     assert highest_level(levels) == "metric"
     assert highest_level([{"level": "configural", "decision": "fails"}]) is None
-    from invariance.batch.runner import TaskOutcome
+    from invariance.pipeline.batch.runner import TaskOutcome
 
     out = TaskOutcome(0, "t", "ok", 1, 0.1, {"levels": levels, "flagged": [
         {"parameter": "intercept", "item": "x3", "groups": ["b"]}]})
@@ -109,7 +109,7 @@ def test_bad_options():
 def test_progress_only_on_a_terminal():
     import io
 
-    from invariance.batch.runner import Progress
+    from invariance.pipeline.batch.runner import Progress
 
     class Tty(io.StringIO):
         def isatty(self):
@@ -156,7 +156,7 @@ def test_dask_executor_runs_the_lr_verification_refits():
     # the partial search's likelihood-ratio refits (issue 8: "on the same executor"):
     # a Dask executor gives the same search as the plain in-process map
     from invariance import build_level, fit
-    from invariance.batch import DaskExecutor, Shift, simulate_groups
+    from invariance.pipeline.batch import DaskExecutor, Shift, simulate_groups
     from invariance.data.moments import stats_from_arrays
     from invariance.partial import release_search
     from scipy import stats as st

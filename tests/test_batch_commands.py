@@ -11,8 +11,8 @@ import pytest
 import yaml
 
 from invariance import SpecificationError
-from invariance.batch.commands import add_commands
-from invariance.batch.planfile import load_plan
+from invariance.pipeline.batch.commands import add_commands
+from invariance.pipeline.batch.planfile import load_plan
 
 PLAN = {
     "model": {"family": "single", "factors": {"F": ["a", "b", "c", "d"]}},
@@ -61,7 +61,7 @@ def test_plan_file_rejects_unknown_keys():
 
 
 def test_pipeline_variants(tmp_path):
-    from invariance.batch.tasks import parse_vary, pipeline_variants
+    from invariance.pipeline.batch.tasks import parse_vary, pipeline_variants
 
     (tmp_path / "sub").mkdir()
     path = tmp_path / "sub" / "study.yaml"
@@ -81,7 +81,7 @@ def test_plan_from_an_estimates_file(tmp_path):
     import numpy as np
 
     from invariance import Structure, build_level, fit
-    from invariance.batch import Population, simulate_groups
+    from invariance.pipeline.batch import Population, simulate_groups
     from invariance.data.moments import stats_from_arrays
 
     struct = Structure({"F": ("a", "b", "c", "d")}, family="single")

@@ -5,7 +5,8 @@ import pandas as pd
 import pytest
 
 from invariance.errors import DataError, SpecificationError
-from invariance.ordinal import category_maps, encode, ordinal_stats
+from invariance.data.categories import category_maps, encode
+from invariance.data.ordinal_stats import ordinal_stats
 
 
 def _frame():

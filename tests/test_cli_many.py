@@ -101,7 +101,7 @@ def test_pipeline_alignment_section(hs_dir):
         assert np.isfinite(al["means"][f]["Pasteur"]) and al["variances"][f]["Pasteur"] > 0
     assert res.to_dict()["alignment"]["means"] == al["means"]
     # the alignment is the engine's on the configural fit
-    from invariance.alignment import align
+    from invariance.partial.alignment import align
 
     direct = align(res.fits["configural"])
     assert direct.means["textual"]["Pasteur"] == pytest.approx(al["means"]["textual"]["Pasteur"])

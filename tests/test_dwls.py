@@ -13,8 +13,8 @@ from ordinal_sim import simulate_one_factor  # noqa: E402
 from invariance.estimate.dwls import DWLSObjective, ordinal_start_values
 from invariance.estimate.dwls_robust import fit_dwls
 from invariance.model import Structure
-from invariance.ordinal import ordinal_stats_from_arrays
-from invariance.ordinal.levels import build_ordinal_level
+from invariance.data.ordinal_stats import ordinal_stats_from_arrays
+from invariance.model.ordinal_levels import build_ordinal_level
 
 CUTS4 = np.array([[-1.0, 0.0, 0.9], [-0.6, 0.3, 1.2], [-1.3, -0.2, 0.6],
                   [-0.8, 0.1, 1.0], [-1.1, -0.4, 0.8], [-0.5, 0.5, 1.4]])

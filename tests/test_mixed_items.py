@@ -22,8 +22,9 @@ import invariance
 from invariance.estimate.dwls import DWLSObjective, ordinal_start_values
 from invariance.estimate.dwls_robust import fit_dwls
 from invariance.model import Structure
-from invariance.ordinal import build_ordinal_level, ordinal_stats_from_arrays
-from invariance.ordinal.polyserial import mixed_statistics
+from invariance.model.ordinal_levels import build_ordinal_level
+from invariance.data.ordinal_stats import ordinal_stats_from_arrays
+from invariance.data.polyserial import mixed_statistics
 
 LOADS = np.array([0.7, 0.6, 0.5, 0.65, 0.55])
 ORD = np.array([True, False, True, False, True])

@@ -14,9 +14,9 @@ from ordinal_sim import simulate_bifactor, simulate_one_factor  # noqa: E402
 from invariance.errors import SpecificationError
 from invariance.estimate.dwls_robust import dwls_difference, fit_dwls
 from invariance.model import Release, Structure
-from invariance.ordinal import ordinal_stats_from_arrays
-from invariance.ordinal.levels import ORDINAL_LEVELS, build_ordinal_level
-from invariance.ordinal_api import release_search, release_tests
+from invariance.data.ordinal_stats import ordinal_stats_from_arrays
+from invariance.model.ordinal_levels import ORDINAL_LEVELS, build_ordinal_level
+from invariance.estimate.ordinal_api import release_search, release_tests
 
 GROUPS = ["east", "west", "south"]
 

@@ -7,7 +7,7 @@ from __future__ import annotations
 import pathlib
 
 import invariance
-from invariance.batch.executor import DaskExecutor
+from invariance.pipeline.batch.executor import DaskExecutor
 
 ROOT = pathlib.Path(__file__).resolve().parents[1]
 

@@ -9,7 +9,7 @@ import pytest
 
 from invariance.errors import SpecificationError
 from invariance.pipeline import load_pipeline, schema
-from invariance.pipeline.load import parse_yaml
+from invariance.spec.load import parse_yaml
 
 from conftest import hs_doc
 

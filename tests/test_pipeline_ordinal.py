@@ -15,7 +15,7 @@ from ordinal_sim import simulate_bifactor  # noqa: E402
 
 import invariance
 from invariance.errors import DataError, SpecificationError
-from invariance.pipeline.load import load_pipeline
+from invariance.spec.load import load_pipeline
 
 ITEMS = [f"q{i + 1}" for i in range(9)]
 FACTORS = {"s1": ITEMS[:3], "s2": ITEMS[3:6], "s3": ITEMS[6:]}

@@ -17,8 +17,8 @@ from scipy.stats import multivariate_normal, norm
 sys.path.insert(0, os.path.dirname(__file__))
 from polychoric_reference import ref_cell_probs, ref_polychoric, ref_rho  # noqa: E402
 
-from invariance.ordinal.bivariate import bvn_cdf, bvn_pdf
-from invariance.ordinal.polychoric import cell_probabilities, polychoric, polychoric_pairs
+from invariance.data.bivariate import bvn_cdf, bvn_pdf
+from invariance.data.polychoric import cell_probabilities, polychoric, polychoric_pairs
 
 
 def _codes(rng, R, cuts, n):
@@ -118,7 +118,7 @@ def test_boundary_correlation_stops_and_warns():
     import warnings
 
     from invariance.errors import ImproperSolutionWarning
-    from invariance.ordinal import ordinal_stats_from_arrays
+    from invariance.data.ordinal_stats import ordinal_stats_from_arrays
 
     rng = np.random.default_rng(1)
     z = rng.normal(size=(500, 2))

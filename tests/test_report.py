@@ -208,7 +208,7 @@ def test_quiet_context_writes_no_progress(tmp_path, capfd):
 
 
 def test_screening_section_from_the_screening_module(tmp_path):
-    from invariance.screening import screen
+    from invariance.data.screening import screen
 
     from _report_cases import hs_data
 
@@ -329,11 +329,11 @@ def test_pipeline_layouts_of_effects_sections(tmp_path):
 
 
 def test_alignment_section_from_the_alignment_module(tmp_path):
-    # alignment of the configural H&S model by school (invariance.alignment, Asparouhov & Muthen 2014)
+    # alignment of the configural H&S model by school (invariance.partial.alignment, Asparouhov & Muthen 2014)
     import json as _json
     import warnings as _w
 
-    from invariance.alignment import align
+    from invariance.partial.alignment import align
     from invariance import Structure, fit_level
     from _report_cases import THREE, hs_data
 

@@ -20,7 +20,7 @@ from invariance.data import stats_from_arrays
 from invariance.estimate import MLObjective, robust_difference, scaled_difference, strictly_positive_difference
 from invariance.estimate.kernels import group_matrices, implied_moments
 from invariance.estimate.robust import H1Moments, robust_indices
-from invariance.fit import cfi, rmsea, tli
+from invariance.estimate.indices import cfi, rmsea, tli
 
 semopy = pytest.importorskip("semopy")
 

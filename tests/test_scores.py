@@ -9,7 +9,7 @@ import pytest
 from invariance import Structure, fit_level
 from invariance.errors import DataError, EstimationError, SpecificationError
 from invariance.model import Release
-from invariance.scores import determinacy, factor_scores, score_cases
+from invariance.effects.scores import determinacy, factor_scores, score_cases
 
 
 def _population(m_general=False):
@@ -203,7 +203,7 @@ def test_regression_scores_against_semopy():
 
 def test_woodbury_form_of_regression_weights():
     # Phi L' Sigma^-1 = (L' Theta^-1 L + Phi^-1)^-1 L' Theta^-1 (Woodbury identity)
-    from invariance.scores import score_weights
+    from invariance.effects.scores import score_weights
 
     lam, beta, psi, theta, nu, alpha = _population()
     sigma = lam @ psi @ lam.T + theta

@@ -10,7 +10,7 @@ import pytest
 from scipy import stats
 
 from invariance.errors import DataError, SpecificationError
-from invariance.screening import item_moments, item_total_correlations, mardia, screen
+from invariance.data.screening import item_moments, item_total_correlations, mardia, screen
 
 
 def _mardia_direct(x):
@@ -45,7 +45,7 @@ def test_mardia_matches_direct_formulas():
 
 def test_mardia_skewness_routes_agree():
     # sum_ij (z_i'z_j)^3 = sum_abc (sum_i z_ia z_ib z_ic)^2 (algebraic identity)
-    from invariance.screening import _cube_sum
+    from invariance.data.screening import _cube_sum
 
     z = np.random.default_rng(8).normal(size=(300, 4))
     assert _cube_sum(z, route="tensor", block=64) == pytest.approx(_cube_sum(z, route="pairs", block=64), rel=1e-10)

@@ -7,7 +7,7 @@ import pytest
 from scipy import stats
 
 from invariance import SpecificationError, Structure, build_level, fit
-from invariance.batch import Population, Shift, plan, simulate_groups
+from invariance.pipeline.batch import Population, Shift, plan, simulate_groups
 from invariance.data.moments import stats_from_arrays
 
 STRUCT = Structure({"F": ("a", "b", "c", "d")}, family="single")
@@ -129,11 +129,11 @@ def test_noninvariant_population_is_noted():
 
 
 def test_pipeline_rules_agree_with_direct_readings(null_plan):
-    # the planner's default rules wrap invariance.compare; the direct readings of the
+    # the planner's default rules wrap invariance.decide.compare; the direct readings of the
     # published rules (Cheung & Rensvold 2002; Chen 2007) must flag the same replications
     from functools import partial
 
-    from invariance.batch.rules import cfi_rule, chen_rule, chi2_rule, default_rules
+    from invariance.pipeline.batch.rules import cfi_rule, chen_rule, chi2_rule, default_rules
 
     rules = default_rules(0.05)
     direct = {

@@ -10,7 +10,7 @@ import semopy
 
 from invariance import Structure
 from invariance.errors import InvarianceWarning, SpecificationError
-from invariance.structures import build_structure, compare_structures, group_fit
+from invariance.decide.structures import build_structure, compare_structures, group_fit
 
 HS = semopy.examples.holzinger39.get_data()
 FACTORS = {"visual": ("x1", "x2", "x3"), "textual": ("x4", "x5", "x6"), "speed": ("x7", "x8", "x9")}

@@ -28,7 +28,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..model.structure import Structure
-from ..results import FitResult, standardize
+from ..estimate.result import FitResult, standardize
 
 __all__ = [
     "omega",

@@ -29,7 +29,7 @@ import numpy as np
 
 from ..data.moments import SampleStats
 from ..errors import SpecificationError
-from ..results import FitResult
+from ..estimate.result import FitResult
 
 __all__ = [
     "dmacs_value",

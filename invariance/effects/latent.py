@@ -23,7 +23,7 @@ from scipy import stats as _st
 
 from ..estimate.kernels import compile_spec, group_matrices
 from ..model.spec import BETA, LAMBDA, NU, ModelSpec
-from ..results import FitResult
+from ..estimate.result import FitResult
 
 __all__ = ["MeanDifference", "VarianceRatio", "LatentComparison", "invariant_items", "compare_latent"]
 

@@ -20,7 +20,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..model.spec import ALPHA, LAMBDA, NU, PSI, TAU, THETA, ModelSpec
-from ..ordinal.stats import OrdinalStats
+from ..data.ordinal_stats import OrdinalStats
 from .kernels import compile_spec, group_matrices, implied_moments, moment_jacobian
 from .linalg import partition
 from .start import _group_starts, pool_starts

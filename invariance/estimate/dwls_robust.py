@@ -36,11 +36,11 @@ import numpy as np
 from scipy import stats as _st
 
 from ..errors import ConvergenceWarning, EstimationError, ImproperSolutionWarning
-from ..fit import FitStats, cfi, rmsea, rmsea_interval, tli
+from .indices import FitStats, cfi, rmsea, rmsea_interval, tli
 from ..model.spec import ModelSpec
-from ..ordinal.polychoric import _single_thread
-from ..ordinal.stats import OrdinalStats
-from ..results import FitResult
+from ..data.polychoric import _single_thread
+from ..data.ordinal_stats import OrdinalStats
+from .result import FitResult
 from .dwls import DWLSObjective, ordinal_start_values
 from .ml import diagnose
 from .optimize import minimize

@@ -22,11 +22,11 @@ from scipy import stats as _st
 from ..data.moments import SampleStats
 from ..errors import ConvergenceWarning, EstimationError, ImproperSolutionWarning, SpecificationError
 from ..data.mcar import missing_report
-from ..fit import cfi as _cfi
-from ..fit import compute_fit, information_criteria
-from ..fit import tli as _tli
+from .indices import cfi as _cfi
+from .indices import compute_fit, information_criteria
+from .indices import tli as _tli
 from ..model.spec import ModelSpec
-from ..results import FitResult
+from .result import FitResult
 from .kernels import group_matrices, implied_moments
 from .fiml import FIMLObjective, independence_loglik
 from .linalg import arrow_inverse, arrow_min_eigen
@@ -137,7 +137,7 @@ def fit(
     Ordinal statistics (:class:`~invariance.ordinal.OrdinalStats`) dispatch to the DWLS
     estimator, :func:`invariance.estimate.dwls_robust.fit_dwls`.
     """
-    from ..ordinal.stats import OrdinalStats
+    from ..data.ordinal_stats import OrdinalStats
 
     if isinstance(stats, OrdinalStats):
         from .dwls_robust import fit_dwls

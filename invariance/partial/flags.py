@@ -15,7 +15,7 @@ from typing import Iterable
 
 from ..data.moments import SampleStats
 from ..effects.dmacs import item_effects
-from ..results import FitResult
+from ..estimate.result import FitResult
 from .search import SearchResult
 
 __all__ = ["ITEM_PARAMETERS", "flagged_items"]

@@ -31,7 +31,7 @@ from ..data.moments import SampleStats
 from ..errors import SpecificationError
 from ..estimate.objective import MLObjective
 from ..model.spec import ALPHA, BETA, LAMBDA, NU, PSI, THETA, ModelSpec, Release
-from ..results import FitResult
+from ..estimate.result import FitResult
 
 __all__ = [
     "Constraint",

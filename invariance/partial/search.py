@@ -39,7 +39,7 @@ from ..data.moments import SampleStats
 from ..errors import EstimationError, InvarianceWarning, SpecificationError
 from ..estimate.ml import fit as _fit
 from ..model.spec import Release
-from ..results import FitResult
+from ..estimate.result import FitResult
 from .score import Constraint, ScoreTests, map_theta, release_constraint, score_tests
 
 __all__ = [

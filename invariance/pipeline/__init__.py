@@ -1,6 +1,6 @@
 """Declarative pipelines: one YAML file in, a stepwise invariance decision out."""
 
-from .load import PipelineSpec, load_pipeline, schema
+from ..spec.load import PipelineSpec, load_pipeline, schema
 from .runner import RunResult, check, run
 from .stages import STAGES, add_stage
 

@@ -10,11 +10,11 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING
 
-from ..alignment import align
+from ..partial.alignment import align
 from ..errors import SpecificationError
 
 if TYPE_CHECKING:  # load.py imports this module
-    from .load import PipelineSpec
+    from ..spec.load import PipelineSpec
 
 __all__ = ["stage_alignment", "check_alignment_section"]
 

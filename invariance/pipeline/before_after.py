@@ -21,14 +21,14 @@
 
 from __future__ import annotations
 
-from ..ordinal.stats import OrdinalStats
+from ..data.ordinal_stats import OrdinalStats
 
-from ..compare import supported_level
+from ..decide.compare import supported_level
 from ..errors import DataError, SpecificationError
-from ..scores import factor_scores
-from ..screening import screen
-from ..structures import compare_structures, group_fit
-from .load import PipelineSpec, thaw
+from ..effects.scores import factor_scores
+from ..data.screening import screen
+from ..decide.structures import compare_structures, group_fit
+from ..spec.load import PipelineSpec, thaw
 
 __all__ = ["stage_screening", "stage_group_fit", "stage_structures", "stage_scores"]
 

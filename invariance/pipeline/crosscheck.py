@@ -17,7 +17,7 @@ from ..errors import InvarianceWarning
 from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
 from ..model.structure import Structure
-from .load import PipelineSpec
+from ..spec.load import PipelineSpec
 
 __all__ = ["semopy_description", "stage_crosscheck", "TOLERANCE"]
 

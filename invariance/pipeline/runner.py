@@ -9,7 +9,7 @@ from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Any, Mapping
 
-from .load import PipelineSpec, load_pipeline, thaw
+from ..spec.load import PipelineSpec, load_pipeline, thaw
 from .output import check_destination, format_table, level_table, to_json, write_outputs
 from .stages import STAGES, stage_data, stage_levels, stage_stats
 

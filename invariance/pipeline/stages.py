@@ -21,7 +21,7 @@ from typing import Callable
 
 import numpy as np
 
-from ..compare import PERMITS, judge_configural, judge_step, level_delta, supported_level
+from ..decide.compare import PERMITS, judge_configural, judge_step, level_delta, supported_level
 from ..data.checks import check_data
 from ..data.moments import sample_stats
 from ..data.read import apply_missing, file_sha256, read_table
@@ -29,12 +29,12 @@ from ..errors import DataError, InvarianceWarning, SpecificationError
 from ..estimate.dwls_robust import dwls_difference, fit_dwls
 from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
-from ..ordinal.levels import build_ordinal_level
-from ..ordinal.stats import ordinal_stats
-from ..partial.stage import stage_effects
+from ..model.ordinal_levels import build_ordinal_level
+from ..data.ordinal_stats import ordinal_stats
+from .partial_stage import stage_effects
 from .before_after import stage_group_fit, stage_scores, stage_screening, stage_structures
 from .align_stage import stage_alignment
-from .load import PipelineSpec, thaw
+from ..spec.load import PipelineSpec, thaw
 from . import robust_stage as _rs
 
 __all__ = ["FITTERS", "STAGES", "Stage", "add_stage", "stage_data", "stage_stats", "stage_levels", "stage_fits", "stage_summary", "FIT_KEYS"]
@@ -258,7 +258,7 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
     With a ``partial:`` section, a failed measurement level is handed to the release
     search (:mod:`invariance.partial`); its releases are carried into the later levels.
     """
-    from ..partial.stage import partial_settings, release_rows, search_level
+    from .partial_stage import partial_settings, release_rows, search_level
 
     stats = state["stats"]
     rule = spec.rule
@@ -362,7 +362,7 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
 
 
 def _ordinal_search(spec: PipelineSpec, state: dict, level: str, partial, carried: tuple) -> dict:
-    from ..ordinal_api import release_search as ordinal_release_search
+    from ..estimate.ordinal_api import release_search as ordinal_release_search
 
     return ordinal_release_search(
         spec.structure, state["stats"], level, alpha=partial.alpha, released=spec.released + carried,
@@ -458,7 +458,7 @@ def stage_ordinal_effects(spec: PipelineSpec, state: dict) -> dict:
     highest supported level that is metric or higher (:func:`invariance.ordinal_api.ordinal_effects`)."""
     if spec.ordinal is None:
         return stage_effects(spec, state)
-    from ..ordinal_api import ordinal_effects
+    from ..estimate.ordinal_api import ordinal_effects
 
     fits = state.get("fits", {})
     rows = state.get("level_rows", [])

@@ -17,8 +17,8 @@ import warnings
 import numpy as np
 
 from invariance import Structure, build_level, fit
-from invariance.alignment import align
-from invariance.batch import Population, Task, run_batch, simulate_groups
+from invariance.partial.alignment import align
+from invariance.pipeline.batch import Population, Task, run_batch, simulate_groups
 from invariance.data.moments import stats_from_arrays
 
 ITEMS = ("a", "b", "c", "d", "e")

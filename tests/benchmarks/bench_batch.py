@@ -19,7 +19,7 @@ import warnings
 import numpy as np
 
 from invariance import Structure, build_level, fit
-from invariance.batch import Population, Task, replicate, run_batch, task_seed
+from invariance.pipeline.batch import Population, Task, replicate, run_batch, task_seed
 from invariance.data.moments import stats_from_arrays
 
 ITEMS = ("a", "b", "c", "d", "e", "f")
@@ -65,7 +65,7 @@ def bench_workers(reps: int) -> None:
 
 
 def bench_groups(max_groups: int = 64, n: int = 300, *, single: bool = True) -> None:
-    from invariance.batch.runner import single_thread_blas
+    from invariance.pipeline.batch.runner import single_thread_blas
     from contextlib import nullcontext
 
     blas = "BLAS limited to 1 thread" if single else "default BLAS threads"
@@ -74,7 +74,7 @@ def bench_groups(max_groups: int = 64, n: int = 300, *, single: bool = True) -> 
     while G <= max_groups:
         pop = population(G)
         rng_seed = 100 + G
-        from invariance.batch import simulate_groups
+        from invariance.pipeline.batch import simulate_groups
 
         data = simulate_groups(pop, (n,) * G, rng_seed)
         stats = stats_from_arrays(data, pop.groups, ITEMS)

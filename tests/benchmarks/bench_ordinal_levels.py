@@ -21,7 +21,8 @@ from ordinal_sim import simulate_bifactor  # noqa: E402
 
 from invariance.estimate.dwls_robust import dwls_difference, fit_dwls  # noqa: E402
 from invariance.model import Structure  # noqa: E402
-from invariance.ordinal import ORDINAL_LEVELS, build_ordinal_level, ordinal_stats_from_arrays  # noqa: E402
+from invariance.model.ordinal_levels import ORDINAL_LEVELS, build_ordinal_level  # noqa: E402
+from invariance.data.ordinal_stats import ordinal_stats_from_arrays  # noqa: E402
 
 
 def main() -> None:

@@ -24,7 +24,7 @@ sys.path.insert(0, os.path.dirname(os.path.dirname(HERE)))
 
 from polychoric_reference import ref_polychoric  # noqa: E402
 
-from invariance.ordinal import polychoric  # noqa: E402
+from invariance.data.polychoric import polychoric  # noqa: E402
 
 
 def simulate(rng, n=2000, p=12, groups=4):

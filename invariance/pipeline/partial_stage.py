@@ -32,8 +32,8 @@ from typing import Any, Callable, Mapping
 import numpy as np
 
 from ..errors import InvarianceWarning, SpecificationError
-from ..results import FitResult
-from .search import CORRECTIONS, RELEASE_MODES, UNTIL, SearchResult, release_search
+from ..estimate.result import FitResult
+from ..partial.search import CORRECTIONS, RELEASE_MODES, UNTIL, SearchResult, release_search
 
 __all__ = [
     "FIT_ROW_KEYS",
@@ -182,9 +182,9 @@ def _fit_quiet(spec, stats) -> tuple[FitResult, list[str]]:
 
 
 def _structural(spec, state, base: FitResult, base_row: dict, settings: PartialSettings, steps) -> list[dict]:
-    from ..compare import judge_step, level_delta
+    from ..decide.compare import judge_step, level_delta
     from ..model.structural import build_structural, structural_parameter
-    from .score import score_tests
+    from ..partial.score import score_tests
 
     stats = state["stats"]
     rule = spec.rule
@@ -233,7 +233,7 @@ def _structural(spec, state, base: FitResult, base_row: dict, settings: PartialS
 
 
 def _step_constraints(res: FitResult, kind: str):
-    from .score import constraints
+    from ..partial.score import constraints
 
     return constraints(res.spec, parameters=(kind,))
 
@@ -254,7 +254,7 @@ def stage_effects(spec, state: dict) -> dict:
     from ..effects.bifactor import quality_indices
     from ..effects.dmacs import scale_bias
     from ..effects.latent import compare_latent
-    from .flags import flagged_items
+    from ..partial.flags import flagged_items
 
     settings = partial_settings(spec.section("partial"))
     steps = structural_settings(spec.section("structural"))
@@ -299,7 +299,7 @@ def stage_effects(spec, state: dict) -> dict:
 def _ordinal_effects(spec, state: dict, final) -> dict:
     """Effects section for ordinal (DWLS) runs: latent-response bifactor indices of the
     last supported level; dMACS of flagged items comes with the ordinal search."""
-    from ..ordinal.effects import bifactor_indices_latent
+    from ..effects.ordinal import bifactor_indices_latent
 
     out: dict = {"flagged": list(state.get("ordinal_flags", [])), "scale_bias": [], "structural": []}
     out["latent"] = {"level": None, "means": [], "variances": [], "notes": [

@@ -8,8 +8,8 @@ from functools import cached_property
 import numpy as np
 from scipy import stats as _st
 
-from .fit import FitStats
-from .model.spec import ALPHA, NU, ModelSpec
+from .indices import FitStats
+from ..model.spec import ALPHA, NU, ModelSpec
 
 __all__ = ["FitResult", "standardize"]
 

@@ -36,8 +36,8 @@ from typing import Sequence
 
 import numpy as np
 
-from .errors import DataError, EstimationError, SpecificationError
-from .results import FitResult
+from ..errors import DataError, EstimationError, SpecificationError
+from ..estimate.result import FitResult
 
 __all__ = ["SCORE_METHODS", "score_weights", "score_cases", "determinacy", "FactorScores", "factor_scores"]
 

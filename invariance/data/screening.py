@@ -45,7 +45,7 @@ from typing import Mapping, Sequence
 import numpy as np
 from scipy import stats as _st
 
-from .errors import DataError, SpecificationError
+from ..errors import DataError, SpecificationError
 
 __all__ = [
     "item_moments",

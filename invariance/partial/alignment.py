@@ -48,9 +48,9 @@ import numpy as np
 from scipy import optimize as _sopt
 from scipy import stats as _st
 
-from .errors import SpecificationError
-from .model.spec import ALPHA, BETA, LAMBDA, NU, PSI
-from .results import FitResult
+from ..errors import SpecificationError
+from ..model.spec import ALPHA, BETA, LAMBDA, NU, PSI
+from ..estimate.result import FitResult
 
 __all__ = [
     "AlignmentResult",

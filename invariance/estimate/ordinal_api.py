@@ -15,14 +15,14 @@ from typing import Iterable, Mapping, Sequence
 
 import numpy as np
 
-from .errors import SpecificationError
-from .estimate.dwls import ordinal_start_values, start_from
-from .estimate.dwls_robust import dwls_difference, fit_dwls
-from .model.spec import Release
-from .model.structure import Structure
-from .ordinal.levels import ORDINAL_LEVELS, ORDINAL_RELEASES, build_ordinal_level, ordinal_level_rank
-from .ordinal.stats import OrdinalStats, ordinal_stats
-from .results import FitResult
+from ..errors import SpecificationError
+from .dwls import ordinal_start_values, start_from
+from .dwls_robust import dwls_difference, fit_dwls
+from ..model.spec import Release
+from ..model.structure import Structure
+from ..model.ordinal_levels import ORDINAL_LEVELS, ORDINAL_RELEASES, build_ordinal_level, ordinal_level_rank
+from ..data.ordinal_stats import OrdinalStats, ordinal_stats
+from .result import FitResult
 
 __all__ = [
     "DEFAULT_RELEASE_KINDS",
@@ -261,7 +261,7 @@ def ordinal_effects(result: FitResult, stats: OrdinalStats, *, focal: str, refer
         ``dmacs``: item -> {``latent``, ``expected_score``}; ``bifactor``: group ->
         indices (only when the model has one factor loading on every item and others).
     """
-    from .ordinal.effects import bifactor_indices_latent, category_sd, dmacs_expected_score, dmacs_latent
+    from ..effects.ordinal import bifactor_indices_latent, category_sd, dmacs_expected_score, dmacs_latent
 
     spec = result.spec
     if tuple(stats.items) != tuple(spec.items):

@@ -15,7 +15,7 @@ from typing import Callable, Mapping
 
 import numpy as np
 
-from ..compare import DecisionRule, judge_step, make_rule
+from ...decide.compare import DecisionRule, judge_step, make_rule
 
 __all__ = ["Rule", "chi2_rule", "cfi_rule", "chen_rule", "decision_rule", "default_rules", "finite"]
 

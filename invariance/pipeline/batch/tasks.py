@@ -11,7 +11,7 @@ import itertools
 from pathlib import Path
 from typing import Any, Mapping, Sequence
 
-from ..errors import SpecificationError
+from ...errors import SpecificationError
 from .runner import highest_level
 
 __all__ = ["pipeline_task", "summarize_results", "pipeline_variants", "parse_vary"]

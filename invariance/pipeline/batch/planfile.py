@@ -32,9 +32,9 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any, Mapping
 
-from ..errors import SpecificationError
-from ..model.structure import Structure
-from ..compare import make_rule
+from ...errors import SpecificationError
+from ...model.structure import Structure
+from ...decide.compare import make_rule
 from .population import Population, Shift
 from .rules import decision_rule, default_rules
 

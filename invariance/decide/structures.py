@@ -32,12 +32,12 @@ from typing import Callable, Mapping, Sequence
 
 import numpy as np
 
-from .data.moments import SampleStats, sample_stats
-from .errors import EstimationError, InvarianceWarning, SpecificationError
-from .estimate.ml import fit
-from .model.levels import build_level
-from .model.structure import FAMILIES, Structure
-from .results import FitResult
+from ..data.moments import SampleStats, sample_stats
+from ..errors import EstimationError, InvarianceWarning, SpecificationError
+from ..estimate.ml import fit
+from ..model.levels import build_level
+from ..model.structure import FAMILIES, Structure
+from ..estimate.result import FitResult
 
 __all__ = [
     "DEFAULT_GENERAL",

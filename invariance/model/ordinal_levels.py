@@ -43,8 +43,8 @@ from typing import Iterable, Sequence
 import numpy as np
 
 from ..errors import SpecificationError
-from ..model.spec import ALPHA, BETA, LAMBDA, NU, PSI, TAU, THETA, ModelSpec, Release
-from ..model.structure import Structure
+from .spec import ALPHA, BETA, LAMBDA, NU, PSI, TAU, THETA, ModelSpec, Release
+from .structure import Structure
 
 __all__ = ["ORDINAL_LEVELS", "ORDINAL_RELEASES", "build_ordinal_level", "ordinal_level_rank"]
 

@@ -28,11 +28,11 @@ from typing import Mapping, Sequence
 import numpy as np
 from scipy import stats as _st
 
-from ..data.moments import stats_from_arrays
-from ..errors import EstimationError, SpecificationError
-from ..estimate.ml import fit
-from ..model.levels import LEVELS, build_level
-from ..results import FitResult
+from ...data.moments import stats_from_arrays
+from ...errors import EstimationError, SpecificationError
+from ...estimate.ml import fit
+from ...model.levels import LEVELS, build_level
+from ...estimate.result import FitResult
 from .population import STEP_OF, Population, Shift, group_sizes, simulate_groups
 from .rules import Rule, default_rules, finite
 from .runner import Task, _one_line, run_batch, task_seed

@@ -19,13 +19,13 @@ from typing import Any, Mapping
 
 import yaml
 
-from ..compare import DecisionRule, make_rule
+from ..decide.compare import DecisionRule, make_rule
 from ..errors import SpecificationError
 from ..model.levels import LEVELS, build_level
 from ..model.spec import Release
 from ..model.structure import Structure
-from ..ordinal.levels import ORDINAL_LEVELS, build_ordinal_level
-from .align_stage import check_alignment_section
+from ..model.ordinal_levels import ORDINAL_LEVELS, build_ordinal_level
+from ..pipeline.align_stage import check_alignment_section
 
 __all__ = ["PipelineSpec", "load_pipeline", "parse_yaml", "schema", "validate_document", "thaw"]
 

@@ -13,12 +13,12 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
-from ..data.simulate import draw_group
-from ..errors import SpecificationError
-from ..estimate.kernels import implied_moments
-from ..model.levels import LEVELS
-from ..model.structure import Structure
-from ..results import FitResult
+from ...data.simulate import draw_group
+from ...errors import SpecificationError
+from ...estimate.kernels import implied_moments
+from ...model.levels import LEVELS
+from ...model.structure import Structure
+from ...estimate.result import FitResult
 
 __all__ = ["Population", "Shift", "STEP_OF", "simulate_groups", "group_sizes"]
 

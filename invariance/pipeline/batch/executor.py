@@ -15,7 +15,7 @@ from __future__ import annotations
 import logging
 from typing import Any, Callable, Iterable, Iterator
 
-from ..errors import SpecificationError
+from ...errors import SpecificationError
 from .runner import _one_line, single_thread_blas
 
 __all__ = ["DaskExecutor"]

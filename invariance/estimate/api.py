@@ -4,12 +4,12 @@ from __future__ import annotations
 
 from typing import Iterable, Sequence
 
-from .data.moments import SampleStats, sample_stats
-from .estimate.ml import fit
-from .model.levels import LEVELS, build_level
-from .model.spec import Release
-from .model.structure import Structure
-from .results import FitResult
+from ..data.moments import SampleStats, sample_stats
+from .ml import fit
+from ..model.levels import LEVELS, build_level
+from ..model.spec import Release
+from ..model.structure import Structure
+from .result import FitResult
 
 __all__ = ["fit_level", "fit_levels"]
 

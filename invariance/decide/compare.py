@@ -33,7 +33,7 @@ from typing import Mapping, Sequence
 
 from scipy import stats as _st
 
-from .errors import SpecificationError
+from ..errors import SpecificationError
 
 __all__ = [
     "CRITERIA",

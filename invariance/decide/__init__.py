@@ -1,0 +1,1 @@
+"""Decisions between nested levels: difference tests, decision rules, rival structures."""

@@ -1,0 +1,1 @@
+"""The pipeline file: loading, the declared schema, typed options, the starter file."""
