@@ -23,7 +23,7 @@ from __future__ import annotations
 
 from ..data.ordinal_stats import OrdinalStats
 
-from ..decide.compare import supported_level
+from ..decide.verdict import supported_level
 from ..errors import DataError, SpecificationError
 from ..effects.scores import factor_scores
 from ..data.screening import screen
@@ -130,7 +130,8 @@ def _final_fit(state: dict):
     final = state.get("final_fit")
     if final is not None:
         return final
-    best = supported_level(state["level_rows"])
+    verdict = state.get("verdict")
+    best = verdict.supported_level if verdict is not None else supported_level(state["level_rows"])
     return None if best is None else state["fits"].get(best)
 
 

@@ -111,13 +111,14 @@ def run_stages(spec: PipelineSpec, stages=None, *, extra: dict | None = None) ->
     """Run stages in order; returns (results, state)."""
     from .. import __version__
 
-    state: dict = {"warnings": [], **(extra or {})}
     results: dict = {
         "invariance_version": __version__,
         "title": spec.title,
         "estimator": spec.estimator,
         "seed": spec.seed,
     }
+    # "results": what earlier stages returned, read-only (the summary reads scale_bias)
+    state: dict = {"warnings": [], "results": MappingProxyType(results), **(extra or {})}
     for _name, stage in stages if stages is not None else STAGES:
         results.update(stage(spec, state))
     results["warnings"] = list(dict.fromkeys(state["warnings"]))

@@ -21,7 +21,8 @@ from typing import Callable
 
 import numpy as np
 
-from ..decide.compare import PERMITS, judge_configural, judge_step, level_delta, supported_level
+from ..decide.compare import judge_configural, judge_step, level_delta
+from ..decide.verdict import build_verdict, calibration_note, constrained_record, supported_level
 from ..data.checks import check_data
 from ..data.moments import sample_stats
 from ..data.read import apply_missing, file_sha256, read_table
@@ -30,6 +31,7 @@ from ..estimate.dwls_robust import dwls_difference, fit_dwls
 from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
 from ..model.ordinal_levels import build_ordinal_level
+from ..partial.locate import differs_in
 from ..data.ordinal_stats import ordinal_stats
 from .partial_stage import stage_effects
 from .before_after import stage_group_fit, stage_scores, stage_screening, stage_structures
@@ -317,11 +319,13 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
                 search = search_level(res, stats, verdict_of, partial, executor=state.get("executor"))
                 searches.append(search)
                 if search.releases:
+                    before = constrained_record({**row, "delta": delta, "compared_with": base_level, **verdict})
                     res = search.fit
                     fits[lv] = res
                     row = _level_row(lv, res, res.spec.released)
                     delta = level_delta(row, base_row)
                     verdict = {**verdict_of(res), "decision": search.decision}
+                    row["constrained"] = before
                 carried = carried + search.released
                 row["partial"] = {k: v for k, v in search.to_dict().items() if k not in ("fit", "releases", "released")}
             elif partial.searches(verdict["decision"]) and res.converged and res.estimator == "dwls":
@@ -330,6 +334,7 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
                 found = _ordinal_search(spec, state, lv, partial, carried)
                 new = tuple(found["released"][len(spec.released) + len(carried):])
                 if new:
+                    before = constrained_record({**row, "delta": delta, "compared_with": base_level, **verdict})
                     res = found["fit"]
                     fits[lv] = res
                     row = _level_row(lv, res, res.spec.released)
@@ -337,6 +342,7 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
                     verdict = judge_step(delta, "scalar" if lv == "thresholds" else lv, rule, converged=res.converged)
                     if verdict["decision"] == "holds":
                         verdict["decision"] = "holds_partially"
+                    row["constrained"] = before
                     carried = carried + new
                 state.setdefault("ordinal_flags", []).extend(_ordinal_flag(found, r, lv) for r in new)
                 row["partial"] = {"method": "likelihood-ratio refits (DWLS difference), Bonferroni per round",
@@ -386,13 +392,21 @@ def _ordinal_flag(found: dict, release, level: str) -> dict:
         "pvalue": _num(best.get("pvalue")),
         "test": "DWLS difference of the refit with the constraint released",
         "dmacs": None,
+        "differs_in": _list(differs_in(found["fit"], release.to_dict())),
     }
 
 
+def _list(x):
+    return None if x is None else list(x)
+
+
 def stage_summary(spec: PipelineSpec, state: dict) -> dict:
-    """Say which level the data support and what group comparisons it permits."""
+    """Say which level the data support, how fully, and what group comparisons it permits
+    (the one :class:`~invariance.decide.verdict.Verdict` of the run, also left in
+    ``state["verdict"]``)."""
+    from .partial_stage import partial_settings
+
     rows = state["level_rows"]
-    best = supported_level(rows)
     n_total = state["stats"].n_total
     ns = [g.n for g in state["stats"].groups]
     notes = []
@@ -405,32 +419,25 @@ def stage_summary(spec: PipelineSpec, state: dict) -> dict:
             "than 1.5 times the smallest): consider decision.cutoffs: chen2007_small"
         )
     state.setdefault("warnings", []).extend(notes)
-    first_bad = next((r for r in rows if r["decision"] not in ("holds", "holds_partially")), None)
-    estimation_failed = first_bad is not None and (
-        first_bad["converged"] is False
-        or (first_bad["level"] == "configural" and any(not p.startswith("not converged") for p in first_bad["problems"]))
+    best = supported_level(rows)
+    fit = state.get("fits", {}).get(best)
+    differs = {}
+    for x in next((r.get("released") or () for r in rows if r["level"] == best), ()) if fit is not None else ():
+        located = differs_in(fit, x)
+        if located is not None:
+            differs[(x.get("parameter"), x.get("item"), x.get("factor"))] = located
+    verdict = build_verdict(
+        rows,
+        up_front=[r.to_dict() for r in spec.released],
+        scales=spec.structure.measured_by,
+        scale_bias=state.get("results", {}).get("scale_bias") or (),
+        reference=state.get("reference"),
+        differs=differs,
+        calibration=calibration_note(spec.rule, estimator=spec.estimator, ordinal=spec.ordinal is not None),
+        partial_enabled=partial_settings(spec.section("partial")).enabled,
     )
-    if best is None and estimation_failed:
-        verdict = (
-            "The configural model did not converge to a proper solution, so no level could be judged: "
-            "check the factor structure, the items and the group sizes before reading any result."
-        )
-    elif best is None:
-        verdict = "The data do not support even configural invariance: " + PERMITS[None] + "."
-    else:
-        verdict = f"The data support {best} invariance: {PERMITS[best]}."
-        if estimation_failed:
-            verdict += (
-                f" (The {first_bad['level']} model did not converge, so that step could not be judged; "
-                "a higher level may still hold.)"
-            )
-    return {
-        "supported_level": best,
-        "permits": PERMITS[best],
-        "verdict": verdict,
-        "decision_rule": spec.rule.to_dict(),
-        "stop_at_failure": spec.stop_at_failure,
-    }
+    state["verdict"] = verdict
+    return {**verdict.to_dict(), "decision_rule": spec.rule.to_dict(), "stop_at_failure": spec.stop_at_failure}
 
 
 #: The stages of a run, in order: (name, function).
