@@ -274,18 +274,21 @@ _HOLDS = {
 
 
 def shown_comparison(value: float, cutoff: float, relation: str, *, min_digits: int = 3) -> tuple[str, str]:
-    """``value`` and ``cutoff`` as text with the same, smallest number of decimals (at
-    least ``min_digits``) for which the shown numbers satisfy ``relation`` (``>``, ``>=``,
-    ``<``, ``<=``), the inequality that decided; see the module docstring.
+    """``value`` and ``cutoff`` as text for a decision taken by ``relation`` (``>``,
+    ``>=``, ``<``, ``<=``), which holds between them; see the module docstring.
 
-    Decisions compare numbers rounded to 10 decimals, so 10 decimals always suffice.
+    The cutoff gets the fewest decimals (at least ``min_digits``) that show it exactly;
+    the value the fewest (at least ``min_digits``) for which the shown value and the shown
+    cutoff still satisfy ``relation``. Decisions compare numbers rounded to 10 decimals,
+    so 10 decimals always suffice.
     """
     a, b = round(float(value), 10), round(float(cutoff), 10)
+    vb = next(f"{b:.{d}f}" for d in range(min_digits, 11) if float(f"{b:.{d}f}") == b or d == 10)
     for d in range(min_digits, 11):
-        va, vb = f"{a:.{d}f}", f"{b:.{d}f}"
+        va = f"{a:.{d}f}"
         if _HOLDS[relation](float(va), float(vb)):
             return va, vb
-    return repr(a), repr(b)
+    return repr(a), vb
 
 
 def _comparison(criterion: str, value: float, cutoff: float, passed: bool, relations=None) -> dict:

@@ -99,9 +99,14 @@ def _rank(level: str) -> int:
 
 
 def _counts_at(release: Mapping, level: str) -> bool:
-    """Whether a release frees a constraint that ``level`` (or a level below it) imposes."""
+    """Whether a release frees a constraint that ``level`` (or a level below it) imposes
+    (a record that names no parameter counts at every level but configural)."""
+    if level == "configural":
+        return False
+    if release.get("parameter") is None:
+        return True
     at = CONSTRAINED_AT.get(str(release.get("parameter")))
-    return at is not None and level != "configural" and _rank(at) <= _rank(level)
+    return at is not None and _rank(at) <= _rank(level)
 
 
 def is_partial(row: Mapping) -> bool:
