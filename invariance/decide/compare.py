@@ -287,7 +287,7 @@ def shown_comparison(value: float, cutoff: float, relation: str, *, min_digits: 
     for d in range(min_digits, 11):
         va = f"{a:.{d}f}"
         if _HOLDS[relation](float(va), float(vb)):
-            return va, vb
+            return (va.lstrip("-") if float(va) == 0 else va), vb
     return repr(a), vb
 
 

@@ -51,6 +51,9 @@ CONSTRAINED_AT = {
 
 HOLDS = ("holds", "holds_partially")
 
+#: How a level is named in a sentence ("threshold invariance").
+_NAMES = {"thresholds": "threshold"}
+
 #: What each supported level permits when comparing groups.
 PERMITS = {
     None: "no group comparison: not even the configural model is supported, so the "
@@ -259,7 +262,7 @@ def _anchor_note(released: Sequence[Released], scales: Mapping[str, Sequence[str
 def _partial_text(level: str, released: Sequence[Released], scales, scale_bias, reference) -> str:
     names = "; ".join(r.describe() for r in released)
     n = len(released)
-    text = (f"The data support partial {level} invariance, resting on {n} released constraint"
+    text = (f"The data support partial {_NAMES.get(level, level)} invariance, resting on {n} released constraint"
             f"{'s' if n != 1 else ''}: {names}. This permits: {PARTIAL_PERMITS.get(level, PERMITS.get(level, ''))}")
     if level == "strict":
         clean = _clean_items(released, scales)
@@ -369,7 +372,7 @@ def build_verdict(
         permits = PARTIAL_PERMITS.get(best, PERMITS.get(best, ""))
     else:
         permits = PERMITS.get(best, "")
-        text = f"The data support {best} invariance: {permits}."
+        text = f"The data support {_NAMES.get(best, best)} invariance: {permits}."
     if failed is not None:
         text += (f" (The {failed.get('level')} model did not converge, so that step could not be judged; "
                  "a higher level may still hold.)")
