@@ -150,7 +150,8 @@ def rule_text(results: Mapping[str, Any]) -> str | None:
 
 
 def level_checks(entry: Mapping[str, Any]) -> dict[str, dict]:
-    """The checks recorded on a level: index -> {value, cutoff, passed}."""
+    """The checks recorded on a level: index -> {value, cutoff, passed} and, when
+    recorded, the shown comparison (``value_text``, ``relation``, ``cutoff_text``)."""
     out = {}
     for c in (entry.get("checks") or entry.get("criteria") or []):
         if not isinstance(c, Mapping):
@@ -159,7 +160,8 @@ def level_checks(entry: Mapping[str, Any]) -> dict[str, dict]:
         if name is None:
             continue
         passed = next((c[k] for k in ("passed", "met", "ok", "within") if isinstance(c.get(k), bool)), None)
-        out[norm_index(str(name))] = {"value": c.get("value"), "cutoff": c.get("cutoff"), "passed": passed}
+        out[norm_index(str(name))] = {"value": c.get("value"), "cutoff": c.get("cutoff"), "passed": passed,
+                                      **{k: c[k] for k in ("value_text", "relation", "cutoff_text") if k in c}}
     return out
 
 
@@ -277,11 +279,10 @@ def new_releases(results: Mapping[str, Any]) -> list[tuple[dict, dict]]:
         for r in e.get("released") or []:
             if not isinstance(r, Mapping):
                 continue
-            g = r.get("groups")
-            key = (r.get("parameter"), r.get("item"), r.get("factor"), tuple(g) if isinstance(g, (list, tuple)) else g)
+            key = (r.get("parameter"), r.get("item"), r.get("factor"))
             if key not in seen:
                 seen.add(key)
-                d = where.get(key[:3])
+                d = where.get(key)
                 out.append((e, dict(r) if d is None else {**r, "differs_in": d}))
     return out
 

@@ -18,6 +18,7 @@ FLAG_NAMES = {
     "statistic": "Statistic", "lm": "Score test", "score": "Score test", "df": "df", "pvalue": "p",
     "p": "p", "p_adjusted": "p (adjusted)", "adjusted_pvalue": "p (adjusted)", "dmacs": "dMACS",
     "dmacs_max": "dMACS (largest)", "test": "Test", "lr_statistic": "LR \u03c7\u00b2", "lr_pvalue": "p (LR)",
+    "differs_in": "Differs in", "groups_freed": "Groups",
 }
 #: Flag fields left out of the table (long per-group lists shown elsewhere).
 FLAG_HIDDEN = ("epc",)
@@ -33,7 +34,7 @@ def section_flagged(inp: ReportInput) -> Section | None:
         return None
     shown = [{k: v for k, v in f.items() if k not in FLAG_HIDDEN} for f in flagged]
     tab = records_table(shown, names=FLAG_NAMES, caption="Parameters flagged as differing across groups")
-    first = ["Item", "Parameter", "Factor", "Groups", "Level"]
+    first = ["Item", "Parameter", "Factor", "Differs in", "Groups", "Level"]
     order = [tab.columns.index(c) for c in first if c in tab.columns]
     order += [k for k in range(len(tab.columns)) if k not in order]
     tab = Table(
