@@ -38,6 +38,7 @@ __all__ = [
     "display_rows",
     "is_partial",
     "supported_level",
+    "where_text",
 ]
 
 #: Measurement levels in order (``thresholds`` only for ordered items).
@@ -121,6 +122,18 @@ def _key(r: Mapping) -> tuple:
     return (r.get("parameter"), r.get("item"), r.get("factor"))
 
 
+def where_text(groups: Sequence[str] | None, differs: Sequence[str] | None) -> str:
+    """Where a released parameter differs: ``differs in mesa``, ``differs between a and b``
+    (two groups), else the groups it was released in."""
+    if differs is None:
+        return "released in every group" if not groups else "released in " + ", ".join(groups)
+    if not differs:
+        return "released in every group; no single group stands out"
+    if len(differs) == 2 and groups is not None and len(groups) == 2:
+        return f"differs between {differs[0]} and {differs[1]}"
+    return "differs in " + ", ".join(differs)
+
+
 @dataclass(frozen=True)
 class Released:
     """One released constraint the supported level rests on.
@@ -144,16 +157,7 @@ class Released:
         if self.source == "pipeline":
             where = "every group" if not self.groups else ", ".join(self.groups)
             return f"the {self.parameter} of {self.item}{on} (released in model.released, {where})"
-        d = self.differs_in
-        if d is None:
-            where = "released in every group" if not self.groups else "released in " + ", ".join(self.groups)
-        elif not d:
-            where = "released in every group; no single group stands out"
-        elif len(d) == 2 and self.groups is not None and len(self.groups) == 2:
-            where = f"differs between {d[0]} and {d[1]}"
-        else:
-            where = "differs in " + ", ".join(d)
-        return f"the {self.parameter} of {self.item}{on} ({where})"
+        return f"the {self.parameter} of {self.item}{on} ({where_text(self.groups, self.differs_in)})"
 
     def to_dict(self) -> dict:
         return {"parameter": self.parameter, "item": self.item, "factor": self.factor,

@@ -15,7 +15,7 @@ import shutil
 import tempfile
 from typing import Callable
 
-from ..decide.verdict import display_rows
+from ..decide.verdict import display_rows, where_text
 
 __all__ = ["check_destination", "level_table", "write_outputs", "format_table", "to_json"]
 
@@ -94,17 +94,10 @@ def level_table(results: dict):
 
 
 def _release_text(r: dict) -> str:
-    """``intercept of so03 (differs in mesa)``: the located groups when known, else the
-    groups with their own parameter."""
+    """``intercept of so03 (differs in mesa)``: the located groups when known
+    (:func:`invariance.decide.verdict.where_text`), else the groups released in."""
     where = f" on {r['factor']}" if r.get("factor") else ""
-    d = r.get("differs_in")
-    if d:
-        groups = f" (differs {'between ' + ' and '.join(d) if len(d) == 2 == len(r.get('groups') or ()) else 'in ' + ', '.join(d)})"
-    elif d is not None:
-        groups = " (released in every group; no single group stands out)"
-    else:
-        groups = f" in {', '.join(r['groups'])}" if r.get("groups") else " in every group"
-    return f"{r['parameter']} of {r['item']}{where}{groups}"
+    return f"{r['parameter']} of {r['item']}{where} ({where_text(r.get('groups'), r.get('differs_in'))})"
 
 
 def _num(v, fmt: str) -> str:

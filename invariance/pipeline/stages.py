@@ -22,7 +22,7 @@ from typing import Callable
 import numpy as np
 
 from ..decide.compare import judge_configural, judge_step, level_delta
-from ..decide.verdict import build_verdict, calibration_note, constrained_record, supported_level
+from ..decide.verdict import constrained_record, supported_level
 from ..data.checks import check_data
 from ..data.moments import sample_stats
 from ..data.read import apply_missing, file_sha256, read_table
@@ -36,6 +36,7 @@ from ..data.ordinal_stats import ordinal_stats
 from .partial_stage import stage_effects
 from .before_after import stage_group_fit, stage_scores, stage_screening, stage_structures
 from .align_stage import stage_alignment
+from .verdict_stage import stage_summary
 from ..spec.load import PipelineSpec, thaw
 from . import robust_stage as _rs
 
@@ -398,46 +399,6 @@ def _ordinal_flag(found: dict, release, level: str) -> dict:
 
 def _list(x):
     return None if x is None else list(x)
-
-
-def stage_summary(spec: PipelineSpec, state: dict) -> dict:
-    """Say which level the data support, how fully, and what group comparisons it permits
-    (the one :class:`~invariance.decide.verdict.Verdict` of the run, also left in
-    ``state["verdict"]``)."""
-    from .partial_stage import partial_settings
-
-    rows = state["level_rows"]
-    n_total = state["stats"].n_total
-    ns = [g.n for g in state["stats"].groups]
-    notes = []
-    if spec.rule.source.startswith("Chen (2007) cutoffs for total N > 300") and (
-        n_total <= 300 or max(ns) > 1.5 * min(ns)
-    ):
-        notes.append(
-            f"total N = {n_total}, group sizes {min(ns)} to {max(ns)}: Chen (2007) recommends the "
-            "small-sample cutoffs when N <= 300 or groups are unbalanced (here: the largest group more "
-            "than 1.5 times the smallest): consider decision.cutoffs: chen2007_small"
-        )
-    state.setdefault("warnings", []).extend(notes)
-    best = supported_level(rows)
-    fit = state.get("fits", {}).get(best)
-    differs = {}
-    for x in next((r.get("released") or () for r in rows if r["level"] == best), ()) if fit is not None else ():
-        located = differs_in(fit, x)
-        if located is not None:
-            differs[(x.get("parameter"), x.get("item"), x.get("factor"))] = located
-    verdict = build_verdict(
-        rows,
-        up_front=[r.to_dict() for r in spec.released],
-        scales=spec.structure.measured_by,
-        scale_bias=state.get("results", {}).get("scale_bias") or (),
-        reference=state.get("reference"),
-        differs=differs,
-        calibration=calibration_note(spec.rule, estimator=spec.estimator, ordinal=spec.ordinal is not None),
-        partial_enabled=partial_settings(spec.section("partial")).enabled,
-    )
-    state["verdict"] = verdict
-    return {**verdict.to_dict(), "decision_rule": spec.rule.to_dict(), "stop_at_failure": spec.stop_at_failure}
 
 
 #: The stages of a run, in order: (name, function).
