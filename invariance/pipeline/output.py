@@ -108,10 +108,11 @@ def _partial_lines(results: dict) -> list[str]:
     """Flagged items and structural levels (written by the partial-invariance stage)."""
     out = []
     if results.get("flagged"):
-        out += ["", "Flagged (released by the score-test search):"]
+        out += ["", "Flagged (released by the search):"]
         for f in results["flagged"]:
             size = "" if f.get("dmacs_max") is None else f", dMACS up to {f['dmacs_max']:.2f}"
-            out.append(f"  {_release_text(f)} at {f['level']}: score test {f['statistic']:.2f} "
+            test = "score test" if f.get("test") in ("multivariate", "univariate") else "refit difference"
+            out.append(f"  {_release_text(f)} at {f['level']}: {test} {f['statistic']:.2f} "
                        f"on {f['df']} df, p {f['pvalue']:.2g}{size}")
     for s in results.get("structural") or []:
         if s == results["structural"][0]:
