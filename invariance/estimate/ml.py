@@ -38,7 +38,7 @@ from .separate import fit_by_group, shares_nothing
 from .start import start_values
 from .starts import DEFAULT_STARTS, general_factors, run_starts, variance_bounds
 
-__all__ = ["ESTIMATORS", "fit", "diagnose", "observed_information"]
+__all__ = ["ESTIMATORS", "fit", "diagnose", "observed_information", "estimation_record", "refit_options"]
 
 #: Estimators accepted by :func:`fit`.
 ESTIMATORS = ("ml", "ml_robust")
@@ -201,11 +201,12 @@ def fit(
             "check the model structure and the items of each factor."
         )
     return _finish(spec, stats, obj, out, information=information, estimator=estimator,
-                   estimation=estimation_record(spec, out, record, lower, variances))
+                   estimation=estimation_record(spec, out, record, lower, options=opts))
 
 
-def estimation_record(spec: ModelSpec, out, record, lower, variances: str) -> dict:
-    """``extra["estimation"]``: what was estimated and what the optimizer found."""
+def estimation_record(spec: ModelSpec, out, record, lower, *, options: dict) -> dict:
+    """``extra["estimation"]``: what was estimated, with which ``options`` (variances,
+    starts, seed), and what the optimizer found."""
     general = [spec.factors[c] for c in sorted(general_factors(spec))]
     runaway = describe_runaway(spec, out.running, out.x, general=general) if out.status == 6 else []
     at_bound = describe_bounds(spec, out.x, lower) if lower is not None else []
@@ -216,8 +217,14 @@ def estimation_record(spec: ModelSpec, out, record, lower, variances: str) -> di
             ", with estimates at a bound" if at_bound else "")
     else:
         optimum = "unbounded optimum (variances unrestricted)"
-    return {"variances": variances, "optimum": optimum, "starts": record.to_dict(),
-            "at_bound": at_bound, "runaway": runaway}
+    return {"variances": options["variances"], "optimum": optimum, "starts": record.to_dict(),
+            "at_bound": at_bound, "runaway": runaway,
+            "options": {k: options[k] for k in ("variances", "starts", "seed")}}
+
+
+def refit_options(res: FitResult) -> dict:
+    """The estimation options of ``res`` (variances, starts, seed), for refits of variants of its model."""
+    return dict(res.extra.get("estimation", {}).get("options", {}))
 
 
 def _finish(spec, stats, obj, out, *, information: str, estimator: str, estimation: dict) -> FitResult:

@@ -67,7 +67,12 @@ def describe_runaway(spec: ModelSpec, running: Sequence[int], theta: np.ndarray,
         said = []
         for kind, lhs, rhs in ents:
             f = _top_loading(spec, theta, g, lhs, general) if kind == "residual" else None
-            if f is not None:
+            if kind == "loading" and not any(k == "residual" and i == lhs for k, i, _ in ents):
+                which = "general" if rhs in general else "specific"
+                what = f"the {which} factor '{rhs}'" if general else f"factor '{rhs}'"
+                said.append(f"{what} collapses onto item {lhs}: its loading grows without bound (the item's "
+                            "unique variance shrinks to nothing beside the factor's)")
+            elif f is not None:
                 which = "general" if f in general else "specific"
                 what = f"the {which} factor '{f}'" if general else f"factor '{f}'"
                 said.append(f"{what} collapses onto item {lhs}: its residual variance goes below zero "

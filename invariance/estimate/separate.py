@@ -137,6 +137,7 @@ def combine(spec: ModelSpec, parts: dict[str, FitResult]) -> FitResult:
     est = [r.extra.get("estimation", {}) for r in res]
     extra["estimation"] = {
         "variances": est[0].get("variances"),
+        "options": est[0].get("options", {}),
         "optimum": _optimum_words(est),
         "starts": {g: e.get("starts") for g, e in zip(spec.groups, est)},
         "at_bound": [m for e in est for m in e.get("at_bound", [])],

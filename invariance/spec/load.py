@@ -123,6 +123,15 @@ class PipelineSpec:
         """A top-level section of the document (for stages added later)."""
         return self.document.get(name, default)
 
+    def fit_options(self) -> dict:
+        """Options of every fit of the run that the pipeline sets: ``variances`` and
+        ``starts`` (section ``estimation``) and ``seed`` (keywords of
+        :func:`invariance.estimate.ml.fit`); empty when it sets none."""
+        opts = dict(self.document.get("estimation") or {})
+        if self.seed is not None:
+            opts["seed"] = int(self.seed)
+        return opts
+
     def to_dict(self) -> dict:
         """The validated document as plain dicts and lists."""
         return thaw(self.document)
