@@ -209,6 +209,12 @@ def estimation_record(spec: ModelSpec, out, record, lower, *, options: dict) -> 
     starts, seed), and what the optimizer found."""
     general = [spec.factors[c] for c in sorted(general_factors(spec))]
     runaway = describe_runaway(spec, out.running, out.x, general=general) if out.status == 6 else []
+    notes = []
+    if record.runaway_below is not None and not runaway:
+        notes = [f"in group{'s' if len(spec.groups) > 1 else ''} {', '.join(spec.groups)} another start runs away "
+                   f"to a lower statistic ({record.runaway_below:.2f} against {out.fun:.2f}): the reported solution is "
+                   "the best converged one, not the infimum; estimate within bounds with estimation: "
+                   "{variances: nonnegative} to get the best admissible solution"]
     at_bound = describe_bounds(spec, out.x, lower) if lower is not None else []
     if runaway:
         optimum = "no finite optimum: the estimates run away (reported where they were stopped)"
@@ -218,7 +224,7 @@ def estimation_record(spec: ModelSpec, out, record, lower, *, options: dict) -> 
     else:
         optimum = "unbounded optimum (variances unrestricted)"
     return {"variances": options["variances"], "optimum": optimum, "starts": record.to_dict(),
-            "at_bound": at_bound, "runaway": runaway,
+            "at_bound": at_bound, "runaway": runaway, "notes": notes,
             "options": {k: options[k] for k in ("variances", "starts", "seed")}}
 
 
@@ -245,8 +251,10 @@ def _finish(spec, stats, obj, out, *, information: str, estimator: str, estimati
     part = getattr(obj, "partition", None)
     problems = estimation["runaway"] + diagnose(spec, matrices, sigmas, info_se, part) + estimation["at_bound"]
     general = sorted(general_factors(spec))
-    problems += weak_identification(spec, info_se, part, matrices,
-                                    general=spec.factors[general[0]] if len(general) == 1 else None)
+    if not estimation["runaway"]:
+        lower = variance_bounds(spec) if estimation["variances"] == "nonnegative" else None
+        problems += weak_identification(spec, info_se, part, matrices, exclude=out.at_bound(lower),
+                                        general=spec.factors[general[0]] if len(general) == 1 else None)
     acov = None
     if not any(p.startswith("singular information") for p in problems):
         try:
@@ -260,6 +268,8 @@ def _finish(spec, stats, obj, out, *, information: str, estimator: str, estimati
     for p in problems:
         if not p.startswith("not converged"):
             warnings.warn(f"{spec.level or 'model'}: {p}", ImproperSolutionWarning, stacklevel=3)
+    for note in estimation["notes"]:
+        warnings.warn(f"{spec.level or 'model'}: {note}", ConvergenceWarning, stacklevel=3)
     fs = compute_fit(out.fun, spec.df, spec.n_params, obj.S, obj.mean, sigmas, mus, obj.n)
     extra: dict = {"estimation": estimation}
     if full_info:

@@ -60,6 +60,12 @@ class Outcome:
     #: indices of the parameters that ran away (status 6)
     running: tuple[int, ...] = ()
 
+    def at_bound(self, lower: np.ndarray | None) -> np.ndarray:
+        """Indices of the estimates held at their lower bound."""
+        if lower is None:
+            return np.empty(0, dtype=np.int64)
+        return np.flatnonzero(np.isfinite(lower) & (self.x <= lower + 1e-8))
+
     @property
     def converged(self) -> bool:
         return self.status in (0, 4)
@@ -109,12 +115,19 @@ def running_away(path: list[np.ndarray]) -> np.ndarray:
 
 def _direction(obj, x, f, g, h, part, newton_ok: bool, free: np.ndarray | None) -> np.ndarray:
     """Newton step (exact Hessian) when allowed and positive definite, else the scoring
-    step; with ``free`` given only those parameters move (dense solve)."""
+    step. With ``free`` given (bounded problems) the free parameters take that step and
+    the others a diagonally scaled gradient step (Bertsekas 1982)."""
     if free is not None:
-        step = np.zeros_like(x)
+        step = -g / np.maximum(np.abs(np.diag(h)), 1e-12)
         if free.any():
             sub = np.ix_(free, free)
-            step[free] = _solve(h[sub], g[free])
+            try:
+                if not newton_ok:
+                    raise np.linalg.LinAlgError
+                c = np.linalg.cholesky(obj.hessian(x)[sub])
+                step[free] = -np.linalg.solve(c.T, np.linalg.solve(c, g[free]))
+            except np.linalg.LinAlgError:
+                step[free] = _solve(h[sub], g[free])
         return step
     if newton_ok:
         try:
@@ -138,19 +151,19 @@ def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float, lower: np.ndarray
     except np.linalg.LinAlgError:
         return x, np.inf, None, None, 3, 0, none
     bound = 100.0 * (1.0 + np.max(np.abs(x)))  # far beyond any admissible scale of this data
-    newton = hasattr(obj, "hessian") and lower is None
+    newton = hasattr(obj, "hessian")
     part = getattr(obj, "partition", None)
     decrement = np.inf
     path = [x]
     for it in range(1, max_iter + 1):
         free = None
         if lower is not None:
-            free = ~((x <= lower + 1e-12) & (g > 0))
+            # epsilon-active set: near the bound and pushed towards it
+            free = ~((x <= lower + 1e-3) & (g > 0))
         step = _direction(obj, x, f, g, h, part, newton and decrement < 1.0, free)
-        if lower is not None:
-            step = np.maximum(x + step, lower) - x
+        full = step if lower is None else np.maximum(x + step, lower) - x  # projected full step
         decrement = -float(g @ step)
-        if decrement < tol * max(1.0, abs(f)) and np.max(np.abs(step)) < 1e-5:
+        if abs(float(g @ full)) < tol * max(1.0, abs(f)) and np.max(np.abs(full)) < 1e-5:
             return x, f, g, h, 0, it - 1, none
         t = 1.0
         for _ in range(30):

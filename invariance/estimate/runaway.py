@@ -22,6 +22,9 @@ VARIANCE_CHOICES = ("unrestricted", "nonnegative")
 #: parameters count as weakly identified (project choice: clean bifactor fits of 800
 #: cases give about 1e-2, proportional general and specific loadings about 1e-4).
 NEAR_SINGULAR = 1e-3
+#: General / specific loading ratios varying by less than this (coefficient of variation)
+#: count as close to proportional (project choice).
+PROPORTIONAL_CV = 0.25
 
 
 def _entries(spec: ModelSpec, j: int):
@@ -55,6 +58,34 @@ def _top_loading(spec: ModelSpec, theta: np.ndarray, group: str, item: str, gene
     return rhs[max(sel, key=key)]
 
 
+def _residual(spec: ModelSpec, theta: np.ndarray, group: str, item: str) -> float | None:
+    """Estimate of the free residual variance of ``item`` in ``group`` (None if fixed)."""
+    kinds = spec.kinds()
+    lhs, _ = spec.entry_names()
+    g = spec.groups.index(group)
+    sel = np.flatnonzero((kinds == "residual") & (lhs == item) & (spec.group == g) & (spec.param_index >= 0))
+    return float(theta[spec.param_index[sel[0]]]) if sel.size else None
+
+
+def _collapses(spec: ModelSpec, theta: np.ndarray, group: str, ents, general: Sequence[str]) -> list[str]:
+    """Sentences for the items of the run-away entries ``ents`` onto which a factor collapses:
+    negative residual variances first (continuous items), else growing loadings."""
+    below, growing = [], []
+    for item in dict.fromkeys(lhs for kind, lhs, _ in ents if kind in ("loading", "residual")):
+        f = _top_loading(spec, theta, group, item, general)
+        if f is None:
+            continue
+        which = "general" if f in general else "specific"
+        what = f"the {which} factor '{f}'" if general else f"factor '{f}'"
+        res = _residual(spec, theta, group, item)
+        if res is not None and res < 0:
+            below.append(f"{what} collapses onto item {item}: its residual variance goes below zero while its loading grows")
+        elif any(kind == "loading" and lhs == item for kind, lhs, _ in ents):
+            growing.append(f"{what} collapses onto item {item}: its loading grows without bound (the item's "
+                           "unique variance shrinks to nothing beside the factor's)")
+    return below or growing
+
+
 def describe_runaway(spec: ModelSpec, running: Sequence[int], theta: np.ndarray, *,
                      general: Sequence[str] = ()) -> list[str]:
     """One actionable sentence per group with run-away parameters."""
@@ -64,24 +95,11 @@ def describe_runaway(spec: ModelSpec, running: Sequence[int], theta: np.ndarray,
             by_group.setdefault(g, []).append((kind, lhs, rhs))
     out = []
     for g, ents in by_group.items():
-        said = []
-        for kind, lhs, rhs in ents:
-            f = _top_loading(spec, theta, g, lhs, general) if kind == "residual" else None
-            if kind == "loading" and not any(k == "residual" and i == lhs for k, i, _ in ents):
-                which = "general" if rhs in general else "specific"
-                what = f"the {which} factor '{rhs}'" if general else f"factor '{rhs}'"
-                said.append(f"{what} collapses onto item {lhs}: its loading grows without bound (the item's "
-                            "unique variance shrinks to nothing beside the factor's)")
-            elif f is not None:
-                which = "general" if f in general else "specific"
-                what = f"the {which} factor '{f}'" if general else f"factor '{f}'"
-                said.append(f"{what} collapses onto item {lhs}: its residual variance goes below zero "
-                            "while its loading grows")
-        if not said:
-            said.append("the estimates of " + ", ".join(_name(*e) for e in ents[:6])
-                        + (" ..." if len(ents) > 6 else "") + " head off without bound")
+        said = _collapses(spec, theta, g, ents, general) or [
+            "the estimates of " + ", ".join(_name(*e) for e in ents[:6]) + (" ..." if len(ents) > 6 else "")
+            + " head off without bound"]
         out.append(
-            f"in group {g} " + "; ".join(dict.fromkeys(said))
+            f"in group {g} " + "; ".join(said)
             + " (no finite maximum-likelihood solution: the figures are where the estimates were stopped; "
             "estimate within bounds with estimation: {variances: nonnegative}, or give the factor more items "
             "or fewer specific factors)"
@@ -118,16 +136,19 @@ def _null_weight(spec: ModelSpec, idx: np.ndarray, vec: np.ndarray, factor: int)
     return float(np.sum(vec[mine] ** 2))
 
 
-def weak_identification(spec: ModelSpec, info: np.ndarray, part, matrices, *, general: str | None) -> list[str]:
+def weak_identification(spec: ModelSpec, info: np.ndarray, part, matrices, *, general: str | None,
+                        exclude: Sequence[int] = ()) -> list[str]:
     """Groups whose information is nearly singular (smallest eigenvalue of the
     correlation-scaled information of the group's own parameters below
     :data:`NEAR_SINGULAR`), named with the parameters involved; for a bifactor model
     with two specific factors, the block whose general and specific loadings are the
-    least distinguishable (closest to proportional) is named."""
+    least distinguishable (closest to proportional) is named. Parameters in ``exclude``
+    (estimates held at a bound) are left out."""
     out = []
     labels = spec.param_labels
     for g, gname in enumerate(spec.groups):
         idx = np.arange(spec.n_params) if part is None else part.local[g]
+        idx = idx[~np.isin(idx, exclude)]
         if idx.size < 2:
             continue
         H = info[np.ix_(idx, idx)]
@@ -139,8 +160,8 @@ def weak_identification(spec: ModelSpec, info: np.ndarray, part, matrices, *, ge
         lam = matrices[g][0]
         gcol = spec.factors.index(general) if general in spec.factors else None
         specific = [] if gcol is None else [f for f in range(lam.shape[1]) if f != gcol and np.any(lam[:, f] != 0)]
-        if len(specific) == 2:
-            f = max(specific, key=lambda c: _null_weight(spec, idx, v[:, 0], c))
+        f = max(specific, key=lambda c: _null_weight(spec, idx, v[:, 0], c)) if len(specific) == 2 else None
+        if f is not None and _ratio_spread(lam, gcol, f) < PROPORTIONAL_CV:
             s = spec.factors[f]
             out.append(
                 f"in group {gname} the model is empirically under-identified (nearly singular information, "

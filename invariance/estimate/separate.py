@@ -142,6 +142,7 @@ def combine(spec: ModelSpec, parts: dict[str, FitResult]) -> FitResult:
         "starts": {g: e.get("starts") for g, e in zip(spec.groups, est)},
         "at_bound": [m for e in est for m in e.get("at_bound", [])],
         "runaway": [m for e in est for m in e.get("runaway", [])],
+        "notes": [m for e in est for m in e.get("notes", [])],
         "separate_groups": "the configural model shares no parameter: each group was fitted on its own "
                            "and the statistics are the sums (METHODS section 14)",
     }

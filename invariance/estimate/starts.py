@@ -42,6 +42,8 @@ class StartRecord:
     converged: int
     optima: tuple[float, ...]
     chosen: str
+    #: lowest statistic of a start that ran away, when below the best converged optimum
+    runaway_below: float | None = None
 
     @property
     def distinct(self) -> int:
@@ -54,7 +56,8 @@ class StartRecord:
 
     def to_dict(self) -> dict:
         return {"tried": self.tried, "converged": self.converged, "distinct_optima": self.distinct,
-                "chi2_gap": self.gap, "optima": list(self.optima), "chosen": self.chosen}
+                "chi2_gap": self.gap, "optima": list(self.optima), "chosen": self.chosen,
+                "runaway_below": self.runaway_below}
 
 
 def general_factors(spec: ModelSpec) -> set[int]:
@@ -113,7 +116,9 @@ def _record(runs: list[tuple[str, Outcome]], chosen: str) -> StartRecord:
     for v in vals:
         if not optima or v - optima[-1] > _DISTINCT * max(1.0, 1e-4 * abs(v)):
             optima.append(v)
-    return StartRecord(len(runs), len(vals), tuple(optima), chosen)
+    away = [float(o.fun) for _, o in runs if o.status == 6 and np.isfinite(o.fun)]
+    below = min(away) if away and optima and min(away) < optima[0] - _DISTINCT else None
+    return StartRecord(len(runs), len(vals), tuple(optima), chosen, below)
 
 
 def _pick(runs: list[tuple[str, Outcome]]) -> tuple[str, Outcome]:
