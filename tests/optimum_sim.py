@@ -39,9 +39,10 @@ def group_matrices(g: int, *, planted: bool = True, general=GENERAL, specific=SP
     return lam, psi, theta, nu, alpha
 
 
-def bifactor_frame(*, n: int = 800, seed: int = 1, planted: bool = True, missing: float = 0.0, **kw) -> pd.DataFrame:
+def bifactor_frame(*, n: int = 800, seed: int = 1, planted: bool = True, missing: float = 0.0,
+                   missing_items: int = 6, **kw) -> pd.DataFrame:
     """Data frame with columns ``site`` and the twelve items; ``missing`` is the share of
-    values deleted completely at random in the first six items."""
+    values deleted completely at random in the first ``missing_items`` items."""
     rng = np.random.default_rng(seed)
     parts = []
     for g, name in enumerate(GROUPS):
@@ -49,8 +50,8 @@ def bifactor_frame(*, n: int = 800, seed: int = 1, planted: bool = True, missing
         sigma, mu = implied_from_matrices(lam, psi, theta, nu, alpha)
         x = draw_group(n, sigma, mu, rng)
         if missing:
-            hole = rng.random((n, 6)) < missing
-            x[:, :6][hole] = np.nan
+            hole = rng.random((n, missing_items)) < missing
+            x[:, :missing_items][hole] = np.nan
         df = pd.DataFrame(x, columns=ITEMS)
         df.insert(0, "site", name)
         parts.append(df)

@@ -71,7 +71,7 @@ def _collapses(spec: ModelSpec, theta: np.ndarray, group: str, ents, general: Se
     """Sentences for the items of the run-away entries ``ents`` onto which a factor collapses:
     negative residual variances first (continuous items), else growing loadings."""
     below, growing = [], []
-    for item in dict.fromkeys(lhs for kind, lhs, _ in ents if kind in ("loading", "residual")):
+    for item in dict.fromkeys(lhs for kind, lhs, _ in ents if kind in ("loading", "residual", "threshold")):
         f = _top_loading(spec, theta, group, item, general)
         if f is None:
             continue
@@ -80,9 +80,10 @@ def _collapses(spec: ModelSpec, theta: np.ndarray, group: str, ents, general: Se
         res = _residual(spec, theta, group, item)
         if res is not None and res < 0:
             below.append(f"{what} collapses onto item {item}: its residual variance goes below zero while its loading grows")
-        elif any(kind == "loading" and lhs == item for kind, lhs, _ in ents):
-            growing.append(f"{what} collapses onto item {item}: its loading grows without bound (the item's "
-                           "unique variance shrinks to nothing beside the factor's)")
+        else:
+            grow = " and ".join(dict.fromkeys(k + "s" for k, i, _ in ents if i == item and k in ("loading", "threshold")))
+            growing.append(f"{what} collapses onto item {item}: its {grow or 'loadings'} grow without bound (the "
+                           "item's unique variance shrinks to nothing beside the factor's)")
     return below or growing
 
 
@@ -172,9 +173,12 @@ def weak_identification(spec: ModelSpec, info: np.ndarray, part, matrices, *, ge
                 f"load on '{general}' only), or fit a correlated-factor model"
             )
         else:
+            hint = ("; with two specific factors a bifactor model is identified only through general loadings "
+                    "that differ from proportional to the specific ones: add a third specific factor or fit a "
+                    "correlated-factor model") if f is not None else "; fix one of them or simplify the factor structure"
             out.append(
-                f"in group {gname} the information matrix is nearly singular (smallest scaled eigenvalue "
-                f"{w[0]:.1e}): {', '.join(involved[:8])} are weakly identified and their standard errors are "
-                "unreliable; fix one of them or simplify the factor structure"
+                f"in group {gname} the model is empirically under-identified (nearly singular information, "
+                f"smallest scaled eigenvalue {w[0]:.1e}): {', '.join(involved[:8])} are weakly identified and "
+                f"their estimates and standard errors are unreliable{hint}"
             )
     return out
