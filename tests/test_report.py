@@ -16,9 +16,9 @@ from _report_cases import HOSTILE, cached_case
 from invariance.errors import InvarianceWarning
 from invariance.report import registry, write_reports
 
-THREE_SECTIONS = ["summary", "data", "model", "levels", "changes", "flagged", "profiles", "effects",
+THREE_SECTIONS = ["summary", "data", "model", "levels", "changes", "loadings", "flagged", "profiles", "effects",
                   "latent_means", "cautions", "provenance"]
-BIFACTOR_SECTIONS = ["summary", "data", "model", "levels", "changes", "profiles", "bifactor", "cautions",
+BIFACTOR_SECTIONS = ["summary", "data", "model", "levels", "changes", "loadings", "profiles", "bifactor", "cautions",
                      "provenance"]
 
 

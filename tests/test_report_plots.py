@@ -69,10 +69,10 @@ def test_threshold_profiles_for_ordinal_items(tmp_path):
     rows = []
     for g in ("north", "south"):
         for it in ("o1", "o2", "o3"):
-            rows.append({"level": "configural", "group": g, "parameter": "loading", "lhs": it, "rhs": "F",
+            rows.append({"level": "configural", "group": g, "parameter": "loading", "variable": it, "other": "F",
                          "label": "", "free": True, "estimate": 0.7, "se": 0.05, "z": 14.0, "pvalue": 0.0, "std": 0.7})
             for t in ("t1", "t2"):
-                rows.append({"level": "configural", "group": g, "parameter": "threshold", "lhs": it, "rhs": t,
+                rows.append({"level": "configural", "group": g, "parameter": "threshold", "variable": it, "other": t,
                              "label": "", "free": True, "estimate": -0.5 if t == "t1" else 0.6, "se": 0.08,
                              "z": 7.0, "pvalue": 0.0, "std": 0.0})
     results = {"groups": {"north": 250, "south": 240}, "reference_group": "north",
