@@ -41,7 +41,7 @@ LEVEL_LABELS = {
     "scalar": "Scalar",
     "strict": "Strict",
     "threshold": "Threshold",
-    "thresholds": "Thresholds",
+    "thresholds": "Threshold",
 }
 
 MINUS = "\u2212"
