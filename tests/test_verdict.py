@@ -100,7 +100,7 @@ def test_display_rows_show_constrained_then_partial():
     rows = [row("configural", released=[{**X3, "groups": None}]), row("metric"),
             row("scalar", "holds_partially", [found], chi2=50.0, constrained=con)]
     shown = display_rows(rows)
-    assert [(r["label"], r["decision"], r.get("chi2")) for r in shown] == [
+    assert [(r["row_name"], r["decision"], r.get("chi2")) for r in shown] == [
         ("configural", "holds", None), ("metric", "holds", None),
         ("scalar", "fails", 99.0), ("partial scalar", "holds_partially", 50.0)]
     assert [r["partial"] for r in shown] == [False, False, False, True]

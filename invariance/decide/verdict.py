@@ -385,16 +385,16 @@ def build_verdict(
 
 def display_rows(rows: Sequence[Mapping]) -> list[dict]:
     """The level rows as the tables show them: a level with releases made at it shows its
-    fully constrained row, then its partial row; each row gets ``label`` (``scalar`` or
+    fully constrained row, then its partial row; each row gets ``row_name`` (``scalar`` or
     ``partial scalar``) and ``partial`` (never true for configural)."""
     out = []
     for r in rows:
         con = r.get("constrained")
         if isinstance(con, Mapping):
-            out.append({**r, **con, "released": [], "label": str(r.get("level")), "partial": False})
+            out.append({**r, **con, "released": [], "row_name": str(r.get("level")), "partial": False})
         partial = is_partial(r)
-        label = ("partial " if partial else "") + str(r.get("level"))
-        out.append({**{k: v for k, v in r.items() if k != "constrained"}, "label": label, "partial": partial})
+        name = ("partial " if partial else "") + str(r.get("level"))
+        out.append({**{k: v for k, v in r.items() if k != "constrained"}, "row_name": name, "partial": partial})
     return out
 
 

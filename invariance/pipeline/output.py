@@ -132,7 +132,7 @@ def _table_lines(results: dict) -> list[str]:
         d = lv.get("delta") or {}
         p = d.get("pvalue")
         lines.append(
-            f"{lv['label']:<17}{_num(lv['chi2'], '.2f'):>10}{_num(lv['df'], 'd'):>5}"
+            f"{lv['row_name']:<17}{_num(lv['chi2'], '.2f'):>10}{_num(lv['df'], 'd'):>5}"
             f"{_num(lv['cfi'], '.3f'):>7}{_num(lv['rmsea'], '.3f'):>7}{_num(lv['srmr'], '.3f'):>7}"
             f"{_num(d.get('chi2'), '.2f'):>9}{_num(d.get('df'), 'd'):>5}"
             f"{('<.001' if p is not None and p < 0.001 else _num(p, '.3f')):>7}"
@@ -162,7 +162,7 @@ def format_table(results: dict) -> str:
         out.append(f"Caution: {results['cutoff_calibration']}")
     for lv in results["levels"]:
         if lv["decision"] != "not_tested":
-            out.append(f"  {lv['label']}: {lv['decision']} ({lv['reason']})")
+            out.append(f"  {lv['row_name']}: {lv['decision']} ({lv['reason']})")
     out.append("")
     out.append(results["verdict"])
     if results.get("next_step"):

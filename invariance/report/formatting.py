@@ -43,7 +43,7 @@ LEVEL_LABELS = {
     "scalar": "Scalar",
     "strict": "Strict",
     "threshold": "Threshold",
-    "thresholds": "Thresholds",
+    "thresholds": "Threshold",
 }
 
 MINUS = "\u2212"
@@ -111,8 +111,13 @@ def fmt_p(x: Any, *, minus: str = MINUS) -> str:
     return fmt_bounded(v, minus=minus)
 
 
-ESTIMATOR_LABELS = {"ml": "ML", "ml_robust": "robust ML (scaled statistics, sandwich SEs)", "mlr": "robust ML", "robust_ml": "robust ML", "fiml": "FIML (ML with missing data)",
-                    "dwls": "DWLS", "wlsmv": "DWLS (robust)", "uls": "ULS"}
+#: The pipeline's estimator codes (spec/schema.json) and their names in the report.
+ESTIMATOR_LABELS = {
+    "ml": "ML",
+    "ml_robust": "robust ML (scaled statistics, sandwich SEs)",
+    "fiml": "FIML (ML with missing data)",
+    "dwls": "DWLS (mean-and-variance adjusted statistic)",
+}
 
 
 def estimator_label(code: Any) -> str:
@@ -131,12 +136,12 @@ def level_label(entry: Mapping[str, Any]) -> str:
     """Row name of one level: ``Scalar``, or ``Partial scalar`` when its model releases a
     constraint at or below it (the row's ``partial`` flag when present, else read from
     ``released``); the configural level is never partial."""
-    name = str(entry.get("level") or entry.get("label") or "")
+    name = str(entry.get("label") or entry.get("level") or "")
     base = LEVEL_LABELS.get(name, name.replace("_", " "))
     partial = entry.get("partial")
     if not isinstance(partial, bool):
         partial = is_partial(entry)
-    if partial and name != "configural" and not base.lower().startswith("partial"):
+    if partial and entry.get("level") != "configural" and not base.lower().startswith("partial"):
         return "Partial " + base[:1].lower() + base[1:]
     return base
 
