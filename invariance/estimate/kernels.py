@@ -12,6 +12,7 @@ parameter), ``dm`` arrays shape (u, p).
 
 from __future__ import annotations
 
+import weakref
 from dataclasses import dataclass
 
 import numpy as np
@@ -379,29 +380,41 @@ class FactoredJacobian:
     P: np.ndarray | None
 
 
-def factor_jacobian(lay: GroupLayout, mats: tuple[np.ndarray, ...], G: np.ndarray, A: np.ndarray) -> FactoredJacobian:
-    """The :class:`FactoredJacobian` of one group at its matrices (see :func:`moment_jacobian`)."""
-    psi, alpha = mats[2], mats[5]
+def _factor_pattern(lay: GroupLayout) -> tuple[np.ndarray, ...]:
+    """The theta-free part of a group's factored Jacobian: (ia, ib, ic, s, t0, tsrc, ident)."""
     p, m = lay.p, lay.m
-    C = A @ psi @ G.T
-    Aa = A @ alpha
     k = lay.ent_mat.size
     ia, ib, ic = np.zeros(k, np.int64), np.zeros(k, np.int64), np.zeros(k, np.int64)
-    s, t = np.zeros(k), np.zeros(k)
+    s, t0, tsrc = np.zeros(k), np.zeros(k), np.full(k, -1, np.int64)
     gcol, ccol = p, p + m                                   # offsets of the G and C' blocks
     r, c, _, pos = lay.sel[LAMBDA]
-    ia[pos], ib[pos], s[pos], ic[pos], t[pos] = r, ccol + c, 1.0, r, Aa[c]
+    ia[pos], ib[pos], s[pos], ic[pos], tsrc[pos] = r, ccol + c, 1.0, r, c
     r, c, _, pos = lay.sel[BETA]
-    ia[pos], ib[pos], s[pos], ic[pos], t[pos] = gcol + r, ccol + c, 1.0, gcol + r, Aa[c]
+    ia[pos], ib[pos], s[pos], ic[pos], tsrc[pos] = gcol + r, ccol + c, 1.0, gcol + r, c
     r, c, _, pos = lay.sel[PSI]
     ia[pos], ib[pos], s[pos] = gcol + r, gcol + c, np.where(r == c, 0.5, 1.0)
     r, c, _, pos = lay.sel[THETA]
     ia[pos], ib[pos], s[pos] = r, c, np.where(r == c, 0.5, 1.0)
     r, _, _, pos = lay.sel[NU]
-    ic[pos], t[pos] = r, 1.0
+    ic[pos], t0[pos] = r, 1.0
     r, _, _, pos = lay.sel[ALPHA]
-    ic[pos], t[pos] = gcol + r, 1.0
+    ic[pos], t0[pos] = gcol + r, 1.0
     ident = lay.P.shape[0] == lay.P.shape[1] and np.array_equal(lay.P, np.eye(k))
+    return ia, ib, ic, s, t0, tsrc, ident
+
+
+_PATTERNS: "weakref.WeakKeyDictionary[GroupLayout, tuple]" = weakref.WeakKeyDictionary()
+
+
+def factor_jacobian(lay: GroupLayout, mats: tuple[np.ndarray, ...], G: np.ndarray, A: np.ndarray) -> FactoredJacobian:
+    """The :class:`FactoredJacobian` of one group at its matrices (see :func:`moment_jacobian`)."""
+    pat = _PATTERNS.get(lay)
+    if pat is None:
+        pat = _PATTERNS[lay] = _factor_pattern(lay)
+    ia, ib, ic, s, t0, tsrc, ident = pat
+    C = A @ mats[2] @ G.T
+    Aa = A @ mats[5]
+    t = np.where(tsrc >= 0, Aa[tsrc], t0)
     return FactoredJacobian(np.hstack([G, C.T]), ia, ib, ic, s, t, None if ident else lay.P)
 
 
