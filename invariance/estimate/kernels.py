@@ -440,9 +440,11 @@ def factored_gradient(fj: FactoredJacobian, Gs: np.ndarray, w: np.ndarray) -> np
     return _to_params(fj, g, None)[0]
 
 
-def _pair(X: np.ndarray, i: np.ndarray, j: np.ndarray) -> np.ndarray:
-    """X[..., i, j'] as a (..., k, k) block."""
-    return X[..., i[:, None], j[None, :]]
+def _wsum(weights: np.ndarray | None, X: np.ndarray) -> np.ndarray:
+    """sum_k weights_k X_k over the leading axis (a plain copy for one unweighted slice)."""
+    if weights is None:
+        return X[0] if X.shape[0] == 1 else X.sum(axis=0)
+    return weights[0] * X[0] if X.shape[0] == 1 else np.tensordot(weights, X, axes=1)
 
 
 def factored_information(fj: FactoredJacobian, QW: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
@@ -453,11 +455,11 @@ def factored_information(fj: FactoredJacobian, QW: np.ndarray, weights: np.ndarr
     """
     a, b, c = fj.ia, fj.ib, fj.ic
     Q = QW if QW.ndim == 3 else QW[None]
-    wts = np.ones(Q.shape[0]) if weights is None else weights
-    cov = _pair(Q, a, a) * _pair(Q, b, b) + _pair(Q, a, b) * _pair(Q, b, a)
-    mean = _pair(Q, c, c)
-    info = 2.0 * np.outer(fj.s, fj.s) * np.tensordot(wts, cov, axes=1)
-    info += 2.0 * np.outer(fj.t, fj.t) * np.tensordot(wts, mean, axes=1)
+    Qa, Qb = Q[:, a], Q[:, b]
+    cov = _wsum(weights, Qa[:, :, a] * Qb[:, :, b] + Qa[:, :, b] * Qb[:, :, a])
+    mean = _wsum(weights, Q[:, c][:, :, c])
+    s, t = fj.s, fj.t
+    info = 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * mean)
     return _to_params(fj, None, info)[1]
 
 
@@ -473,15 +475,13 @@ def factored_moment_hessian(fj: FactoredJacobian, QW: np.ndarray, QM: np.ndarray
     QW = QW if QW.ndim == 3 else QW[None]
     QM = QM if QM.ndim == 3 else QM[None]
     kw = kw if kw.ndim == 2 else kw[None]
-    wts = np.ones(QW.shape[0]) if weights is None else weights
-    Waa, Wbb, Wab, Wba = _pair(QW, a, a), _pair(QW, b, b), _pair(QW, a, b), _pair(QW, b, a)
-    cross = (
-        _pair(QM, b, a) * Wab + _pair(QM, b, b) * Waa + _pair(QM, a, a) * Wbb + _pair(QM, a, b) * Wba
-    )
-    cov = -(Waa * Wbb + Wab * Wba) + cross
-    Y = _pair(QW, a, c) * kw[:, b][:, :, None] + _pair(QW, b, c) * kw[:, a][:, :, None]
-    H = 2.0 * np.outer(fj.s, fj.s) * np.tensordot(wts, cov, axes=1)
-    Ys = fj.s[:, None] * fj.t[None, :] * np.tensordot(wts, Y, axes=1)
-    H += 2.0 * (Ys + Ys.T)
-    H += 2.0 * np.outer(fj.t, fj.t) * np.tensordot(wts, _pair(QW, c, c), axes=1)
+    Wa, Wb, Ma, Mb = QW[:, a], QW[:, b], QM[:, a], QM[:, b]
+    Waa, Wbb, Wab, Wba = Wa[:, :, a], Wb[:, :, b], Wa[:, :, b], Wb[:, :, a]
+    cross = Mb[:, :, a] * Wab + Mb[:, :, b] * Waa + Ma[:, :, a] * Wbb + Ma[:, :, b] * Wba
+    cov = _wsum(weights, cross - (Waa * Wbb + Wab * Wba))
+    Y = _wsum(weights, Wa[:, :, c] * kw[:, b][:, :, None] + Wb[:, :, c] * kw[:, a][:, :, None])
+    s, t = fj.s, fj.t
+    Ys = s[:, None] * t[None, :] * Y
+    H = 2.0 * (s[:, None] * s[None, :] * cov + Ys + Ys.T)
+    H += 2.0 * t[:, None] * t[None, :] * _wsum(weights, QW[:, c][:, :, c])
     return H
