@@ -447,6 +447,37 @@ def _wsum(weights: np.ndarray | None, X: np.ndarray) -> np.ndarray:
     return weights[0] * X[0] if X.shape[0] == 1 else np.tensordot(weights, X, axes=1)
 
 
+#: largest n^4 (n the basis size) for which stacked products go through a moment tensor
+_TENSOR_LIMIT = 3_000_000
+
+
+class _PairSums:
+    """Weighted sums over a stack of Gram matrices of entrywise products of gathered blocks:
+    sum_k w_k X_k[i, j'] Y_k[l, m'] for index vectors i, j, l, m.
+
+    One matrix: gathered directly. A stack (missingness patterns) with a small basis:
+    through the moment tensor T = sum_k w_k X_k (x) Y_k, one matrix product (fast BLAS),
+    then gathered; otherwise gathered per pattern and summed.
+    """
+
+    def __init__(self, weights: np.ndarray | None) -> None:
+        self.w = weights
+        self._tensors: dict = {}
+
+    def __call__(self, X: np.ndarray, Y: np.ndarray, i, j, l, m) -> np.ndarray:
+        K, n = X.shape[0], X.shape[1]
+        w = np.ones(K) if self.w is None else self.w
+        if K == 1:
+            return w[0] * X[0][np.ix_(i, j)] * Y[0][np.ix_(l, m)]
+        if n**4 <= _TENSOR_LIMIT:
+            key = (id(X), id(Y))
+            T = self._tensors.get(key)
+            if T is None:
+                T = self._tensors[key] = ((X.reshape(K, -1).T * w) @ Y.reshape(K, -1)).reshape(n, n, n, n)
+            return T[i[:, None], j[None, :], l[:, None], m[None, :]]
+        return np.tensordot(w, X[:, i][:, :, j] * Y[:, l][:, :, m], axes=1)
+
+
 def factored_information(fj: FactoredJacobian, QW: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
     """Expected information tr(W S_u W S_v) + 2 mu_u' W mu_v from Gram matrices QW = K'WK.
 
@@ -455,9 +486,9 @@ def factored_information(fj: FactoredJacobian, QW: np.ndarray, weights: np.ndarr
     """
     a, b, c = fj.ia, fj.ib, fj.ic
     Q = QW if QW.ndim == 3 else QW[None]
-    Qa, Qb = Q[:, a], Q[:, b]
-    cov = _wsum(weights, Qa[:, :, a] * Qb[:, :, b] + Qa[:, :, b] * Qb[:, :, a])
-    mean = _wsum(weights, Q[:, c][:, :, c])
+    ps = _PairSums(weights)
+    cov = ps(Q, Q, a, a, b, b) + ps(Q, Q, a, b, b, a)
+    mean = _wsum(weights, Q)[np.ix_(c, c)]
     s, t = fj.s, fj.t
     info = 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * mean)
     return _to_params(fj, None, info)[1]
@@ -475,13 +506,16 @@ def factored_moment_hessian(fj: FactoredJacobian, QW: np.ndarray, QM: np.ndarray
     QW = QW if QW.ndim == 3 else QW[None]
     QM = QM if QM.ndim == 3 else QM[None]
     kw = kw if kw.ndim == 2 else kw[None]
-    Wa, Wb, Ma, Mb = QW[:, a], QW[:, b], QM[:, a], QM[:, b]
-    Waa, Wbb, Wab, Wba = Wa[:, :, a], Wb[:, :, b], Wa[:, :, b], Wb[:, :, a]
-    cross = Mb[:, :, a] * Wab + Mb[:, :, b] * Waa + Ma[:, :, a] * Wbb + Ma[:, :, b] * Wba
-    cov = _wsum(weights, cross - (Waa * Wbb + Wab * Wba))
-    Y = _wsum(weights, Wa[:, :, c] * kw[:, b][:, :, None] + Wb[:, :, c] * kw[:, a][:, :, None])
+    ps = _PairSums(weights)
+    cross = ps(QM, QW, b, a, a, b) + ps(QM, QW, b, b, a, a) + ps(QM, QW, a, a, b, b) + ps(QM, QW, a, b, b, a)
+    cov = cross - ps(QW, QW, a, a, b, b) - ps(QW, QW, a, b, b, a)
+    # sum_k w_k (W_k[a, c'] kw_k[b] + W_k[b, c'] kw_k[a]) through U = sum_k w_k kw_k (x) W_k
+    w = np.ones(QW.shape[0]) if weights is None else weights
+    n = QW.shape[1]
+    U = ((kw.T * w) @ QW.reshape(QW.shape[0], -1)).reshape(n, n, n)
+    Y = U[b[:, None], a[:, None], c[None, :]] + U[a[:, None], b[:, None], c[None, :]]
     s, t = fj.s, fj.t
     Ys = s[:, None] * t[None, :] * Y
     H = 2.0 * (s[:, None] * s[None, :] * cov + Ys + Ys.T)
-    H += 2.0 * t[:, None] * t[None, :] * _wsum(weights, QW[:, c][:, :, c])
+    H += 2.0 * t[:, None] * t[None, :] * _wsum(weights, QW)[np.ix_(c, c)]
     return H
