@@ -12,6 +12,7 @@ parameter), ``dm`` arrays shape (u, p).
 
 from __future__ import annotations
 
+import functools
 import weakref
 from dataclasses import dataclass
 
@@ -451,6 +452,16 @@ def _wsum(weights: np.ndarray | None, X: np.ndarray) -> np.ndarray:
 _TENSOR_LIMIT = 3_000_000
 
 
+@functools.lru_cache(maxsize=64)
+def _vech_index(n: int) -> np.ndarray:
+    """(n, n) position of entry (i, j) in the lower-triangle vector (symmetric)."""
+    v = np.zeros((n, n), dtype=np.int64)
+    r, c = np.tril_indices(n)
+    v[r, c] = np.arange(r.size)
+    v[c, r] = np.arange(r.size)
+    return v
+
+
 class _PairSums:
     """Weighted sums over a stack of Gram matrices of entrywise products of gathered blocks:
     sum_k w_k X_k[i, j'] Y_k[l, m'] for index vectors i, j, l, m.
@@ -470,11 +481,14 @@ class _PairSums:
         if K == 1:
             return w[0] * X[0][np.ix_(i, j)] * Y[0][np.ix_(l, m)]
         if n**4 <= _TENSOR_LIMIT:
+            # symmetric X_k, Y_k: the tensor over their lower triangles suffices
             key = (id(X), id(Y))
             T = self._tensors.get(key)
             if T is None:
-                T = self._tensors[key] = ((X.reshape(K, -1).T * w) @ Y.reshape(K, -1)).reshape(n, n, n, n)
-            return T[i[:, None], j[None, :], l[:, None], m[None, :]]
+                r, c = np.tril_indices(n)
+                T = self._tensors[key] = (X[:, r, c].T * w) @ Y[:, r, c]
+            v = _vech_index(n)
+            return T[v[i[:, None], j[None, :]], v[l[:, None], m[None, :]]]
         return np.tensordot(w, X[:, i][:, :, j] * Y[:, l][:, :, m], axes=1)
 
 
