@@ -32,7 +32,7 @@ from ..model.levels import build_level
 from ..model.ordinal_levels import build_ordinal_level
 from ..data.ordinal_stats import ordinal_stats
 from .partial_stage import stage_effects
-from .before_after import stage_group_fit, stage_scores, stage_screening, stage_structures
+from .before_after import reuse_fit, stage_group_fit, stage_scores, stage_screening, stage_structures
 from .align_stage import stage_alignment
 from ..spec.load import PipelineSpec, thaw
 from . import robust_stage as _rs
@@ -55,7 +55,7 @@ FIT_KEYS = ("chi2", "df", "pvalue", "cfi", "tli", "rmsea", "rmsea_ci90", "srmr",
 
 def stage_data(spec: PipelineSpec, state: dict) -> dict:
     """Read the data, apply missing codes and run the checks (nothing is fitted)."""
-    raw = read_table(spec.data_path, format=spec.data_format)
+    raw = read_table(spec.data_path, format=spec.data_format, sheet=spec.data_sheet)
     frame = apply_missing(raw, spec.missing)
     checked = check_data(
         frame,
@@ -165,7 +165,7 @@ def stage_levels(spec: PipelineSpec, state: dict) -> dict:
     }
 
 
-def _fit_one(model, stats, estimator: str = "ml"):
+def _fit_one(model, stats, estimator: str = "ml", options: dict | None = None):
     try:
         fitter = FITTERS[estimator]
     except KeyError:
@@ -174,7 +174,7 @@ def _fit_one(model, stats, estimator: str = "ml"):
         ) from None
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", InvarianceWarning)
-        res = fitter(model, stats)
+        res = fitter(model, stats, **(options or {}))
     notes = [str(w.message) for w in caught if issubclass(w.category, InvarianceWarning)]
     return res, notes
 
@@ -188,6 +188,7 @@ def _level_row(level: str, res, released) -> dict:
     if res.estimator == "dwls":
         _dwls_row(row, res)
     row["problems"] = list(res.problems)
+    row["estimation"] = res.extra.get("estimation")
     row["released"] = [r.to_dict() for r in released]
     return row
 
@@ -283,7 +284,7 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
             else:
                 model = build_level(spec.structure, stats.names, lv, reference=state["reference"],
                                     released=spec.released + carried, fixed_means=spec.fixed_means)
-        res, notes = _fit_one(model, stats, spec.estimator)
+        res, notes = reuse_fit(state, lv, model) or _fit_one(model, stats, spec.estimator, spec.fit_options())
         fits[lv] = res
         row = _level_row(lv, res, res.spec.released)
         search = None
