@@ -208,30 +208,38 @@ def ml_derivatives(
     mean: np.ndarray,
     fj: "FactoredJacobian",
     *,
+    logdet_s: float = 0.0,
     information: bool = True,
-) -> tuple[np.ndarray, np.ndarray | None, np.ndarray]:
-    """Gradient and expected information of one group's ML discrepancy.
+) -> tuple[float, np.ndarray, np.ndarray | None]:
+    """Discrepancy, gradient and expected information of one group's ML discrepancy.
 
     Uses the factored Jacobian (:func:`factor_jacobian`), so no (u, p, p) array is built.
 
     Returns
     -------
+    F : float
+        The discrepancy (METHODS section 2) with ``logdet_s`` = log|S|.
     grad : (u,) array
         dF/dtheta = tr(Gs S_u) - 2 mu_u' W d, Gs = W - W (S + dd') W.
     info : (u, u) array or None
         E[d2F/dtheta dtheta'] = tr(W dS_u W dS_v) + 2 dm_u' W dm_v.
-    W : (p, p) array
-        Sigma^-1.
+
+    Raises
+    ------
+    numpy.linalg.LinAlgError
+        When Sigma is not positive definite.
     """
     R = np.linalg.cholesky(sigma)
     Rinv = np.linalg.inv(R)
     W = Rinv.T @ Rinv
     d = mean - mu
     Wd = W @ d
-    Gs = W - W @ (S + np.outer(d, d)) @ W
+    WC = W @ S
+    f = 2.0 * np.log(np.diag(R)).sum() + np.trace(WC) - logdet_s - S.shape[0] + d @ Wd
+    Gs = W - (WC + np.outer(Wd, d)) @ W
     grad = factored_gradient(fj, Gs, Wd)
     info = factored_information(fj, gram(fj.H, W)) if information else None
-    return grad, info, W
+    return float(f), grad, info
 
 
 def ml_hessian(
@@ -479,7 +487,7 @@ class _PairSums:
         K, n = X.shape[0], X.shape[1]
         w = np.ones(K) if self.w is None else self.w
         if K == 1:
-            return w[0] * X[0][np.ix_(i, j)] * Y[0][np.ix_(l, m)]
+            return w[0] * X[0][i[:, None], j[None, :]] * Y[0][l[:, None], m[None, :]]
         if n**4 <= _TENSOR_LIMIT:
             # symmetric X_k, Y_k: the tensor over their lower triangles suffices
             key = (id(X), id(Y))
@@ -502,7 +510,7 @@ def factored_information(fj: FactoredJacobian, QW: np.ndarray, weights: np.ndarr
     Q = QW if QW.ndim == 3 else QW[None]
     ps = _PairSums(weights)
     cov = ps(Q, Q, a, a, b, b) + ps(Q, Q, a, b, b, a)
-    mean = _wsum(weights, Q)[np.ix_(c, c)]
+    mean = _wsum(weights, Q)[c[:, None], c[None, :]]
     s, t = fj.s, fj.t
     info = 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * mean)
     return _to_params(fj, None, info)[1]
@@ -531,5 +539,5 @@ def factored_moment_hessian(fj: FactoredJacobian, QW: np.ndarray, QM: np.ndarray
     s, t = fj.s, fj.t
     Ys = s[:, None] * t[None, :] * Y
     H = 2.0 * (s[:, None] * s[None, :] * cov + Ys + Ys.T)
-    H += 2.0 * t[:, None] * t[None, :] * _wsum(weights, QW)[np.ix_(c, c)]
+    H += 2.0 * t[:, None] * t[None, :] * _wsum(weights, QW)[c[:, None], c[None, :]]
     return H
