@@ -181,7 +181,7 @@ def test_demo_partial_run_says_partial_strict(tmp_path):
     scal = table[table.level == "scalar"]
     assert list(scal.partial) == [False, True] and list(scal.decision) == ["fails", "holds_partially"]
     paper = pd.read_csv(out / "table_levels.csv")
-    assert "Partial scalar" in set(paper.model) and "Scalar" in set(paper.model)
+    assert "Partial scalar" in set(paper.Model) and "Scalar" in set(paper.Model)
     assert d["cutoff_calibration"] is None and d["next_step"] is None
 
 
@@ -203,3 +203,26 @@ def test_demo_full_run_is_not_partial_and_names_the_search(tmp_path):
     assert d["released_constraints"] == []
     assert "partial: {enabled: true}" in d["next_step"] and d["next_step"] in text
     assert json.loads((tmp_path / "out" / "results.json").read_text())["verdict"] == d["verdict"]
+
+
+@pytest.mark.parametrize("estimator", ["ml", "ml_robust", "dwls"])
+def test_verdict_fields_agree_with_levels_for_every_estimator(tmp_path, hs_frame, estimator):
+    # common check: every estimator's run carries the verdict fields, they agree with its
+    # level rows, and the calibration caution appears exactly off plain ML on continuous items
+    # (METHODS section 14). Data: Holzinger & Swineford (1939, semopy copy) for ML / robust ML;
+    # the invented ordinal simulation of test_pipeline_ordinal for DWLS.
+    from conftest import hs_doc, write_yaml
+
+    if estimator == "dwls":
+        from test_pipeline_ordinal import _doc, _frame
+
+        _frame(shift=(4, 0.6)).to_csv(tmp_path / "survey.csv", index=False)
+        doc = _doc()
+    else:
+        hs_frame.to_csv(tmp_path / "hs.csv", index=False)
+        doc = hs_doc("hs.csv", estimator=estimator, output={"folder": "out"})
+    res = invariance.run(write_yaml(tmp_path / "p.yaml", doc), quiet=True)
+    d = res.to_dict()
+    _consistent(d)
+    assert (d["cutoff_calibration"] is None) == (estimator == "ml")
+    assert d["verdict"] in res.summary()
