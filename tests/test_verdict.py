@@ -68,6 +68,10 @@ def test_up_front_releases_count_only_at_or_above_their_level():
     v = build_verdict(rows, up_front=[pipe])
     assert v.supported_level == "scalar" and v.supported_partially
     assert v.released[0].source == "pipeline" and "released in model.released, b" in v.text
+    # a loading named in model.released without its factor is the one the model resolved
+    load = {"parameter": "loading", "item": "x1", "factor": None, "groups": ["b"]}
+    v = build_verdict([row("configural"), row("metric", released=[{**load, "factor": "F"}])], up_front=[load])
+    assert v.supported_partially and v.released[0].source == "pipeline"
     # the configural level constrains nothing across groups: never partial
     assert not is_partial(rows[0])
     v = build_verdict([row("configural", released=[pipe]), row("metric", "fails", [pipe])], up_front=[pipe])

@@ -122,6 +122,12 @@ def _key(r: Mapping) -> tuple:
     return (r.get("parameter"), r.get("item"), r.get("factor"))
 
 
+def _same(a: Mapping, b: Mapping) -> bool:
+    """The same released parameter (a factor left unnamed matches the one resolved)."""
+    fa, fb = a.get("factor"), b.get("factor")
+    return _key(a)[:2] == _key(b)[:2] and (fa is None or fb is None or fa == fb)
+
+
 def where_text(groups: Sequence[str] | None, differs: Sequence[str] | None) -> str:
     """Where a released parameter differs: ``differs in mesa``, ``differs between a and b``
     (two groups), else the groups it was released in."""
@@ -206,14 +212,13 @@ def _released(rows: Sequence[Mapping], row: Mapping, up_front: Sequence[Mapping]
         for x in r.get("released") or ():
             if x.get("source") == "search":
                 found_at.setdefault(_key(x), x.get("level") or r.get("level"))
-    pipe = {_key(x) for x in up_front}
     out, seen = [], set()
     level = str(row.get("level"))
     for x in row.get("released") or ():
         if not _counts_at(x, level) or _key(x) in seen:
             continue
         seen.add(_key(x))
-        source = "pipeline" if _key(x) in pipe else "search"
+        source = "pipeline" if any(_same(x, u) for u in up_front) else "search"
         g = x.get("groups")
         d = differs.get(_key(x))
         out.append(Released(
