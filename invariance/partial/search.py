@@ -38,6 +38,7 @@ from scipy import stats as _st
 from ..data.moments import SampleStats
 from ..errors import EstimationError, InvarianceWarning, SpecificationError
 from ..estimate.ml import fit as _fit
+from ..estimate.ml import refit_options
 from ..model.spec import Release
 from ..estimate.result import FitResult
 from .score import Constraint, ScoreTests, map_theta, release_constraint, score_tests
@@ -240,12 +241,13 @@ class SearchResult:
 
 
 def _refit(job: tuple) -> FitResult | None:
-    """Refit a spec from starting values (module level, so executors can pickle it)."""
-    spec, stats, start = job
+    """Refit a spec from starting values (module level, so executors can pickle it);
+    an optional fourth item holds the estimation options of the fit it came from."""
+    spec, stats, start, *opts = job
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", InvarianceWarning)
-            return _fit(spec, stats, start=start)
+            return _fit(spec, stats, start=start, **(opts[0] if opts else {}))
     except EstimationError:
         return None
 
@@ -367,7 +369,7 @@ def release_search(
         if verify:
             top = sig[:verify_top]
             specs = [release_constraint(current.spec, cands[j][0], cands[j][1]) for j in top]
-            jobs = [(s, stats, map_theta(current.spec, current.theta, s)) for s in specs]
+            jobs = [(s, stats, map_theta(current.spec, current.theta, s), refit_options(current)) for s in specs]
             refits = list(mapper(_refit, jobs))
             lr_p = p.copy()
             lr = {}
@@ -389,7 +391,7 @@ def release_search(
         else:
             j = sig[0]
             s = release_constraint(current.spec, cands[j][0], cands[j][1])
-            rf = _refit((s, stats, map_theta(current.spec, current.theta, s)))
+            rf = _refit((s, stats, map_theta(current.spec, current.theta, s), refit_options(current)))
             if rf is None or not rf.converged:
                 reason = "refit_failed"
                 break
