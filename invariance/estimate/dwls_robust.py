@@ -218,7 +218,7 @@ def _fit_dwls(spec, stats, *, start, max_iter, variances, starts, seed) -> FitRe
         chi2=t, df=int(df), pvalue=float(_st.chi2.sf(t, df)) if df > 0 else nan,
         cfi=cfi(t, df, t_b, df_b), tli=tli(t, df, t_b, df_b), rmsea=rmsea(t, df, N, G),
         rmsea_ci90=rmsea_interval(t, df, N, G), srmr=srmr, loglik=nan, loglik_saturated=nan,
-        aic=nan, bic=nan, sabic=nan, mc=nan, n_params=int(spec.n_params), n=int(N),
+        aic=nan, bic=nan, bic_adjusted=nan, mc=nan, n_params=int(spec.n_params), n=int(N),
         baseline_chi2=float(t_b), baseline_df=int(df_b),
     )
     if not out.converged:

@@ -302,14 +302,14 @@ def _full_information_fit(fs, obj: FIMLObjective, spec: ModelSpec):
     ll_h1 = obj.loglik_h1
     loglik = ll_h1 - 0.5 * fs.chi2
     t_b = -2.0 * sum(independence_loglik(d.x) for d in obj.data) + 2.0 * ll_h1
-    aic, bic, sabic = information_criteria(loglik, spec.n_params, fs.n)
+    aic, bic, bic_adjusted = information_criteria(loglik, spec.n_params, fs.n)
     return dataclasses.replace(
         fs,
         loglik=float(loglik),
         loglik_saturated=float(ll_h1),
         aic=aic,
         bic=bic,
-        sabic=sabic,
+        bic_adjusted=bic_adjusted,
         baseline_chi2=float(t_b),
         cfi=_cfi(fs.chi2, fs.df, t_b, fs.baseline_df),
         tli=_tli(fs.chi2, fs.df, t_b, fs.baseline_df),

@@ -77,14 +77,14 @@ def combine_stats(parts: list[FitStats], n_groups: int) -> FitStats:
     t_b = sum(f.baseline_chi2 for f in parts)
     df_b = sum(f.baseline_df for f in parts)
     loglik = sum(f.loglik for f in parts)
-    aic, bic, sabic = information_criteria(loglik, q, n)
+    aic, bic, bic_adjusted = information_criteria(loglik, q, n)
     return FitStats(
         chi2=float(t), df=int(df), pvalue=float(_st.chi2.sf(t, df)) if df > 0 else float("nan"),
         cfi=cfi(t, df, t_b, df_b), tli=tli(t, df, t_b, df_b), rmsea=rmsea(t, df, n, n_groups),
         rmsea_ci90=rmsea_interval(t, df, n, n_groups),
         srmr=float(sum(f.n * f.srmr for f in parts) / n),  # N-weighted, as in indices.srmr
         loglik=float(loglik), loglik_saturated=float(sum(f.loglik_saturated for f in parts)),
-        aic=aic, bic=bic, sabic=sabic, mc=mcdonald_centrality(t, df, n), n_params=int(q), n=int(n),
+        aic=aic, bic=bic, bic_adjusted=bic_adjusted, mc=mcdonald_centrality(t, df, n), n_params=int(q), n=int(n),
         baseline_chi2=float(t_b), baseline_df=int(df_b),
     )
 

@@ -9,6 +9,7 @@ from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Any, Mapping
 
+from ..progress import Progress
 from ..spec.load import PipelineSpec, load_pipeline, thaw
 from .output import check_destination, format_table, level_table, to_json, write_outputs
 from .stages import STAGES, stage_data, stage_levels, stage_stats
@@ -107,8 +108,12 @@ def _context(spec: PipelineSpec, results: dict, quiet: bool) -> dict:
     }
 
 
-def run_stages(spec: PipelineSpec, stages=None, *, extra: dict | None = None) -> tuple[dict, dict]:
-    """Run stages in order; returns (results, state)."""
+def run_stages(spec: PipelineSpec, stages=None, *, extra: dict | None = None,
+               progress: Progress | None = None) -> tuple[dict, dict]:
+    """Run stages in order; returns (results, state).
+
+    ``progress`` (optional) is advanced once per stage, with the stage's name as note.
+    """
     from .. import __version__
 
     state: dict = {"warnings": [], **(extra or {})}
@@ -118,8 +123,12 @@ def run_stages(spec: PipelineSpec, stages=None, *, extra: dict | None = None) ->
         "estimator": spec.estimator,
         "seed": spec.seed,
     }
-    for _name, stage in stages if stages is not None else STAGES:
+    for name, stage in stages if stages is not None else STAGES:
+        if progress is not None:
+            progress.update(0, note=name)
         results.update(stage(spec, state))
+        if progress is not None:
+            progress.update()
     results["warnings"] = list(dict.fromkeys(state["warnings"]))
     return results, state
 
@@ -171,7 +180,8 @@ def run(
         from .crosscheck import stage_crosscheck
 
         stages.append(("crosscheck", stage_crosscheck))
-    results, state = run_stages(spec, stages, extra={"executor": executor})
+    with Progress(len(stages), label="fitting", quiet=quiet) as bar:
+        results, state = run_stages(spec, stages, extra={"executor": executor}, progress=bar)
     results = json.loads(to_json(results))
     estimates = _estimates(state["fits"])
     if out_dir is not None:

@@ -20,6 +20,7 @@ from typing import Any, Mapping
 import yaml
 
 from ..decide.compare import DecisionRule, make_rule
+from ..data.read import guess_format
 from ..errors import SpecificationError
 from ..model.levels import LEVELS, build_level
 from ..model.spec import Release
@@ -69,7 +70,7 @@ class PipelineSpec:
         The pipeline file (``None`` for a dict).
     base_dir
         Folder that relative paths are resolved against.
-    data_path, data_format, group, groups, reference, missing
+    data_path, data_format, data_sheet, group, groups, reference, missing
         Data settings (``missing`` a tuple of codes or a column -> codes mapping).
     structure
         The measurement structure.
@@ -102,6 +103,7 @@ class PipelineSpec:
     base_dir: pathlib.Path
     data_path: pathlib.Path
     data_format: str | None
+    data_sheet: str | int | None
     group: str
     groups: tuple[str, ...] | None
     reference: str | None
@@ -329,6 +331,19 @@ def _missing(data: Mapping):
     return tuple(m)
 
 
+def _sheet(data: Mapping, base_dir: pathlib.Path) -> str | int | None:
+    """``data.sheet``, refused at load time unless the data file is an Excel workbook."""
+    sheet = data.get("sheet")
+    if sheet is None:
+        return None
+    fmt = data.get("format") or guess_format(base_dir / data["path"])
+    if fmt != "excel":
+        raise SpecificationError(
+            f"data.sheet applies to Excel workbooks (.xlsx) only, and {data['path']!r} is read as {fmt}; remove data.sheet."
+        )
+    return sheet
+
+
 def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir: pathlib.Path) -> PipelineSpec:
     """Validate a document and build the :class:`PipelineSpec`."""
     validate_document(doc)
@@ -358,6 +373,7 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
         base_dir=base_dir,
         data_path=(base_dir / data["path"]).resolve(),
         data_format=data.get("format"),
+        data_sheet=_sheet(data, base_dir),
         group=data["group"],
         groups=None if groups is None else tuple(str(g) for g in groups),
         reference=None if ref is None else str(ref),
