@@ -165,11 +165,12 @@ def test_refit_jobs_pickle_for_process_or_distributed_executors(planted):
     import pickle
 
     from invariance.estimate.interface import MaximumLikelihood
+    from invariance.partial.candidates import release_tests
     from invariance.partial.search import _refit
 
     est = MaximumLikelihood()
     f = fit(build_level(BIFACTOR, planted.names, "scalar"), planted)
-    cand = est.release_tests(f, planted, ("intercept",))[0]
+    cand = release_tests(est, f, planted, ("intercept",))[0]
     job = (est, f, planted, cand)
     fn, job2 = pickle.loads(pickle.dumps((_refit, job)))
     res, why = fn(job2)

@@ -10,9 +10,8 @@ method             job
                    patterns for full information, or thresholds and polychorics)
 ``fit``            estimate one model (:class:`~invariance.estimate.result.FitResult`)
 ``difference``     the difference test between two nested fits (:class:`Difference`)
-``release_tests``  one test per candidate release of a fitted level (:class:`ReleaseTest`):
-                   score tests where the estimator has them, refits otherwise
-``refit``          the level refitted with one more constraint released
+``score_tests``    whether release candidates are ranked by score tests (else by refits,
+                   :mod:`invariance.partial.candidates`)
 ``level_row``      the level's row of results.json (the statistics that decide)
 ``step_delta``     the change between a level and the previous accepted one
 =================  ===========================================================================
@@ -37,13 +36,9 @@ from ..data.moments import sample_stats
 from ..data.ordinal_stats import ordinal_stats
 from ..decide.compare import level_delta
 from ..errors import EstimationError, InvarianceWarning, SpecificationError
-from ..model.levels import LevelBuilder
-from ..model.ordinal_levels import ORDINAL_RELEASES
-from ..model.spec import ModelSpec, Release
-from ..partial.score import map_theta, release_constraint, score_tests
-from .dwls import ordinal_start_values, start_from
 from .dwls_robust import dwls_difference, fit_dwls
 from .ml import fit as ml_fit
+from ..model.spec import ModelSpec
 from .result import FitResult
 from .robust import H1Moments, robust_difference
 
@@ -56,7 +51,6 @@ __all__ = [
     "DiagonallyWeighted",
     "Estimator",
     "MaximumLikelihood",
-    "ReleaseTest",
     "RobustML",
     "estimator_for",
 ]
@@ -93,43 +87,24 @@ class Difference:
     note: str | None = None
 
 
-@dataclass(frozen=True)
-class ReleaseTest:
-    """One candidate release of a fitted level and its test.
-
-    ``test`` is ``multivariate`` or ``univariate`` (score tests, no refit needed) or
-    ``refit`` (the candidate was fitted; ``refit`` holds that fit). ``spec`` is the
-    model with the constraint released; ``groups`` the groups it frees.
-    """
-
-    release: Release
-    label: str
-    groups: tuple[str, ...]
-    test: str
-    statistic: float
-    df: int
-    pvalue: float
-    epc: tuple[tuple[str, float, float], ...]
-    spec: ModelSpec
-    refit: FitResult | None = None
-
-
 @runtime_checkable
 class Estimator(Protocol):
-    """What the pipeline and the release search need from an estimator."""
+    """What the pipeline and the release search need from an estimator.
+
+    ``score_tests`` says how the release search ranks candidate releases: by score
+    tests at the restricted estimates (``True``), or by refitting each candidate and
+    testing it with :meth:`difference` (``False``; releases that rebuild an item's
+    identification, as for ordered items, have no score test).
+    """
 
     name: str
+    score_tests: bool
 
     def statistics(self, frame, items: Sequence[str], group: str | None, *, groups=None): ...
 
     def fit(self, spec: ModelSpec, stats, *, start: np.ndarray | None = None) -> FitResult: ...
 
     def difference(self, restricted: FitResult, free: FitResult, stats) -> Difference: ...
-
-    def release_tests(self, fit: FitResult, stats, kinds: Sequence[str], *, release_in: str = "all",
-                      builder: LevelBuilder | None = None) -> list[ReleaseTest]: ...
-
-    def refit(self, fit: FitResult, stats, test: ReleaseTest) -> FitResult: ...
 
     def level_row(self, level: str, res: FitResult) -> dict: ...
 
@@ -146,27 +121,6 @@ def quiet_fit(estimator: Estimator, spec: ModelSpec, stats, *, start=None) -> tu
     return res, [str(w.message) for w in caught if issubclass(w.category, InvarianceWarning)]
 
 
-def _score_candidates(fit: FitResult, stats, kinds, release_in: str) -> list[ReleaseTest]:
-    """Score tests of every cross-group equality of ``kinds`` (normal-theory information)."""
-    tests = score_tests(fit, stats, parameters=tuple(kinds))
-    out = []
-    if release_in == "all":
-        for t in tests.multivariate:
-            if np.isfinite(t.statistic):
-                c = t.constraint
-                out.append(ReleaseTest(c.release(None), c.label, c.testable_groups, "multivariate",
-                                       float(t.statistic), int(t.df), float(t.pvalue), tuple(t.epc),
-                                       release_constraint(fit.spec, c, None)))
-    else:
-        for t in tests.univariate:
-            if np.isfinite(t.statistic):
-                c = t.constraint
-                out.append(ReleaseTest(c.release((t.group,)), c.label, (t.group,), "univariate",
-                                       float(t.statistic), 1, float(t.pvalue), ((t.group, t.epc, t.epc_std),),
-                                       release_constraint(fit.spec, c, (t.group,))))
-    return out
-
-
 @dataclass(frozen=True)
 class MaximumLikelihood:
     """Normal-theory ML; full-information ML when the statistics hold incomplete cases.
@@ -176,10 +130,14 @@ class MaximumLikelihood:
     incomplete
         ``full_information`` (every case with an observed item, casewise likelihood) or
         ``listwise`` (complete cases only): how :meth:`statistics` treats incomplete rows.
+    information
+        ``expected`` (default) or ``observed`` information for standard errors.
     """
 
     incomplete: str = "full_information"
+    information: str = "expected"
     name: str = field(default="ml", init=False)
+    score_tests: bool = field(default=True, init=False)
 
     def statistics(self, frame, items, group, *, groups=None):
         """Per-group sufficient statistics (casewise patterns under full information)."""
@@ -188,25 +146,13 @@ class MaximumLikelihood:
         return sample_stats(frame, items, group, groups=groups, missing=method)
 
     def fit(self, spec, stats, *, start=None) -> FitResult:
-        return ml_fit(spec, stats, start=start, estimator=self.name)
+        return ml_fit(spec, stats, start=start, estimator=self.name, information=self.information)
 
     def difference(self, restricted, free, stats) -> Difference:
         dt = max(float(restricted.fit.chi2 - free.fit.chi2), 0.0)
         ddf = int(restricted.spec.df - free.spec.df)
         p = float(_st.chi2.sf(dt, ddf)) if ddf > 0 else float("nan")
         return Difference(dt, ddf, p, "likelihood_ratio", dt)
-
-    def release_tests(self, fit, stats, kinds, *, release_in="all", builder=None) -> list[ReleaseTest]:
-        """Score (Lagrange multiplier) tests at the restricted estimates: no refits."""
-        return _score_candidates(fit, stats, kinds, release_in)
-
-    def refit(self, fit, stats, test: ReleaseTest) -> FitResult:
-        """The level refitted with ``test``'s constraint released, from the restricted estimates."""
-        if test.refit is not None:
-            return test.refit
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", InvarianceWarning)
-            return self.fit(test.spec, stats, start=map_theta(fit.spec, fit.theta, test.spec))
 
     def level_row(self, level: str, res: FitResult) -> dict:
         """The level's row: fit statistics, robust ones (``None`` when not computed), problems."""
@@ -295,6 +241,7 @@ class DiagonallyWeighted:
     ordinal: tuple[str, ...] | None = None
     merge: Mapping[str, tuple[tuple[float, ...], ...]] | None = None
     name: str = field(default="dwls", init=False)
+    score_tests: bool = field(default=False, init=False)
 
     def statistics(self, frame, items, group, *, groups=None):
         """Thresholds, polychoric (and polyserial) correlations and their ACOV, complete cases."""
@@ -309,35 +256,6 @@ class DiagonallyWeighted:
         d = dwls_difference(restricted, free, stats)
         return Difference(float(d["chi2"]), int(d["delta_df"]), float(d["pvalue"]), "satorra_2000",
                           float(d["delta_chi2"]), _num(d.get("scale")))
-
-    def release_tests(self, fit, stats, kinds, *, release_in="all", builder=None) -> list[ReleaseTest]:
-        """Refit every candidate (releases rebuild the item's identification, Wu & Estabrook
-        2016, so there is no score test) and test it by the DWLS difference.
-
-        A candidate whose refit fails is left out (the search records it)."""
-        if builder is None:
-            raise SpecificationError(
-                "DWLS release tests rebuild the level: pass builder=LevelBuilder(...) of the fitted model."
-            )
-        out = []
-        for rel in _ordinal_candidates(fit, stats, kinds, release_in):
-            spec = builder.release(fit.spec, rel)
-            if spec.df == fit.spec.df:
-                continue  # the release changes nothing at this level
-            x0 = start_from(fit.spec.param_labels, fit.theta, spec, ordinal_start_values(spec, stats))
-            try:
-                with warnings.catch_warnings():
-                    warnings.simplefilter("ignore", InvarianceWarning)
-                    free = self.fit(spec, stats, start=x0)
-                d = self.difference(fit, free, stats)
-            except EstimationError:
-                continue
-            groups = rel.groups if rel.groups is not None else tuple(g for g in fit.spec.groups if g != fit.spec.reference)
-            label = f"{rel.parameter}:{rel.item}"
-            out.append(ReleaseTest(rel, label, tuple(groups), "refit", d.chi2, d.df, d.pvalue, (), spec, free))
-        return out
-
-    refit = MaximumLikelihood.refit
 
     def level_row(self, level: str, res: FitResult) -> dict:
         """chi2 is the mean-and-variance adjusted statistic, cfi/tli/rmsea the robust indices;
@@ -373,29 +291,9 @@ class DiagonallyWeighted:
         return out
 
 
-def _ordinal_candidates(fit: FitResult, stats, kinds, release_in: str) -> list[Release]:
-    """The releases an ordinal level can still make for ``kinds`` (every group or one group)."""
-    spec = fit.spec
-    K = stats.n_categories if tuple(stats.items) == tuple(spec.items) else stats.reorder_items(spec.items).n_categories
-    done = {(r.parameter, r.item, r.groups) for r in spec.released}
-    every = {(r.parameter, r.item) for r in spec.released if r.groups is None}
-    others = [g for g in spec.groups if g != spec.reference]
-    out = []
-    for kind in kinds:
-        if kind not in ORDINAL_RELEASES:
-            continue
-        for i, it in enumerate(spec.items):
-            if (kind, it) in every or (kind == "residual" and K[i] == 2) or (kind == "threshold" and K[i] == 0):
-                continue
-            if release_in == "all":
-                out.append(Release(kind, it))
-            else:
-                out += [Release(kind, it, None, (g,)) for g in others if (kind, it, (g,)) not in done]
-    return out
-
-
 def estimator_for(name: str, *, incomplete: str = "full_information", scaled_difference: str = "auto",
-                  ordinal: tuple[str, ...] | None = None, merge=None) -> Estimator:
+                  information: str = "expected", ordinal: tuple[str, ...] | None = None,
+                  merge=None) -> Estimator:
     """The estimator called ``name`` with its typed options.
 
     Parameters
@@ -406,13 +304,17 @@ def estimator_for(name: str, *, incomplete: str = "full_information", scaled_dif
         ML family: one of :data:`INCOMPLETE`.
     scaled_difference
         ``ml_robust``: ``auto`` or ``2010``.
+    information
+        ML family: ``expected`` or ``observed`` information for standard errors.
     ordinal, merge
         ``dwls``: the ordered items (``None``: all) and category merges.
     """
     if name == "ml":
-        return MaximumLikelihood(incomplete=incomplete)
+        return MaximumLikelihood(incomplete=incomplete, information=information)
     if name == "ml_robust":
-        return RobustML(incomplete=incomplete, scaled_difference=scaled_difference)
+        return RobustML(incomplete=incomplete, information=information, scaled_difference=scaled_difference)
     if name == "dwls":
+        if information != "expected":
+            raise SpecificationError("dwls standard errors are the robust sandwich; drop information=.")
         return DiagonallyWeighted(ordinal=ordinal, merge=merge)
     raise SpecificationError(f"The estimator must be one of {', '.join(ESTIMATOR_NAMES)}; got {name!r}.")

@@ -40,6 +40,7 @@ from ..estimate.interface import Estimator, estimator_for
 from ..estimate.result import FitResult
 from ..model.levels import LevelBuilder
 from ..model.spec import Release
+from .candidates import refit_candidate, release_tests
 from .score import ScoreTests
 
 __all__ = [
@@ -248,7 +249,7 @@ def _refit(job: tuple) -> tuple[FitResult | None, str | None]:
     """Refit one candidate (module level, so executors can pickle it): (fit, why it failed)."""
     estimator, fit, stats, test = job
     try:
-        rf = estimator.refit(fit, stats, test)
+        rf = test.refit if test.refit is not None else refit_candidate(estimator, fit, stats, test.spec)
     except EstimationError as exc:
         return None, str(exc).splitlines()[0]
     if not rf.converged:
@@ -399,7 +400,7 @@ def release_search(
         if len(steps) >= max_releases:
             reason = "max_releases"
             break
-        cands = estimator.release_tests(current, stats, kinds, release_in=release_in, builder=builder)
+        cands = release_tests(estimator, current, stats, kinds, release_in=release_in, builder=builder)
         if not cands:
             reason = "no_candidates"
             break
