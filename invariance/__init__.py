@@ -18,7 +18,7 @@ from .data.ordinal_stats import OrdinalStats, ordinal_stats
 from .pipeline import PipelineSpec, RunResult, check, load_pipeline, run
 from .estimate.result import FitResult
 
-__version__ = "0.1.0"
+from .version import __version__
 
 __all__ = [
     "LEVELS",

@@ -8,44 +8,14 @@ settings used.
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
-
 from ..partial.alignment import align
-from ..errors import SpecificationError
+from ..spec.load import PipelineSpec
+from ..spec.options import check_alignment_section
 
-if TYPE_CHECKING:  # load.py imports this module
-    from ..spec.load import PipelineSpec
-
-__all__ = ["stage_alignment", "check_alignment_section"]
+__all__ = ["stage_alignment"]
 
 
-def check_alignment_section(doc, structure) -> None:
-    """Refuse, when the pipeline is loaded, an alignment the model cannot have.
-
-    Alignment works factor by factor, so it needs single-factor or correlated-factor
-    models whose items each load on one factor.
-    """
-    opts = doc.get("alignment") or {}
-    if not opts.get("enabled", False):
-        return
-    family = structure.family
-    if family not in ("single", "correlated"):
-        raise SpecificationError(
-            f"alignment.enabled needs a single-factor or correlated-factor model, not {family}: an item's "
-            "intercept there depends on several factor means; set alignment.enabled to false."
-        )
-    seen: dict[str, str] = {}
-    for f, its in structure.factors.items():
-        for it in its:
-            if it in seen:
-                raise SpecificationError(
-                    f"alignment.enabled needs each item on one factor; {it} loads on {seen[it]} and {f}: "
-                    "drop the cross-loading or set alignment.enabled to false."
-                )
-            seen[it] = f
-
-
-def stage_alignment(spec: "PipelineSpec", state: dict) -> dict:
+def stage_alignment(spec: PipelineSpec, state: dict) -> dict:
     """Align the groups of the configural model when the pipeline asks for it."""
     opts = spec.section("alignment") or {}
     if not opts.get("enabled", False):

@@ -39,9 +39,7 @@ def _section(spec: PipelineSpec, name: str) -> dict:
 
 def _fitter(spec: PipelineSpec):
     """The pipeline's estimator (the per-group and rival fits use the same one)."""
-    from .stages import FITTERS  # stages imports this module: look up at run time
-
-    return FITTERS.get(spec.estimator, FITTERS["ml"])
+    return spec.make_estimator().fit
 
 
 def stage_screening(spec: PipelineSpec, state: dict) -> dict:

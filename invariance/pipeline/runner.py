@@ -9,9 +9,13 @@ from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Any, Mapping
 
+import pandas as pd
+
 from ..spec.load import PipelineSpec, load_pipeline, thaw
+from ..version import __version__
+from .crosscheck import stage_crosscheck
 from .output import check_destination, format_table, level_table, to_json, write_outputs
-from .stages import STAGES, stage_data, stage_levels, stage_stats
+from .stages import STAGES, stage_data, stage_levels, stage_stats, with_stage
 
 __all__ = ["RunResult", "run", "check", "default_out_dir"]
 
@@ -76,8 +80,6 @@ def default_out_dir(spec: PipelineSpec) -> pathlib.Path | None:
 
 
 def _estimates(fits: Mapping[str, Any]):
-    import pandas as pd
-
     frames = []
     for lv, res in fits.items():
         est = res.estimates()
@@ -108,9 +110,7 @@ def _context(spec: PipelineSpec, results: dict, quiet: bool) -> dict:
 
 
 def run_stages(spec: PipelineSpec, stages=None, *, extra: dict | None = None) -> tuple[dict, dict]:
-    """Run stages in order; returns (results, state)."""
-    from .. import __version__
-
+    """Run stages in order (default :data:`~invariance.pipeline.stages.STAGES`); returns (results, state)."""
     state: dict = {"warnings": [], **(extra or {})}
     results: dict = {
         "invariance_version": __version__,
@@ -132,6 +132,7 @@ def run(
     crosscheck: bool = False,
     write: bool | None = None,
     executor=None,
+    stages: tuple | None = None,
 ) -> RunResult:
     """Run a pipeline: fit the levels, decide, and write the outputs.
 
@@ -155,6 +156,9 @@ def run(
         An object with a ``map(fn, iterable)`` method (for example
         :class:`invariance.batch.executor.DaskExecutor`) on which the partial-invariance
         search runs its likelihood-ratio refits (``partial.verify: true``); serial otherwise.
+    stages
+        The stage table (default :data:`~invariance.pipeline.stages.STAGES`); build
+        another with :func:`~invariance.pipeline.stages.with_stage`.
 
     Returns
     -------
@@ -166,16 +170,14 @@ def run(
         out_dir = None
     if out_dir is not None:
         check_destination(out_dir)
-    stages = list(STAGES)
+    stages = STAGES if stages is None else tuple(stages)
     if crosscheck:
-        from .crosscheck import stage_crosscheck
-
-        stages.append(("crosscheck", stage_crosscheck))
+        stages = with_stage("crosscheck", stage_crosscheck, table=stages)
     results, state = run_stages(spec, stages, extra={"executor": executor})
     results = json.loads(to_json(results))
     estimates = _estimates(state["fits"])
     if out_dir is not None:
-        from ..report import write_reports
+        from ..report import write_reports  # lazy: the report layer loads matplotlib
 
         context = _context(spec, results, quiet)
 

@@ -21,11 +21,12 @@ import yaml
 
 from ..decide.compare import DecisionRule, make_rule
 from ..errors import SpecificationError
+from ..estimate.interface import Estimator, estimator_for
 from ..model.levels import LEVELS, build_level
 from ..model.spec import Release
 from ..model.structure import Structure
 from ..model.ordinal_levels import ORDINAL_LEVELS, build_ordinal_level
-from ..pipeline.align_stage import check_alignment_section
+from .options import PartialSettings, check_alignment_section, partial_settings, structural_settings
 
 __all__ = ["PipelineSpec", "load_pipeline", "parse_yaml", "schema", "validate_document", "thaw"]
 
@@ -94,6 +95,15 @@ class PipelineSpec:
         Ordinal items: item -> tuples of adjacent category values merged into one.
     fixed_means
         Factors whose means stay 0 in every group.
+    incomplete
+        ``data.incomplete``: ``full_information`` or ``listwise`` (ordinal items: always
+        ``listwise``).
+    scaled_difference
+        ``decision.scaled_difference`` as the robust difference method: ``auto`` or ``2010``.
+    partial
+        The ``partial:`` section (:class:`~invariance.spec.options.PartialSettings`).
+    structural
+        The ``structural.levels`` steps, in order.
     """
 
     document: Mapping[str, Any]
@@ -118,6 +128,15 @@ class PipelineSpec:
     ordinal: tuple[str, ...] | None = None
     merge: Mapping[str, tuple[tuple[float, ...], ...]] | None = None
     fixed_means: tuple[str, ...] = ()
+    incomplete: str = "full_information"
+    scaled_difference: str = "auto"
+    partial: PartialSettings = PartialSettings()
+    structural: tuple[str, ...] = ()
+
+    def make_estimator(self) -> Estimator:
+        """The run's :class:`~invariance.estimate.interface.Estimator` with its typed options."""
+        return estimator_for(self.estimator, incomplete=self.incomplete, scaled_difference=self.scaled_difference,
+                             ordinal=self.ordinal, merge=self.merge)
 
     def section(self, name: str, default=None):
         """A top-level section of the document (for stages added later)."""
@@ -320,6 +339,28 @@ def _missing(data: Mapping):
     return tuple(m)
 
 
+def _incomplete(data: Mapping, ordinal) -> str:
+    """``data.incomplete``, read once; ordinal items use complete cases only."""
+    value = data.get("incomplete")
+    if ordinal is not None:
+        if value == "full_information":
+            raise SpecificationError(
+                "data.incomplete: full_information is not available for ordinal items (dwls uses complete cases); "
+                "use listwise or drop the key."
+            )
+        return "listwise"
+    return "full_information" if value is None else str(value)
+
+
+def _scaled_difference(dec: Mapping, estimator: str) -> str:
+    value = dec.get("scaled_difference")
+    if value is not None and estimator != "ml_robust":
+        raise SpecificationError(
+            f"decision.scaled_difference applies to estimator ml_robust, not {estimator}; drop it or set estimator: ml_robust."
+        )
+    return "2010" if value == "strictly_positive" else "auto"
+
+
 def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir: pathlib.Path) -> PipelineSpec:
     """Validate a document and build the :class:`PipelineSpec`."""
     validate_document(doc)
@@ -365,6 +406,10 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
         ordinal=ordinal,
         merge=merge,
         fixed_means=_fixed_means(model, structure),
+        incomplete=_incomplete(data, ordinal),
+        scaled_difference=_scaled_difference(dec, estimator),
+        partial=partial_settings(doc.get("partial")),
+        structural=structural_settings(doc.get("structural")),
     )
 
 
