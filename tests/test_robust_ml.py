@@ -272,13 +272,14 @@ def test_saturated_observed_information_equals_expected_at_complete_data_mle(hs)
     # at the complete-data MLE (sample moments) observed and expected information of the
     # saturated normal model coincide (the score's derivative terms in x - xbar vanish)
     from invariance.data import missing_patterns
+    from invariance.data.em import pattern_moments
     from invariance.estimate.robust import saturated_information, saturated_observed_information
 
     s = sample_stats(hs, ITEMS[:4])
     g = s.groups[0]
     pat = missing_patterns(g.raw)
     A = saturated_information(pat, g.mean, g.cov)
-    B = saturated_observed_information(g.raw, pat, g.mean, g.cov)
+    B = saturated_observed_information(pattern_moments(g.raw), g.mean, g.cov)
     assert np.allclose(A, B, rtol=1e-5, atol=1e-6 * np.abs(A).max())
 
 

@@ -28,6 +28,13 @@ __all__ = [
     "ml_discrepancy",
     "ml_derivatives",
     "ml_hessian",
+    "second_derivative_part",
+    "FactoredJacobian",
+    "factor_jacobian",
+    "gram",
+    "factored_gradient",
+    "factored_information",
+    "factored_moment_hessian",
 ]
 
 
@@ -197,17 +204,18 @@ def ml_derivatives(
     mu: np.ndarray,
     S: np.ndarray,
     mean: np.ndarray,
-    dS: np.ndarray,
-    dm: np.ndarray,
+    fj: "FactoredJacobian",
     *,
     information: bool = True,
 ) -> tuple[np.ndarray, np.ndarray | None, np.ndarray]:
     """Gradient and expected information of one group's ML discrepancy.
 
+    Uses the factored Jacobian (:func:`factor_jacobian`), so no (u, p, p) array is built.
+
     Returns
     -------
     grad : (u,) array
-        dF/dtheta.
+        dF/dtheta = tr(Gs S_u) - 2 mu_u' W d, Gs = W - W (S + dd') W.
     info : (u, u) array or None
         E[d2F/dtheta dtheta'] = tr(W dS_u W dS_v) + 2 dm_u' W dm_v.
     W : (p, p) array
@@ -219,13 +227,8 @@ def ml_derivatives(
     d = mean - mu
     Wd = W @ d
     Gs = W - W @ (S + np.outer(d, d)) @ W
-    u = dS.shape[0]
-    grad = np.tensordot(dS, Gs, axes=([1, 2], [0, 1])) - 2.0 * dm @ Wd
-    info = None
-    if information:
-        X = (Rinv @ dS @ Rinv.T).reshape(u, -1)
-        Y = dm @ Rinv.T
-        info = X @ X.T + 2.0 * (Y @ Y.T)
+    grad = factored_gradient(fj, Gs, Wd)
+    info = factored_information(fj, gram(fj.H, W)) if information else None
     return grad, info, W
 
 
@@ -238,8 +241,6 @@ def ml_hessian(
     A: np.ndarray,
     S: np.ndarray,
     mean: np.ndarray,
-    dS: np.ndarray,
-    dm: np.ndarray,
 ) -> np.ndarray:
     """Exact (observed) Hessian of one group's ML discrepancy, local parameters.
 
@@ -248,10 +249,10 @@ def ml_hessian(
         F_uv = tr(Gs Sigma_uv) - 2 w' mu_uv - tr(W S_u W S_v) + 2 tr(W S_u W C W S_v)
                + 2 mu_v' W S_u w + 2 mu_u' W S_v w + 2 mu_u' W mu_v
 
-    The second-derivative terms tr(Gs Sigma_uv) - 2 w' mu_uv are contracted in closed
-    form per pair of matrix entries (Lambda, B, Psi, alpha; Theta and nu enter linearly).
+    The first-derivative terms come from the factored Jacobian
+    (:func:`factored_moment_hessian`); the second-derivative terms from
+    :func:`second_derivative_part`.
     """
-    lam, beta, psi, theta, nu, alpha = mats
     R = np.linalg.cholesky(sigma)
     Rinv = np.linalg.inv(R)
     W = Rinv.T @ Rinv
@@ -259,15 +260,23 @@ def ml_hessian(
     w = W @ d
     Cm = S + np.outer(d, d)
     Gs = W - W @ Cm @ W
-    u = dS.shape[0]
-    # moment part
-    X = Rinv @ dS @ Rinv.T                      # (u, p, p)
-    Q = Rinv @ Cm @ Rinv.T
-    Xf = X.reshape(u, -1)
-    XQ = (X @ Q).reshape(u, -1)
-    H = -(Xf @ Xf.T) + 2.0 * (XQ @ Xf.T)
-    a = np.einsum("uij,j->ui", dS, w) @ W       # (u, p): W S_u w as rows
-    H += 2.0 * (dm @ a.T + a @ dm.T) + 2.0 * dm @ W @ dm.T
+    fj = factor_jacobian(lay, mats, G, A)
+    kw = np.concatenate([w, fj.H.T @ w])
+    He = factored_moment_hessian(fj, gram(fj.H, W), gram(fj.H, W @ Cm @ W), kw)
+    He += second_derivative_part(lay, mats, G, A, Gs, w)
+    return _to_params(fj, None, He)[1]
+
+
+def second_derivative_part(
+    lay: GroupLayout, mats: tuple[np.ndarray, ...], G: np.ndarray, A: np.ndarray, Gs: np.ndarray, w: np.ndarray
+) -> np.ndarray:
+    """tr(Gs Sigma_uv) - 2 w' mu_uv per pair of free entries (not mapped to parameters).
+
+    Contracted in closed form per pair of matrix entries (Lambda, B, Psi, alpha; Theta
+    and nu enter linearly). Linear in (Gs, w): full-information ML passes the sums over
+    its missingness patterns.
+    """
+    lam, beta, psi, theta, nu, alpha = mats
     # second-derivative contraction, per entry
     k = lay.ent_mat.size
     Ke = np.zeros((k, k))
@@ -320,9 +329,7 @@ def ml_hessian(
             blk = -2.0 * Atv[eB][:, None] * A[np.ix_(fB, cA)]
             Ke[np.ix_(pB, pA)] = blk
             Ke[np.ix_(pA, pB)] = blk.T
-    if not (lay.P.shape[0] == lay.P.shape[1] and np.array_equal(lay.P, np.eye(k))):
-        Ke = lay.P.T @ Ke @ lay.P
-    return H + Ke
+    return Ke
 
 
 def layout_jacobians(layouts, theta: np.ndarray) -> list[tuple]:
@@ -334,3 +341,134 @@ def layout_jacobians(layouts, theta: np.ndarray) -> list[tuple]:
         dS, dm = moment_jacobian(lay, mats, G, A)
         out.append((mats, sigma, mu, dS, dm))
     return out
+
+
+# -- factored derivatives: every dSigma is a symmetric rank-2 term ------------------------
+
+@dataclass(frozen=True, eq=False)
+class FactoredJacobian:
+    """The moment Jacobian of one group without building (u, p, p) arrays.
+
+    Every free entry e has dSigma_e = s_e (a_e b_e' + b_e a_e') and dmu_e = t_e c_e,
+    with a_e, b_e, c_e columns of the basis K = [I_p | G | C'] (G = Lambda A,
+    C = A Psi G'): a loading (i, j) has a = e_i, b = C_j'; a factor regression (i, j)
+    a = G_i, b = C_j'; a factor (co)variance (i, j) a = G_i, b = G_j; a residual
+    (co)variance (i, j) a = e_i, b = e_j (s = 1/2 on diagonals); intercepts and factor
+    means have t = 1. Contractions with any p x p matrix X then need only the small
+    Gram matrix K'XK, gathered by index: the cost per group grows as p^2 (the item
+    block of K is the identity and is never multiplied).
+
+    Attributes
+    ----------
+    H
+        (p, 2m): the non-identity columns [G | C'] of the basis.
+    ia, ib, ic
+        (k,) basis columns of a_e, b_e, c_e.
+    s, t
+        (k,) scale of the covariance and mean parts (0 where an entry has none).
+    P
+        Entries -> local parameters (k x u), or ``None`` when it is the identity.
+    """
+
+    H: np.ndarray
+    ia: np.ndarray
+    ib: np.ndarray
+    ic: np.ndarray
+    s: np.ndarray
+    t: np.ndarray
+    P: np.ndarray | None
+
+
+def factor_jacobian(lay: GroupLayout, mats: tuple[np.ndarray, ...], G: np.ndarray, A: np.ndarray) -> FactoredJacobian:
+    """The :class:`FactoredJacobian` of one group at its matrices (see :func:`moment_jacobian`)."""
+    psi, alpha = mats[2], mats[5]
+    p, m = lay.p, lay.m
+    C = A @ psi @ G.T
+    Aa = A @ alpha
+    k = lay.ent_mat.size
+    ia, ib, ic = np.zeros(k, np.int64), np.zeros(k, np.int64), np.zeros(k, np.int64)
+    s, t = np.zeros(k), np.zeros(k)
+    gcol, ccol = p, p + m                                   # offsets of the G and C' blocks
+    r, c, _, pos = lay.sel[LAMBDA]
+    ia[pos], ib[pos], s[pos], ic[pos], t[pos] = r, ccol + c, 1.0, r, Aa[c]
+    r, c, _, pos = lay.sel[BETA]
+    ia[pos], ib[pos], s[pos], ic[pos], t[pos] = gcol + r, ccol + c, 1.0, gcol + r, Aa[c]
+    r, c, _, pos = lay.sel[PSI]
+    ia[pos], ib[pos], s[pos] = gcol + r, gcol + c, np.where(r == c, 0.5, 1.0)
+    r, c, _, pos = lay.sel[THETA]
+    ia[pos], ib[pos], s[pos] = r, c, np.where(r == c, 0.5, 1.0)
+    r, _, _, pos = lay.sel[NU]
+    ic[pos], t[pos] = r, 1.0
+    r, _, _, pos = lay.sel[ALPHA]
+    ic[pos], t[pos] = gcol + r, 1.0
+    ident = lay.P.shape[0] == lay.P.shape[1] and np.array_equal(lay.P, np.eye(k))
+    return FactoredJacobian(np.hstack([G, C.T]), ia, ib, ic, s, t, None if ident else lay.P)
+
+
+def gram(H: np.ndarray, X: np.ndarray) -> np.ndarray:
+    """K'XK for K = [I | H] and symmetric X of shape (..., p, p)."""
+    XH = X @ H
+    top = np.concatenate([X, XH], axis=-1)
+    bottom = np.concatenate([np.swapaxes(XH, -1, -2), np.swapaxes(H, -1, -2) @ XH], axis=-1)
+    return np.concatenate([top, bottom], axis=-2)
+
+
+def _to_params(fj: FactoredJacobian, g: np.ndarray | None, M: np.ndarray | None):
+    if fj.P is None:
+        return g, M
+    return (None if g is None else fj.P.T @ g), (None if M is None else fj.P.T @ M @ fj.P)
+
+
+def factored_gradient(fj: FactoredJacobian, Gs: np.ndarray, w: np.ndarray) -> np.ndarray:
+    """tr(Gs dSigma_u) - 2 dmu_u' w for every local parameter u."""
+    Q = gram(fj.H, Gs)
+    kw = np.concatenate([w, fj.H.T @ w])
+    g = 2.0 * fj.s * Q[fj.ia, fj.ib] - 2.0 * fj.t * kw[fj.ic]
+    return _to_params(fj, g, None)[0]
+
+
+def _pair(X: np.ndarray, i: np.ndarray, j: np.ndarray) -> np.ndarray:
+    """X[..., i, j'] as a (..., k, k) block."""
+    return X[..., i[:, None], j[None, :]]
+
+
+def factored_information(fj: FactoredJacobian, QW: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
+    """Expected information tr(W S_u W S_v) + 2 mu_u' W mu_v from Gram matrices QW = K'WK.
+
+    ``QW`` may be a stack (K, n, n) with ``weights`` (K,): the weighted sum is returned
+    (full-information ML: one W per missingness pattern).
+    """
+    a, b, c = fj.ia, fj.ib, fj.ic
+    Q = QW if QW.ndim == 3 else QW[None]
+    wts = np.ones(Q.shape[0]) if weights is None else weights
+    cov = _pair(Q, a, a) * _pair(Q, b, b) + _pair(Q, a, b) * _pair(Q, b, a)
+    mean = _pair(Q, c, c)
+    info = 2.0 * np.outer(fj.s, fj.s) * np.tensordot(wts, cov, axes=1)
+    info += 2.0 * np.outer(fj.t, fj.t) * np.tensordot(wts, mean, axes=1)
+    return _to_params(fj, None, info)[1]
+
+
+def factored_moment_hessian(fj: FactoredJacobian, QW: np.ndarray, QM: np.ndarray, kw: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
+    """First-derivative part of the exact Hessian of F, per entry (not yet mapped by P)::
+
+        -tr(W S_u W S_v) + 2 tr(W S_u M S_v) + 2 mu_v' W S_u w + 2 mu_u' W S_v w + 2 mu_u' W mu_v
+
+    with M = W C W, w = W d; ``QW`` = K'WK, ``QM`` = K'MK, ``kw`` = K'w, each optionally
+    stacked over patterns with ``weights``.
+    """
+    a, b, c = fj.ia, fj.ib, fj.ic
+    QW = QW if QW.ndim == 3 else QW[None]
+    QM = QM if QM.ndim == 3 else QM[None]
+    kw = kw if kw.ndim == 2 else kw[None]
+    wts = np.ones(QW.shape[0]) if weights is None else weights
+    Waa, Wbb, Wab, Wba = _pair(QW, a, a), _pair(QW, b, b), _pair(QW, a, b), _pair(QW, b, a)
+    cross = (
+        _pair(QM, b, a) * Wab + _pair(QM, b, b) * Waa + _pair(QM, a, a) * Wbb + _pair(QM, a, b) * Wba
+    )
+    cov = -(Waa * Wbb + Wab * Wba) + cross
+    Y = _pair(QW, a, c) * kw[:, b][:, :, None] + _pair(QW, b, c) * kw[:, a][:, :, None]
+    H = 2.0 * np.outer(fj.s, fj.s) * np.tensordot(wts, cov, axes=1)
+    Ys = fj.s[:, None] * fj.t[None, :] * np.tensordot(wts, Y, axes=1)
+    H += 2.0 * (Ys + Ys.T)
+    H += 2.0 * np.outer(fj.t, fj.t) * np.tensordot(wts, _pair(QW, c, c), axes=1)
+    return H
