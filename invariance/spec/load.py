@@ -361,6 +361,16 @@ def _scaled_difference(dec: Mapping, estimator: str) -> str:
     return "2010" if value == "strictly_positive" else "auto"
 
 
+def _structural_steps(doc: Mapping, ordinal) -> tuple[str, ...]:
+    steps = structural_settings(doc.get("structural"))
+    if steps and ordinal is not None:
+        raise SpecificationError(
+            "structural levels are not available for ordinal items yet; drop the structural section "
+            "or fit the items as continuous (drop data.ordinal)."
+        )
+    return steps
+
+
 def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir: pathlib.Path) -> PipelineSpec:
     """Validate a document and build the :class:`PipelineSpec`."""
     validate_document(doc)
@@ -409,7 +419,7 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
         incomplete=_incomplete(data, ordinal),
         scaled_difference=_scaled_difference(dec, estimator),
         partial=partial_settings(doc.get("partial")),
-        structural=structural_settings(doc.get("structural")),
+        structural=_structural_steps(doc, ordinal),
     )
 
 
