@@ -170,3 +170,23 @@ def test_group_order_does_not_change_any_statistic(runs):
     assert [f["statistic"] for f in db["flagged"]] == pytest.approx([f["statistic"] for f in da["flagged"]], rel=1e-4)
     for sa, sb in zip(da.get("structural") or [], db.get("structural") or []):
         assert sb["chi2"] == pytest.approx(sa["chi2"], rel=1e-5)
+
+
+@pytest.mark.parametrize("name", ["dwls_ordinal", "fiml"])
+def test_cases_used_says_what_happened(tmp_path, name):
+    # ordinal items are fitted from complete cases: the run must say rows were dropped,
+    # never "full-information ML"; continuous items with missing values use every case
+    case = {**CASES[name], "missing": 0.03}
+    path = tmp_path / "survey.csv"
+    frame = _simulate(case)
+    frame.to_csv(path, index=False)
+    out = invariance.check(_doc(path, case))
+    dropped = int(frame[list(ITEMS)].isna().any(axis=1).sum())
+    if case["ordinal"] is not None:
+        assert out["cases_used"] == (
+            f"complete cases ({dropped} rows with a missing item dropped listwise; dwls uses complete cases)"
+        )
+        assert sum(out["groups"].values()) == len(frame) - dropped
+    else:
+        assert "full-information ML" in out["cases_used"]
+        assert sum(out["groups"].values()) == len(frame)
