@@ -12,10 +12,11 @@ def test_added_stage_sees_fits_and_its_result_is_merged(hs_dir):
     seen = {}
 
     def extra(spec, state):
-        seen["levels"] = sorted(state["fits"])
-        # a later stage may refine level entries in place (e.g. partial invariance)
-        state["level_rows"][0]["note"] = "seen"
-        return {"extra_section": {"n_fits": len(state["fits"])}}
+        seen["levels"] = sorted(state.fits)
+        # a stage returns its results and a new state; the old one is never changed
+        new = state.update(extra={"mine": 1}).warn("extra: seen")
+        assert state.extra == {} and "extra: seen" not in state.warnings
+        return {"extra_section": {"n_fits": len(state.fits)}}, new
 
     before = stages.STAGES
     table = invariance.pipeline.with_stage("extra", extra, after="fits")
@@ -26,9 +27,9 @@ def test_added_stage_sees_fits_and_its_result_is_merged(hs_dir):
                        stages=table).to_dict()
     assert seen["levels"] == ["configural", "metric"]
     assert d["extra_section"] == {"n_fits": 2}
-    assert d["levels"][0]["note"] == "seen"
+    assert "extra: seen" in d["warnings"]
 
 
 def test_with_stage_rejects_unknown_anchor():
     with pytest.raises(ValueError, match="Unknown stage"):
-        invariance.pipeline.with_stage("x", lambda s, st: {}, after="nope")
+        invariance.pipeline.with_stage("x", lambda s, st: ({}, st), after="nope")

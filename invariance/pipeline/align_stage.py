@@ -11,21 +11,22 @@ from __future__ import annotations
 from ..partial.alignment import align
 from ..spec.load import PipelineSpec
 from ..spec.options import check_alignment_section
+from .state import RunState, StageOutput
 
 __all__ = ["stage_alignment"]
 
 
-def stage_alignment(spec: PipelineSpec, state: dict) -> dict:
+def stage_alignment(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Align the groups of the configural model when the pipeline asks for it."""
     opts = spec.section("alignment") or {}
     if not opts.get("enabled", False):
-        return {}
+        return {}, state
     check_alignment_section(spec.document, spec.structure)
-    res = state.get("fits", {}).get("configural")
+    res = state.fits.get("configural")
     if res is None or not res.converged:
         why = "was not fitted" if res is None else "did not converge"
-        state.setdefault("warnings", []).append(f"alignment skipped: the configural model {why}")
-        return {"alignment": {"enabled": True, "error": f"the configural model {why}"}}
+        return ({"alignment": {"enabled": True, "error": f"the configural model {why}"}},
+                state.warn(f"alignment skipped: the configural model {why}"))
     ref = opts.get("reference")
     al = align(
         res,
@@ -35,6 +36,4 @@ def stage_alignment(spec: PipelineSpec, state: dict) -> dict:
         random_starts=int(opts.get("random_starts", 4)),
         seed=int(spec.seed or 0),
     )
-    state["alignment"] = al
-    state.setdefault("warnings", []).extend(f"alignment: {n}" for n in al.notes)
-    return {"alignment": {"enabled": True, **al.to_dict()}}
+    return {"alignment": {"enabled": True, **al.to_dict()}}, state.warn(*(f"alignment: {n}" for n in al.notes))

@@ -11,8 +11,7 @@
   as configural models, :func:`invariance.structures.compare_structures`. results.json
   ``structures`` (rows) and ``structure_notes`` (equivalences and problems).
 * ``scores`` (only with ``scores: {method, id}``): factor scores from the final accepted
-  model (``state["final_fit"]`` when a partial-invariance stage leaves one, else the fit of
-  the supported level), :func:`invariance.scores.factor_scores`; cases with missing items
+  model (the fit of the supported level, with the releases of the partial search), :func:`invariance.scores.factor_scores`; cases with missing items
   are scored from their observed items when the fit was full-information (or with
   ``scores.incomplete: true``); the table goes to
   scores.csv in the run folder, the summary (level, released constraints, determinacy,
@@ -29,6 +28,7 @@ from ..effects.scores import factor_scores
 from ..data.screening import screen
 from ..decide.structures import compare_structures, group_fit
 from ..spec.load import PipelineSpec, thaw
+from .state import RunState, StageOutput
 
 __all__ = ["stage_screening", "stage_group_fit", "stage_structures", "stage_scores"]
 
@@ -42,9 +42,9 @@ def _fitter(spec: PipelineSpec):
     return spec.make_estimator().fit
 
 
-def stage_screening(spec: PipelineSpec, state: dict) -> dict:
+def stage_screening(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Screen the items of every group (before any model is fitted)."""
-    checked = state["checked"]
+    checked = state.checked
     opts = _section(spec, "screening")
     out = screen(
         checked.frame,
@@ -57,13 +57,13 @@ def stage_screening(spec: PipelineSpec, state: dict) -> dict:
     )
     rec = out["recommendation"]
     if rec["estimator"] == "ml_robust" and spec.estimator == "ml":
-        state.setdefault("warnings", []).append("screening: " + rec["notes"][0])
+        state = state.warn("screening: " + rec["notes"][0])
     if rec["ordinal_items"]:
-        state.setdefault("warnings", []).append(
+        state = state.warn(
             "screening: items with fewer than five categories are fitted as continuous: "
             + ", ".join(rec["ordinal_items"])
         )
-    return {"screening": out}
+    return {"screening": out}, state
 
 
 def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
@@ -92,19 +92,19 @@ def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
     return {"group_fit": gf.to_dict()}
 
 
-def stage_structures(spec: PipelineSpec, state: dict) -> dict:
+def stage_structures(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Rival structures (only when ``compare.structures`` lists some)."""
     fams = _section(spec, "compare").get("structures")
     if not fams:
-        return {}
-    if isinstance(state["stats"], OrdinalStats):
+        return {}, state
+    if isinstance(state.stats, OrdinalStats):
         raise SpecificationError(
             "compare.structures works on continuous items only; remove it or data.ordinal from the pipeline."
         )
     st = spec.structure
     try:
         cmp_ = compare_structures(
-            state["stats"],
+            state.stats,
             st.factors,
             fams,
             general=st.general,
@@ -113,39 +113,32 @@ def stage_structures(spec: PipelineSpec, state: dict) -> dict:
         )
     except SpecificationError as exc:
         raise SpecificationError(f"compare.structures: {exc}") from None
-    state["structures"] = cmp_
     notes = list(cmp_.notes)
     if st.regressions:
         notes.insert(0, "Rival structures are compared on the measurement part only (factor regressions left out).")
     return {
         "structures": cmp_.to_records(),
         "structure_notes": {"equivalent": list(cmp_.equivalent), "notes": notes},
-    }
+    }, state
 
 
-def _final_fit(state: dict):
-    """The final accepted model: a partial model if a later stage left one, else the supported level."""
-    final = state.get("final_fit")
-    if final is not None:
-        return final
-    best = supported_level(state["level_rows"])
-    return None if best is None else state["fits"].get(best)
+def _final_fit(state: RunState):
+    """The final accepted model: the fit of the supported level (with its releases)."""
+    best = supported_level(state.level_rows)
+    return None if best is None else state.fits.get(best)
 
 
-def stage_scores(spec: PipelineSpec, state: dict) -> dict:
+def stage_scores(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Factor scores per case from the final accepted model (only with a ``scores`` section)."""
     if spec.section("scores") is None:
-        return {}
+        return {}, state
     opts = _section(spec, "scores")
     res = _final_fit(state)
     if res is None:
-        state.setdefault("warnings", []).append(
-            "scores: no level was supported, so no factor scores were written"
-        )
-        return {"scores": None}
-    checked = state["checked"]
+        return {"scores": None}, state.warn("scores: no level was supported, so no factor scores were written")
+    checked = state.checked
     # a full-information fit used every case with an observed item: score those cases too
-    fiml = any(getattr(g, "has_missing", False) for g in state["stats"].groups)
+    fiml = any(getattr(g, "has_missing", False) for g in state.stats.groups)
     frame = checked.frame.copy()
     id_col = opts.get("id")
     if id_col is None:
@@ -153,7 +146,7 @@ def stage_scores(spec: PipelineSpec, state: dict) -> dict:
         id_col = "row" if "row" not in frame.columns else "case_row"
         frame[id_col] = frame.index.to_numpy()
     else:
-        full = state["frame"]
+        full = state.frame
         if id_col not in full.columns:
             raise DataError(f"scores.id names column {id_col!r}, which is not in the data; check the spelling.")
         if id_col in frame.columns:
@@ -169,6 +162,5 @@ def stage_scores(spec: PipelineSpec, state: dict) -> dict:
         id=id_col,
         incomplete=bool(opts.get("incomplete", fiml)),
     )
-    state["scores_table"] = fs.table
-    state.setdefault("warnings", []).extend(f"scores: {n}" for n in fs.notes)
-    return {"scores": fs.to_dict()}
+    state = state.update(scores_table=fs.table).warn(*(f"scores: {n}" for n in fs.notes))
+    return {"scores": fs.to_dict()}, state

@@ -42,6 +42,8 @@ from ..model.structural import build_structural, structural_parameter
 from ..partial.flags import flagged_items
 from ..partial.score import constraints, score_tests
 from ..partial.search import SearchResult, release_search
+from ..spec.load import PipelineSpec
+from .state import RunState, StageOutput
 
 __all__ = ["STRUCTURAL_CUTOFF_LEVEL", "release_rows", "stage_effects"]
 
@@ -64,9 +66,10 @@ def release_rows(res: FitResult, search: SearchResult | None, pipeline_released=
     return rows
 
 
-def _structural(spec, state, base: FitResult, base_row: dict, steps) -> list[dict]:
+def _structural(spec: PipelineSpec, state: RunState, base: FitResult, base_row: dict, steps,
+                notes: list) -> list[dict]:
     """The structural levels, fitted, judged and searched with the run's estimator."""
-    est, stats, settings = state["estimator"], state["stats"], spec.partial
+    est, stats, settings = state.estimator, state.stats, spec.partial
     rows, released = [], ()
     accepted_fit, accepted_row, accepted_name = base, base_row, base.level
     struct_family_so = tuple((f, spec.structure.general) for f in spec.structure.factors) \
@@ -77,8 +80,8 @@ def _structural(spec, state, base: FitResult, base_row: dict, steps) -> list[dic
             rows.append({"level": step, "decision": "not_applicable", "released": [], "tests": [],
                          "reason": f"the model has no {structural_parameter(step)} to hold equal across groups"})
             continue
-        res, notes = quiet_fit(est, mspec, stats)
-        state.setdefault("warnings", []).extend(f"{step}: {n}" for n in notes)
+        res, caught = quiet_fit(est, mspec, stats)
+        notes.extend(f"{step}: {n}" for n in caught)
 
         def judge(f, step=step, ref_row=accepted_row, ref_fit=accepted_fit):
             r = est.level_row(step, f)
@@ -122,19 +125,16 @@ def _last_supported(rows: list[dict], fits: Mapping[str, FitResult]) -> FitResul
     return best
 
 
-def stage_effects(spec, state: dict) -> dict:
+def stage_effects(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Flagged items, reliability indices, latent comparisons, sum-score bias and the
     structural levels (after the measurement levels have been fitted and judged)."""
     settings = spec.partial
     steps = spec.structural
-    stats = state["stats"]
-    fits = state.get("fits", {})
-    rows = state.get("level_rows", [])
-    searches = state.get("searches", [])
+    stats, fits, rows, searches = state.stats, state.fits, state.level_rows, state.searches
     final = _last_supported(rows, fits)
     if not isinstance(stats, SampleStats):
         # ordinal items: the continuous-item effect sizes below do not apply
-        return _ordinal_effects(spec, state, final)
+        return _ordinal_effects(spec, state, final), state
     scalar_ok = final is not None and final.level in ("scalar", "strict")
     out: dict = {"flagged": flagged_items(searches, stats, final=final if scalar_ok else None)}
     source = final if final is not None else fits.get("configural")
@@ -153,27 +153,28 @@ def stage_effects(spec, state: dict) -> dict:
         out["latent"] = {"level": None, "means": [], "variances": [], "notes": [
             "latent means are compared only once (partial) scalar invariance holds; it does not here"]}
         out["scale_bias"] = []
+    notes: list[str] = []
     if steps:
         if scalar_ok:
             base_row = next(r for r in rows if r["level"] == final.level)
-            out["structural"] = _structural(spec, state, final, base_row, steps)
+            out["structural"] = _structural(spec, state, final, base_row, steps, notes)
         else:
             out["structural"] = [{"level": s, "decision": "not_tested",
                                   "reason": "structural levels need (partial) scalar invariance"} for s in steps]
     else:
         out["structural"] = []
-    return out
+    return out, state.warn(*notes)
 
 
-def _ordinal_effects(spec, state: dict, final) -> dict:
+def _ordinal_effects(spec: PipelineSpec, state: RunState, final) -> dict:
     """Effects section for ordinal (DWLS) runs: latent-response bifactor indices of the
     last supported level; dMACS of flagged items comes with the ordinal search."""
-    out: dict = {"flagged": flagged_items(state.get("searches", []), state["stats"]), "scale_bias": [],
+    out: dict = {"flagged": flagged_items(state.searches, state.stats), "scale_bias": [],
                  "structural": []}
     out["latent"] = {"level": None, "means": [], "variances": [], "notes": [
         "latent mean comparisons for ordinal items are reported by the ordinal search only"]}
     out["reliability"] = None
-    source = final if final is not None else state.get("fits", {}).get("configural")
+    source = final if final is not None else state.fits.get("configural")
     st = spec.structure
     if source is not None and st.family == "bifactor":
         groups = {}

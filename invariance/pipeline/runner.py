@@ -16,6 +16,7 @@ from ..version import __version__
 from .crosscheck import stage_crosscheck
 from .output import check_destination, format_table, level_table, to_json, write_outputs
 from .stages import STAGES, stage_data, stage_levels, stage_stats, with_stage
+from .state import RunState
 
 __all__ = ["RunResult", "run", "check", "default_out_dir"]
 
@@ -109,9 +110,10 @@ def _context(spec: PipelineSpec, results: dict, quiet: bool) -> dict:
     }
 
 
-def run_stages(spec: PipelineSpec, stages=None, *, extra: dict | None = None) -> tuple[dict, dict]:
-    """Run stages in order (default :data:`~invariance.pipeline.stages.STAGES`); returns (results, state)."""
-    state: dict = {"warnings": [], **(extra or {})}
+def run_stages(spec: PipelineSpec, stages=None, *, executor=None) -> tuple[dict, RunState]:
+    """Run stages in order (default :data:`~invariance.pipeline.stages.STAGES`); returns
+    (results, the final :class:`~invariance.pipeline.state.RunState`)."""
+    state = RunState(executor=executor)
     results: dict = {
         "invariance_version": __version__,
         "title": spec.title,
@@ -119,8 +121,9 @@ def run_stages(spec: PipelineSpec, stages=None, *, extra: dict | None = None) ->
         "seed": spec.seed,
     }
     for _name, stage in stages if stages is not None else STAGES:
-        results.update(stage(spec, state))
-    results["warnings"] = list(dict.fromkeys(state["warnings"]))
+        out, state = stage(spec, state)
+        results.update(out)
+    results["warnings"] = list(dict.fromkeys(state.warnings))
     return results, state
 
 
@@ -173,9 +176,9 @@ def run(
     stages = STAGES if stages is None else tuple(stages)
     if crosscheck:
         stages = with_stage("crosscheck", stage_crosscheck, table=stages)
-    results, state = run_stages(spec, stages, extra={"executor": executor})
+    results, state = run_stages(spec, stages, executor=executor)
     results = json.loads(to_json(results))
-    estimates = _estimates(state["fits"])
+    estimates = _estimates(state.fits)
     if out_dir is not None:
         from ..report import write_reports  # lazy: the report layer loads matplotlib
 
@@ -186,8 +189,8 @@ def run(
             level_table(results).to_csv(folder / "levels.csv", index=False)
             estimates.to_csv(folder / "estimates.csv", index=False)
             (folder / "pipeline.yaml").write_text(spec.text, encoding="utf-8")
-            if state.get("scores_table") is not None:
-                state["scores_table"].to_csv(folder / "scores.csv", index=False)
+            if state.scores_table is not None:
+                state.scores_table.to_csv(folder / "scores.csv", index=False)
             write_reports(folder, results, estimates, context)
 
         out_dir = write_outputs(out_dir, [files])
@@ -202,7 +205,7 @@ def run(
     return RunResult(
         results=_freeze(results),
         estimates=estimates,
-        fits=MappingProxyType(dict(state["fits"])),
+        fits=state.fits,
         spec=spec,
         out_dir=out_dir,
     )
@@ -221,7 +224,7 @@ def check(pipeline) -> dict:
     """
     spec = load_pipeline(pipeline)
     results, state = run_stages(spec, [("data", stage_data), ("stats", stage_stats), ("levels", stage_levels)])
-    checked = state["checked"]
+    checked = state.checked
     return {
         "pipeline": str(spec.source) if spec.source else None,
         "data_file": str(spec.data_path),

@@ -1,15 +1,11 @@
-"""The stages of a pipeline run, each a plain function ``stage(spec, state) -> dict``.
+"""The stages of a pipeline run, each a plain function ``stage(spec, state) -> (results, state)``.
 
-``state`` is a dict shared by the stages of one run: a stage reads what earlier stages
-left there (the data, the statistics, the fitted models) and adds its own objects. The
-dict a stage returns is merged into results.json, so it must hold plain JSON values.
-Options are never read from the raw document here: :class:`~invariance.spec.load.PipelineSpec`
-holds them typed (``spec.incomplete``, ``spec.partial``, ``spec.make_estimator()``, ...).
-State keys: ``checked`` (:class:`~invariance.data.CheckedData`), ``frame``,
-``reference``, ``estimator`` (the run's :class:`~invariance.estimate.interface.Estimator`),
-``stats``, ``builder`` (:class:`~invariance.model.levels.LevelBuilder`), ``models``
-(level -> ModelSpec), ``fits`` (level -> FitResult), ``level_rows`` (the level entries of
-results.json), ``searches`` (the release searches), ``warnings`` (list of strings).
+``state`` is the frozen :class:`~invariance.pipeline.state.RunState`: a stage reads what
+earlier stages put there (the data, the statistics, the fitted models) and returns a new
+state with its own objects. The dict it returns is merged into results.json, so it must
+hold plain JSON values. Options are never read from the raw document here:
+:class:`~invariance.spec.load.PipelineSpec` holds them typed (``spec.incomplete``,
+``spec.partial``, ``spec.make_estimator()``, ...).
 
 The fit stage never branches on the estimator: it asks the estimator for the statistics,
 the fits, the level rows, the step changes, and hands failed levels to the one release
@@ -17,8 +13,6 @@ search (:func:`invariance.partial.release_search`) with the same estimator.
 """
 
 from __future__ import annotations
-
-from typing import Callable
 
 from ..data.checks import check_data
 from ..data.read import apply_missing, file_sha256, read_table
@@ -33,14 +27,12 @@ from . import robust_stage as _rs
 from .align_stage import stage_alignment
 from .before_after import stage_group_fit, stage_scores, stage_screening, stage_structures
 from .partial_stage import release_rows, stage_effects
+from .state import RunState, Stage, StageOutput
 
 __all__ = ["STAGES", "Stage", "stage_data", "stage_stats", "stage_levels", "stage_fits",
            "stage_summary", "FIT_KEYS", "with_stage"]
 
-Stage = Callable[[PipelineSpec, dict], dict]
-
-
-def stage_data(spec: PipelineSpec, state: dict) -> dict:
+def stage_data(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Read the data, apply missing codes and run the checks (nothing is fitted)."""
     raw = read_table(spec.data_path, format=spec.data_format)
     frame = apply_missing(raw, spec.missing)
@@ -60,11 +52,7 @@ def stage_data(spec: PipelineSpec, state: dict) -> dict:
                     f"model.released names group {g!r} for item {rel.item!r}, but the groups are "
                     f"{', '.join(checked.groups)}; fix the group name."
                 )
-    state["checked"] = checked
-    state["frame"] = frame  # every column (identifier columns for scores)
-    state["reference"] = reference
-    state["estimator"] = spec.make_estimator()
-    state.setdefault("warnings", []).extend(checked.warnings)
+    state = state.update(checked=checked, frame=frame, reference=reference, estimator=spec.make_estimator())
     return {
         "data": {
             "file": spec.data_path.name,
@@ -77,18 +65,18 @@ def stage_data(spec: PipelineSpec, state: dict) -> dict:
             "missing_by_group": {g: dict(v) for g, v in checked.missing.items()},
         },
         "reference_group": reference,
-    }
+    }, state.warn(*checked.warnings)
 
 
-def stage_stats(spec: PipelineSpec, state: dict) -> dict:
+def stage_stats(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Per-group statistics, as the run's estimator needs them."""
-    checked = state["checked"]
-    stats = state["estimator"].statistics(checked.frame, checked.items, checked.group, groups=checked.groups)
-    state["stats"] = stats
+    checked = state.checked
+    stats = state.estimator.statistics(checked.frame, checked.items, checked.group, groups=checked.groups)
+    state = state.update(stats=stats)
     out = {"groups": {g.name: int(g.n) for g in stats.groups}, "n_total": int(stats.n_total)}
     if spec.ordinal is None:
         out["missing_data"] = _rs.missing_section(stats, checked, spec.incomplete)
-        return out
+        return out, state
     # thresholds, polychoric correlations and their ACOV per group (METHODS section 7)
     out["ordinal"] = {
         "categories": {m.item: list(m.labels) for m in stats.categories if m is not None},
@@ -101,21 +89,19 @@ def stage_stats(spec: PipelineSpec, state: dict) -> dict:
         "delta chi2: Satorra (2000) difference, scale-shifted; unadjusted values under 'dwls'",
     }
     out["missing_data"] = {"method": "listwise", "by_group": {}}
-    return out
+    return out, state
 
 
-def stage_levels(spec: PipelineSpec, state: dict) -> dict:
+def stage_levels(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Build the model of every requested level (one builder for every item type)."""
     st = spec.structure
-    stats = state["stats"]
+    stats = state.stats
     K = None if spec.ordinal is None else tuple(int(k) for k in stats.n_categories)
-    builder = LevelBuilder(st, tuple(stats.names), state["reference"], spec.fixed_means, K)
+    builder = LevelBuilder(st, tuple(stats.names), state.reference, spec.fixed_means, K)
     try:
         models = {lv: builder.build(lv, spec.released) for lv in spec.levels}
     except SpecificationError as exc:
         raise SpecificationError(f"model: {exc}") from None
-    state["builder"] = builder
-    state["models"] = models
     return {
         "model": {
             "family": st.family,
@@ -128,7 +114,7 @@ def stage_levels(spec: PipelineSpec, state: dict) -> dict:
             "fixed_means": list(spec.fixed_means),
         },
         "free_parameters": {lv: int(m.n_params) for lv, m in models.items()},
-    }
+    }, state.update(builder=builder, models=models)
 
 
 def _not_tested(level: str, why: str) -> dict:
@@ -145,9 +131,9 @@ def _cutoff_level(level: str) -> str:
     return "scalar" if level == "thresholds" else level
 
 
-def _judge(spec: PipelineSpec, state: dict, level: str, base: tuple):
-    """``judge(fit) -> verdict dict`` of a level against the accepted base (level, row, fit)."""
-    est, stats = state["estimator"], state["stats"]
+def _judge(spec: PipelineSpec, state: RunState, level: str, base: tuple):
+    """``judge(fit) -> (row, delta, verdict)`` of a level against the accepted base (level, row, fit)."""
+    est, stats = state.estimator, state.stats
     _, base_row, base_fit = base
 
     def judge(res):
@@ -159,14 +145,14 @@ def _judge(spec: PipelineSpec, state: dict, level: str, base: tuple):
     return judge
 
 
-def _search(spec: PipelineSpec, state: dict, level: str, res, judge) -> tuple:
+def _search(spec: PipelineSpec, state: RunState, level: str, res, judge, notes: list) -> tuple:
     """Run the release search on a failed level: (search, res, row, delta, verdict) after it."""
     search = release_search(
-        res, state["stats"], lambda f: judge(f)[2]["decision"] == "holds",
-        estimator=state["estimator"], builder=state["builder"], executor=state.get("executor"),
+        res, state.stats, lambda f: judge(f)[2]["decision"] == "holds",
+        estimator=state.estimator, builder=state.builder, executor=state.executor,
         **spec.partial.search_options(),
     )
-    state["warnings"].extend(
+    notes.extend(
         f"{level}: release of {k['label']} skipped, its refit failed: {k['reason']}" for k in search.skipped
     )
     res = search.fit
@@ -177,12 +163,12 @@ def _search(spec: PipelineSpec, state: dict, level: str, res, judge) -> tuple:
     return search, res, row, delta, verdict
 
 
-def _fit_level(spec: PipelineSpec, state: dict, level: str, carried: tuple, accepted) -> tuple:
-    """Fit one level, judge it, and search it when it fails: (row, fit, search)."""
-    est = state["estimator"]
-    model = state["models"][level] if not carried else state["builder"].build(level, spec.released + carried)
-    res, notes = quiet_fit(est, model, state["stats"])
-    state["warnings"].extend(n if n.startswith(f"{level}:") else f"{level}: {n}" for n in notes)
+def _fit_level(spec: PipelineSpec, state: RunState, level: str, carried: tuple, accepted, notes: list) -> tuple:
+    """Fit one level, judge it, and search it when it fails: (row, fit, search); messages go to ``notes``."""
+    est = state.estimator
+    model = state.models[level] if not carried else state.builder.build(level, spec.released + carried)
+    res, caught = quiet_fit(est, model, state.stats)
+    notes.extend(n if n.startswith(f"{level}:") else f"{level}: {n}" for n in caught)
     if accepted is None:
         row = est.level_row(level, res)
         verdict = judge_configural(est.decision_view(row), spec.rule, converged=res.converged, problems=res.problems)
@@ -193,7 +179,7 @@ def _fit_level(spec: PipelineSpec, state: dict, level: str, carried: tuple, acce
     search = None
     if spec.partial.searches(verdict["decision"]):
         if res.converged:
-            search, res, row, delta, verdict = _search(spec, state, level, res, judge)
+            search, res, row, delta, verdict = _search(spec, state, level, res, judge, notes)
         else:
             row["partial"] = {"stop_reason": "not_converged", "stop_message": STOP_REASONS["not_converged"]}
     improper = [p for p in res.problems if not p.startswith("not converged")]
@@ -205,13 +191,13 @@ def _fit_level(spec: PipelineSpec, state: dict, level: str, carried: tuple, acce
     return row, res, search
 
 
-def stage_fits(spec: PipelineSpec, state: dict) -> dict:
+def stage_fits(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Fit the levels in order; compare each with the previous accepted level and judge it.
 
     With a ``partial:`` section, a failed measurement level is handed to the release
     search (every estimator); its releases are carried into the later levels.
     """
-    fits, rows, searches = {}, [], []
+    fits, rows, searches, notes = {}, [], [], []
     accepted = None  # (level, row, fit) of the last level that held
     stopped = None
     carried: tuple = ()  # releases made by the search, carried to later levels
@@ -219,7 +205,7 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
         if stopped is not None:
             rows.append(_not_tested(lv, stopped))
             continue
-        row, res, search = _fit_level(spec, state, lv, carried, accepted)
+        row, res, search = _fit_level(spec, state, lv, carried, accepted, notes)
         fits[lv] = res
         rows.append(row)
         if search is not None:
@@ -231,18 +217,15 @@ def stage_fits(spec: PipelineSpec, state: dict) -> dict:
             stopped = "the configural model was not supported"
         elif spec.stop_at_failure:
             stopped = f"{lv} failed and decision.stop_at_failure is true"
-    state["fits"] = fits
-    state["level_rows"] = rows
-    state["searches"] = searches
-    return {"levels": rows}
+    return {"levels": rows}, state.update(fits=fits, level_rows=rows, searches=searches).warn(*notes)
 
 
-def stage_summary(spec: PipelineSpec, state: dict) -> dict:
+def stage_summary(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Say which level the data support and what group comparisons it permits."""
-    rows = state["level_rows"]
+    rows = state.level_rows
     best = supported_level(rows)
-    n_total = state["stats"].n_total
-    ns = [g.n for g in state["stats"].groups]
+    n_total = state.stats.n_total
+    ns = [g.n for g in state.stats.groups]
     notes = []
     if spec.rule.source.startswith("Chen (2007) cutoffs for total N > 300") and (
         n_total <= 300 or max(ns) > 1.5 * min(ns)
@@ -252,7 +235,6 @@ def stage_summary(spec: PipelineSpec, state: dict) -> dict:
             "small-sample cutoffs when N <= 300 or groups are unbalanced (here: the largest group more "
             "than 1.5 times the smallest): consider decision.cutoffs: chen2007_small"
         )
-    state.setdefault("warnings", []).extend(notes)
     first_bad = next((r for r in rows if r["decision"] not in ("holds", "holds_partially")), None)
     estimation_failed = first_bad is not None and (
         first_bad["converged"] is False
@@ -278,46 +260,57 @@ def stage_summary(spec: PipelineSpec, state: dict) -> dict:
         "verdict": verdict,
         "decision_rule": spec.rule.to_dict(),
         "stop_at_failure": spec.stop_at_failure,
-    }
+    }, state.warn(*notes)
+
+
+def _dict_stage(stage) -> Stage:
+    """A stage still written as ``stage(spec, state: dict) -> dict`` (``stage_group_fit``,
+    owned by the engine work): it sees ``stats`` and returns its warnings in ``warnings``."""
+
+    def wrapped(spec: PipelineSpec, state: RunState) -> StageOutput:
+        view = {"stats": state.stats, "warnings": []}
+        out = stage(spec, view)
+        return out, state.warn(*view["warnings"])
+
+    wrapped.__name__ = getattr(stage, "__name__", "stage")
+    wrapped.__doc__ = stage.__doc__
+    return wrapped
 
 
 def _continuous_only(stage: Stage, name: str) -> Stage:
     """A stage that needs continuous-item statistics: skipped (with a note) for ordinal items."""
 
-    def wrapped(spec: PipelineSpec, state: dict) -> dict:
+    def wrapped(spec: PipelineSpec, state: RunState) -> StageOutput:
         if spec.ordinal is None:
             return stage(spec, state)
         if name in ("structures", "alignment", "scores") and spec.section(name) is None:
-            return {}
-        state.setdefault("warnings", []).append(
-            f"{name}: not available for ordered-categorical items yet; skipped"
-        )
-        return {name: None}
+            return {}, state
+        return {name: None}, state.warn(f"{name}: not available for ordered-categorical items yet; skipped")
 
     wrapped.__name__ = getattr(stage, "__name__", name)
     wrapped.__doc__ = stage.__doc__
     return wrapped
 
 
-def stage_ordinal_effects(spec: PipelineSpec, state: dict) -> dict:
+def stage_ordinal_effects(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Effects after the level fits; ordinal pipelines add dMACS per item (latent-response
     and expected-score scales) of every group against the reference, and latent-response
     bifactor indices, from the highest supported level that is metric or higher
     (:func:`invariance.effects.ordinal.ordinal_effects`)."""
-    out = stage_effects(spec, state)
+    out, state = stage_effects(spec, state)
     if spec.ordinal is None:
-        return out
-    fits = state.get("fits", {})
-    best = supported_level(state.get("level_rows", []))
+        return out, state
+    fits = state.fits
+    best = supported_level(state.level_rows)
     if best not in ("metric", "scalar", "strict") or best not in fits:
-        return {**out, "effects": None}
+        return {**out, "effects": None}, state
     res = fits[best]
     by_group = {}
     for g in res.spec.groups:
         if g != res.spec.reference:
-            eff = ordinal_effects(res, state["stats"], focal=g)
+            eff = ordinal_effects(res, state.stats, focal=g)
             by_group[g] = {"dmacs": eff["dmacs"], "bifactor": eff.get("bifactor")}
-    return {**out, "effects": {"ordinal": {"level": best, "reference": res.spec.reference, "by_group": by_group}}}
+    return {**out, "effects": {"ordinal": {"level": best, "reference": res.spec.reference, "by_group": by_group}}}, state
 
 
 #: The stages of a run, in order: (name, function). Immutable: a run with another table
@@ -326,7 +319,7 @@ STAGES: tuple[tuple[str, Stage], ...] = (
     ("data", stage_data),
     ("screening", stage_screening),
     ("stats", stage_stats),
-    ("group_fit", _continuous_only(stage_group_fit, "group_fit")),
+    ("group_fit", _continuous_only(_dict_stage(stage_group_fit), "group_fit")),
     ("structures", _continuous_only(stage_structures, "structures")),
     ("levels", stage_levels),
     ("fits", stage_fits),
@@ -351,7 +344,7 @@ def with_stage(
     name
         Stage name.
     stage
-        ``stage(spec, state) -> dict``; the dict is merged into results.json.
+        ``stage(spec, state) -> (results, state)`` (:mod:`invariance.pipeline.state`).
     after
         Name of the stage it follows (default: the end of the table).
     table
