@@ -311,6 +311,21 @@ def _choose(estimator, current, stats, cands, sig, adj, *, verify, verify_top, c
     return (j, lr[j][2], lr[j][0], lr[j][1], adj_lr[j])
 
 
+def _step(number: int, level: str, c, chosen: tuple, before: FitResult, stats, holds: bool) -> ReleaseStep:
+    """The record of one release: candidate ``c`` chosen as (index, refit, lr stat, lr p, adjusted p)."""
+    _, rf, lr_stat, lr_pv, adj_p = chosen
+    return ReleaseStep(
+        step=number, level=level, parameter=c.release.parameter, item=c.release.item,
+        factor=c.release.factor, groups=tuple(c.groups), label=c.label, test=c.test,
+        statistic=float(c.statistic), df=int(c.df), pvalue=float(c.pvalue),
+        adjusted_pvalue=float(adj_p), epc=tuple(c.epc),
+        lr_statistic=None if lr_stat is None else float(lr_stat),
+        lr_pvalue=None if lr_pv is None else float(lr_pv),
+        chi2_before=float(before.fit.chi2), chi2_after=float(rf.fit.chi2),
+        holds_after=holds, dmacs=_item_dmacs(rf, stats, c.release.item, c.release.parameter),
+    )
+
+
 def _difference(estimator, restricted, free, stats) -> tuple[float, float]:
     d = estimator.difference(restricted, free, stats)
     return float(d.chi2), (float(d.pvalue) if np.isfinite(d.pvalue) else 1.0)
@@ -418,19 +433,9 @@ def release_search(
         if isinstance(chosen, str):
             reason = chosen
             break
-        j, rf, lr_stat, lr_pv, adj_p = chosen
-        c = cands[j]
+        rf = chosen[1]
         holds = bool(judge(rf))
-        steps.append(ReleaseStep(
-            step=len(steps) + 1, level=level, parameter=c.release.parameter, item=c.release.item,
-            factor=c.release.factor, groups=tuple(c.groups), label=c.label, test=c.test,
-            statistic=float(c.statistic), df=int(c.df), pvalue=float(c.pvalue),
-            adjusted_pvalue=float(adj_p), epc=tuple(c.epc),
-            lr_statistic=None if lr_stat is None else float(lr_stat),
-            lr_pvalue=None if lr_pv is None else float(lr_pv),
-            chi2_before=float(current.fit.chi2), chi2_after=float(rf.fit.chi2),
-            holds_after=holds, dmacs=_item_dmacs(rf, stats, c.release.item, c.release.parameter),
-        ))
+        steps.append(_step(len(steps) + 1, level, cands[chosen[0]], chosen, current, stats, holds))
         current = rf
     if holds and until == "holds":
         reason = "holds"
