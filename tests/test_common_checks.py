@@ -190,3 +190,17 @@ def test_cases_used_says_what_happened(tmp_path, name):
     else:
         assert "full-information ML" in out["cases_used"]
         assert sum(out["groups"].values()) == len(frame)
+
+
+@pytest.mark.parametrize("section, value", [
+    ("scores", {"method": "regression"}),
+    ("alignment", {"enabled": True}),
+    ("compare", {"structures": ["single"]}),
+    ("structural", {"levels": ["means"]}),
+])
+def test_continuous_only_sections_are_refused_for_ordinal_items(tmp_path, section, value):
+    # nothing silent: an option that cannot apply to ordinal items is refused at load time
+    doc = _doc(tmp_path / "survey.csv", CASES["dwls_ordinal"])
+    doc[section] = value
+    with pytest.raises(SpecificationError, match="not available for ordinal items"):
+        invariance.load_pipeline(doc)

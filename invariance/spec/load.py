@@ -361,6 +361,24 @@ def _scaled_difference(dec: Mapping, estimator: str) -> str:
     return "2010" if value == "strictly_positive" else "auto"
 
 
+def _check_ordinal_sections(doc: Mapping, ordinal) -> None:
+    """Refuse the sections that need continuous-item statistics when items are ordinal."""
+    if ordinal is None:
+        return
+    asked = []
+    if doc.get("scores") is not None:
+        asked.append("scores")
+    if (doc.get("alignment") or {}).get("enabled", False):
+        asked.append("alignment")
+    if (doc.get("compare") or {}).get("structures"):
+        asked.append("compare.structures")
+    if asked:
+        raise SpecificationError(
+            f"{asked[0]} is not available for ordinal items yet; drop it or fit the items as continuous "
+            "(drop data.ordinal)."
+        )
+
+
 def _structural_steps(doc: Mapping, ordinal) -> tuple[str, ...]:
     steps = structural_settings(doc.get("structural"))
     if steps and ordinal is not None:
@@ -382,6 +400,7 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
     ordinal, merge, estimator = _ordinal(data, structure, doc.get("estimator"))
     levels = _levels(doc.get("levels", ORDINAL_LEVELS if ordinal else LEVELS), ordinal=ordinal is not None)
     check_alignment_section(doc, structure)
+    _check_ordinal_sections(doc, ordinal)
     dec = doc.get("decision", {})
     rule = make_rule(
         criteria=dec.get("criteria"),
