@@ -22,7 +22,6 @@ from __future__ import annotations
 
 from ..data.ordinal_stats import OrdinalStats
 
-from ..decide.compare import supported_level
 from ..errors import DataError, SpecificationError
 from ..effects.scores import factor_scores
 from ..data.screening import screen
@@ -124,7 +123,7 @@ def stage_structures(spec: PipelineSpec, state: RunState) -> StageOutput:
 
 def _final_fit(state: RunState):
     """The final accepted model: the fit of the supported level (with its releases)."""
-    best = supported_level(state.level_rows)
+    best = state.supported_level
     return None if best is None else state.fits.get(best)
 
 

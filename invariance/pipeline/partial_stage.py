@@ -115,23 +115,13 @@ def _structural(spec: PipelineSpec, state: RunState, base: FitResult, base_row: 
     return rows
 
 
-def _last_supported(rows: list[dict], fits: Mapping[str, FitResult]) -> FitResult | None:
-    best = None
-    for r in rows:
-        if r.get("decision") in ("holds", "holds_partially") and r["level"] in fits:
-            best = fits[r["level"]]
-        else:
-            break
-    return best
-
-
 def stage_effects(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Flagged items, reliability indices, latent comparisons, sum-score bias and the
     structural levels (after the measurement levels have been fitted and judged)."""
     settings = spec.partial
     steps = spec.structural
     stats, fits, rows, searches = state.stats, state.fits, state.level_rows, state.searches
-    final = _last_supported(rows, fits)
+    final = fits.get(state.supported_level) if state.supported_level is not None else None
     if not isinstance(stats, SampleStats):
         # ordinal items: the continuous-item effect sizes below do not apply
         return _ordinal_effects(spec, state, final), state

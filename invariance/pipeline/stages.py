@@ -217,13 +217,14 @@ def stage_fits(spec: PipelineSpec, state: RunState) -> StageOutput:
             stopped = "the configural model was not supported"
         elif spec.stop_at_failure:
             stopped = f"{lv} failed and decision.stop_at_failure is true"
-    return {"levels": rows}, state.update(fits=fits, level_rows=rows, searches=searches).warn(*notes)
+    state = state.update(fits=fits, level_rows=rows, searches=searches, supported_level=supported_level(rows))
+    return {"levels": rows}, state.warn(*notes)
 
 
 def stage_summary(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Say which level the data support and what group comparisons it permits."""
     rows = state.level_rows
-    best = supported_level(rows)
+    best = state.supported_level
     n_total = state.stats.n_total
     ns = [g.n for g in state.stats.groups]
     notes = []
@@ -301,7 +302,7 @@ def stage_ordinal_effects(spec: PipelineSpec, state: RunState) -> StageOutput:
     if spec.ordinal is None:
         return out, state
     fits = state.fits
-    best = supported_level(state.level_rows)
+    best = state.supported_level
     if best not in ("metric", "scalar", "strict") or best not in fits:
         return {**out, "effects": None}, state
     res = fits[best]

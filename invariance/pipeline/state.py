@@ -45,6 +45,9 @@ class RunState:
         The :class:`~invariance.model.levels.LevelBuilder` and level -> model (stage ``levels``).
     fits, level_rows, searches
         Level -> fit, the level rows of results.json and the release searches (stage ``fits``).
+    supported_level
+        The highest level that holds, fully or partially (stage ``fits``, computed once by
+        :func:`invariance.decide.compare.supported_level`); every later stage reads it.
     scores_table
         Factor scores per case (stage ``scores``; written to scores.csv).
     warnings
@@ -64,6 +67,7 @@ class RunState:
     fits: Mapping[str, FitResult] = field(default_factory=_empty)
     level_rows: tuple[dict, ...] = ()
     searches: tuple[SearchResult, ...] = ()
+    supported_level: str | None = None
     scores_table: Any = None
     warnings: tuple[str, ...] = ()
     extra: Mapping[str, Any] = field(default_factory=_empty)
