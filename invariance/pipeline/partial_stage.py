@@ -26,7 +26,6 @@ level fits. What they add to results.json:
 
 from __future__ import annotations
 
-from typing import Mapping
 
 import numpy as np
 
