@@ -86,7 +86,7 @@ def test_output_folder_files(hs_all_levels):
     assert res.out_dir == out.resolve()
     assert sorted(p.name for p in out.iterdir()) == [
         "estimates.csv", "figures", "levels.csv", "pipeline.yaml", "report.html", "report.md", "results.json",
-        "table_levels.csv", "table_levels.md", "table_levels.tex",
+        *(f"table_{name}.{ext}" for name in ("latent", "levels", "loadings") for ext in ("csv", "md", "tex")),
     ]
     table = pd.read_csv(out / "levels.csv")
     assert table["level"].tolist() == ["configural", "metric", "scalar", "strict"]

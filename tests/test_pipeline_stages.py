@@ -14,8 +14,8 @@ def test_added_stage_sees_fits_and_its_result_is_merged(hs_dir):
     def extra(spec, state):
         seen["levels"] = sorted(state.fits)
         # a stage returns its results and a new state; the old one is never changed
-        new = state.update(extra={"mine": 1}).warn("extra: seen")
-        assert state.extra == {} and "extra: seen" not in state.warnings
+        new = state.update(extra={**state.extra, "mine": 1}).warn("extra: seen")
+        assert "mine" not in state.extra and "extra: seen" not in state.warnings
         return {"extra_section": {"n_fits": len(state.fits)}}, new
 
     before = stages.STAGES

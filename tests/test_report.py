@@ -15,10 +15,11 @@ from PIL import Image
 from _report_cases import HOSTILE, cached_case
 from invariance.errors import InvarianceWarning
 from invariance.report import registry, write_reports
+from invariance.report.plots import DPI, PAGE_WIDTH
 
-THREE_SECTIONS = ["summary", "data", "model", "levels", "changes", "flagged", "profiles", "effects",
+THREE_SECTIONS = ["summary", "data", "model", "levels", "changes", "loadings", "flagged", "profiles", "effects",
                   "latent_means", "cautions", "provenance"]
-BIFACTOR_SECTIONS = ["summary", "data", "model", "levels", "changes", "profiles", "bifactor", "cautions",
+BIFACTOR_SECTIONS = ["summary", "data", "model", "levels", "changes", "loadings", "profiles", "bifactor", "cautions",
                      "provenance"]
 
 
@@ -84,8 +85,8 @@ def test_every_image_decodes(case, request):
     assert len(imgs) == len(figs) >= 4
     for im in imgs:
         assert im.format == "PNG" and im.width >= 300 and im.height >= 150
-        # a page-width figure: 6.5 in at 150 dpi (matplotlib may trim nothing: layout is constrained)
-        assert im.width <= 6.5 * 150 + 1
+        # a page-width figure at most: 6.5 in at the figures' dpi (margins are fixed, nothing trimmed)
+        assert im.width <= PAGE_WIDTH * DPI + 1
     md = (out / "report.md").read_text(encoding="utf-8")
     for link in re.findall(r"!\[[^\]]*\]\(([^)]+)\)", md):
         im = Image.open(out / link)

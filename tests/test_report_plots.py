@@ -12,7 +12,7 @@ from PIL import Image
 
 from invariance.report import write_reports
 from invariance.report.diagram import model_diagram
-from invariance.report.plots import change_chart, dmacs_heatmap, forest_chart, profile_chart
+from invariance.report.plots import DPI, PAGE_WIDTH, change_chart, dmacs_heatmap, forest_chart, profile_chart
 
 
 def decode(png: bytes) -> Image.Image:
@@ -44,7 +44,7 @@ def test_diagram_for_every_family(structure):
         loads.update({(i, general): -0.4 for i in ITEMS})
     paths = {(f, general): 0.7 for f in structure["factors"]} if structure["family"] == "second_order" else {}
     im = decode(model_diagram(structure, loadings=loads, paths=paths, correlations={("A", "B"): 0.3}))
-    assert im.width == 975 and im.height >= 300
+    assert im.width == round(PAGE_WIDTH * DPI) and im.height >= 2 * DPI
     # the structure alone (no estimates) still draws
     decode(model_diagram(structure))
     assert model_diagram({"factors": {}}) is None
@@ -69,10 +69,10 @@ def test_threshold_profiles_for_ordinal_items(tmp_path):
     rows = []
     for g in ("north", "south"):
         for it in ("o1", "o2", "o3"):
-            rows.append({"level": "configural", "group": g, "parameter": "loading", "lhs": it, "rhs": "F",
+            rows.append({"level": "configural", "group": g, "parameter": "loading", "variable": it, "other": "F",
                          "label": "", "free": True, "estimate": 0.7, "se": 0.05, "z": 14.0, "pvalue": 0.0, "std": 0.7})
             for t in ("t1", "t2"):
-                rows.append({"level": "configural", "group": g, "parameter": "threshold", "lhs": it, "rhs": t,
+                rows.append({"level": "configural", "group": g, "parameter": "threshold", "variable": it, "other": t,
                              "label": "", "free": True, "estimate": -0.5 if t == "t1" else 0.6, "se": 0.08,
                              "z": 7.0, "pvalue": 0.0, "std": 0.0})
     results = {"groups": {"north": 250, "south": 240}, "reference_group": "north",

@@ -141,7 +141,7 @@ def test_robust_se_against_semopy_sandwich(hs):
     s = sample_stats(hs, ITEMS)
     r = fit(build_level(STRUCT, s.names, "configural"), s, estimator="ml_robust")
     e = r.estimates()
-    ours = e[e.parameter == "residual"].set_index("lhs")["se"]
+    ours = e[e.parameter == "residual"].set_index("variable")["se"]
     for item in ITEMS:
         assert ours[item] == pytest.approx(float(ref[item]), rel=0.01), item
 

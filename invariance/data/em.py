@@ -63,7 +63,13 @@ def missing_patterns(x: np.ndarray) -> Patterns:
     """Group the rows of ``x`` (NaN = missing) by their pattern of observed items."""
     x = np.asarray(x, dtype=float)
     obs = ~np.isnan(x)
-    uniq, first, inv = np.unique(obs, axis=0, return_index=True, return_inverse=True)
+    if obs.shape[1] <= 62:
+        # one integer code per row: unique on a 1-d array is far cheaper than on rows
+        codes = obs.astype(np.int64) @ (np.int64(1) << np.arange(obs.shape[1], dtype=np.int64))
+        _, first, inv = np.unique(codes, return_index=True, return_inverse=True)
+        uniq = obs[first]
+    else:
+        uniq, first, inv = np.unique(obs, axis=0, return_index=True, return_inverse=True)
     inv = np.asarray(inv).reshape(-1)
     order = np.lexsort((first, -uniq.sum(axis=1)))
     rank = np.empty_like(order)

@@ -52,7 +52,15 @@ class _GroupData:
             loglik_h1 = em_saturated(x).loglik
         self.loglik_h1 = float(loglik_h1)
         self.n = self.pm.n
-        self.const = float(self.pm.counts @ self.pm.observed.sum(axis=1)) * _LOG2PI
+        self._last: tuple | None = None
+
+    def terms(self, sigma: np.ndarray, mu: np.ndarray):
+        """:func:`pattern_m2ll` with parts, remembered for the last moments (the optimizer
+        asks for the value, the derivatives and the Hessian at the same point)."""
+        key = sigma.tobytes() + mu.tobytes()
+        if self._last is None or self._last[0] != key:
+            self._last = (key, pattern_m2ll(self.pm, sigma, mu, parts=True))
+        return self._last[1]
 
 
 def pattern_m2ll(pm: PatternMoments, sigma: np.ndarray, mu: np.ndarray, *, parts: bool = False):
@@ -114,7 +122,7 @@ class FIMLObjective:
             total = 0.0
             for lay, d in zip(self.layouts, self.data):
                 sigma, mu, _, _ = implied_moments(group_matrices(lay, theta))
-                total += pattern_m2ll(d.pm, sigma, mu)
+                total += d.terms(sigma, mu)[0]
             return -0.5 * total
         except np.linalg.LinAlgError:
             return -np.inf
@@ -135,7 +143,7 @@ class FIMLObjective:
         """Per group: value, factored Jacobian, and the pattern terms (W, d, C)."""
         mats = group_matrices(lay, theta)
         sigma, mu, G, A = implied_moments(mats)
-        val, W, e, C = pattern_m2ll(d.pm, sigma, mu, parts=True)
+        val, W, e, C = d.terms(sigma, mu)
         return mats, G, A, factor_jacobian(lay, mats, G, A), val, W, e, C
 
     def derivatives(self, theta: np.ndarray, *, information: bool = True):

@@ -100,8 +100,8 @@ def information_criteria(loglik: float, q: int, n: int) -> tuple[float, float, f
     """AIC, BIC and sample-size adjusted BIC (Sclove 1987: N* = (N + 2) / 24)."""
     aic = -2 * loglik + 2 * q
     bic = -2 * loglik + q * np.log(n)
-    sabic = -2 * loglik + q * np.log((n + 2) / 24)
-    return float(aic), float(bic), float(sabic)
+    bic_adjusted = -2 * loglik + q * np.log((n + 2) / 24)
+    return float(aic), float(bic), float(bic_adjusted)
 
 
 def mcdonald_centrality(t: float, df: int, n: int) -> float:
@@ -125,7 +125,7 @@ class FitStats:
     loglik_saturated: float
     aic: float
     bic: float
-    sabic: float
+    bic_adjusted: float
     mc: float
     n_params: int
     n: int
@@ -147,7 +147,7 @@ def compute_fit(t: float, df: int, q: int, covs, means, sigmas, mus, ns) -> FitS
     t_b, df_b = baseline_statistic(covs, ns)
     ll_sat = float(sum(-0.5 * ng * (p * np.log(2 * np.pi) + np.linalg.slogdet(S)[1] + p) for S, ng in zip(covs, ns)))
     loglik = ll_sat - 0.5 * t
-    aic, bic, sabic = information_criteria(loglik, q, n)
+    aic, bic, bic_adjusted = information_criteria(loglik, q, n)
     pval = float(stats.chi2.sf(t, df)) if df > 0 else float("nan")
     return FitStats(
         chi2=float(t),
@@ -162,7 +162,7 @@ def compute_fit(t: float, df: int, q: int, covs, means, sigmas, mus, ns) -> FitS
         loglik_saturated=ll_sat,
         aic=aic,
         bic=bic,
-        sabic=sabic,
+        bic_adjusted=bic_adjusted,
         mc=mcdonald_centrality(t, df, n),
         n_params=int(q),
         n=n,

@@ -27,7 +27,7 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass, field
-from typing import Mapping, Protocol, Sequence, runtime_checkable
+from typing import Any, Mapping, Protocol, Sequence, runtime_checkable
 
 import numpy as np
 from scipy import stats as _st
@@ -132,10 +132,14 @@ class MaximumLikelihood:
         ``listwise`` (complete cases only): how :meth:`statistics` treats incomplete rows.
     information
         ``expected`` (default) or ``observed`` information for standard errors.
+    options
+        Further keywords of every fit, as (name, value) pairs (``variances``, ``starts``,
+        ``seed`` of :func:`invariance.estimate.ml.fit`; the pipeline's ``estimation`` section).
     """
 
     incomplete: str = "full_information"
     information: str = "expected"
+    options: tuple[tuple[str, Any], ...] = ()
     name: str = field(default="ml", init=False)
     score_tests: bool = field(default=True, init=False)
 
@@ -146,7 +150,7 @@ class MaximumLikelihood:
         return sample_stats(frame, items, group, groups=groups, missing=method)
 
     def fit(self, spec, stats, *, start=None) -> FitResult:
-        return ml_fit(spec, stats, start=start, estimator=self.name, information=self.information)
+        return ml_fit(spec, stats, start=start, estimator=self.name, information=self.information, **dict(self.options))
 
     def difference(self, restricted, free, stats) -> Difference:
         dt = max(float(restricted.fit.chi2 - free.fit.chi2), 0.0)
@@ -161,6 +165,7 @@ class MaximumLikelihood:
         row.update({k: fs.get(k) for k in FIT_KEYS})
         row.update({k: _num(res.extra.get(k)) for k in ROBUST_KEYS})
         row["problems"] = list(res.problems)
+        row["estimation"] = res.extra.get("estimation")
         row["released"] = [r.to_dict() for r in res.spec.released]
         return row
 
@@ -235,22 +240,26 @@ class DiagonallyWeighted:
     ordinal
         The ordered items (the other items are continuous); ``None``: every item.
     merge
-        Item -> groups of adjacent category values merged into one.
+        (item, groups of adjacent category values merged into one) pairs.
+    options
+        Further keywords of every fit, as (name, value) pairs (``variances``, ``starts``,
+        ``seed`` of :func:`invariance.estimate.dwls_robust.fit_dwls`).
     """
 
     ordinal: tuple[str, ...] | None = None
-    merge: Mapping[str, tuple[tuple[float, ...], ...]] | None = None
+    merge: tuple[tuple[str, tuple[tuple[float, ...], ...]], ...] | None = None
+    options: tuple[tuple[str, Any], ...] = ()
     name: str = field(default="dwls", init=False)
     score_tests: bool = field(default=False, init=False)
 
     def statistics(self, frame, items, group, *, groups=None):
         """Thresholds, polychoric (and polyserial) correlations and their ACOV, complete cases."""
-        merge = None if self.merge is None else {k: [list(b) for b in v] for k, v in self.merge.items()}
+        merge = None if self.merge is None else {k: [list(b) for b in v] for k, v in self.merge}
         continuous = [] if self.ordinal is None else [i for i in items if i not in self.ordinal]
         return ordinal_stats(frame, list(items), group, groups=groups, merge=merge, continuous=continuous)
 
     def fit(self, spec, stats, *, start=None) -> FitResult:
-        return fit_dwls(spec, stats, start=start)
+        return fit_dwls(spec, stats, start=start, **dict(self.options))
 
     def difference(self, restricted, free, stats) -> Difference:
         d = dwls_difference(restricted, free, stats)
@@ -293,7 +302,7 @@ class DiagonallyWeighted:
 
 def estimator_for(name: str, *, incomplete: str = "full_information", scaled_difference: str = "auto",
                   information: str = "expected", ordinal: tuple[str, ...] | None = None,
-                  merge=None) -> Estimator:
+                  merge=None, options: Mapping[str, Any] | None = None) -> Estimator:
     """The estimator called ``name`` with its typed options.
 
     Parameters
@@ -308,13 +317,19 @@ def estimator_for(name: str, *, incomplete: str = "full_information", scaled_dif
         ML family: ``expected`` or ``observed`` information for standard errors.
     ordinal, merge
         ``dwls``: the ordered items (``None``: all) and category merges.
+    options
+        Keywords of every fit (``variances``, ``starts``, ``seed``).
     """
+    opts = tuple(sorted((options or {}).items()))
     if name == "ml":
-        return MaximumLikelihood(incomplete=incomplete, information=information)
+        return MaximumLikelihood(incomplete=incomplete, information=information, options=opts)
     if name == "ml_robust":
-        return RobustML(incomplete=incomplete, information=information, scaled_difference=scaled_difference)
+        return RobustML(incomplete=incomplete, information=information, options=opts,
+                        scaled_difference=scaled_difference)
     if name == "dwls":
         if information != "expected":
             raise SpecificationError("dwls standard errors are the robust sandwich; drop information=.")
-        return DiagonallyWeighted(ordinal=ordinal, merge=merge)
+        pairs = None if merge is None else tuple(
+            (str(k), tuple(tuple(float(x) for x in b) for b in v)) for k, v in merge.items())
+        return DiagonallyWeighted(ordinal=ordinal, merge=pairs, options=opts)
     raise SpecificationError(f"The estimator must be one of {', '.join(ESTIMATOR_NAMES)}; got {name!r}.")

@@ -12,6 +12,8 @@ parameter), ``dm`` arrays shape (u, p).
 
 from __future__ import annotations
 
+import functools
+import weakref
 from dataclasses import dataclass
 
 import numpy as np
@@ -206,30 +208,38 @@ def ml_derivatives(
     mean: np.ndarray,
     fj: "FactoredJacobian",
     *,
+    logdet_s: float = 0.0,
     information: bool = True,
-) -> tuple[np.ndarray, np.ndarray | None, np.ndarray]:
-    """Gradient and expected information of one group's ML discrepancy.
+) -> tuple[float, np.ndarray, np.ndarray | None]:
+    """Discrepancy, gradient and expected information of one group's ML discrepancy.
 
     Uses the factored Jacobian (:func:`factor_jacobian`), so no (u, p, p) array is built.
 
     Returns
     -------
+    F : float
+        The discrepancy (METHODS section 2) with ``logdet_s`` = log|S|.
     grad : (u,) array
         dF/dtheta = tr(Gs S_u) - 2 mu_u' W d, Gs = W - W (S + dd') W.
     info : (u, u) array or None
         E[d2F/dtheta dtheta'] = tr(W dS_u W dS_v) + 2 dm_u' W dm_v.
-    W : (p, p) array
-        Sigma^-1.
+
+    Raises
+    ------
+    numpy.linalg.LinAlgError
+        When Sigma is not positive definite.
     """
     R = np.linalg.cholesky(sigma)
     Rinv = np.linalg.inv(R)
     W = Rinv.T @ Rinv
     d = mean - mu
     Wd = W @ d
-    Gs = W - W @ (S + np.outer(d, d)) @ W
+    WC = W @ S
+    f = 2.0 * np.log(np.diag(R)).sum() + np.trace(WC) - logdet_s - S.shape[0] + d @ Wd
+    Gs = W - (WC + np.outer(Wd, d)) @ W
     grad = factored_gradient(fj, Gs, Wd)
     info = factored_information(fj, gram(fj.H, W)) if information else None
-    return grad, info, W
+    return float(f), grad, info
 
 
 def ml_hessian(
@@ -379,29 +389,41 @@ class FactoredJacobian:
     P: np.ndarray | None
 
 
-def factor_jacobian(lay: GroupLayout, mats: tuple[np.ndarray, ...], G: np.ndarray, A: np.ndarray) -> FactoredJacobian:
-    """The :class:`FactoredJacobian` of one group at its matrices (see :func:`moment_jacobian`)."""
-    psi, alpha = mats[2], mats[5]
+def _factor_pattern(lay: GroupLayout) -> tuple[np.ndarray, ...]:
+    """The theta-free part of a group's factored Jacobian: (ia, ib, ic, s, t0, tsrc, ident)."""
     p, m = lay.p, lay.m
-    C = A @ psi @ G.T
-    Aa = A @ alpha
     k = lay.ent_mat.size
     ia, ib, ic = np.zeros(k, np.int64), np.zeros(k, np.int64), np.zeros(k, np.int64)
-    s, t = np.zeros(k), np.zeros(k)
+    s, t0, tsrc = np.zeros(k), np.zeros(k), np.full(k, -1, np.int64)
     gcol, ccol = p, p + m                                   # offsets of the G and C' blocks
     r, c, _, pos = lay.sel[LAMBDA]
-    ia[pos], ib[pos], s[pos], ic[pos], t[pos] = r, ccol + c, 1.0, r, Aa[c]
+    ia[pos], ib[pos], s[pos], ic[pos], tsrc[pos] = r, ccol + c, 1.0, r, c
     r, c, _, pos = lay.sel[BETA]
-    ia[pos], ib[pos], s[pos], ic[pos], t[pos] = gcol + r, ccol + c, 1.0, gcol + r, Aa[c]
+    ia[pos], ib[pos], s[pos], ic[pos], tsrc[pos] = gcol + r, ccol + c, 1.0, gcol + r, c
     r, c, _, pos = lay.sel[PSI]
     ia[pos], ib[pos], s[pos] = gcol + r, gcol + c, np.where(r == c, 0.5, 1.0)
     r, c, _, pos = lay.sel[THETA]
     ia[pos], ib[pos], s[pos] = r, c, np.where(r == c, 0.5, 1.0)
     r, _, _, pos = lay.sel[NU]
-    ic[pos], t[pos] = r, 1.0
+    ic[pos], t0[pos] = r, 1.0
     r, _, _, pos = lay.sel[ALPHA]
-    ic[pos], t[pos] = gcol + r, 1.0
+    ic[pos], t0[pos] = gcol + r, 1.0
     ident = lay.P.shape[0] == lay.P.shape[1] and np.array_equal(lay.P, np.eye(k))
+    return ia, ib, ic, s, t0, tsrc, ident
+
+
+_PATTERNS: "weakref.WeakKeyDictionary[GroupLayout, tuple]" = weakref.WeakKeyDictionary()
+
+
+def factor_jacobian(lay: GroupLayout, mats: tuple[np.ndarray, ...], G: np.ndarray, A: np.ndarray) -> FactoredJacobian:
+    """The :class:`FactoredJacobian` of one group at its matrices (see :func:`moment_jacobian`)."""
+    pat = _PATTERNS.get(lay)
+    if pat is None:
+        pat = _PATTERNS[lay] = _factor_pattern(lay)
+    ia, ib, ic, s, t0, tsrc, ident = pat
+    C = A @ mats[2] @ G.T
+    Aa = A @ mats[5]
+    t = np.where(tsrc >= 0, Aa[tsrc], t0)
     return FactoredJacobian(np.hstack([G, C.T]), ia, ib, ic, s, t, None if ident else lay.P)
 
 
@@ -427,9 +449,55 @@ def factored_gradient(fj: FactoredJacobian, Gs: np.ndarray, w: np.ndarray) -> np
     return _to_params(fj, g, None)[0]
 
 
-def _pair(X: np.ndarray, i: np.ndarray, j: np.ndarray) -> np.ndarray:
-    """X[..., i, j'] as a (..., k, k) block."""
-    return X[..., i[:, None], j[None, :]]
+def _wsum(weights: np.ndarray | None, X: np.ndarray) -> np.ndarray:
+    """sum_k weights_k X_k over the leading axis (a plain copy for one unweighted slice)."""
+    if weights is None:
+        return X[0] if X.shape[0] == 1 else X.sum(axis=0)
+    return weights[0] * X[0] if X.shape[0] == 1 else np.tensordot(weights, X, axes=1)
+
+
+#: largest n^4 (n the basis size) for which stacked products go through a moment tensor
+_TENSOR_LIMIT = 3_000_000
+
+
+@functools.lru_cache(maxsize=64)
+def _vech_index(n: int) -> np.ndarray:
+    """(n, n) position of entry (i, j) in the lower-triangle vector (symmetric)."""
+    v = np.zeros((n, n), dtype=np.int64)
+    r, c = np.tril_indices(n)
+    v[r, c] = np.arange(r.size)
+    v[c, r] = np.arange(r.size)
+    return v
+
+
+class _PairSums:
+    """Weighted sums over a stack of Gram matrices of entrywise products of gathered blocks:
+    sum_k w_k X_k[i, j'] Y_k[l, m'] for index vectors i, j, l, m.
+
+    One matrix: gathered directly. A stack (missingness patterns) with a small basis:
+    through the moment tensor T = sum_k w_k X_k (x) Y_k, one matrix product (fast BLAS),
+    then gathered; otherwise gathered per pattern and summed.
+    """
+
+    def __init__(self, weights: np.ndarray | None) -> None:
+        self.w = weights
+        self._tensors: dict = {}
+
+    def __call__(self, X: np.ndarray, Y: np.ndarray, i, j, l, m) -> np.ndarray:
+        K, n = X.shape[0], X.shape[1]
+        w = np.ones(K) if self.w is None else self.w
+        if K == 1:
+            return w[0] * X[0][i[:, None], j[None, :]] * Y[0][l[:, None], m[None, :]]
+        if n**4 <= _TENSOR_LIMIT:
+            # symmetric X_k, Y_k: the tensor over their lower triangles suffices
+            key = (id(X), id(Y))
+            T = self._tensors.get(key)
+            if T is None:
+                r, c = np.tril_indices(n)
+                T = self._tensors[key] = (X[:, r, c].T * w) @ Y[:, r, c]
+            v = _vech_index(n)
+            return T[v[i[:, None], j[None, :]], v[l[:, None], m[None, :]]]
+        return np.tensordot(w, X[:, i][:, :, j] * Y[:, l][:, :, m], axes=1)
 
 
 def factored_information(fj: FactoredJacobian, QW: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
@@ -440,11 +508,11 @@ def factored_information(fj: FactoredJacobian, QW: np.ndarray, weights: np.ndarr
     """
     a, b, c = fj.ia, fj.ib, fj.ic
     Q = QW if QW.ndim == 3 else QW[None]
-    wts = np.ones(Q.shape[0]) if weights is None else weights
-    cov = _pair(Q, a, a) * _pair(Q, b, b) + _pair(Q, a, b) * _pair(Q, b, a)
-    mean = _pair(Q, c, c)
-    info = 2.0 * np.outer(fj.s, fj.s) * np.tensordot(wts, cov, axes=1)
-    info += 2.0 * np.outer(fj.t, fj.t) * np.tensordot(wts, mean, axes=1)
+    ps = _PairSums(weights)
+    cov = ps(Q, Q, a, a, b, b) + ps(Q, Q, a, b, b, a)
+    mean = _wsum(weights, Q)[c[:, None], c[None, :]]
+    s, t = fj.s, fj.t
+    info = 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * mean)
     return _to_params(fj, None, info)[1]
 
 
@@ -460,15 +528,16 @@ def factored_moment_hessian(fj: FactoredJacobian, QW: np.ndarray, QM: np.ndarray
     QW = QW if QW.ndim == 3 else QW[None]
     QM = QM if QM.ndim == 3 else QM[None]
     kw = kw if kw.ndim == 2 else kw[None]
-    wts = np.ones(QW.shape[0]) if weights is None else weights
-    Waa, Wbb, Wab, Wba = _pair(QW, a, a), _pair(QW, b, b), _pair(QW, a, b), _pair(QW, b, a)
-    cross = (
-        _pair(QM, b, a) * Wab + _pair(QM, b, b) * Waa + _pair(QM, a, a) * Wbb + _pair(QM, a, b) * Wba
-    )
-    cov = -(Waa * Wbb + Wab * Wba) + cross
-    Y = _pair(QW, a, c) * kw[:, b][:, :, None] + _pair(QW, b, c) * kw[:, a][:, :, None]
-    H = 2.0 * np.outer(fj.s, fj.s) * np.tensordot(wts, cov, axes=1)
-    Ys = fj.s[:, None] * fj.t[None, :] * np.tensordot(wts, Y, axes=1)
-    H += 2.0 * (Ys + Ys.T)
-    H += 2.0 * np.outer(fj.t, fj.t) * np.tensordot(wts, _pair(QW, c, c), axes=1)
+    ps = _PairSums(weights)
+    cross = ps(QM, QW, b, a, a, b) + ps(QM, QW, b, b, a, a) + ps(QM, QW, a, a, b, b) + ps(QM, QW, a, b, b, a)
+    cov = cross - ps(QW, QW, a, a, b, b) - ps(QW, QW, a, b, b, a)
+    # sum_k w_k (W_k[a, c'] kw_k[b] + W_k[b, c'] kw_k[a]) through U = sum_k w_k kw_k (x) W_k
+    w = np.ones(QW.shape[0]) if weights is None else weights
+    n = QW.shape[1]
+    U = ((kw.T * w) @ QW.reshape(QW.shape[0], -1)).reshape(n, n, n)
+    Y = U[b[:, None], a[:, None], c[None, :]] + U[a[:, None], b[:, None], c[None, :]]
+    s, t = fj.s, fj.t
+    Ys = s[:, None] * t[None, :] * Y
+    H = 2.0 * (s[:, None] * s[None, :] * cov + Ys + Ys.T)
+    H += 2.0 * t[:, None] * t[None, :] * _wsum(weights, QW)[c[:, None], c[None, :]]
     return H

@@ -85,11 +85,10 @@ class MLObjective:
         for g, lay in enumerate(self.layouts):
             mats = group_matrices(lay, theta)
             sigma, mu, G, A = implied_moments(mats)
-            f = ml_discrepancy(sigma, mu, self.S[g], self.mean[g], self.logdet_s[g])
-            if not np.isfinite(f):
-                raise np.linalg.LinAlgError("implied covariance not positive definite")
             fj = factor_jacobian(lay, mats, G, A)
-            gg, hh, _ = ml_derivatives(sigma, mu, self.S[g], self.mean[g], fj, information=information)
+            f, gg, hh = ml_derivatives(
+                sigma, mu, self.S[g], self.mean[g], fj, logdet_s=self.logdet_s[g], information=information
+            )
             u = lay.params
             total += self.n[g] * f
             grad[u] += self.n[g] * gg

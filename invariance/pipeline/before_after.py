@@ -20,16 +20,21 @@
 
 from __future__ import annotations
 
-from ..data.ordinal_stats import OrdinalStats
+from typing import Mapping
+import warnings
 
-from ..errors import DataError, SpecificationError
+import numpy as np
+
+from ..data.ordinal_stats import OrdinalStats
+from ..errors import DataError, EstimationError, InvarianceWarning, SpecificationError
+from ..model.levels import build_level
 from ..effects.scores import factor_scores
 from ..data.screening import screen
 from ..decide.structures import compare_structures, group_fit
 from ..spec.load import PipelineSpec, thaw
 from .state import RunState, StageOutput
 
-__all__ = ["stage_screening", "stage_group_fit", "stage_structures", "stage_scores"]
+__all__ = ["stage_screening", "stage_group_fit", "stage_structures", "stage_scores", "reuse_fit"]
 
 
 def _section(spec: PipelineSpec, name: str) -> dict:
@@ -37,8 +42,43 @@ def _section(spec: PipelineSpec, name: str) -> dict:
 
 
 def _fitter(spec: PipelineSpec):
-    """The pipeline's estimator (the per-group and rival fits use the same one)."""
+    """The pipeline's estimator with the run's estimation options (the per-group and
+    rival fits use the same one)."""
     return spec.make_estimator().fit
+
+
+def _same_model(a, b) -> bool:
+    """Do two model specifications have the same entry table?"""
+    return a.groups == b.groups and a.items == b.items and all(
+        np.array_equal(getattr(a, k), getattr(b, k)) for k in ("group", "matrix", "row", "col", "free", "label")
+    ) and np.array_equal(a.value, b.value, equal_nan=True)
+
+
+def reuse_fit(prefit: Mapping, level: str, model):
+    """``(result, notes)`` of a fit an earlier stage made of exactly ``model`` (the
+    configural model fitted group by group in ``group_fit``, kept in
+    ``RunState.extra["prefit"]``), else ``None``."""
+    kept = prefit.get(level)
+    if kept is None or not _same_model(kept[0], model):
+        return None
+    return kept[1], kept[2]
+
+
+def _configural_prefit(spec: PipelineSpec, state: dict, fitter):
+    """Fit the configural model (group by group: it shares nothing) and keep it for the
+    fits stage; returns the single-group results, or ``None`` when they are not available."""
+    stats = state["stats"]
+    model = build_level(spec.structure, stats.names, "configural", reference=state.get("reference"),
+                        released=spec.released, fixed_means=spec.fixed_means)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", InvarianceWarning)
+        try:
+            res = fitter(model, stats)
+        except (EstimationError, np.linalg.LinAlgError):
+            return None
+    notes = [str(w.message) for w in caught if issubclass(w.category, InvarianceWarning)]
+    state["prefit"] = {"configural": (model, res, notes)}
+    return res.extra.get("groups")
 
 
 def stage_screening(spec: PipelineSpec, state: RunState) -> StageOutput:
@@ -68,7 +108,9 @@ def stage_screening(spec: PipelineSpec, state: RunState) -> StageOutput:
 def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
     """Fit the structure in each group separately, before the configural model.
 
-    The rule is ``compare.group_fit``, else ``decision.configural_fit``, else CFI >= .90
+    The configural model is fitted here, group by group (it shares no parameter), and
+    kept for the fits stage (:func:`reuse_fit`); the per-group table reads its
+    single-group results. The rule is ``compare.group_fit``, else ``decision.configural_fit``, else CFI >= .90
     and RMSEA <= .10 (common practice).
     """
     if isinstance(state["stats"], OrdinalStats):
@@ -78,13 +120,18 @@ def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
         )
         return {}
     rule = _section(spec, "compare").get("group_fit") or _section(spec, "decision").get("configural_fit") or {}
+    fitter = _fitter(spec)
+    per_group = _configural_prefit(spec, state, fitter)
+    if per_group is not None:
+        # the configural model's own single-group fits: no second fit of any group
+        fitter = lambda model, stats: per_group[stats.names[0]]  # noqa: E731
     gf = group_fit(
         state["stats"],
         spec.structure,
         cfi_min=float(rule.get("cfi", 0.90)),
         rmsea_max=float(rule.get("rmsea", 0.10)),
         warn=False,
-        fitter=_fitter(spec),
+        fitter=fitter,
     )
     state["group_fit"] = gf
     state.setdefault("warnings", []).extend(gf.messages)

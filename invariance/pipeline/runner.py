@@ -11,6 +11,7 @@ from typing import Any, Mapping
 
 import pandas as pd
 
+from ..progress import Progress
 from ..spec.load import PipelineSpec, load_pipeline, thaw
 from ..version import __version__
 from .crosscheck import stage_crosscheck
@@ -110,9 +111,13 @@ def _context(spec: PipelineSpec, results: dict, quiet: bool) -> dict:
     }
 
 
-def run_stages(spec: PipelineSpec, stages=None, *, executor=None) -> tuple[dict, RunState]:
+def run_stages(spec: PipelineSpec, stages=None, *, executor=None,
+               progress: Progress | None = None) -> tuple[dict, RunState]:
     """Run stages in order (default :data:`~invariance.pipeline.stages.STAGES`); returns
-    (results, the final :class:`~invariance.pipeline.state.RunState`)."""
+    (results, the final :class:`~invariance.pipeline.state.RunState`).
+
+    ``progress`` (optional) is advanced once per stage, with the stage's name as note.
+    """
     state = RunState(executor=executor)
     results: dict = {
         "invariance_version": __version__,
@@ -120,9 +125,13 @@ def run_stages(spec: PipelineSpec, stages=None, *, executor=None) -> tuple[dict,
         "estimator": spec.estimator,
         "seed": spec.seed,
     }
-    for _name, stage in stages if stages is not None else STAGES:
+    for name, stage in stages if stages is not None else STAGES:
+        if progress is not None:
+            progress.update(0, note=name)
         out, state = stage(spec, state)
         results.update(out)
+        if progress is not None:
+            progress.update()
     results["warnings"] = list(dict.fromkeys(state.warnings))
     return results, state
 
@@ -176,7 +185,8 @@ def run(
     stages = STAGES if stages is None else tuple(stages)
     if crosscheck:
         stages = with_stage("crosscheck", stage_crosscheck, table=stages)
-    results, state = run_stages(spec, stages, executor=executor)
+    with Progress(len(stages), label="fitting", quiet=quiet) as bar:
+        results, state = run_stages(spec, stages, executor=executor, progress=bar)
     results = json.loads(to_json(results))
     estimates = _estimates(state.fits)
     if out_dir is not None:

@@ -25,7 +25,7 @@ from ..partial.search import STOP_REASONS, release_search
 from ..spec.load import PipelineSpec, thaw
 from . import robust_stage as _rs
 from .align_stage import stage_alignment
-from .before_after import stage_group_fit, stage_scores, stage_screening, stage_structures
+from .before_after import reuse_fit, stage_group_fit, stage_scores, stage_screening, stage_structures
 from .partial_stage import release_rows, stage_effects
 from .state import RunState, Stage, StageOutput
 
@@ -34,7 +34,7 @@ __all__ = ["STAGES", "Stage", "stage_data", "stage_stats", "stage_levels", "stag
 
 def stage_data(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Read the data, apply missing codes and run the checks (nothing is fitted)."""
-    raw = read_table(spec.data_path, format=spec.data_format)
+    raw = read_table(spec.data_path, format=spec.data_format, sheet=spec.data_sheet)
     frame = apply_missing(raw, spec.missing)
     checked = check_data(
         frame,
@@ -167,7 +167,8 @@ def _fit_level(spec: PipelineSpec, state: RunState, level: str, carried: tuple, 
     """Fit one level, judge it, and search it when it fails: (row, fit, search); messages go to ``notes``."""
     est = state.estimator
     model = state.models[level] if not carried else state.builder.build(level, spec.released + carried)
-    res, caught = quiet_fit(est, model, state.stats)
+    kept = reuse_fit(state.extra.get("prefit", {}), level, model)
+    res, caught = kept if kept is not None else quiet_fit(est, model, state.stats)
     notes.extend(n if n.startswith(f"{level}:") else f"{level}: {n}" for n in caught)
     if accepted is None:
         row = est.level_row(level, res)
@@ -266,11 +267,14 @@ def stage_summary(spec: PipelineSpec, state: RunState) -> StageOutput:
 
 def _dict_stage(stage) -> Stage:
     """A stage still written as ``stage(spec, state: dict) -> dict`` (``stage_group_fit``,
-    owned by the engine work): it sees ``stats`` and returns its warnings in ``warnings``."""
+    owned by the engine work): it sees ``stats`` and ``reference``, returns its warnings in
+    ``warnings`` and the fits it keeps for the fit stage in ``prefit`` (``RunState.extra``)."""
 
     def wrapped(spec: PipelineSpec, state: RunState) -> StageOutput:
-        view = {"stats": state.stats, "warnings": []}
+        view = {"stats": state.stats, "reference": state.reference, "warnings": []}
         out = stage(spec, view)
+        if "prefit" in view:
+            state = state.update(extra={**state.extra, "prefit": view["prefit"]})
         return out, state.warn(*view["warnings"])
 
     wrapped.__name__ = getattr(stage, "__name__", "stage")

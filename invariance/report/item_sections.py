@@ -9,45 +9,23 @@ from . import inputs as I
 from .formatting import fmt_bounded, fnum, level_label
 from .parts import Figure, Section, Table, Text, cell, records_table
 from .plots import dmacs_heatmap, profile_chart
+from .result_tables import flagged_table
+from .table_sections import table_part
 from .sections import ReportInput
 
 __all__ = ["dmacs_values", "section_effects", "section_flagged", "section_profiles"]
 
-FLAG_NAMES = {
-    "item": "Item", "parameter": "Parameter", "factor": "Factor", "groups": "Groups", "level": "Level",
-    "statistic": "Statistic", "lm": "Score test", "score": "Score test", "df": "df", "pvalue": "p",
-    "p": "p", "p_adjusted": "p (adjusted)", "adjusted_pvalue": "p (adjusted)", "dmacs": "dMACS",
-    "dmacs_max": "dMACS (largest)", "test": "Test", "lr_statistic": "LR \u03c7\u00b2", "lr_pvalue": "p (LR)",
-}
-#: Flag fields left out of the table (long per-group lists shown elsewhere).
-FLAG_HIDDEN = ("epc",)
 #: Most markers (rows x groups) in one profile figure: larger sets are split so each fits a page.
 MAX_MARKERS = 90
 KIND_TITLES = {"loading": "Loadings", "intercept": "Intercepts", "threshold": "Thresholds"}
 
 
 def section_flagged(inp: ReportInput) -> Section | None:
-    """Items whose parameters were flagged as differing across groups."""
-    flagged = [f for f in inp.results.get("flagged") or [] if isinstance(f, Mapping)]
-    if not flagged:
+    """Items whose parameters were flagged as differing across groups (``table_flagged``)."""
+    table = flagged_table(inp.results)
+    if table is None:
         return None
-    shown = [{k: v for k, v in f.items() if k not in FLAG_HIDDEN} for f in flagged]
-    tab = records_table(shown, names=FLAG_NAMES, caption="Parameters flagged as differing across groups")
-    first = ["Item", "Parameter", "Factor", "Groups", "Level"]
-    order = [tab.columns.index(c) for c in first if c in tab.columns]
-    order += [k for k in range(len(tab.columns)) if k not in order]
-    tab = Table(
-        tuple(tab.columns[k] for k in order),
-        tuple(tuple(r[k] for k in order) for r in tab.rows),
-        caption=tab.caption,
-        numeric=tuple(tab.is_numeric(k) for k in order),
-    )
-    return Section("flagged", "Flagged items", (
-        tab,
-        Text("A flag says the data disagree with an equality constraint; its size is in the dMACS column "
-             "(rough guides .2 small, .4 medium, .6 large: Nye, Bradburn, Olenick, Bialko & Drasgow 2019).",
-             style="note"),
-    ))
+    return Section("flagged", "Flagged items", (table_part(table),))
 
 
 def _released_rows(entry: Mapping[str, Any] | None, kind: str, rows: dict[str, tuple[str, str]]) -> list[str]:
@@ -80,8 +58,8 @@ def section_profiles(inp: ReportInput) -> Section | None:
         rows: dict[str, tuple[str, str]] = {}
         values: dict[tuple[str, str], tuple[float, float | None]] = {}
         for _, r in sub.iterrows():
-            item = str(r["lhs"])
-            other = r.get("rhs")
+            item = str(r["variable"])
+            other = r.get("other")
             other = "" if other is None or (isinstance(other, float) and other != other) else str(other)
             name = f"{item} \u2190 {other}" if kind == "loading" and other else (f"{item} {other}".strip())
             rows.setdefault(name, (item, other))

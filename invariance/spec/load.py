@@ -20,6 +20,7 @@ from typing import Any, Mapping
 import yaml
 
 from ..decide.compare import DecisionRule, make_rule
+from ..data.read import guess_format
 from ..errors import SpecificationError
 from ..estimate.interface import Estimator, estimator_for
 from ..model.levels import LEVELS, build_level
@@ -70,7 +71,7 @@ class PipelineSpec:
         The pipeline file (``None`` for a dict).
     base_dir
         Folder that relative paths are resolved against.
-    data_path, data_format, group, groups, reference, missing
+    data_path, data_format, data_sheet, group, groups, reference, missing
         Data settings (``missing`` a tuple of codes or a column -> codes mapping).
     structure
         The measurement structure.
@@ -112,6 +113,7 @@ class PipelineSpec:
     base_dir: pathlib.Path
     data_path: pathlib.Path
     data_format: str | None
+    data_sheet: str | int | None
     group: str
     groups: tuple[str, ...] | None
     reference: str | None
@@ -136,11 +138,20 @@ class PipelineSpec:
     def make_estimator(self) -> Estimator:
         """The run's :class:`~invariance.estimate.interface.Estimator` with its typed options."""
         return estimator_for(self.estimator, incomplete=self.incomplete, scaled_difference=self.scaled_difference,
-                             ordinal=self.ordinal, merge=self.merge)
+                             ordinal=self.ordinal, merge=self.merge, options=self.fit_options())
 
     def section(self, name: str, default=None):
         """A top-level section of the document (for stages added later)."""
         return self.document.get(name, default)
+
+    def fit_options(self) -> dict:
+        """Options of every fit of the run that the pipeline sets: ``variances`` and
+        ``starts`` (section ``estimation``) and ``seed`` (keywords of
+        :func:`invariance.estimate.ml.fit`); empty when it sets none."""
+        opts = dict(self.document.get("estimation") or {})
+        if self.seed is not None:
+            opts["seed"] = int(self.seed)
+        return opts
 
     def to_dict(self) -> dict:
         """The validated document as plain dicts and lists."""
@@ -388,6 +399,18 @@ def _structural_steps(doc: Mapping, ordinal) -> tuple[str, ...]:
         )
     return steps
 
+def _sheet(data: Mapping, base_dir: pathlib.Path) -> str | int | None:
+    """``data.sheet``, refused at load time unless the data file is an Excel workbook."""
+    sheet = data.get("sheet")
+    if sheet is None:
+        return None
+    fmt = data.get("format") or guess_format(base_dir / data["path"])
+    if fmt != "excel":
+        raise SpecificationError(
+            f"data.sheet applies to Excel workbooks (.xlsx) only, and {data['path']!r} is read as {fmt}; remove data.sheet."
+        )
+    return sheet
+
 
 def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir: pathlib.Path) -> PipelineSpec:
     """Validate a document and build the :class:`PipelineSpec`."""
@@ -419,6 +442,7 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
         base_dir=base_dir,
         data_path=(base_dir / data["path"]).resolve(),
         data_format=data.get("format"),
+        data_sheet=_sheet(data, base_dir),
         group=data["group"],
         groups=None if groups is None else tuple(str(g) for g in groups),
         reference=None if ref is None else str(ref),
