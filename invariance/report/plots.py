@@ -208,7 +208,7 @@ def profile_chart(
         return None
     n, G = len(rows), len(groups)
     with matplotlib.rc_context(_RC):
-        fig = new_figure(0.9 + 0.26 * n * max(1.0, G / 3))
+        fig = new_figure(max(1.8, 1.2 + 0.26 * n * max(1.0, G / 3)))
         ax = fig.subplots()
         _style_axes(ax)
         rel = set(released)
