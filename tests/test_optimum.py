@@ -180,3 +180,43 @@ def test_warm_start_that_fails_falls_back_to_cold_start(two_optima):
         warm = fit(metric, st, start=np.zeros(metric.n_params))  # implied covariance singular
     assert warm.converged and warm.fit.chi2 == pytest.approx(cold.fit.chi2, abs=1e-6)
     assert warm.extra["estimation"]["starts"]["chosen"] != "warm"
+
+
+def test_running_away_tells_divergence_from_slow_convergence():
+    from invariance.estimate.optimize import RUNAWAY_WINDOW, running_away
+
+    k = np.arange(RUNAWAY_WINDOW + 5)[:, None]
+    slow = 1.0 + 0.9**k * np.array([[1.0, -2.0]])  # linear convergence, rate 0.9
+    away = np.hstack([-0.5 - 0.01 * k * (1 + 0.02 * k), 0.3 + 0.002 * k * (1 + 0.01 * k)])  # steps that grow
+    assert running_away(list(slow)).size == 0
+    assert running_away(list(away)).tolist() == [0, 1]
+    assert running_away(list(away[:RUNAWAY_WINDOW])).size == 0  # not judged before a full window
+
+
+def test_ordinal_collapse_is_caught_early_and_named():
+    import pandas as pd
+
+    from invariance.data.ordinal_stats import ordinal_stats
+    from invariance.estimate.dwls_robust import fit_dwls
+    from invariance.model.ordinal_levels import build_ordinal_level
+    from ordinal_sim import simulate_bifactor
+
+    rng = np.random.default_rng(4)
+    blocks, cuts = np.array([0] * 6 + [1] * 6), np.tile([-1.0, 0.0, 1.0], (12, 1))
+    parts = []
+    for name in sim.GROUPS:
+        lg, ls = np.full(12, 0.6), np.full(12, 0.4)
+        if name == "ridge":
+            lg[8], ls[8] = 0.25, 0.96  # so09 nearly all specific: a collapse waiting to happen
+        y = simulate_bifactor(rng, 800, loads_g=lg, loads_s=ls, blocks=blocks, cuts=cuts)
+        parts.append(pd.DataFrame(y, columns=sim.ITEMS).assign(site=name))
+    st = ordinal_stats(pd.concat(parts, ignore_index=True), list(sim.ITEMS), "site")
+    spec = build_ordinal_level(sim.STRUCTURE, st.names, "configural", st.n_categories)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        res = fit_dwls(spec, st)
+    assert not res.converged and res.status.startswith("estimates diverge")
+    said = [p for p in res.problems if "collapses onto item" in p]
+    assert said and said[0].startswith("in group ") and "grow without bound" in said[0]
+    assert res.extra["estimation"]["optimum"].startswith("no finite optimum")
+    assert np.abs(res.theta).max() < 20  # stopped within tens of iterations, long before loadings near 200

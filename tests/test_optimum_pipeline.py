@@ -99,15 +99,16 @@ def test_nonnegative_variances_reach_the_bounded_optimum(runaway_csv):
 
 
 def test_configural_is_fitted_once_and_the_group_table_reads_it(runaway_csv, monkeypatch):
-    from invariance.pipeline import stages
+    from invariance.estimate import ml
 
-    real, calls = stages.FITTERS["ml"], []
+    real, calls = ml.fit, []
 
     def counting(model, stats, **kw):
         calls.append(model.level)
         return real(model, stats, **kw)
 
-    monkeypatch.setitem(stages.FITTERS, "ml", counting)
+    # every ML fit of the run goes through estimate.ml.fit (the estimator interface calls it)
+    monkeypatch.setattr("invariance.estimate.interface.ml_fit", counting)
     d = invariance.run(_doc(runaway_csv, levels=["configural", "metric"], seed=5), quiet=True).to_dict()
     assert calls.count("configural") == 1
     total = sum(r["chi2"] for r in d["group_fit"]["groups"])

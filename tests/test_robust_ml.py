@@ -286,9 +286,16 @@ def test_saturated_observed_information_equals_expected_at_complete_data_mle(hs)
 def test_api_passes_estimator_and_missing_through(hs):
     from invariance import fit_levels
 
-    r = fit_levels(hs, STRUCT, ["configural"], group="school", estimator="ml_robust", missing="fiml")
+    r = fit_levels(hs, STRUCT, ["configural"], group="school", estimator="ml_robust", incomplete="full_information")
     s = sample_stats(hs, ITEMS, "school")
     ref = fit(build_level(STRUCT, s.names, "configural"), s, estimator="ml_robust")
     assert r["configural"].estimator == "ml_robust"
     assert r["configural"].extra["scaling_factor"] == pytest.approx(ref.extra["scaling_factor"], rel=1e-8)
-    assert r["configural"].extra["missing"][s.names[0]]["method"] == "fiml"
+    # incomplete= means what the pipeline's data.incomplete means: how rows with a
+    # missing item are used (the missing-value codes are not its business)
+    holey = hs.copy()
+    holey.loc[holey.index[:10], ITEMS[0]] = np.nan
+    full = fit_levels(holey, STRUCT, ["configural"], group="school", incomplete="full_information")["configural"]
+    lw = fit_levels(holey, STRUCT, ["configural"], group="school", incomplete="listwise")["configural"]
+    assert full.extra["missing"][s.names[0]]["method"] == "fiml"
+    assert sum(full.group_n) == len(hs) and sum(lw.group_n) == len(hs) - 10

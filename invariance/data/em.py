@@ -246,16 +246,19 @@ class EMResult:
         return EMResult(self.mean[ix], self.cov[np.ix_(ix, ix)], self.loglik, self.iterations, self.converged)
 
 
-def _em_step(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """One EM update of the saturated normal model from the pattern statistics.
+def _em_step(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
+    """One EM update of the saturated normal model from the pattern statistics, and the
+    log-likelihood at the input point (from the same factorizations).
 
     E-step for all patterns at once: with H_k = Sigma W_k (W_k the padded inverse of
     Sigma_oo) the conditional mean of a case is a_k + H_k x_o, a_k = mu - H_k mu_o, and
     the conditional covariance Sigma - H_k Sigma; their sums over a pattern's cases
     need only n_k, m_k and S_k (Little & Rubin 2002, section 11.2).
     """
-    W, _, _ = pattern_terms(pm, mean, cov)
+    W, logdet, d = pattern_terms(pm, mean, cov)
     n = pm.counts
+    quad = np.einsum("kij,kij->k", W, pm.covs) + np.einsum("ki,kij,kj->k", d, W, d)
+    ll = float(-0.5 * n @ (pm.observed.sum(axis=1) * _LOG2PI + logdet + quad))
     H = cov[None] @ W                                            # (K, p, p)
     a = mean[None] - np.einsum("kij,kj->ki", H, mean[None] * pm.observed)
     Hm = np.einsum("kij,kj->ki", H, pm.means)
@@ -266,7 +269,7 @@ def _em_step(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray) -> tuple[np.
     tot = n.sum()
     new_mean = t1 / tot
     new_cov = t2 / tot - np.outer(new_mean, new_mean)
-    return new_mean, (new_cov + new_cov.T) / 2
+    return new_mean, (new_cov + new_cov.T) / 2, ll
 
 
 def _change(m0, c0, m1, c1) -> float:
@@ -310,7 +313,9 @@ def em_saturated(
 
 
 def _squarem_point(pm, mean, cov, m1, c1, m2, c2, ll):
-    """The SQUAREM extrapolation from (mean, cov) through two EM steps, or None."""
+    """The SQUAREM extrapolation from (mean, cov) through two EM steps, stabilized by one
+    EM step, or None when it is not positive definite or its likelihood falls below
+    ``ll`` (the EM step after it cannot lower it again, so the run stays monotone)."""
     p = mean.size
     th0 = np.concatenate([mean, cov.ravel()])
     r = np.concatenate([m1, c1.ravel()]) - th0
@@ -320,40 +325,47 @@ def _squarem_point(pm, mean, cov, m1, c1, m2, c2, ll):
         return None
     th = th0 - 2 * alpha * r + alpha**2 * v
     me, ce = th[:p], th[p:].reshape(p, p)
-    ce = (ce + ce.T) / 2
     try:
-        np.linalg.cholesky(ce)
-        me, ce = _em_step(pm, me, ce)
-        lle = pattern_loglik_moments(pm, me, ce)
+        me2, ce2, lle = _em_step(pm, me, (ce + ce.T) / 2)
     except np.linalg.LinAlgError:
         return None
-    return (me, ce, lle) if lle >= ll else None
+    return (me2, ce2) if lle >= ll else None
+
+
+def _pairwise_start(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Starting means and covariance: available-case moments (each pair over the cases
+    observing both items), or the diagonal of the variances when those are not positive
+    definite."""
+    mean = np.nanmean(x, axis=0)
+    obs = ~np.isnan(x)
+    xc = np.where(obs, x - mean, 0.0)
+    cnt = obs.T.astype(float) @ obs.astype(float)
+    cov = (xc.T @ xc) / np.maximum(cnt, 1.0)
+    try:
+        np.linalg.cholesky(cov)
+        return mean, cov
+    except np.linalg.LinAlgError:
+        var = np.diag(cov)
+        return mean, np.diag(np.where(var > 0, var, 1.0))
 
 
 def _em_run(x: np.ndarray, *, max_iter: int, tol: float) -> EMResult:
     pm = pattern_moments(x)
-    mean = np.nanmean(x, axis=0)
-    var = np.nanvar(x, axis=0)
-    cov = np.diag(np.where(var > 0, var, 1.0))
-    ll = pattern_loglik_moments(pm, mean, cov)
+    mean, cov = _pairwise_start(x)
     converged = False
     steps = 0
     while steps < max_iter:
-        m1, c1 = _em_step(pm, mean, cov)
+        m1, c1, ll = _em_step(pm, mean, cov)
         steps += 1
         if _change(mean, cov, m1, c1) < tol:
             mean, cov, converged = m1, c1, True
             break
-        m2, c2 = _em_step(pm, m1, c1)
+        m2, c2, _ = _em_step(pm, m1, c1)
         steps += 1
         if _change(m1, c1, m2, c2) < tol:
             mean, cov, converged = m2, c2, True
             break
         ext = _squarem_point(pm, mean, cov, m1, c1, m2, c2, ll)
         steps += ext is not None
-        if ext is not None:
-            mean, cov, ll = ext
-        else:
-            mean, cov = m2, c2
-            ll = pattern_loglik_moments(pm, mean, cov)
+        mean, cov = ext if ext is not None else (m2, c2)
     return EMResult(mean, cov, pattern_loglik_moments(pm, mean, cov), steps, converged)

@@ -307,38 +307,38 @@ def second_derivative_part(
     cA, _, _, pA = lay.sel[ALPHA]
     offP = (cP != dP).astype(float)
     if pL.size:
-        Ke[np.ix_(pL, pL)] = 2.0 * Gs[np.ix_(iL, iL)] * Phi[np.ix_(jL, jL)].T
+        Ke[pL[:, None], pL[None, :]] = 2.0 * Gs[iL[:, None], iL[None, :]] * Phi[jL[:, None], jL[None, :]].T
         if pP.size:
             blk = 2.0 * GsG[iL][:, cP] * A[jL][:, dP] + offP[None, :] * 2.0 * GsG[iL][:, dP] * A[jL][:, cP]
-            Ke[np.ix_(pL, pP)] = blk
-            Ke[np.ix_(pP, pL)] = blk.T
+            Ke[pL[:, None], pP[None, :]] = blk
+            Ke[pP[:, None], pL[None, :]] = blk.T
         if pB.size:
             blk = 2.0 * (GsG[iL][:, eB] * Phi[fB][:, jL].T + GsLPhi[iL][:, fB] * A[jL][:, eB])
             blk -= 2.0 * w[iL][:, None] * A[jL][:, eB] * Aa[fB][None, :]
-            Ke[np.ix_(pL, pB)] = blk
-            Ke[np.ix_(pB, pL)] = blk.T
+            Ke[pL[:, None], pB[None, :]] = blk
+            Ke[pB[:, None], pL[None, :]] = blk.T
         if pA.size:
             blk = -2.0 * w[iL][:, None] * A[jL][:, cA]
-            Ke[np.ix_(pL, pA)] = blk
-            Ke[np.ix_(pA, pL)] = blk.T
+            Ke[pL[:, None], pA[None, :]] = blk
+            Ke[pA[:, None], pL[None, :]] = blk.T
     if pB.size:
         blk = (
-            2.0 * AtMA[np.ix_(eB, eB)].T * Phi[np.ix_(fB, fB)]
-            + A[np.ix_(fB, eB)].T * AZA[np.ix_(eB, fB)].T
-            + A[np.ix_(fB, eB)] * AZA[np.ix_(eB, fB)]
+            2.0 * AtMA[eB[:, None], eB[None, :]].T * Phi[fB[:, None], fB[None, :]]
+            + A[fB[:, None], eB[None, :]].T * AZA[eB[:, None], fB[None, :]].T
+            + A[fB[:, None], eB[None, :]] * AZA[eB[:, None], fB[None, :]]
         )
-        Ke[np.ix_(pB, pB)] = blk
+        Ke[pB[:, None], pB[None, :]] = blk
         if pP.size:
             # rows: Psi entries (c, d); cols: B entries (e, f)
-            blk = 2.0 * A[np.ix_(fB, cP)].T * Kf[np.ix_(eB, dP)].T
-            blk += offP[:, None] * 2.0 * A[np.ix_(fB, dP)].T * Kf[np.ix_(eB, cP)].T
-            blk = np.where(offP[:, None] > 0, blk, 2.0 * A[np.ix_(fB, cP)].T * Kf[np.ix_(eB, cP)].T)
-            Ke[np.ix_(pP, pB)] = blk
-            Ke[np.ix_(pB, pP)] = blk.T
+            blk = 2.0 * A[fB[:, None], cP[None, :]].T * Kf[eB[:, None], dP[None, :]].T
+            blk += offP[:, None] * 2.0 * A[fB[:, None], dP[None, :]].T * Kf[eB[:, None], cP[None, :]].T
+            blk = np.where(offP[:, None] > 0, blk, 2.0 * A[fB[:, None], cP[None, :]].T * Kf[eB[:, None], cP[None, :]].T)
+            Ke[pP[:, None], pB[None, :]] = blk
+            Ke[pB[:, None], pP[None, :]] = blk.T
         if pA.size:
-            blk = -2.0 * Atv[eB][:, None] * A[np.ix_(fB, cA)]
-            Ke[np.ix_(pB, pA)] = blk
-            Ke[np.ix_(pA, pB)] = blk.T
+            blk = -2.0 * Atv[eB][:, None] * A[fB[:, None], cA[None, :]]
+            Ke[pB[:, None], pA[None, :]] = blk
+            Ke[pA[:, None], pB[None, :]] = blk.T
     return Ke
 
 
@@ -504,13 +504,18 @@ def factored_information(fj: FactoredJacobian, QW: np.ndarray, weights: np.ndarr
     """Expected information tr(W S_u W S_v) + 2 mu_u' W mu_v from Gram matrices QW = K'WK.
 
     ``QW`` may be a stack (K, n, n) with ``weights`` (K,): the weighted sum is returned
-    (full-information ML: one W per missingness pattern).
+    (full-information ML: one W per missingness pattern); a single (n, n) matrix is
+    unweighted.
     """
     a, b, c = fj.ia, fj.ib, fj.ic
-    Q = QW if QW.ndim == 3 else QW[None]
-    ps = _PairSums(weights)
-    cov = ps(Q, Q, a, a, b, b) + ps(Q, Q, a, b, b, a)
-    mean = _wsum(weights, Q)[c[:, None], c[None, :]]
+    if QW.ndim == 2:
+        Qa, Qb = QW[a], QW[b]
+        cov = Qa[:, a] * Qb[:, b] + Qa[:, b] * Qb[:, a]
+        mean = QW[c[:, None], c[None, :]]
+    else:
+        ps = _PairSums(weights)
+        cov = ps(QW, QW, a, a, b, b) + ps(QW, QW, a, b, b, a)
+        mean = _wsum(weights, QW)[c[:, None], c[None, :]]
     s, t = fj.s, fj.t
     info = 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * mean)
     return _to_params(fj, None, info)[1]
@@ -525,19 +530,25 @@ def factored_moment_hessian(fj: FactoredJacobian, QW: np.ndarray, QM: np.ndarray
     stacked over patterns with ``weights``.
     """
     a, b, c = fj.ia, fj.ib, fj.ic
-    QW = QW if QW.ndim == 3 else QW[None]
-    QM = QM if QM.ndim == 3 else QM[None]
-    kw = kw if kw.ndim == 2 else kw[None]
-    ps = _PairSums(weights)
-    cross = ps(QM, QW, b, a, a, b) + ps(QM, QW, b, b, a, a) + ps(QM, QW, a, a, b, b) + ps(QM, QW, a, b, b, a)
-    cov = cross - ps(QW, QW, a, a, b, b) - ps(QW, QW, a, b, b, a)
-    # sum_k w_k (W_k[a, c'] kw_k[b] + W_k[b, c'] kw_k[a]) through U = sum_k w_k kw_k (x) W_k
-    w = np.ones(QW.shape[0]) if weights is None else weights
-    n = QW.shape[1]
-    U = ((kw.T * w) @ QW.reshape(QW.shape[0], -1)).reshape(n, n, n)
-    Y = U[b[:, None], a[:, None], c[None, :]] + U[a[:, None], b[:, None], c[None, :]]
+    if QW.ndim == 2:
+        # one matrix: gather each block once
+        Wa, Wb, Ma, Mb = QW[a], QW[b], QM[a], QM[b]
+        Waa, Wab, Wba, Wbb = Wa[:, a], Wa[:, b], Wb[:, a], Wb[:, b]
+        cov = Mb[:, a] * Wab + Mb[:, b] * Waa + Ma[:, a] * Wbb + Ma[:, b] * Wba - (Waa * Wbb + Wab * Wba)
+        Y = Wa[:, c] * kw[b][:, None] + Wb[:, c] * kw[a][:, None]
+        QWsum = QW
+    else:
+        ps = _PairSums(weights)
+        cross = ps(QM, QW, b, a, a, b) + ps(QM, QW, b, b, a, a) + ps(QM, QW, a, a, b, b) + ps(QM, QW, a, b, b, a)
+        cov = cross - ps(QW, QW, a, a, b, b) - ps(QW, QW, a, b, b, a)
+        # sum_k w_k (W_k[a, c'] kw_k[b] + W_k[b, c'] kw_k[a]) through U = sum_k w_k kw_k (x) W_k
+        w = np.ones(QW.shape[0]) if weights is None else weights
+        n = QW.shape[1]
+        U = ((kw.T * w) @ QW.reshape(QW.shape[0], -1)).reshape(n, n, n)
+        Y = U[b[:, None], a[:, None], c[None, :]] + U[a[:, None], b[:, None], c[None, :]]
+        QWsum = _wsum(weights, QW)
     s, t = fj.s, fj.t
     Ys = s[:, None] * t[None, :] * Y
     H = 2.0 * (s[:, None] * s[None, :] * cov + Ys + Ys.T)
-    H += 2.0 * t[:, None] * t[None, :] * _wsum(weights, QW)[c[:, None], c[None, :]]
+    H += 2.0 * t[:, None] * t[None, :] * QWsum[c[:, None], c[None, :]]
     return H

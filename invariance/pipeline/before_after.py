@@ -11,8 +11,7 @@
   as configural models, :func:`invariance.structures.compare_structures`. results.json
   ``structures`` (rows) and ``structure_notes`` (equivalences and problems).
 * ``scores`` (only with ``scores: {method, id}``): factor scores from the final accepted
-  model (``state["final_fit"]`` when a partial-invariance stage leaves one, else the fit of
-  the supported level), :func:`invariance.scores.factor_scores`; cases with missing items
+  model (the fit of the supported level, with the releases of the partial search), :func:`invariance.scores.factor_scores`; cases with missing items
   are scored from their observed items when the fit was full-information (or with
   ``scores.incomplete: true``); the table goes to
   scores.csv in the run folder, the summary (level, released constraints, determinacy,
@@ -21,20 +20,19 @@
 
 from __future__ import annotations
 
-import functools
+from typing import Mapping
 import warnings
 
 import numpy as np
 
 from ..data.ordinal_stats import OrdinalStats
-
-from ..decide.compare import supported_level
 from ..errors import DataError, EstimationError, InvarianceWarning, SpecificationError
 from ..model.levels import build_level
 from ..effects.scores import factor_scores
 from ..data.screening import screen
 from ..decide.structures import compare_structures, group_fit
 from ..spec.load import PipelineSpec, thaw
+from .state import RunState, StageOutput
 
 __all__ = ["stage_screening", "stage_group_fit", "stage_structures", "stage_scores", "reuse_fit"]
 
@@ -46,9 +44,7 @@ def _section(spec: PipelineSpec, name: str) -> dict:
 def _fitter(spec: PipelineSpec):
     """The pipeline's estimator with the run's estimation options (the per-group and
     rival fits use the same one)."""
-    from .stages import FITTERS  # stages imports this module: look up at run time
-
-    return functools.partial(FITTERS.get(spec.estimator, FITTERS["ml"]), **spec.fit_options())
+    return spec.make_estimator().fit
 
 
 def _same_model(a, b) -> bool:
@@ -58,10 +54,11 @@ def _same_model(a, b) -> bool:
     ) and np.array_equal(a.value, b.value, equal_nan=True)
 
 
-def reuse_fit(state: dict, level: str, model):
+def reuse_fit(prefit: Mapping, level: str, model):
     """``(result, notes)`` of a fit an earlier stage made of exactly ``model`` (the
-    configural model fitted group by group in ``group_fit``), else ``None``."""
-    kept = state.pop("prefit", {}).get(level)
+    configural model fitted group by group in ``group_fit``, kept in
+    ``RunState.extra["prefit"]``), else ``None``."""
+    kept = prefit.get(level)
     if kept is None or not _same_model(kept[0], model):
         return None
     return kept[1], kept[2]
@@ -84,9 +81,9 @@ def _configural_prefit(spec: PipelineSpec, state: dict, fitter):
     return res.extra.get("groups")
 
 
-def stage_screening(spec: PipelineSpec, state: dict) -> dict:
+def stage_screening(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Screen the items of every group (before any model is fitted)."""
-    checked = state["checked"]
+    checked = state.checked
     opts = _section(spec, "screening")
     out = screen(
         checked.frame,
@@ -99,13 +96,13 @@ def stage_screening(spec: PipelineSpec, state: dict) -> dict:
     )
     rec = out["recommendation"]
     if rec["estimator"] == "ml_robust" and spec.estimator == "ml":
-        state.setdefault("warnings", []).append("screening: " + rec["notes"][0])
+        state = state.warn("screening: " + rec["notes"][0])
     if rec["ordinal_items"]:
-        state.setdefault("warnings", []).append(
+        state = state.warn(
             "screening: items with fewer than five categories are fitted as continuous: "
             + ", ".join(rec["ordinal_items"])
         )
-    return {"screening": out}
+    return {"screening": out}, state
 
 
 def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
@@ -141,19 +138,19 @@ def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
     return {"group_fit": gf.to_dict()}
 
 
-def stage_structures(spec: PipelineSpec, state: dict) -> dict:
+def stage_structures(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Rival structures (only when ``compare.structures`` lists some)."""
     fams = _section(spec, "compare").get("structures")
     if not fams:
-        return {}
-    if isinstance(state["stats"], OrdinalStats):
+        return {}, state
+    if isinstance(state.stats, OrdinalStats):
         raise SpecificationError(
             "compare.structures works on continuous items only; remove it or data.ordinal from the pipeline."
         )
     st = spec.structure
     try:
         cmp_ = compare_structures(
-            state["stats"],
+            state.stats,
             st.factors,
             fams,
             general=st.general,
@@ -162,39 +159,32 @@ def stage_structures(spec: PipelineSpec, state: dict) -> dict:
         )
     except SpecificationError as exc:
         raise SpecificationError(f"compare.structures: {exc}") from None
-    state["structures"] = cmp_
     notes = list(cmp_.notes)
     if st.regressions:
         notes.insert(0, "Rival structures are compared on the measurement part only (factor regressions left out).")
     return {
         "structures": cmp_.to_records(),
         "structure_notes": {"equivalent": list(cmp_.equivalent), "notes": notes},
-    }
+    }, state
 
 
-def _final_fit(state: dict):
-    """The final accepted model: a partial model if a later stage left one, else the supported level."""
-    final = state.get("final_fit")
-    if final is not None:
-        return final
-    best = supported_level(state["level_rows"])
-    return None if best is None else state["fits"].get(best)
+def _final_fit(state: RunState):
+    """The final accepted model: the fit of the supported level (with its releases)."""
+    best = state.supported_level
+    return None if best is None else state.fits.get(best)
 
 
-def stage_scores(spec: PipelineSpec, state: dict) -> dict:
+def stage_scores(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Factor scores per case from the final accepted model (only with a ``scores`` section)."""
     if spec.section("scores") is None:
-        return {}
+        return {}, state
     opts = _section(spec, "scores")
     res = _final_fit(state)
     if res is None:
-        state.setdefault("warnings", []).append(
-            "scores: no level was supported, so no factor scores were written"
-        )
-        return {"scores": None}
-    checked = state["checked"]
+        return {"scores": None}, state.warn("scores: no level was supported, so no factor scores were written")
+    checked = state.checked
     # a full-information fit used every case with an observed item: score those cases too
-    fiml = any(getattr(g, "has_missing", False) for g in state["stats"].groups)
+    fiml = any(getattr(g, "has_missing", False) for g in state.stats.groups)
     frame = checked.frame.copy()
     id_col = opts.get("id")
     if id_col is None:
@@ -202,7 +192,7 @@ def stage_scores(spec: PipelineSpec, state: dict) -> dict:
         id_col = "row" if "row" not in frame.columns else "case_row"
         frame[id_col] = frame.index.to_numpy()
     else:
-        full = state["frame"]
+        full = state.frame
         if id_col not in full.columns:
             raise DataError(f"scores.id names column {id_col!r}, which is not in the data; check the spelling.")
         if id_col in frame.columns:
@@ -218,6 +208,5 @@ def stage_scores(spec: PipelineSpec, state: dict) -> dict:
         id=id_col,
         incomplete=bool(opts.get("incomplete", fiml)),
     )
-    state["scores_table"] = fs.table
-    state.setdefault("warnings", []).extend(f"scores: {n}" for n in fs.notes)
-    return {"scores": fs.to_dict()}
+    state = state.update(scores_table=fs.table).warn(*(f"scores: {n}" for n in fs.notes))
+    return {"scores": fs.to_dict()}, state

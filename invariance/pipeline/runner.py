@@ -9,10 +9,15 @@ from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Any, Mapping
 
+import pandas as pd
+
 from ..progress import Progress
 from ..spec.load import PipelineSpec, load_pipeline, thaw
+from ..version import __version__
+from .crosscheck import stage_crosscheck
 from .output import check_destination, format_table, level_table, to_json, write_outputs
-from .stages import STAGES, stage_data, stage_levels, stage_stats
+from .stages import STAGES, stage_data, stage_levels, stage_stats, with_stage
+from .state import RunState
 
 __all__ = ["RunResult", "run", "check", "default_out_dir"]
 
@@ -77,8 +82,6 @@ def default_out_dir(spec: PipelineSpec) -> pathlib.Path | None:
 
 
 def _estimates(fits: Mapping[str, Any]):
-    import pandas as pd
-
     frames = []
     for lv, res in fits.items():
         est = res.estimates()
@@ -108,15 +111,14 @@ def _context(spec: PipelineSpec, results: dict, quiet: bool) -> dict:
     }
 
 
-def run_stages(spec: PipelineSpec, stages=None, *, extra: dict | None = None,
-               progress: Progress | None = None) -> tuple[dict, dict]:
-    """Run stages in order; returns (results, state).
+def run_stages(spec: PipelineSpec, stages=None, *, executor=None,
+               progress: Progress | None = None) -> tuple[dict, RunState]:
+    """Run stages in order (default :data:`~invariance.pipeline.stages.STAGES`); returns
+    (results, the final :class:`~invariance.pipeline.state.RunState`).
 
     ``progress`` (optional) is advanced once per stage, with the stage's name as note.
     """
-    from .. import __version__
-
-    state: dict = {"warnings": [], **(extra or {})}
+    state = RunState(executor=executor)
     results: dict = {
         "invariance_version": __version__,
         "title": spec.title,
@@ -126,10 +128,11 @@ def run_stages(spec: PipelineSpec, stages=None, *, extra: dict | None = None,
     for name, stage in stages if stages is not None else STAGES:
         if progress is not None:
             progress.update(0, note=name)
-        results.update(stage(spec, state))
+        out, state = stage(spec, state)
+        results.update(out)
         if progress is not None:
             progress.update()
-    results["warnings"] = list(dict.fromkeys(state["warnings"]))
+    results["warnings"] = list(dict.fromkeys(state.warnings))
     return results, state
 
 
@@ -141,6 +144,7 @@ def run(
     crosscheck: bool = False,
     write: bool | None = None,
     executor=None,
+    stages: tuple | None = None,
 ) -> RunResult:
     """Run a pipeline: fit the levels, decide, and write the outputs.
 
@@ -164,6 +168,9 @@ def run(
         An object with a ``map(fn, iterable)`` method (for example
         :class:`invariance.batch.executor.DaskExecutor`) on which the partial-invariance
         search runs its likelihood-ratio refits (``partial.verify: true``); serial otherwise.
+    stages
+        The stage table (default :data:`~invariance.pipeline.stages.STAGES`); build
+        another with :func:`~invariance.pipeline.stages.with_stage`.
 
     Returns
     -------
@@ -175,17 +182,15 @@ def run(
         out_dir = None
     if out_dir is not None:
         check_destination(out_dir)
-    stages = list(STAGES)
+    stages = STAGES if stages is None else tuple(stages)
     if crosscheck:
-        from .crosscheck import stage_crosscheck
-
-        stages.append(("crosscheck", stage_crosscheck))
+        stages = with_stage("crosscheck", stage_crosscheck, table=stages)
     with Progress(len(stages), label="fitting", quiet=quiet) as bar:
-        results, state = run_stages(spec, stages, extra={"executor": executor}, progress=bar)
+        results, state = run_stages(spec, stages, executor=executor, progress=bar)
     results = json.loads(to_json(results))
-    estimates = _estimates(state["fits"])
+    estimates = _estimates(state.fits)
     if out_dir is not None:
-        from ..report import write_reports
+        from ..report import write_reports  # lazy: the report layer loads matplotlib
 
         context = _context(spec, results, quiet)
 
@@ -194,8 +199,8 @@ def run(
             level_table(results).to_csv(folder / "levels.csv", index=False)
             estimates.to_csv(folder / "estimates.csv", index=False)
             (folder / "pipeline.yaml").write_text(spec.text, encoding="utf-8")
-            if state.get("scores_table") is not None:
-                state["scores_table"].to_csv(folder / "scores.csv", index=False)
+            if state.scores_table is not None:
+                state.scores_table.to_csv(folder / "scores.csv", index=False)
             write_reports(folder, results, estimates, context)
 
         out_dir = write_outputs(out_dir, [files])
@@ -210,7 +215,7 @@ def run(
     return RunResult(
         results=_freeze(results),
         estimates=estimates,
-        fits=MappingProxyType(dict(state["fits"])),
+        fits=state.fits,
         spec=spec,
         out_dir=out_dir,
     )
@@ -229,7 +234,7 @@ def check(pipeline) -> dict:
     """
     spec = load_pipeline(pipeline)
     results, state = run_stages(spec, [("data", stage_data), ("stats", stage_stats), ("levels", stage_levels)])
-    checked = state["checked"]
+    checked = state.checked
     return {
         "pipeline": str(spec.source) if spec.source else None,
         "data_file": str(spec.data_path),

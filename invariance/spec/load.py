@@ -22,11 +22,12 @@ import yaml
 from ..decide.compare import DecisionRule, make_rule
 from ..data.read import guess_format
 from ..errors import SpecificationError
+from ..estimate.interface import Estimator, estimator_for
 from ..model.levels import LEVELS, build_level
 from ..model.spec import Release
 from ..model.structure import Structure
 from ..model.ordinal_levels import ORDINAL_LEVELS, build_ordinal_level
-from ..pipeline.align_stage import check_alignment_section
+from .options import PartialSettings, check_alignment_section, partial_settings, structural_settings
 
 __all__ = ["PipelineSpec", "load_pipeline", "parse_yaml", "schema", "validate_document", "thaw"]
 
@@ -95,6 +96,15 @@ class PipelineSpec:
         Ordinal items: item -> tuples of adjacent category values merged into one.
     fixed_means
         Factors whose means stay 0 in every group.
+    incomplete
+        ``data.incomplete``: ``full_information`` or ``listwise`` (ordinal items: always
+        ``listwise``).
+    scaled_difference
+        ``decision.scaled_difference`` as the robust difference method: ``auto`` or ``2010``.
+    partial
+        The ``partial:`` section (:class:`~invariance.spec.options.PartialSettings`).
+    structural
+        The ``structural.levels`` steps, in order.
     """
 
     document: Mapping[str, Any]
@@ -120,6 +130,15 @@ class PipelineSpec:
     ordinal: tuple[str, ...] | None = None
     merge: Mapping[str, tuple[tuple[float, ...], ...]] | None = None
     fixed_means: tuple[str, ...] = ()
+    incomplete: str = "full_information"
+    scaled_difference: str = "auto"
+    partial: PartialSettings = PartialSettings()
+    structural: tuple[str, ...] = ()
+
+    def make_estimator(self) -> Estimator:
+        """The run's :class:`~invariance.estimate.interface.Estimator` with its typed options."""
+        return estimator_for(self.estimator, incomplete=self.incomplete, scaled_difference=self.scaled_difference,
+                             ordinal=self.ordinal, merge=self.merge, options=self.fit_options())
 
     def section(self, name: str, default=None):
         """A top-level section of the document (for stages added later)."""
@@ -331,6 +350,55 @@ def _missing(data: Mapping):
     return tuple(m)
 
 
+def _incomplete(data: Mapping, ordinal) -> str:
+    """``data.incomplete``, read once; ordinal items use complete cases only."""
+    value = data.get("incomplete")
+    if ordinal is not None:
+        if value == "full_information":
+            raise SpecificationError(
+                "data.incomplete: full_information is not available for ordinal items (dwls uses complete cases); "
+                "use listwise or drop the key."
+            )
+        return "listwise"
+    return "full_information" if value is None else str(value)
+
+
+def _scaled_difference(dec: Mapping, estimator: str) -> str:
+    value = dec.get("scaled_difference")
+    if value is not None and estimator != "ml_robust":
+        raise SpecificationError(
+            f"decision.scaled_difference applies to estimator ml_robust, not {estimator}; drop it or set estimator: ml_robust."
+        )
+    return "2010" if value == "strictly_positive" else "auto"
+
+
+def _check_ordinal_sections(doc: Mapping, ordinal) -> None:
+    """Refuse the sections that need continuous-item statistics when items are ordinal."""
+    if ordinal is None:
+        return
+    asked = []
+    if doc.get("scores") is not None:
+        asked.append("scores")
+    if (doc.get("alignment") or {}).get("enabled", False):
+        asked.append("alignment")
+    if (doc.get("compare") or {}).get("structures"):
+        asked.append("compare.structures")
+    if asked:
+        raise SpecificationError(
+            f"{asked[0]} is not available for ordinal items yet; drop it or fit the items as continuous "
+            "(drop data.ordinal)."
+        )
+
+
+def _structural_steps(doc: Mapping, ordinal) -> tuple[str, ...]:
+    steps = structural_settings(doc.get("structural"))
+    if steps and ordinal is not None:
+        raise SpecificationError(
+            "structural levels are not available for ordinal items yet; drop the structural section "
+            "or fit the items as continuous (drop data.ordinal)."
+        )
+    return steps
+
 def _sheet(data: Mapping, base_dir: pathlib.Path) -> str | int | None:
     """``data.sheet``, refused at load time unless the data file is an Excel workbook."""
     sheet = data.get("sheet")
@@ -355,6 +423,7 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
     ordinal, merge, estimator = _ordinal(data, structure, doc.get("estimator"))
     levels = _levels(doc.get("levels", ORDINAL_LEVELS if ordinal else LEVELS), ordinal=ordinal is not None)
     check_alignment_section(doc, structure)
+    _check_ordinal_sections(doc, ordinal)
     dec = doc.get("decision", {})
     rule = make_rule(
         criteria=dec.get("criteria"),
@@ -390,6 +459,10 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
         ordinal=ordinal,
         merge=merge,
         fixed_means=_fixed_means(model, structure),
+        incomplete=_incomplete(data, ordinal),
+        scaled_difference=_scaled_difference(dec, estimator),
+        partial=partial_settings(doc.get("partial")),
+        structural=_structural_steps(doc, ordinal),
     )
 
 
