@@ -221,8 +221,7 @@ def minimize(
         return Outcome(x, f, g, h, 0, it)
     if status == 3:
         return Outcome(x, np.inf, np.full_like(x, np.nan), None, 3, 0)
-    if status == 6:
-        return Outcome(x, f, g, h, 6, it, tuple(int(j) for j in run))
+    first = Outcome(x, f, g, h, 6, it, tuple(int(j) for j in run)) if status == 6 else None
 
     def fun(z):
         try:
@@ -232,12 +231,18 @@ def minimize(
         return v, gr
 
     bounds = None if lower is None else [(lo if np.isfinite(lo) else None, None) for lo in lower]
+    # A suspected run-away gets a second opinion: a slow, steady approach to a finite
+    # optimum in a flat valley looks the same for a while. A short L-BFGS-B probe and a
+    # scoring polish either converge (a false alarm) or run away again, in which case the
+    # first stopping point (closer to the data's scale) is what is reported.
     res = _sopt.minimize(fun, x, jac=True, method="L-BFGS-B", bounds=bounds,
-                         options={"maxiter": 20000, "ftol": 1e-15, "gtol": 1e-9})
+                         options={"maxiter": 300 if first else 20000, "ftol": 1e-15, "gtol": 1e-9})
     x2, f2, g2, h2, st2, it2, run2 = _scoring(obj, res.x, max_iter=max_iter, tol=tol, lower=lower)
     total = it + int(res.nit) + it2
     if st2 == 0:
         return Outcome(x2, f2, g2, h2, 4, total)
+    if first is not None:
+        return Outcome(first.x, first.fun, first.grad, first.info, 6, total, first.running)
     if st2 == 6:
         return Outcome(x2, f2, g2, h2, 6, total, tuple(int(j) for j in run2))
     if f2 is not None and np.isfinite(f2) and g2 is not None:
