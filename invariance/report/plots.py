@@ -19,6 +19,7 @@ from typing import Mapping, Sequence
 
 import matplotlib
 import matplotlib.ticker
+import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
@@ -268,8 +269,6 @@ def dmacs_heatmap(items: Sequence[str], groups: Sequence[str], values: Mapping[t
     """Items-by-groups heat map of dMACS (blank cells: not computed)."""
     if not items or not groups or not values:
         return None
-    import numpy as np
-
     M = np.full((len(items), len(groups)), np.nan)
     for i, it in enumerate(items):
         for j, g in enumerate(groups):
@@ -367,8 +366,6 @@ def guide_chart(
         ax.grid(axis="y", color="#dddddd", linewidth=0.5)
         handles, labels = ax.get_legend_handles_labels()
         if guides:
-            from matplotlib.lines import Line2D
-
             handles.append(Line2D([0], [0], color="black", linestyle="--"))
             labels.append("guide (common practice)")
         foot = bottom_legend(fig, handles, labels, ncols=min(len(labels), 5))
