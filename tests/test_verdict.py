@@ -56,6 +56,13 @@ def test_search_release_makes_the_level_and_later_ones_partial():
     assert "observed sum scores only over the items with no released parameter (F: x1, x2, x4)" in v.text
     assert "observed sum scores can be compared" not in v.text
     assert v.label == "partial strict"
+    # three groups, two of them named: "differs in"; two groups: "differs between" (the
+    # carried record has no groups: the search's record gives them)
+    v = build_verdict(rows, differs={("intercept", "x3", None): ("a", "b")})
+    assert "differs in a, b" in v.text
+    two = [{**r, "released": [{**x, "groups": x["groups"][:2] if x["groups"] else None} for x in r["released"]]}
+           for r in rows]
+    assert "differs between a and b" in build_verdict(two, differs={("intercept", "x3", None): ("a", "b")}).text
 
 
 def test_up_front_releases_count_only_at_or_above_their_level():

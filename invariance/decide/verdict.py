@@ -207,11 +207,12 @@ class Verdict:
 def _released(rows: Sequence[Mapping], row: Mapping, up_front: Sequence[Mapping],
               differs: Mapping[tuple, Sequence[str]]) -> tuple[Released, ...]:
     """The releases of the supported row that count at its level, with where each was found."""
-    found_at = {}
+    found_at, found_in = {}, {}
     for r in rows:
         for x in r.get("released") or ():
             if x.get("source") == "search":
                 found_at.setdefault(_key(x), x.get("level") or r.get("level"))
+                found_in.setdefault(_key(x), x.get("groups"))
     out, seen = [], set()
     level = str(row.get("level"))
     for x in row.get("released") or ():
@@ -219,7 +220,7 @@ def _released(rows: Sequence[Mapping], row: Mapping, up_front: Sequence[Mapping]
             continue
         seen.add(_key(x))
         source = "pipeline" if any(_same(x, u) for u in up_front) else "search"
-        g = x.get("groups")
+        g = x.get("groups") if x.get("groups") is not None else found_in.get(_key(x))  # carried: as found
         d = differs.get(_key(x))
         out.append(Released(
             parameter=str(x.get("parameter")), item=str(x.get("item")), factor=x.get("factor"),
