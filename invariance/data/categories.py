@@ -93,45 +93,60 @@ def category_maps(
                 f"Item {item!r} has the non-integer value {bad[0]!r}; ordered items need integer category codes."
             )
         values = np.unique(pooled)
-        code = np.arange(values.size)
-        for block in merge.get(item, ()):
-            block = sorted(float(v) for v in block)
-            pos = []
-            for v in block:
-                hit = np.flatnonzero(values == v)
-                if not hit.size:
-                    raise SpecificationError(
-                        f"Cannot merge category {_fmt(v)} of item {item!r}: it is not observed; "
-                        f"the categories are {', '.join(_fmt(x) for x in values)}."
-                    )
-                pos.append(int(hit[0]))
-            if len(pos) < 2 or np.any(np.diff(pos) != 1):
-                raise SpecificationError(
-                    f"The merge {[_fmt(v) for v in block]} of item {item!r} must list two or more adjacent categories."
-                )
-            code[pos] = code[pos[0]]
-        # renumber codes 0..K-1 keeping order
-        _, code = np.unique(code, return_inverse=True)
+        code = _merged_codes(item, values, merge.get(item, ()))
         K = int(code.max()) + 1
         if K < 2:
             raise DataError(
                 f"Item {item!r} has a single category in the data; drop it from the ordinal items."
             )
         labels = tuple("+".join(_fmt(v) for v in values[code == c]) for c in range(K))
-        for g, col in zip(groups, cols):
-            used = np.unique(code[np.searchsorted(values, col)])
-            missing = np.setdiff1d(np.arange(K), used)
-            if missing.size:
-                c = int(missing[0])
-                nb = c + 1 if c == 0 else c - 1
-                hint = sorted({labels[c], labels[nb]}, key=labels.index)
-                raise DataError(
-                    f"Item {item!r} has no responses in category {labels[c]} in group {g!r}; "
-                    f"merge it with a neighbouring category (merge: {{{item}: [[{', '.join(h.replace('+', ', ') for h in hint)}]]}}) "
-                    "or drop the item."
-                )
+        _check_used(item, groups, cols, values, code, labels)
         out.append(CategoryMap(str(item), tuple(float(v) for v in values), tuple(int(c) for c in code), labels))
     return tuple(out)
+
+
+def _merged_codes(item: str, values: np.ndarray, blocks: Sequence[Sequence[float]]) -> np.ndarray:
+    """Code 0 .. K - 1 of each observed value after merging the adjacent ``blocks``."""
+    code = np.arange(values.size)
+    for block in blocks:
+        block = sorted(float(v) for v in block)
+        pos = []
+        for v in block:
+            hit = np.flatnonzero(values == v)
+            if not hit.size:
+                raise SpecificationError(
+                    f"Cannot merge category {_fmt(v)} of item {item!r}: it is not observed; "
+                    f"the categories are {', '.join(_fmt(x) for x in values)}."
+                )
+            pos.append(int(hit[0]))
+        if len(pos) < 2 or np.any(np.diff(pos) != 1):
+            raise SpecificationError(
+                f"The merge {[_fmt(v) for v in block]} of item {item!r} must list two or more adjacent categories."
+            )
+        code[pos] = code[pos[0]]
+    # renumber codes 0..K-1 keeping order
+    _, code = np.unique(code, return_inverse=True)
+    return code
+
+
+def _check_used(
+    item: str, groups: Sequence[str], cols: Sequence[np.ndarray], values: np.ndarray, code: np.ndarray,
+    labels: tuple[str, ...],
+) -> None:
+    """Refuse a category that some group never uses, suggesting a merge with a neighbour."""
+    K = len(labels)
+    for g, col in zip(groups, cols):
+        used = np.unique(code[np.searchsorted(values, col)])
+        missing = np.setdiff1d(np.arange(K), used)
+        if missing.size:
+            c = int(missing[0])
+            nb = c + 1 if c == 0 else c - 1
+            hint = sorted({labels[c], labels[nb]}, key=labels.index)
+            raise DataError(
+                f"Item {item!r} has no responses in category {labels[c]} in group {g!r}; "
+                f"merge it with a neighbouring category (merge: {{{item}: [[{', '.join(h.replace('+', ', ') for h in hint)}]]}}) "
+                "or drop the item."
+            )
 
 
 def encode(x: np.ndarray, maps: Sequence[CategoryMap]) -> np.ndarray:

@@ -144,16 +144,7 @@ def ordinal_stats_from_arrays(
     """
     items = tuple(str(i) for i in items)
     names = tuple(str(n) for n in names)
-    clean = []
-    for name, x in zip(names, arrays):
-        x = np.asarray(x, dtype=float)
-        x = x[~np.isnan(x).any(axis=1)]
-        if x.shape[0] < 2 * len(items):
-            raise DataError(
-                f"Group {name!r} has {x.shape[0]} complete cases for {len(items)} ordinal items; "
-                "collect more data for this group, merge it with another, or drop it."
-            )
-        clean.append(x)
+    clean = _complete_cases(arrays, names, len(items))
     cont = np.array([it in set(continuous) for it in items])
     bad = [c for c in continuous if c not in items]
     if bad:
@@ -176,6 +167,27 @@ def ordinal_stats_from_arrays(
         fits = tuple(fits)
     else:
         fits = tuple(polychoric(encode(x, maps), K) for x in clean)
+    _warn_boundary(names, items, fits)
+    return OrdinalStats(items, names, fits, maps)
+
+
+def _complete_cases(arrays: Sequence[np.ndarray], names: tuple[str, ...], n_items: int) -> list[np.ndarray]:
+    """Each group's complete cases; refuses a group with fewer than two cases per item."""
+    clean = []
+    for name, x in zip(names, arrays):
+        x = np.asarray(x, dtype=float)
+        x = x[~np.isnan(x).any(axis=1)]
+        if x.shape[0] < 2 * n_items:
+            raise DataError(
+                f"Group {name!r} has {x.shape[0]} complete cases for {n_items} ordinal items; "
+                "collect more data for this group, merge it with another, or drop it."
+            )
+        clean.append(x)
+    return clean
+
+
+def _warn_boundary(names: tuple[str, ...], items: tuple[str, ...], fits) -> None:
+    """Warn (at the caller of :func:`ordinal_stats_from_arrays`) of a correlation with |r| > .999."""
     for name, f in zip(names, fits):
         i, j = f.pairs
         edge = np.flatnonzero(np.abs(f.corr[i, j]) > 0.999)
@@ -185,9 +197,8 @@ def ordinal_stats_from_arrays(
                 f"The polychoric correlation of {a} and {b} in group {name!r} is at the boundary (|r| > .999); "
                 "the two items may be redundant or a category nearly empty: drop one item or merge categories.",
                 ImproperSolutionWarning,
-                stacklevel=2,
+                stacklevel=3,
             )
-    return OrdinalStats(items, names, fits, maps)
 
 
 def ordinal_stats(

@@ -18,6 +18,8 @@ then the variances of the continuous items, then all correlations in
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 from scipy.special import ndtr
 
@@ -114,92 +116,143 @@ def mixed_statistics(x: np.ndarray, ordinal: np.ndarray, n_categories: np.ndarra
     oi, ci = np.flatnonzero(ordinal), np.flatnonzero(~ordinal)
     K = np.where(ordinal, np.asarray(n_categories, int), 1)
     corr = np.eye(p)
-    # ordered block: thresholds, polychorics and their influence values
-    if oi.size >= 2:
-        pf = polychoric(x[:, oi].astype(np.int64), K[oi])
-        tau_o, if_tau = pf.thresholds, pf.influence[:, : pf.n_thresholds]
-        corr[np.ix_(oi, oi)] = pf.corr
-        po_i, po_j = pf.pairs
-        if_poly = {(int(oi[a]), int(oi[b])): pf.influence[:, pf.n_thresholds + q] for q, (a, b) in enumerate(zip(po_i, po_j))}
-    else:
-        tau_o, _ = marginal_thresholds(x[:, oi].astype(np.int64), K[oi]) if oi.size else (np.zeros((0, 1)), None)
-        if_tau = np.zeros((n, 0))
-        if oi.size:
-            codes = x[:, oi].astype(np.int64)
-            cols = []
-            for k in range(K[oi[0]] - 1):
-                pi = np.mean(codes[:, 0] <= k)
-                cols.append(((codes[:, 0] <= k) - pi) / (_PHI * np.exp(-tau_o[0, k] ** 2 / 2)))
-            if_tau = np.stack(cols, 1)
-        if_poly = {}
+    tau_o, if_tau, corr_o, if_poly = _ordered_block(x, oi, K)
+    if corr_o is not None:
+        corr[np.ix_(oi, oi)] = corr_o
     kmax = max(int(K.max()), 2)
     tau = np.full((p, kmax - 1), np.nan)
     if oi.size:
         tau[oi, : tau_o.shape[1]] = tau_o
-    # continuous block
-    xc = x[:, ci]
-    m = xc.mean(0)
-    d = xc - m
-    var = (d * d).mean(0)
-    sd = np.sqrt(var)
-    z = d / sd
-    if_m, if_v = d, d * d - var
-    if_s = if_v / (2 * sd)
-    rc = (z.T @ z) / n
-    corr[np.ix_(ci, ci)] = rc
-    # polyserial pairs (continuous a, ordered b)
+    cont = _continuous_block(x[:, ci])
+    corr[np.ix_(ci, ci)] = cont.rc
     pairs = np.triu_indices(p, 1)
-    ps = [(a, b) for a, b in zip(*pairs) if ordinal[a] != ordinal[b]]
-    if_ps = {}
-    if ps:
-        c_of = {int(c): k for k, c in enumerate(ci)}
-        o_of = {int(o): k for k, o in enumerate(oi)}
-        cc = np.array([c_of[int(a if not ordinal[a] else b)] for a, b in ps])
-        oo = np.array([o_of[int(b if ordinal[b] else a)] for a, b in ps])
-        ext = np.full((oi.size, kmax + 1), BIG)
-        ext[:, 0] = -BIG
-        ext[:, 1:-1] = np.where(np.isnan(tau[oi]), BIG, tau[oi])
-        y = x[:, oi].astype(np.int64)[:, oo]
-        lo = ext[oo[None, :], y]
-        hi = ext[oo[None, :], y + 1]
-        zz = z[:, cc]
-        rho = polyserial_pairs(zz, lo, hi)
-        s_c = _score(zz, lo, hi, rho)
-        h = 1e-6
-        A = (_score(zz, lo, hi, rho + h).mean(0) - _score(zz, lo, hi, rho - h).mean(0)) / (2 * h)
-        # derivative with respect to the continuous mean and SD (through z)
-        zp_m, zm_m = (d[:, cc] - h) / sd[cc], (d[:, cc] + h) / sd[cc]
-        A_m = (_score(zp_m, lo, hi, rho).mean(0) - _score(zm_m, lo, hi, rho).mean(0)) / (2 * h)
-        zp_s, zm_s = d[:, cc] / (sd[cc] + h), d[:, cc] / (sd[cc] - h)
-        A_s = (_score(zp_s, lo, hi, rho).mean(0) - _score(zm_s, lo, hi, rho).mean(0)) / (2 * h)
-        # derivative with respect to each threshold of the ordered item
-        t_start = np.concatenate([[0], np.cumsum(K[oi] - 1)])
-        for q, (a, b) in enumerate(ps):
-            o, c = oo[q], cc[q]
-            corr_term = s_c[:, q] + A_m[q] * if_m[:, c] + A_s[q] * if_s[:, c]
-            for k in range(K[oi[o]] - 1):
-                e = np.zeros(kmax + 1)
-                e[k + 1] = h
-                yq = y[:, q]
-                up = _score(zz[:, q], (ext[o] + e)[yq], (ext[o] + e)[yq + 1], rho[q]).mean()
-                dn = _score(zz[:, q], (ext[o] - e)[yq], (ext[o] - e)[yq + 1], rho[q]).mean()
-                corr_term = corr_term + (up - dn) / (2 * h) * if_tau[:, t_start[o] + k]
-            if_ps[(int(a), int(b))] = -corr_term / A[q]
-            corr[a, b] = corr[b, a] = rho[q]
-    # Pearson influence
-    if_pc = {}
-    for a in range(ci.size):
-        for b in range(a + 1, ci.size):
-            za, zb = z[:, a], z[:, b]
-            r = rc[a, b]
-            if_pc[(int(ci[a]), int(ci[b]))] = za * zb - r * (za * za + zb * zb) / 2
+    if_ps = _polyserial_block(x, ordinal, K, tau, cont, if_tau, corr)
+    if_pc = _pearson_influence(cont, ci)
     infl_corr, stats_corr = [], []
     for a, b in zip(*pairs):
         key = (int(a), int(b))
         infl_corr.append(if_poly.get(key, if_ps.get(key, if_pc.get(key))))
         stats_corr.append(corr[a, b])
     valid = ~np.isnan(tau)
-    stats = np.concatenate([tau[valid], m, var, np.array(stats_corr)])
-    infl = np.concatenate([if_tau, if_m, if_v, np.stack(infl_corr, 1) if infl_corr else np.zeros((n, 0))], 1)
+    stats = np.concatenate([tau[valid], cont.m, cont.var, np.array(stats_corr)])
+    infl = np.concatenate([if_tau, cont.if_m, cont.if_v, np.stack(infl_corr, 1) if infl_corr else np.zeros((n, 0))], 1)
     acov = infl.T @ infl / (n * n)
     return PolychoricFit(n, K, tau, corr, pairs, stats, acov, infl, 0, continuous=~ordinal)
+
+
+def _ordered_block(x: np.ndarray, oi: np.ndarray, K: np.ndarray):
+    """Thresholds, their influence values, the polychoric block and its influence values.
+
+    Returns ``(tau_o, if_tau, corr_o, if_poly)``: ``corr_o`` is ``None`` with fewer than
+    two ordered items; ``if_poly`` maps an item pair (a, b) to its influence column.
+    """
+    n = x.shape[0]
+    if oi.size >= 2:
+        pf = polychoric(x[:, oi].astype(np.int64), K[oi])
+        po_i, po_j = pf.pairs
+        if_poly = {(int(oi[a]), int(oi[b])): pf.influence[:, pf.n_thresholds + q] for q, (a, b) in enumerate(zip(po_i, po_j))}
+        return pf.thresholds, pf.influence[:, : pf.n_thresholds], pf.corr, if_poly
+    tau_o, _ = marginal_thresholds(x[:, oi].astype(np.int64), K[oi]) if oi.size else (np.zeros((0, 1)), None)
+    if_tau = np.zeros((n, 0))
+    if oi.size:
+        codes = x[:, oi].astype(np.int64)
+        cols = []
+        for k in range(K[oi[0]] - 1):
+            pi = np.mean(codes[:, 0] <= k)
+            cols.append(((codes[:, 0] <= k) - pi) / (_PHI * np.exp(-tau_o[0, k] ** 2 / 2)))
+        if_tau = np.stack(cols, 1)
+    return tau_o, if_tau, None, {}
+
+
+@dataclass(frozen=True)
+class _Continuous:
+    """Moments of the continuous items (divisor N), standardized values and influence values."""
+
+    m: np.ndarray
+    var: np.ndarray
+    sd: np.ndarray
+    d: np.ndarray
+    z: np.ndarray
+    if_m: np.ndarray
+    if_v: np.ndarray
+    if_s: np.ndarray
+    rc: np.ndarray
+
+
+def _continuous_block(xc: np.ndarray) -> _Continuous:
+    """Means, variances, Pearson correlations and influence values of the continuous items."""
+    n = xc.shape[0]
+    m = xc.mean(0)
+    d = xc - m
+    var = (d * d).mean(0)
+    sd = np.sqrt(var)
+    z = d / sd
+    if_v = d * d - var
+    return _Continuous(m=m, var=var, sd=sd, d=d, z=z, if_m=d, if_v=if_v, if_s=if_v / (2 * sd), rc=(z.T @ z) / n)
+
+
+def _polyserial_block(
+    x: np.ndarray, ordinal: np.ndarray, K: np.ndarray, tau: np.ndarray, cont: _Continuous,
+    if_tau: np.ndarray, corr: np.ndarray,
+) -> dict:
+    """Polyserial correlations (written into ``corr``) and their influence values by pair."""
+    p = x.shape[1]
+    oi, ci = np.flatnonzero(ordinal), np.flatnonzero(~ordinal)
+    ps = [(a, b) for a, b in zip(*np.triu_indices(p, 1)) if ordinal[a] != ordinal[b]]
+    if not ps:
+        return {}
+    kmax = tau.shape[1] + 1
+    c_of = {int(c): k for k, c in enumerate(ci)}
+    o_of = {int(o): k for k, o in enumerate(oi)}
+    cc = np.array([c_of[int(a if not ordinal[a] else b)] for a, b in ps])
+    oo = np.array([o_of[int(b if ordinal[b] else a)] for a, b in ps])
+    ext = np.full((oi.size, kmax + 1), BIG)
+    ext[:, 0] = -BIG
+    ext[:, 1:-1] = np.where(np.isnan(tau[oi]), BIG, tau[oi])
+    y = x[:, oi].astype(np.int64)[:, oo]
+    lo = ext[oo[None, :], y]
+    hi = ext[oo[None, :], y + 1]
+    zz = cont.z[:, cc]
+    rho = polyserial_pairs(zz, lo, hi)
+    s_c = _score(zz, lo, hi, rho)
+    h = 1e-6
+    A = (_score(zz, lo, hi, rho + h).mean(0) - _score(zz, lo, hi, rho - h).mean(0)) / (2 * h)
+    # derivative with respect to the continuous mean and SD (through z)
+    d, sd = cont.d, cont.sd
+    zp_m, zm_m = (d[:, cc] - h) / sd[cc], (d[:, cc] + h) / sd[cc]
+    A_m = (_score(zp_m, lo, hi, rho).mean(0) - _score(zm_m, lo, hi, rho).mean(0)) / (2 * h)
+    zp_s, zm_s = d[:, cc] / (sd[cc] + h), d[:, cc] / (sd[cc] - h)
+    A_s = (_score(zp_s, lo, hi, rho).mean(0) - _score(zm_s, lo, hi, rho).mean(0)) / (2 * h)
+    t_start = np.concatenate([[0], np.cumsum(K[oi] - 1)])
+    if_ps = {}
+    for q, (a, b) in enumerate(ps):
+        o, c = oo[q], cc[q]
+        corr_term = s_c[:, q] + A_m[q] * cont.if_m[:, c] + A_s[q] * cont.if_s[:, c]
+        corr_term = _add_threshold_terms(corr_term, zz[:, q], y[:, q], ext[o], rho[q], if_tau[:, t_start[o]:], K[oi[o]], h)
+        if_ps[(int(a), int(b))] = -corr_term / A[q]
+        corr[a, b] = corr[b, a] = rho[q]
+    return if_ps
+
+
+def _add_threshold_terms(
+    corr_term: np.ndarray, zq: np.ndarray, yq: np.ndarray, ext_o: np.ndarray, rho_q: float, if_tau_o: np.ndarray, k_o: int, h: float
+) -> np.ndarray:
+    """Add the thresholds' part of a polyserial influence value, sum_k dS/dtau_k IF_tau_k."""
+    for k in range(k_o - 1):
+        e = np.zeros(ext_o.size)
+        e[k + 1] = h
+        up = _score(zq, (ext_o + e)[yq], (ext_o + e)[yq + 1], rho_q).mean()
+        dn = _score(zq, (ext_o - e)[yq], (ext_o - e)[yq + 1], rho_q).mean()
+        corr_term = corr_term + (up - dn) / (2 * h) * if_tau_o[:, k]
+    return corr_term
+
+
+def _pearson_influence(cont: _Continuous, ci: np.ndarray) -> dict:
+    """Influence values of the Pearson correlations among continuous items, by pair."""
+    if_pc = {}
+    for a in range(ci.size):
+        for b in range(a + 1, ci.size):
+            za, zb = cont.z[:, a], cont.z[:, b]
+            r = cont.rc[a, b]
+            if_pc[(int(ci[a]), int(ci[b]))] = za * zb - r * (za * za + zb * zb) / 2
+    return if_pc

@@ -46,6 +46,7 @@ import numpy as np
 from scipy import stats as _st
 
 from ..errors import DataError, SpecificationError
+from .screening_advice import recommend
 
 __all__ = [
     "item_moments",
@@ -239,88 +240,6 @@ def mardia(x: np.ndarray, *, block: int = 2048) -> dict[str, float]:
     }
 
 
-def recommend(groups: Sequence[dict], *, rules: Mapping[str, float]) -> dict:
-    """Plain recommendation from per-group screening records (see :func:`screen`).
-
-    Returns
-    -------
-    dict
-        ``estimator`` (``ml`` or ``ml_robust``), ``ordinal_items``, ``missing``
-        (``listwise`` or ``full_information``; the names of the pipeline's
-        ``estimator`` and ``data.incomplete`` keys), and ``notes`` (one sentence each).
-    """
-    notes: list[str] = []
-    kurt_groups, item_flags = [], []
-    ordinal: dict[str, int] = {}
-    any_missing = False
-    for g in groups:
-        name = g["group"]
-        mm = g.get("mardia")
-        if mm and mm["kurtosis_p"] < rules["mardia_alpha"] and mm["kurtosis_relative"] > rules["relative_kurtosis"]:
-            kurt_groups.append(name)
-        for it in g["items"]:
-            if it["missing"] and it["missing"] > 0:
-                any_missing = True
-            sk, ku = it["skewness"], it["kurtosis"]
-            if (sk is not None and abs(sk) > rules["item_skewness"]) or (ku is not None and ku > rules["item_kurtosis"]):
-                item_flags.append(f"{it['item']} ({name})")
-            k = it["n_categories"]
-            if 0 < k < rules["ordinal_below_categories"]:
-                ordinal[it["item"]] = max(ordinal.get(it["item"], 0), k)
-            for side in ("floor", "ceiling"):
-                if it[side] is not None and it[side] > rules["floor_ceiling_share"]:
-                    notes.append(
-                        f"Item {it['item']} has {100 * it[side]:.0f}% of its values at the {side} in group {name}; "
-                        "scores near that end are measured poorly."
-                    )
-            for scale, r in (it.get("item_total") or {}).items():
-                if r is not None and r < rules["item_total_min"]:
-                    notes.append(
-                        f"Item {it['item']} correlates {r:.2f} with the rest of scale {scale} in group {name} "
-                        f"(below {rules['item_total_min']:.2f}); check its wording, scoring direction or fit to the scale."
-                    )
-            if it.get("absent_categories"):
-                notes.append(
-                    f"Item {it['item']} has no case in category {', '.join(map(str, it['absent_categories']))} "
-                    f"in group {name}; merge categories before an ordinal multi-group model."
-                )
-        if g["n"] < rules["small_group"]:
-            notes.append(
-                f"Group {name} has {g['n']} cases (under {int(rules['small_group'])}); every test on it will be weak."
-            )
-    robust = bool(kurt_groups or item_flags)
-    head = []
-    if robust:
-        why = []
-        if kurt_groups:
-            why.append("multivariate kurtosis is marked in group " + ", ".join(kurt_groups))
-        if item_flags:
-            why.append("items are strongly skewed or kurtotic: " + ", ".join(item_flags))
-        head.append(
-            "Use robust ML (estimator: ml_robust; scaled test statistics, sandwich standard errors): "
-            + "; ".join(why)
-            + "."
-        )
-    else:
-        head.append("Normal-theory ML is reasonable: no marked multivariate kurtosis and no extreme item.")
-    if ordinal:
-        head.append(
-            "Treat as ordered categories (fewer than "
-            f"{int(rules['ordinal_below_categories'])} categories): " + ", ".join(sorted(ordinal)) + "."
-        )
-    if any_missing:
-        head.append(
-            "Some values are missing: prefer full-information ML (data.incomplete: full_information) to complete cases."
-        )
-    return {
-        "estimator": "ml_robust" if robust else "ml",
-        "ordinal_items": sorted(ordinal),
-        "missing": "full_information" if any_missing else "listwise",
-        "kurtosis_groups": kurt_groups,
-        "notes": head + notes,
-    }
-
-
 # ---------------------------------------------------------------------------
 # pandas edge
 # ---------------------------------------------------------------------------
@@ -438,45 +357,18 @@ def screen(
     items = [str(i) for i in items]
     if not items:
         raise SpecificationError("Screening needs at least one item; list the item columns.")
-    cols = items + ([group] if group else [])
-    missing = [c for c in cols if c not in frame.columns]
+    missing = [c for c in items + ([group] if group else []) if c not in frame.columns]
     if missing:
         raise DataError(f"Column {missing[0]!r} is not in the data; check the spelling or the data file.")
-    rule = {k: v["value"] for k, v in SCREENING_RULES.items()}
-    for k, v in dict(rules or {}).items():
-        if k not in rule:
-            raise SpecificationError(
-                f"Unknown screening rule {k!r}; allowed: {', '.join(sorted(rule))}."
-            )
-        rule[k] = float(v)
+    rule = _screening_rules(rules)
     scales = {"all": items} if scales is None else {str(k): [str(i) for i in v] for k, v in scales.items()}
     for s, its in scales.items():
         bad = [i for i in its if i not in items]
         if bad:
             raise SpecificationError(f"Scale {s!r} names {bad[0]!r}, which is not among the screened items.")
-    try:
-        X = frame[items].to_numpy(dtype=float)
-    except (TypeError, ValueError):
-        raise DataError(
-            "An item column holds values that are not numbers; recode it or declare its missing codes."
-        ) from None
-    if group is None:
-        parts = [("all", X)]
-    else:
-        keys = frame[group]
-        order = list(dict.fromkeys(keys.dropna().tolist())) if groups is None else list(groups)
-        parts = [(str(g), X[(keys == g).to_numpy()]) for g in order]
-        empty = [name for name, x in parts if x.shape[0] == 0]
-        if empty:
-            raise DataError(f"Group {empty[0]!r} has no cases in column {group!r}; check the group names.")
+    parts = _group_parts(frame, items, group, groups)
     pooled = np.concatenate([x for _, x in parts], axis=0)
-    with np.errstate(all="ignore"):
-        low = np.nanmin(np.where(np.isnan(pooled), np.inf, pooled), axis=0)
-        high = np.nanmax(np.where(np.isnan(pooled), -np.inf, pooled), axis=0)
-    for it, (lo, hi) in dict(bounds or {}).items():
-        if it not in items:
-            raise SpecificationError(f"Bounds are given for {it!r}, which is not among the screened items.")
-        low[items.index(it)], high[items.index(it)] = float(lo), float(hi)
+    low, high = _item_bounds(pooled, items, bounds)
     cats: dict[int, np.ndarray] = {}
     for j in range(len(items)):
         col = pooled[:, j]
@@ -489,6 +381,53 @@ def screen(
         "recommendation": recommend(recs, rules=rule),
         "rules": {k: {"value": rule[k], "source": SCREENING_RULES[k]["source"]} for k in rule},
     }
+
+
+def _screening_rules(rules: Mapping[str, float] | None) -> dict[str, float]:
+    """Default rule values with the caller's overrides; refuses an unknown key."""
+    rule = {k: v["value"] for k, v in SCREENING_RULES.items()}
+    for k, v in dict(rules or {}).items():
+        if k not in rule:
+            raise SpecificationError(
+                f"Unknown screening rule {k!r}; allowed: {', '.join(sorted(rule))}."
+            )
+        rule[k] = float(v)
+    return rule
+
+
+def _group_parts(
+    frame, items: list[str], group: str | None, groups: Sequence[str] | None
+) -> list[tuple[str, np.ndarray]]:
+    """(group name, item array) per group, in the given order or that of first appearance."""
+    try:
+        X = frame[items].to_numpy(dtype=float)
+    except (TypeError, ValueError):
+        raise DataError(
+            "An item column holds values that are not numbers; recode it or declare its missing codes."
+        ) from None
+    if group is None:
+        return [("all", X)]
+    keys = frame[group]
+    order = list(dict.fromkeys(keys.dropna().tolist())) if groups is None else list(groups)
+    parts = [(str(g), X[(keys == g).to_numpy()]) for g in order]
+    empty = [name for name, x in parts if x.shape[0] == 0]
+    if empty:
+        raise DataError(f"Group {empty[0]!r} has no cases in column {group!r}; check the group names.")
+    return parts
+
+
+def _item_bounds(
+    pooled: np.ndarray, items: list[str], bounds: Mapping[str, tuple[float, float]] | None
+) -> tuple[np.ndarray, np.ndarray]:
+    """Lowest and highest value of each item: observed over all groups, or given by the caller."""
+    with np.errstate(all="ignore"):
+        low = np.nanmin(np.where(np.isnan(pooled), np.inf, pooled), axis=0)
+        high = np.nanmax(np.where(np.isnan(pooled), -np.inf, pooled), axis=0)
+    for it, (lo, hi) in dict(bounds or {}).items():
+        if it not in items:
+            raise SpecificationError(f"Bounds are given for {it!r}, which is not among the screened items.")
+        low[items.index(it)], high[items.index(it)] = float(lo), float(hi)
+    return low, high
 
 
 def screening_table(result: dict):

@@ -274,13 +274,25 @@ def compare_structures(
         raise SpecificationError(f"The structure {dup[0]!r} is listed twice; list each family once.")
     # build (and validate) every structure before fitting any
     built = {s: build_structure(factors, s, general=general, residual_covariances=residual_covariances) for s in fams}
-    items = built[fams[0]].items
-    stats = _stats_for(data, items, group)
+    stats = _stats_for(data, built[fams[0]].items, group)
+    rows, results = _fit_all(built, stats, per_group=per_group, fitter=fitter)
+    _mark_best(rows)
+    known = equivalences(built)
+    equiv = known + _observed_equivalences(fams, results, known)
+    return StructureComparison(
+        rows=tuple(rows), structures=built, equivalent=tuple(equiv), results=results,
+        notes=_comparison_notes(built, rows, equiv),
+    )
+
+
+def _fit_all(
+    built: Mapping[str, Structure], stats: SampleStats, *, per_group: bool, fitter: Callable | None
+) -> tuple[list[dict], dict]:
+    """Fit every structure to all groups (and, with several groups, to each group alone)."""
     names = stats.names
     multi = len(names) > 1
     rows, results = [], {}
-    for s in fams:
-        st = built[s]
+    for s, st in built.items():
         if multi and per_group:
             for g in names:
                 res, probs = _quiet_fit(st, stats.subset([g]), fitter)
@@ -289,9 +301,13 @@ def compare_structures(
         res, probs = _quiet_fit(st, stats, fitter)
         results[(s, "all")] = res
         rows.append(_row(s, "all", res, probs))
-    _mark_best(rows)
-    equiv = equivalences(built)
-    known = {frozenset(e["structures"]) for e in equiv}
+    return rows, results
+
+
+def _observed_equivalences(fams: Sequence[str], results: Mapping, known_equiv: list[dict]) -> list[dict]:
+    """Pairs not known to be equivalent that fit identically (same chi-square on the same df)."""
+    known = {frozenset(e["structures"]) for e in known_equiv}
+    out = []
     for a in range(len(fams)):
         for b in range(a):
             pa, pb = fams[a], fams[b]
@@ -301,13 +317,18 @@ def compare_structures(
             if ra is None or rb is None or ra.fit.df != rb.fit.df:
                 continue
             if abs(ra.fit.chi2 - rb.fit.chi2) <= 1e-6 * max(1.0, ra.fit.chi2):
-                equiv.append(
+                out.append(
                     {
                         "structures": [pa, pb],
                         "reason": "observed: both fit identically (same chi-square on the same df)",
                         "source": "this fit",
                     }
                 )
+    return out
+
+
+def _comparison_notes(built: Mapping[str, Structure], rows: list[dict], equiv: list[dict]) -> tuple[str, ...]:
+    """Notes on equivalent pairs, a thin bifactor structure and fits with problems."""
     notes = []
     for e in equiv:
         a, b = e["structures"]
@@ -321,9 +342,7 @@ def compare_structures(
     for r in rows:
         if r["problems"]:
             notes.append(f"{r['structure']} in group {r['group']}: " + "; ".join(r["problems"]) + ".")
-    return StructureComparison(
-        rows=tuple(rows), structures=built, equivalent=tuple(equiv), results=results, notes=tuple(notes)
-    )
+    return tuple(notes)
 
 
 @dataclass(frozen=True, eq=False)

@@ -270,11 +270,31 @@ def factor_scores(
     -------
     FactorScores
     """
-    import pandas as pd
-
     if method not in SCORE_METHODS:
         raise SpecificationError(f"The score method must be one of {', '.join(SCORE_METHODS)}; got {method!r}.")
     spec = result.spec
+    ids, id_col, keys = _case_keys(frame, spec, group=group, id=id)
+    X = frame[list(spec.items)].to_numpy(dtype=float)
+    table, dets, vals = _score_groups(result, X, keys, ids, id_col, method=method, incomplete=incomplete)
+    released = tuple(r.to_dict() for r in spec.released)
+    return FactorScores(
+        table=table,
+        method=method,
+        level=spec.level,
+        released=released,
+        determinacy=dets,
+        validity=vals,
+        statement=_statement(spec.level, released, method),
+        id_column=id_col,
+        notes=_score_notes(result, len(table), dets, incomplete=incomplete),
+    )
+
+
+def _case_keys(frame, spec, *, group: str | None, id: str | None) -> tuple[np.ndarray, str, np.ndarray]:
+    """Case ids, the id column's name and each case's group name (``None`` when missing).
+
+    Refuses absent columns, repeated ids and a multi-group model without a group column.
+    """
     items = list(spec.items)
     need = items + [c for c in (group, id) if c]
     miss = [c for c in need if c not in frame.columns]
@@ -286,7 +306,6 @@ def factor_scores(
     id_col = id if id is not None else "row"
     if id is None and "row" in items:
         id_col = "case_row"
-    X = frame[items].to_numpy(dtype=float)
     ids = frame[id].to_numpy() if id is not None else np.arange(len(frame))
     if group is None:
         if len(spec.groups) != 1:
@@ -297,6 +316,16 @@ def factor_scores(
     else:
         keys = frame[group].astype(str).to_numpy(dtype=object)
         keys[frame[group].isna().to_numpy()] = None
+    return ids, id_col, keys
+
+
+def _score_groups(
+    result: FitResult, X: np.ndarray, keys: np.ndarray, ids: np.ndarray, id_col: str, *, method: str, incomplete: bool
+):
+    """Score every group's cases; returns the table (data row order), determinacies and validities."""
+    import pandas as pd
+
+    spec = result.spec
     factors = list(spec.factors)
     parts, dets, vals = [], {}, {}
     for g, gname in enumerate(spec.groups):
@@ -317,27 +346,21 @@ def factor_scores(
     table = pd.concat(parts).sort_index().reset_index(drop=True)
     if not len(table):
         raise DataError("No case could be scored: no group of the model appears in the data.")
+    return table, dets, vals
+
+
+def _score_notes(result: FitResult, n_scored: int, dets: dict, *, incomplete: bool) -> tuple[str, ...]:
+    """Notes on a case count that differs from the fit's and on low factor determinacy."""
     notes = []
     if not incomplete:
         n_model = int(sum(result.group_n))
-        if n_model != len(table):
+        if n_model != n_scored:
             notes.append(
-                f"{len(table)} complete cases were scored but the model used {n_model}; "
+                f"{n_scored} complete cases were scored but the model used {n_model}; "
                 "check that the data are the ones the model was fitted to."
             )
     low = [f"{f} in group {g} ({v:.2f})" for g, d in dets.items() for f, v in d.items() if v < 0.80]
     if low:
         # common practice: determinacy under about .80 makes scores poor stand-ins for the factor
         notes.append("Factor determinacy under .80 (scores are poor stand-ins for the factor): " + ", ".join(low) + ".")
-    released = tuple(r.to_dict() for r in spec.released)
-    return FactorScores(
-        table=table,
-        method=method,
-        level=spec.level,
-        released=released,
-        determinacy=dets,
-        validity=vals,
-        statement=_statement(spec.level, released, method),
-        id_column=id_col,
-        notes=tuple(notes),
-    )
+    return tuple(notes)

@@ -84,6 +84,54 @@ def _with_reference_means(spec: ModelSpec, r: int) -> ModelSpec:
     )
 
 
+def _equal_to_reference(
+    spec: ModelSpec, kind: str, r: int, skip: np.ndarray, *, label: np.ndarray, free: np.ndarray, value: np.ndarray
+) -> None:
+    """Variances or means of every factor equal across groups (``label``, ``free``, ``value`` changed in place).
+
+    A parameter free in the reference group gets one shared free label; one fixed there
+    (identification) fixes the other groups at the reference value under a shared label.
+    """
+    matrix, row, col, group = spec.matrix, spec.row, spec.col, spec.group
+    mat = PSI if kind == "variance" else ALPHA
+    for f_i, f in enumerate(spec.factors):
+        sel = (matrix == mat) & (row == f_i) & ((col == f_i) if mat == PSI else True)
+        ref_ent = np.flatnonzero(sel & (group == r))
+        if ref_ent.size and spec.free[ref_ent[0]]:
+            # free in the reference (not an identification entry): share a label
+            lab = f"{kind}:{f}"
+            for k in np.flatnonzero(sel & ~skip):
+                label[k], free[k] = lab, True
+            continue
+        ref_val = value[ref_ent[0]] if ref_ent.size else 0.0
+        lab = f"{kind}:{f}"
+        ents = np.flatnonzero(sel & ~skip & (group != r))
+        if not ents.size:
+            continue
+        if ref_ent.size:
+            label[ref_ent[0]] = lab
+        for k in ents:
+            label[k], free[k], value[k] = lab, False, ref_val
+
+
+def _share_labels(spec: ModelSpec, kind: str, skip: np.ndarray, so: set, *, label: np.ndarray) -> None:
+    """Factor covariances or structural paths held equal by one shared label each (in place).
+
+    Second-order loadings (``so``, (row, column) B positions) are left to the measurement levels.
+    """
+    kinds = spec.kinds()
+    lhs, rhs = spec.entry_names()
+    mat = PSI if kind == "covariance" else BETA
+    sel = (spec.matrix == mat) & (kinds == kind) & spec.free & ~skip
+    if kind == "path":
+        sel &= ~np.array([(a, b) in so for a, b in zip(spec.row, spec.col)], dtype=bool)
+    for k in np.flatnonzero(sel):
+        if kind == "path":
+            label[k] = f"path:{lhs[k]}<-{rhs[k]}"
+        else:
+            label[k] = f"covariance:{lhs[k]}~{rhs[k]}"
+
+
 def build_structural(
     spec: ModelSpec,
     steps: Iterable[str],
@@ -118,46 +166,17 @@ def build_structural(
     r = spec.groups.index(ref)
     if "means" in steps:
         spec = _with_reference_means(spec, r)
-    kinds = spec.kinds()
-    lhs, rhs = spec.entry_names()
     skip = _released_mask(spec, released)
     label = spec.label.copy()
     free = spec.free.copy()
     value = spec.value.copy()
-    matrix, row, col, group = spec.matrix, spec.row, spec.col, spec.group
     so = {(spec.factors.index(a), spec.factors.index(b)) for a, b in second_order_paths}
     for step in steps:
         kind = structural_parameter(step)
         if kind in ("variance", "mean"):
-            mat = PSI if kind == "variance" else ALPHA
-            for f_i, f in enumerate(spec.factors):
-                sel = (matrix == mat) & (row == f_i) & ((col == f_i) if mat == PSI else True)
-                ref_ent = np.flatnonzero(sel & (group == r))
-                if ref_ent.size and spec.free[ref_ent[0]]:
-                    # free in the reference (not an identification entry): share a label
-                    lab = f"{kind}:{f}"
-                    for k in np.flatnonzero(sel & ~skip):
-                        label[k], free[k] = lab, True
-                    continue
-                ref_val = value[ref_ent[0]] if ref_ent.size else 0.0
-                lab = f"{kind}:{f}"
-                ents = np.flatnonzero(sel & ~skip & (group != r))
-                if not ents.size:
-                    continue
-                if ref_ent.size:
-                    label[ref_ent[0]] = lab
-                for k in ents:
-                    label[k], free[k], value[k] = lab, False, ref_val
+            _equal_to_reference(spec, kind, r, skip, label=label, free=free, value=value)
         else:
-            mat = PSI if kind == "covariance" else BETA
-            sel = (matrix == mat) & (kinds == kind) & spec.free & ~skip
-            if kind == "path":
-                sel &= ~np.array([(a, b) in so for a, b in zip(row, col)], dtype=bool)
-            for k in np.flatnonzero(sel):
-                if kind == "path":
-                    label[k] = f"path:{lhs[k]}<-{rhs[k]}"
-                else:
-                    label[k] = f"covariance:{lhs[k]}~{rhs[k]}"
+            _share_labels(spec, kind, skip, so, label=label)
     base = spec.level.split("+", 1)[0] or "model"
     name = f"{base}+{steps[-1]}" if steps else spec.level
     new = tuple(r_ for r_ in released if r_ not in spec.released)

@@ -76,13 +76,18 @@ class Structure:
         for name, its in factors.items():
             if not its:
                 raise SpecificationError(f"Factor {name!r} has no items; give it at least one item.")
+            # cross-loadings are allowed in every family; keep first-seen order
             for it in its:
-                if it in items and self.family != "bifactor":
-                    # cross-loadings are allowed in every family; keep first-seen order
-                    pass
                 if it not in items:
                     items.append(it)
         object.__setattr__(self, "_items", tuple(items))
+        self._check_family()
+        self._check_regressions()
+        self._check_residual_covariances()
+
+    def _check_family(self) -> None:
+        """The family's demands on the number of factors and on the general factor."""
+        factors = self.factors
         if self.family == "single" and len(factors) != 1:
             raise SpecificationError(
                 f"A single-factor structure has exactly one factor; got {len(factors)} "
@@ -112,6 +117,9 @@ class Structure:
                     "A second-order factor over only two first-order factors is not identified "
                     "without an extra constraint; use the correlated family instead."
                 )
+
+    def _check_regressions(self) -> None:
+        """Every regression names two different known factors."""
         known = set(self.factor_names)
         for out, pred in self.regressions:
             for f in (out, pred):
@@ -122,6 +130,9 @@ class Structure:
                     )
             if out == pred:
                 raise SpecificationError(f"Factor {out!r} cannot be regressed on itself.")
+
+    def _check_residual_covariances(self) -> None:
+        """Every residual covariance names two different items of the structure."""
         for a, b in self.residual_covariances:
             for it in (a, b):
                 if it not in self._items:

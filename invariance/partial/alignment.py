@@ -42,15 +42,25 @@ factor means at once, which the factor-by-factor loss cannot separate.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
-from scipy import optimize as _sopt
 from scipy import stats as _st
 
 from ..errors import SpecificationError
 from ..model.spec import ALPHA, BETA, LAMBDA, NU, PSI
 from ..estimate.result import FitResult
+from .alignment_results import AlignmentResult, ParameterAgreement
+from .alignment_kernels import (
+    EPSILON,
+    fd_jacobian,
+    unpack_solution,
+    aligned_parameters,
+    alignment_loss,
+    implicit_jacobian,
+    simplicity,
+    solve_alignment,
+)
 
 __all__ = [
     "AlignmentResult",
@@ -62,293 +72,6 @@ __all__ = [
     "solve_alignment",
     "implicit_jacobian",
 ]
-
-EPSILON = 0.01
-
-
-# --------------------------------------------------------------------------- kernels
-def simplicity(x: np.ndarray, eps: float = EPSILON) -> tuple[np.ndarray, np.ndarray]:
-    """The component loss f(x) = (x^2 + eps)^(1/4) and its derivative."""
-    q = x * x + eps
-    val = np.sqrt(np.sqrt(q))
-    return val, x / (2.0 * q**0.75)
-
-
-def _unpack(x: np.ndarray, n_groups: int, ref: int) -> tuple[np.ndarray, np.ndarray]:
-    others = np.delete(np.arange(n_groups), ref)
-    a = np.zeros(n_groups)
-    u = np.zeros(n_groups)
-    k = others.size
-    a[others] = x[:k]
-    u[others] = x[k:]
-    return a, u
-
-
-def aligned_parameters(lam0: np.ndarray, nu0: np.ndarray, a: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Aligned loadings and intercepts (G, k) for group means ``a`` and variances ``v``."""
-    s = 1.0 / np.sqrt(v)
-    lam = lam0 * s[:, None]
-    return lam, nu0 - a[:, None] * lam
-
-
-def alignment_loss(
-    x: np.ndarray, lam0: np.ndarray, nu0: np.ndarray, weights: np.ndarray, ref: int, eps: float = EPSILON
-) -> tuple[float, np.ndarray]:
-    """Total alignment loss and its analytic gradient.
-
-    Parameters
-    ----------
-    x
-        Means then log variances of the non-reference groups (length 2(G-1)).
-    lam0, nu0
-        Configural loadings and intercepts, shape (G, k).
-    weights
-        Symmetric (G, G) pair weights with a zero diagonal.
-    ref
-        Index of the reference group (mean 0, variance 1).
-    """
-    G = lam0.shape[0]
-    a, u = _unpack(x, G, ref)
-    lam, nu = aligned_parameters(lam0, nu0, a, np.exp(u))
-    total = 0.0
-    grads = []
-    for P in (lam, nu):
-        D = P[:, None, :] - P[None, :, :]
-        val, der = simplicity(D, eps)
-        total += 0.5 * float(np.sum(weights[:, :, None] * val))
-        grads.append(np.einsum("gh,ghi->gi", weights, der))
-    gL, gN = grads
-    grad_a = -np.sum(gN * lam, axis=1)
-    grad_u = np.sum(-0.5 * gL * lam + 0.5 * gN * a[:, None] * lam, axis=1)
-    others = np.delete(np.arange(G), ref)
-    return total, np.concatenate([grad_a[others], grad_u[others]])
-
-
-def _heuristic_start(lam0: np.ndarray, nu0: np.ndarray, ref: int) -> np.ndarray:
-    G = lam0.shape[0]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = np.abs(lam0) / np.abs(lam0[ref])[None, :]
-        sd = np.nanmedian(np.where(np.isfinite(ratio) & (ratio > 0), ratio, np.nan), axis=1)
-        sd = np.where(np.isfinite(sd), sd, 1.0)
-        lam = lam0 / sd[:, None]
-        a = np.nanmedian(np.where(np.abs(lam) > 1e-8, (nu0 - nu0[ref][None, :]) / lam, np.nan), axis=1)
-    a = np.where(np.isfinite(a), a, 0.0)
-    others = np.delete(np.arange(G), ref)
-    return np.concatenate([a[others], 2.0 * np.log(sd[others])])
-
-
-def solve_alignment(
-    lam0: np.ndarray,
-    nu0: np.ndarray,
-    weights: np.ndarray,
-    ref: int,
-    *,
-    eps: float = EPSILON,
-    random_starts: int = 4,
-    seed: int = 0,
-) -> tuple[np.ndarray, float, bool]:
-    """Minimize the alignment loss from several starts; returns ``(x, loss, converged)``.
-
-    Starts: equal means and variances; a median-ratio guess; ``random_starts``
-    seeded perturbations of the guess. The best converged solution wins.
-    """
-    G = lam0.shape[0]
-    rng = np.random.default_rng(seed)
-    guess = _heuristic_start(lam0, nu0, ref)
-    starts = [np.zeros(2 * (G - 1)), guess]
-    starts += [guess + rng.normal(scale=0.3, size=guess.size) for _ in range(random_starts)]
-    # the weights are rescaled to sum 1 over pairs: the same minimizer, and gradients of
-    # order one, so the optimizer's tolerances mean the same for 2 groups or 80
-    scale = 2.0 / max(float(weights.sum()), 1e-300)
-    w = weights * scale
-    best = None
-    for x0 in starts:
-        res = _sopt.minimize(
-            alignment_loss, x0, args=(lam0, nu0, w, ref, eps), jac=True, method="BFGS",
-            options={"gtol": 1e-8, "maxiter": 2000},
-        )
-        # "precision loss" stops at the floating-point limit: accept a small gradient
-        ok = bool(res.success) or float(np.max(np.abs(res.jac))) < 1e-6
-        key = (not ok, float(res.fun))
-        if best is None or key < best[0]:
-            best = (key, res.x, float(res.fun) / scale, ok)
-    return best[1], best[2], best[3]
-
-
-def _fd_jacobian(fun, x: np.ndarray, h: float = 1e-5) -> np.ndarray:
-    """Central-difference Jacobian of a vector function."""
-    cols = []
-    for j in range(x.size):
-        e = np.zeros_like(x)
-        step = h * max(1.0, abs(x[j]))
-        e[j] = step
-        cols.append((fun(x + e) - fun(x - e)) / (2 * step))
-    return np.column_stack(cols)
-
-
-def implicit_jacobian(
-    x: np.ndarray, lam0: np.ndarray, nu0: np.ndarray, weights: np.ndarray, ref: int, *, eps: float = EPSILON
-) -> np.ndarray:
-    """Derivative of the aligned solution with respect to the configural estimates.
-
-    At a minimum ``grad_x F(x, c) = 0``, so ``dx/dc = -H_xx^-1 H_xc`` (implicit function
-    theorem); both blocks are central differences of the analytic gradient. ``c`` is
-    ``(lam0.ravel(), nu0.ravel())``. Returns a (2(G-1), 2Gk) array (nan if H_xx is singular).
-    """
-    G, k = lam0.shape
-    c0 = np.concatenate([lam0.ravel(), nu0.ravel()])
-    H = _fd_jacobian(lambda xx: alignment_loss(xx, lam0, nu0, weights, ref, eps)[1], x)
-    H = (H + H.T) / 2
-    Hc = _fd_jacobian(
-        lambda cc: alignment_loss(x, cc[: G * k].reshape(G, k), cc[G * k :].reshape(G, k), weights, ref, eps)[1], c0
-    )
-    try:
-        return -np.linalg.solve(H, Hc)
-    except np.linalg.LinAlgError:
-        return np.full((x.size, c0.size), np.nan)
-
-
-# --------------------------------------------------------------------------- results
-@dataclass(frozen=True)
-class ParameterAgreement:
-    """How far one item parameter agrees across groups after alignment.
-
-    Attributes
-    ----------
-    factor, item, parameter
-        Where the parameter sits; ``parameter`` is ``loading`` or ``intercept``.
-    aligned, se
-        Group -> aligned value and its standard error.
-    invariant, noninvariant
-        Groups inside / outside the invariant set.
-    value
-        N-weighted mean of the aligned values in the invariant set.
-    r2
-        Share of the across-group variance of the configural parameter explained by
-        the aligned factor means and variances with one common item parameter
-        (1 = fully invariant); ``nan`` when the configural values do not vary.
-    loss
-        This parameter's part of the total alignment loss.
-    """
-
-    factor: str
-    item: str
-    parameter: str
-    aligned: dict
-    se: dict
-    invariant: tuple[str, ...]
-    noninvariant: tuple[str, ...]
-    value: float
-    r2: float
-    loss: float
-
-    def to_dict(self) -> dict:
-        return {
-            "factor": self.factor,
-            "item": self.item,
-            "parameter": self.parameter,
-            "value": _num(self.value),
-            "r2": _num(self.r2),
-            "loss": _num(self.loss),
-            "invariant": list(self.invariant),
-            "noninvariant": list(self.noninvariant),
-            "aligned": {g: _num(v) for g, v in self.aligned.items()},
-            "se": {g: _num(v) for g, v in self.se.items()},
-        }
-
-
-@dataclass(frozen=True)
-class AlignmentResult:
-    """Aligned factor means and variances of every group, with item agreement.
-
-    ``means`` and ``variances`` map factor -> group -> value (reference group 0 and 1);
-    ``means_se`` and ``variances_se`` the same for standard errors (0 in the reference
-    group, which is fixed).
-    """
-
-    groups: tuple[str, ...]
-    reference: str
-    factors: tuple[str, ...]
-    means: dict
-    variances: dict
-    means_se: dict
-    variances_se: dict
-    loss: dict
-    converged: dict
-    parameters: tuple[ParameterAgreement, ...]
-    notes: tuple[str, ...] = ()
-    settings: dict = field(default_factory=dict)
-
-    def flagged(self, parameter: str | None = None) -> list[tuple[str, str, str, str]]:
-        """(factor, item, parameter, group) of every noninvariant group of a parameter."""
-        return [
-            (p.factor, p.item, p.parameter, g)
-            for p in self.parameters
-            if parameter is None or p.parameter == parameter
-            for g in p.noninvariant
-        ]
-
-    def table(self):
-        """Aligned means and variances as a pandas DataFrame (factor, group, ...)."""
-        import pandas as pd
-
-        rows = [
-            {
-                "factor": f,
-                "group": g,
-                "mean": self.means[f][g],
-                "mean_se": self.means_se[f][g],
-                "variance": self.variances[f][g],
-                "variance_se": self.variances_se[f][g],
-            }
-            for f in self.factors
-            for g in self.groups
-        ]
-        return pd.DataFrame(rows)
-
-    def parameter_table(self):
-        """One row per factor, item parameter and group: aligned value, SE, in the invariant set."""
-        import pandas as pd
-
-        rows = [
-            {
-                "factor": p.factor,
-                "item": p.item,
-                "parameter": p.parameter,
-                "group": g,
-                "aligned": p.aligned[g],
-                "se": p.se[g],
-                "invariant": g in p.invariant,
-                "set_value": p.value,
-                "r2": p.r2,
-            }
-            for p in self.parameters
-            for g in self.groups
-        ]
-        return pd.DataFrame(rows)
-
-    def to_dict(self) -> dict:
-        """Plain types for results.json (section ``alignment``)."""
-        conv = lambda d: {f: {g: _num(v) for g, v in dd.items()} for f, dd in d.items()}
-        return {
-            "reference": self.reference,
-            "groups": list(self.groups),
-            "means": conv(self.means),
-            "variances": conv(self.variances),
-            "means_se": conv(self.means_se),
-            "variances_se": conv(self.variances_se),
-            "loss": {f: _num(v) for f, v in self.loss.items()},
-            "converged": dict(self.converged),
-            "parameters": [p.to_dict() for p in self.parameters],
-            "notes": list(self.notes),
-            "settings": dict(self.settings),
-        }
-
-
-def _num(v) -> float | None:
-    v = float(v)
-    return v if np.isfinite(v) else None
-
 
 # --------------------------------------------------------------------------- front door
 def _factor_layout(result: FitResult) -> dict[int, list[int]]:
@@ -441,6 +164,193 @@ def _invariant_set(values: np.ndarray, cov: np.ndarray, n: np.ndarray, a_pair: f
     return member
 
 
+def _settings(epsilon: float, alpha_pairwise: float, alpha_set: float) -> dict:
+    """The alignment's settings as recorded in its result."""
+    return {
+        "epsilon": epsilon,
+        "weights": "sqrt(N_g N_h)",
+        "alpha_pairwise": alpha_pairwise,
+        "alpha_set": alpha_set,
+        "standard_errors": "delta method through the implicit solution (finite-difference Hessians)",
+    }
+
+
+def _reference_index(spec, reference: str | None) -> tuple[tuple[str, ...], str, int]:
+    """Group names, the reference group's name and its index; refuses a bad reference."""
+    groups = tuple(spec.groups)
+    ref_name = reference if reference is not None else (spec.reference or groups[0])
+    if ref_name not in groups:
+        raise SpecificationError(
+            f"The alignment reference group {ref_name!r} is not among the groups ({', '.join(groups)})."
+        )
+    if len(groups) < 2:
+        raise SpecificationError("Alignment compares groups; the model has only one group.")
+    return groups, ref_name, groups.index(ref_name)
+
+
+@dataclass(frozen=True)
+class _FactorBlock:
+    """Configural loadings and intercepts of one factor's items, reflected to positive.
+
+    ``lam_ix`` and ``nu_ix`` are (G, k) indices into the configural estimates; ``sign``
+    is -1 in the groups whose loadings were reflected.
+    """
+
+    lam_ix: np.ndarray
+    nu_ix: np.ndarray
+    lam0: np.ndarray
+    nu0: np.ndarray
+    sign: np.ndarray
+
+
+def _factor_block(result: FitResult, f: int, items: list[int]) -> _FactorBlock:
+    """Collect one factor's configural loadings and intercepts, reflecting negative groups."""
+    spec = result.spec
+    G = len(spec.groups)
+    lam_ix = np.array([[_param_of(spec, g, LAMBDA, i, f) for i in items] for g in range(G)])
+    nu_ix = np.array([[_param_of(spec, g, NU, i, 0) for i in items] for g in range(G)])
+    lam0 = result.theta[lam_ix]
+    sign = np.where(lam0.sum(axis=1) < 0, -1.0, 1.0)
+    return _FactorBlock(lam_ix, nu_ix, lam0 * sign[:, None], result.theta[nu_ix], sign)
+
+
+def _delta_covariances(
+    x: np.ndarray, block: _FactorBlock, weights: np.ndarray, ref: int, epsilon: float, acov: np.ndarray | None
+) -> tuple[np.ndarray, np.ndarray, bool]:
+    """Covariances of the solution ``x`` and of the aligned item parameters (delta method).
+
+    The Jacobian runs through the implicit solution ``x(c)``, ``c = (lam0, nu0)``.
+    Returns ``(Vx, VP, flat)``: VP is ordered loadings then intercepts, group-major;
+    ``flat`` is true when the loss is flat at its minimum (no finite Jacobian).
+    """
+    lam0, nu0 = block.lam0, block.nu0
+    G, k = lam0.shape
+    c0 = np.concatenate([lam0.ravel(), nu0.ravel()])
+    J = implicit_jacobian(x, lam0, nu0, weights, ref, eps=epsilon)
+    flat = not np.all(np.isfinite(J))
+
+    def params_of(cc, xx):
+        aa, uu = unpack_solution(xx, G, ref)
+        ll, nn = aligned_parameters(cc[: G * k].reshape(G, k), cc[G * k :].reshape(G, k), aa, np.exp(uu))
+        return np.concatenate([ll.ravel(), nn.ravel()])
+
+    Pc = fd_jacobian(lambda cc: params_of(cc, x), c0)
+    Px = fd_jacobian(lambda xx: params_of(c0, xx), x)
+    if acov is None:
+        return np.full((x.size, x.size), np.nan), np.full((2 * G * k, 2 * G * k), np.nan), flat
+    cix = np.concatenate([block.lam_ix.ravel(), block.nu_ix.ravel()])
+    csign = np.concatenate([np.repeat(block.sign, k), np.ones(G * k)])
+    Vc = acov[np.ix_(cix, cix)] * np.outer(csign, csign)
+    D = Pc + Px @ J
+    return J @ Vc @ J.T, D @ Vc @ D.T, flat
+
+
+def _agreement(
+    *,
+    fname: str,
+    item: str,
+    kind: str,
+    vals: np.ndarray,
+    cov: np.ndarray,
+    configural: np.ndarray,
+    predicted,
+    groups: tuple[str, ...],
+    n: np.ndarray,
+    weights: np.ndarray,
+    epsilon: float,
+    alphas: tuple[float, float],
+) -> ParameterAgreement:
+    """Invariant set, set value, R-squared and loss share of one aligned item parameter.
+
+    ``predicted`` maps the set value to the configural values it implies.
+    """
+    G = vals.size
+    if np.all(np.isfinite(cov)):
+        member = _invariant_set(vals, cov, n, *alphas)
+    else:
+        member = np.ones(G, dtype=bool)
+    w = np.where(member, n, 0.0)
+    value = float(w @ vals / w.sum())
+    var0 = np.var(configural)
+    r2 = 1.0 - np.var(configural - predicted(value)) / var0 if var0 > 1e-14 else np.nan
+    D = vals[:, None] - vals[None, :]
+    part = 0.5 * float(np.sum(weights * simplicity(D, epsilon)[0]))
+    return ParameterAgreement(
+        factor=fname,
+        item=item,
+        parameter=kind,
+        aligned={g: float(vals[h]) for h, g in enumerate(groups)},
+        se={g: float(np.sqrt(max(cov[h, h], 0.0))) for h, g in enumerate(groups)},
+        invariant=tuple(g for h, g in enumerate(groups) if member[h]),
+        noninvariant=tuple(g for h, g in enumerate(groups) if not member[h]),
+        value=value,
+        r2=float(r2),
+        loss=part,
+    )
+
+
+def _factor_agreements(
+    *, fname: str, items: list[int], spec, block: _FactorBlock, a: np.ndarray, v: np.ndarray,
+    VP: np.ndarray, n: np.ndarray, weights: np.ndarray, epsilon: float, alphas: tuple[float, float],
+) -> list[ParameterAgreement]:
+    """Agreement of every loading and intercept of one factor's items."""
+    lam, nu = aligned_parameters(block.lam0, block.nu0, a, v)
+    G, k = lam.shape
+    sd_ = np.sqrt(v)
+    out = []
+    for kind, P, P0, off in (("loading", lam, block.lam0, 0), ("intercept", nu, block.nu0, G * k)):
+        for j, i in enumerate(items):
+            idx = off + np.arange(G) * k + j
+            # configural value predicted with one common parameter (value)
+            if kind == "loading":
+                predicted = lambda value: value * sd_
+            else:
+                predicted = lambda value, j=j: value + a * lam[:, j]
+            out.append(
+                _agreement(
+                    fname=fname, item=spec.items[i], kind=kind, vals=P[:, j], cov=VP[np.ix_(idx, idx)],
+                    configural=P0[:, j], predicted=predicted, groups=tuple(spec.groups), n=n,
+                    weights=weights, epsilon=epsilon, alphas=alphas,
+                )
+            )
+    return out
+
+
+def _align_factor(
+    result: FitResult, f: int, items: list[int], *, ref: int, weights: np.ndarray, epsilon: float,
+    out: dict, notes: list[str], alphas: tuple[float, float], random_starts: int, seed: int,
+) -> list[ParameterAgreement]:
+    """Align one factor: fills its entries of ``out``, appends to ``notes``, returns its agreements."""
+    spec = result.spec
+    groups = tuple(spec.groups)
+    G = len(groups)
+    fname = spec.factors[f]
+    block = _factor_block(result, f, items)
+    for g in np.flatnonzero(block.sign < 0):
+        notes.append(f"factor {fname} reflected in group {groups[g]} (its loadings were mostly negative)")
+    x, fx, ok = solve_alignment(
+        block.lam0, block.nu0, weights, ref, eps=epsilon, random_starts=random_starts, seed=seed
+    )
+    if not ok:
+        notes.append(f"the alignment of factor {fname} did not converge")
+    a, u = unpack_solution(x, G, ref)
+    v = np.exp(u)
+    Vx, VP, flat = _delta_covariances(x, block, weights, ref, epsilon, result.acov)
+    if flat:
+        notes.append(f"the alignment loss of factor {fname} is flat at its minimum: no standard errors")
+    se_a, se_u = unpack_solution(np.sqrt(np.clip(np.diag(Vx), 0, None)), G, ref)
+    out["means"][fname] = {g: float(a[j]) for j, g in enumerate(groups)}
+    out["variances"][fname] = {g: float(v[j]) for j, g in enumerate(groups)}
+    out["means_se"][fname] = {g: float(se_a[j]) for j, g in enumerate(groups)}
+    out["variances_se"][fname] = {g: float(v[j] * se_u[j]) for j, g in enumerate(groups)}
+    out["loss"][fname], out["converged"][fname] = fx, ok
+    n = np.asarray(result.group_n, dtype=float)
+    return _factor_agreements(
+        fname=fname, items=items, spec=spec, block=block, a=a, v=v, VP=VP, n=n,
+        weights=weights, epsilon=epsilon, alphas=alphas,
+    )
+
+
 def align(
     result: FitResult,
     *,
@@ -472,108 +382,21 @@ def align(
     AlignmentResult
     """
     spec = result.spec
-    groups = tuple(spec.groups)
-    ref_name = reference if reference is not None else (spec.reference or groups[0])
-    if ref_name not in groups:
-        raise SpecificationError(
-            f"The alignment reference group {ref_name!r} is not among the groups ({', '.join(groups)})."
-        )
-    if len(groups) < 2:
-        raise SpecificationError("Alignment compares groups; the model has only one group.")
+    groups, ref_name, ref = _reference_index(spec, reference)
     layout = _factor_layout(result)
-    ref = groups.index(ref_name)
-    G = len(groups)
     n = np.asarray(result.group_n, dtype=float)
     weights = np.sqrt(np.outer(n, n))
     np.fill_diagonal(weights, 0.0)
-    acov = result.acov
     notes: list[str] = []
-    if acov is None:
+    if result.acov is None:
         notes.append("the configural model has no covariance of its estimates: standard errors and tests are missing")
-    out = {k: {} for k in ("means", "variances", "means_se", "variances_se")}
-    loss, converged, params = {}, {}, []
+    out = {k: {} for k in ("means", "variances", "means_se", "variances_se", "loss", "converged")}
+    params: list[ParameterAgreement] = []
     for f, items in layout.items():
-        fname = spec.factors[f]
-        k = len(items)
-        lam_ix = np.array([[_param_of(spec, g, LAMBDA, i, f) for i in items] for g in range(G)])
-        nu_ix = np.array([[_param_of(spec, g, NU, i, 0) for i in items] for g in range(G)])
-        lam0 = result.theta[lam_ix]
-        nu0 = result.theta[nu_ix]
-        sign = np.where(lam0.sum(axis=1) < 0, -1.0, 1.0)
-        for g in np.flatnonzero(sign < 0):
-            notes.append(f"factor {fname} reflected in group {groups[g]} (its loadings were mostly negative)")
-        lam0 = lam0 * sign[:, None]
-        x, fx, ok = solve_alignment(lam0, nu0, weights, ref, eps=epsilon, random_starts=random_starts, seed=seed)
-        if not ok:
-            notes.append(f"the alignment of factor {fname} did not converge")
-        a, u = _unpack(x, G, ref)
-        v = np.exp(u)
-        lam, nu = aligned_parameters(lam0, nu0, a, v)
-        # delta method through the implicit solution x(c), c = (lam0, nu0)
-        c0 = np.concatenate([lam0.ravel(), nu0.ravel()])
-        split = lambda c: (c[: G * k].reshape(G, k), c[G * k :].reshape(G, k))
-        J = implicit_jacobian(x, lam0, nu0, weights, ref, eps=epsilon)
-        if not np.all(np.isfinite(J)):
-            notes.append(f"the alignment loss of factor {fname} is flat at its minimum: no standard errors")
-
-        def params_of(cc, xx):
-            aa, uu = _unpack(xx, G, ref)
-            ll, nn = aligned_parameters(*split(cc), aa, np.exp(uu))
-            return np.concatenate([ll.ravel(), nn.ravel()])
-
-        Pc = _fd_jacobian(lambda cc: params_of(cc, x), c0)
-        Px = _fd_jacobian(lambda xx: params_of(c0, xx), x)
-        if acov is not None:
-            cix = np.concatenate([lam_ix.ravel(), nu_ix.ravel()])
-            csign = np.concatenate([np.repeat(sign, k), np.ones(G * k)])
-            Vc = acov[np.ix_(cix, cix)] * np.outer(csign, csign)
-            Vx = J @ Vc @ J.T
-            D = Pc + Px @ J
-            VP = D @ Vc @ D.T
-        else:
-            Vx = np.full((x.size, x.size), np.nan)
-            VP = np.full((2 * G * k, 2 * G * k), np.nan)
-        se_x = np.sqrt(np.clip(np.diag(Vx), 0, None))
-        se_a, se_u = _unpack(se_x, G, ref)
-        out["means"][fname] = {g: float(a[j]) for j, g in enumerate(groups)}
-        out["variances"][fname] = {g: float(v[j]) for j, g in enumerate(groups)}
-        out["means_se"][fname] = {g: float(se_a[j]) for j, g in enumerate(groups)}
-        out["variances_se"][fname] = {g: float(v[j] * se_u[j]) for j, g in enumerate(groups)}
-        loss[fname], converged[fname] = fx, ok
-        sd_ = np.sqrt(v)
-        for kind, P, P0, off in (("loading", lam, lam0, 0), ("intercept", nu, nu0, G * k)):
-            for j, i in enumerate(items):
-                idx = off + np.arange(G) * k + j
-                vals, cov = P[:, j], VP[np.ix_(idx, idx)]
-                if np.all(np.isfinite(cov)):
-                    member = _invariant_set(vals, cov, n, alpha_pairwise, alpha_set)
-                else:
-                    member = np.ones(G, dtype=bool)
-                w = np.where(member, n, 0.0)
-                value = float(w @ vals / w.sum())
-                # configural value predicted with one common parameter (value)
-                if kind == "loading":
-                    pred = value * sd_
-                else:
-                    pred = value + a * lam[:, j]
-                var0 = np.var(P0[:, j])
-                r2 = 1.0 - np.var(P0[:, j] - pred) / var0 if var0 > 1e-14 else np.nan
-                D = vals[:, None] - vals[None, :]
-                part = 0.5 * float(np.sum(weights * simplicity(D, epsilon)[0]))
-                params.append(
-                    ParameterAgreement(
-                        factor=fname,
-                        item=spec.items[i],
-                        parameter=kind,
-                        aligned={g: float(vals[h]) for h, g in enumerate(groups)},
-                        se={g: float(np.sqrt(max(cov[h, h], 0.0))) for h, g in enumerate(groups)},
-                        invariant=tuple(g for h, g in enumerate(groups) if member[h]),
-                        noninvariant=tuple(g for h, g in enumerate(groups) if not member[h]),
-                        value=value,
-                        r2=float(r2),
-                        loss=part,
-                    )
-                )
+        params += _align_factor(
+            result, f, items, ref=ref, weights=weights, epsilon=epsilon, out=out, notes=notes,
+            alphas=(alpha_pairwise, alpha_set), random_starts=random_starts, seed=seed,
+        )
     return AlignmentResult(
         groups=groups,
         reference=ref_name,
@@ -582,15 +405,9 @@ def align(
         variances=out["variances"],
         means_se=out["means_se"],
         variances_se=out["variances_se"],
-        loss=loss,
-        converged=converged,
+        loss=out["loss"],
+        converged=out["converged"],
         parameters=tuple(params),
         notes=tuple(notes),
-        settings={
-            "epsilon": epsilon,
-            "weights": "sqrt(N_g N_h)",
-            "alpha_pairwise": alpha_pairwise,
-            "alpha_set": alpha_set,
-            "standard_errors": "delta method through the implicit solution (finite-difference Hessians)",
-        },
+        settings=_settings(epsilon, alpha_pairwise, alpha_set),
     )

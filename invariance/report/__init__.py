@@ -39,6 +39,7 @@ from .sections import ReportInput
 from .paper_tables import estimate_tables
 from .result_tables import result_tables
 from .tables import LEVEL_TABLE_FILES, PaperTable, write_level_tables, write_table
+from ..version import __version__
 
 __all__ = ["LEVEL_TABLE_FILES", "SECTIONS", "ReportInput", "build_report", "paper_tables", "write_reports"]
 
@@ -48,8 +49,6 @@ FIGURE_DIR = "figures"
 
 
 def _meta(inp: ReportInput) -> dict[str, Any]:
-    from .. import __version__
-
     ctx = inp.context
     bits = []
     if ctx.get("data_file"):

@@ -14,6 +14,7 @@ from .formatting import fmt_p, fnum
 from .parts import Bullets, Code, Figure, Section, Table, Text, cell, generic_parts, records_table
 from .plots import forest_chart, guide_chart
 from .sections import ReportInput
+from ..version import __version__
 
 __all__ = [
     "KNOWN_KEYS",
@@ -376,8 +377,6 @@ def package_versions() -> dict[str, str]:
         except metadata.PackageNotFoundError:
             out[name] = "not installed"
     if out.get("invariance") == "not installed":
-        from .. import __version__
-
         out["invariance"] = f"{__version__} (not installed; from source)"
     return out
 

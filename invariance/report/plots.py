@@ -19,8 +19,11 @@ from typing import Mapping, Sequence
 
 import matplotlib
 import matplotlib.ticker
+import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+from matplotlib.patches import Patch
 
 __all__ = [
     "PAGE_WIDTH",
@@ -152,9 +155,6 @@ def change_chart(steps: Sequence[Mapping], *, deciding: Sequence[str] | None = N
             ax.set_xticks(x, labels, rotation=30 if len(steps) > 4 else 0, ha="right" if len(steps) > 4 else "center")
             ax.set_title("\u0394" + ix.upper() + ("" if deciding is None or ix in deciding else " (not deciding)"))
             ax.yaxis.set_major_formatter(matplotlib.ticker.FuncFormatter(_signed_tick))
-        from matplotlib.lines import Line2D
-        from matplotlib.patches import Patch
-
         handles = [
             Patch(facecolor=OK_COLOR, edgecolor="black", label="within cutoff (or none set)"),
             Patch(facecolor=BAD_COLOR, edgecolor="black", hatch="////", label="beyond cutoff"),
@@ -182,6 +182,31 @@ def _num(x) -> float | None:
 
 
 # -------------------------------------------------------------------- profiles
+def _profile_points(
+    rows: Sequence[str], values: Mapping[tuple[str, str], tuple[float, float | None]], group: str, *, offset: float
+) -> tuple[list[float], list[float], list[float]]:
+    """Heights, estimates and 1.96-SE half-widths of one group's markers (rows without a value skipped)."""
+    n = len(rows)
+    ys, xs, es = [], [], []
+    for k, r in enumerate(rows):
+        v = values.get((r, group))
+        if v is None or _num(v[0]) is None:
+            continue
+        ys.append(n - 1 - k - offset)  # first group on top
+        xs.append(v[0])
+        es.append(1.96 * v[1] if _num(v[1]) is not None else 0.0)
+    return ys, xs, es
+
+
+def _profile_legend(ax, *, released: bool) -> tuple[list, list[str]]:
+    """The groups' legend entries, plus the shaded "released" entry when a row was released."""
+    handles, labels = ax.get_legend_handles_labels()
+    if released:
+        handles.append(Patch(facecolor="#dddddd", label="\u2020 released"))
+        labels.append("\u2020 released")
+    return handles, labels
+
+
 def profile_chart(
     rows: Sequence[str],
     groups: Sequence[str],
@@ -218,14 +243,7 @@ def profile_chart(
             if r in rel:
                 ax.axhspan(y0 - 0.45, y0 + 0.45, color="#dddddd", zorder=0, linewidth=0)
         for j, g in enumerate(groups):
-            ys, xs, es = [], [], []
-            for k, r in enumerate(rows):
-                v = values.get((r, g))
-                if v is None or _num(v[0]) is None:
-                    continue
-                ys.append(n - 1 - k - (j - (G - 1) / 2) * step)  # first group on top
-                xs.append(v[0])
-                es.append(1.96 * v[1] if _num(v[1]) is not None else 0.0)
+            ys, xs, es = _profile_points(rows, values, g, offset=(j - (G - 1) / 2) * step)
             if not xs:
                 continue
             ax.errorbar(
@@ -240,12 +258,7 @@ def profile_chart(
         ax.set_xlabel(mpl_text(xlabel))
         if title:
             ax.set_title(mpl_text(title))
-        handles, labels = ax.get_legend_handles_labels()
-        if rel:
-            from matplotlib.patches import Patch
-
-            handles.append(Patch(facecolor="#dddddd", label="\u2020 released"))
-            labels.append("\u2020 released")
+        handles, labels = _profile_legend(ax, released=bool(rel))
         foot = bottom_legend(fig, handles, labels, ncols=min(len(labels), 5))
         place(fig, left=label_width(ticks) + 0.2, bottom=foot + 0.45, top=0.3 if title else 0.1)
         return png_bytes(fig)
@@ -256,8 +269,6 @@ def dmacs_heatmap(items: Sequence[str], groups: Sequence[str], values: Mapping[t
     """Items-by-groups heat map of dMACS (blank cells: not computed)."""
     if not items or not groups or not values:
         return None
-    import numpy as np
-
     M = np.full((len(items), len(groups)), np.nan)
     for i, it in enumerate(items):
         for j, g in enumerate(groups):
@@ -355,8 +366,6 @@ def guide_chart(
         ax.grid(axis="y", color="#dddddd", linewidth=0.5)
         handles, labels = ax.get_legend_handles_labels()
         if guides:
-            from matplotlib.lines import Line2D
-
             handles.append(Line2D([0], [0], color="black", linestyle="--"))
             labels.append("guide (common practice)")
         foot = bottom_legend(fig, handles, labels, ncols=min(len(labels), 5))

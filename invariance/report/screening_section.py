@@ -10,7 +10,7 @@ from typing import Any, Mapping
 from . import inputs as I
 from .formatting import fmt_bounded, fmt_int, fmt_p, fmt_stat, fnum
 from .parts import Bullets, Section, Table, Text, cell, generic_parts
-from .sections import ReportInput
+from .report_input import ReportInput
 
 __all__ = ["missing_parts", "section_group_fit", "section_screening"]
 

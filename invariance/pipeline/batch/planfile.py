@@ -32,6 +32,8 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any, Mapping
 
+import yaml
+
 from ...errors import SpecificationError
 from ...model.structure import Structure
 from ...decide.compare import rule_from_section
@@ -66,22 +68,7 @@ def load_plan(source: str | Path | Mapping) -> dict:
     """Read and check a planning file; returns keyword arguments of :func:`invariance.batch.plan`
     plus ``population``.
     """
-    base = Path.cwd()
-    if isinstance(source, Mapping):
-        d = source
-    else:
-        import yaml
-
-        path = Path(source)
-        base = path.parent
-        if not path.is_file():
-            raise SpecificationError(f"The plan file {str(path)!r} does not exist; check the path.")
-        try:
-            d = yaml.safe_load(path.read_text()) or {}
-        except yaml.YAMLError as exc:
-            line = getattr(getattr(exc, "problem_mark", None), "line", None)
-            at = f" near line {line + 1}" if line is not None else ""
-            raise SpecificationError(f"The plan file {path.name} is not valid YAML{at}; fix its syntax.") from None
+    d, base = _read_plan(source)
     d = _check_keys(d, PLAN_KEYS, "plan", required=("model", "groups", "population", "sizes"))
     m = _check_keys(d["model"], _MODEL_KEYS, "model", required=("factors",))
     structure = Structure(
@@ -94,19 +81,7 @@ def load_plan(source: str | Path | Mapping) -> dict:
     groups = d["groups"]
     if not isinstance(groups, (list, tuple)) or len(groups) < 2:
         raise SpecificationError("The plan needs a list of at least two group names under 'groups'.")
-    if isinstance(d["population"], Mapping) and "estimates" in d["population"]:
-        pop = _check_keys(d["population"], _EST_KEYS, "population")
-        est = base / str(pop["estimates"])
-        if not est.is_file():
-            raise SpecificationError(f"The estimates file {str(est)!r} does not exist; check population.estimates.")
-        population = Population.from_estimates(est, structure, level=pop.get("level"))
-        if list(population.groups) != [str(g) for g in groups]:
-            raise SpecificationError(
-                f"The estimates file has the groups {', '.join(population.groups)}; list the same under 'groups'."
-            )
-    else:
-        pop = _check_keys(d["population"], _POP_KEYS, "population", required=("loadings", "intercepts", "residuals"))
-        population = Population.from_values(structure, [str(g) for g in groups], **pop)
+    population = _population(d["population"], structure, [str(g) for g in groups], base)
     shift = None
     if d.get("shift") is not None:
         s = _check_keys(d["shift"], _SHIFT_KEYS, "shift", required=("parameter", "item", "size"))
@@ -126,3 +101,36 @@ def load_plan(source: str | Path | Mapping) -> dict:
         rule = rule_from_section(dec, alpha=float(out.get("alpha", 0.05)))
         out["rules"] = {**default_rules(out.get("alpha", 0.05)), f"your rule: {rule.describe()}": decision_rule(rule)}
     return out
+
+
+def _read_plan(source: str | Path | Mapping) -> tuple[Any, Path]:
+    """The plan as parsed YAML (or the mapping given) and the folder its paths are relative to."""
+    if isinstance(source, Mapping):
+        return source, Path.cwd()
+    path = Path(source)
+    if not path.is_file():
+        raise SpecificationError(f"The plan file {str(path)!r} does not exist; check the path.")
+    try:
+        d = yaml.safe_load(path.read_text()) or {}
+    except yaml.YAMLError as exc:
+        line = getattr(getattr(exc, "problem_mark", None), "line", None)
+        at = f" near line {line + 1}" if line is not None else ""
+        raise SpecificationError(f"The plan file {path.name} is not valid YAML{at}; fix its syntax.") from None
+    return d, path.parent
+
+
+def _population(section: Any, structure: Structure, groups: list[str], base: Path) -> Population:
+    """The plan's population: from a fitted run's estimates file or from item values."""
+    if isinstance(section, Mapping) and "estimates" in section:
+        pop = _check_keys(section, _EST_KEYS, "population")
+        est = base / str(pop["estimates"])
+        if not est.is_file():
+            raise SpecificationError(f"The estimates file {str(est)!r} does not exist; check population.estimates.")
+        population = Population.from_estimates(est, structure, level=pop.get("level"))
+        if list(population.groups) != groups:
+            raise SpecificationError(
+                f"The estimates file has the groups {', '.join(population.groups)}; list the same under 'groups'."
+            )
+        return population
+    pop = _check_keys(section, _POP_KEYS, "population", required=("loadings", "intercepts", "residuals"))
+    return Population.from_values(structure, groups, **pop)

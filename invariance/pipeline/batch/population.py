@@ -192,42 +192,9 @@ class Population:
             ``"outcome<-predictor"`` -> B entry (second-order loadings, regressions).
         """
         items, facs = structure.items, structure.factor_names
-        p, m = len(items), len(facs)
-        lam = np.zeros((p, m))
-        for f, its in structure.measured_by.items():
-            given = dict(loadings.get(f, {}))
-            for it in its:
-                if it not in given:
-                    raise SpecificationError(f"The population needs the loading of item {it!r} on factor {f!r}.")
-                lam[items.index(it), facs.index(f)] = float(given.pop(it))
-            if given:
-                raise SpecificationError(f"Item {next(iter(given))!r} does not load on factor {f!r} in the structure.")
-        extra = set(loadings) - set(structure.measured_by)
-        if extra:
-            raise SpecificationError(f"Unknown factor {sorted(extra)[0]!r} in the population loadings.")
-
-        def vec(values: Mapping[str, float], what: str) -> np.ndarray:
-            unknown = set(values) - set(items)
-            if unknown:
-                raise SpecificationError(f"Unknown item {sorted(unknown)[0]!r} in the population {what}.")
-            missing = [it for it in items if it not in values]
-            if missing:
-                raise SpecificationError(f"The population needs the {what[:-1]} of item {missing[0]!r}.")
-            return np.array([float(values[it]) for it in items])
-
-        nu, th = vec(intercepts, "intercepts"), vec(residuals, "residuals")
-        beta = np.zeros((m, m))
-        for key, val in (paths or {}).items():
-            out, _, pred = key.partition("<-")
-            if out not in facs or pred not in facs:
-                raise SpecificationError(f"The population path {key!r} must read 'outcome<-predictor' with known factors.")
-            beta[facs.index(out), facs.index(pred)] = float(val)
-        psi0 = np.eye(m)
-        for key, val in (covariances or {}).items():
-            a, _, b = key.partition("~")
-            if a not in facs or b not in facs or a == b:
-                raise SpecificationError(f"The population covariance {key!r} must read 'A~B' with two known factors.")
-            psi0[facs.index(a), facs.index(b)] = psi0[facs.index(b), facs.index(a)] = float(val)
+        lam = _loading_matrix(structure, loadings)
+        nu, th = _item_vector(items, intercepts, "intercepts"), _item_vector(items, residuals, "residuals")
+        beta, psi0 = _factor_matrices(facs, paths or {}, covariances or {})
         groups = tuple(str(g) for g in groups)
         for what, d in (("means", means or {}), ("variances", variances or {})):
             for g, fs in d.items():
@@ -331,3 +298,50 @@ def simulate_groups(population: Population, sizes: Sequence[int], seed: int) -> 
     return [draw_group(n, sigma, mu, rng) for (sigma, mu), n in zip(population.moments(), sizes)]
 
 
+def _loading_matrix(structure: Structure, loadings: Mapping[str, Mapping[str, float]]) -> np.ndarray:
+    """The (items, factors) loading matrix; every loading of the structure given, no other."""
+    items, facs = structure.items, structure.factor_names
+    lam = np.zeros((len(items), len(facs)))
+    for f, its in structure.measured_by.items():
+        given = dict(loadings.get(f, {}))
+        for it in its:
+            if it not in given:
+                raise SpecificationError(f"The population needs the loading of item {it!r} on factor {f!r}.")
+            lam[items.index(it), facs.index(f)] = float(given.pop(it))
+        if given:
+            raise SpecificationError(f"Item {next(iter(given))!r} does not load on factor {f!r} in the structure.")
+    extra = set(loadings) - set(structure.measured_by)
+    if extra:
+        raise SpecificationError(f"Unknown factor {sorted(extra)[0]!r} in the population loadings.")
+    return lam
+
+
+def _item_vector(items: Sequence[str], values: Mapping[str, float], what: str) -> np.ndarray:
+    """One value per item, in item order; refuses unknown and missing items."""
+    unknown = set(values) - set(items)
+    if unknown:
+        raise SpecificationError(f"Unknown item {sorted(unknown)[0]!r} in the population {what}.")
+    missing = [it for it in items if it not in values]
+    if missing:
+        raise SpecificationError(f"The population needs the {what[:-1]} of item {missing[0]!r}.")
+    return np.array([float(values[it]) for it in items])
+
+
+def _factor_matrices(
+    facs: Sequence[str], paths: Mapping[str, float], covariances: Mapping[str, float]
+) -> tuple[np.ndarray, np.ndarray]:
+    """B from ``"outcome<-predictor"`` paths and the unit-variance factor covariance from ``"A~B"``."""
+    m = len(facs)
+    beta = np.zeros((m, m))
+    for key, val in paths.items():
+        out, _, pred = key.partition("<-")
+        if out not in facs or pred not in facs:
+            raise SpecificationError(f"The population path {key!r} must read 'outcome<-predictor' with known factors.")
+        beta[facs.index(out), facs.index(pred)] = float(val)
+    psi0 = np.eye(m)
+    for key, val in covariances.items():
+        a, _, b = key.partition("~")
+        if a not in facs or b not in facs or a == b:
+            raise SpecificationError(f"The population covariance {key!r} must read 'A~B' with two known factors.")
+        psi0[facs.index(a), facs.index(b)] = psi0[facs.index(b), facs.index(a)] = float(val)
+    return beta, psi0
