@@ -85,7 +85,7 @@ def test_output_folder_files(hs_all_levels):
     out = path.parent / "out"
     assert res.out_dir == out.resolve()
     assert sorted(p.name for p in out.iterdir()) == [
-        "estimates.csv", "figures", "levels.csv", "pipeline.yaml", "report.html", "report.md", "results.json",
+        "estimates.csv", "figures", "levels.csv", "manifest.json", "pipeline.yaml", "report.html", "report.md", "results.json",
         "table_levels.csv", "table_levels.md", "table_levels.tex",
     ]
     table = pd.read_csv(out / "levels.csv")

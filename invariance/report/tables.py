@@ -27,6 +27,7 @@ from .formatting import (
     level_label,
     release_text,
 )
+from .escape import csv_cell, visible
 from .inputs import ROBUST_NOTE_KEY, display_results, levels, new_releases, rule_name
 
 __all__ = [
@@ -171,12 +172,12 @@ def level_table_csv(results: Mapping[str, Any]) -> str:
     w = csv.DictWriter(buf, fieldnames=CSV_COLUMNS, lineterminator="\n")
     w.writeheader()
     for r in level_rows(results):
-        w.writerow({k: ("" if v is None else (repr(v) if isinstance(v, float) else v)) for k, v in r.items()})
+        w.writerow({k: ("" if v is None else (repr(v) if isinstance(v, float) else csv_cell(v))) for k, v in r.items()})
     return buf.getvalue()
 
 
 def _md_cell(s: str) -> str:
-    return s.replace("\\", "\\\\").replace("|", "\\|").replace("<", "&lt;").replace(">", "&gt;").replace("\n", " ")
+    return visible(s).replace("\\", "\\\\").replace("|", "\\|").replace("<", "&lt;").replace(">", "&gt;").replace("\n", " ")
 
 
 def level_table_markdown(results: Mapping[str, Any]) -> str:
@@ -197,7 +198,7 @@ _TEX = {
 
 def latex_escape(s: str) -> str:
     """Escape the LaTeX special characters of plain text."""
-    s = "".join(_TEX.get(ch, ch) for ch in str(s))
+    s = "".join(_TEX.get(ch, ch) for ch in visible(s))
     return s.replace("\u2212", "$-$").replace("\u0394", r"$\Delta$").replace("\u03c7\u00b2", r"$\chi^2$")
 
 
