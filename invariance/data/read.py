@@ -8,15 +8,16 @@ pyreadstat).
 
 from __future__ import annotations
 
+import csv
 import hashlib
 import pathlib
 from typing import Mapping, Sequence
 
 import numpy as np
 
-from ..errors import DataError, SpecificationError
+from ..errors import DataError, SpecificationError, shorten
 
-__all__ = ["FORMATS", "read_table", "apply_missing", "file_sha256", "guess_format"]
+__all__ = ["FORMATS", "NA_TEXTS", "read_table", "apply_missing", "file_sha256", "guess_format"]
 
 #: Known formats and the suffixes that select them.
 FORMATS = {
@@ -48,7 +49,16 @@ def file_sha256(path: pathlib.Path) -> str:
     return h.hexdigest()
 
 
-def read_table(path: str | pathlib.Path, *, format: str | None = None):
+#: Cell texts read as missing in item columns (pandas' default list). A group column keeps
+#: them as labels: a group called NA, None or null stays a group.
+NA_TEXTS = (
+    "", "#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN", "-nan", "1.#IND", "1.#QNAN",
+    "<NA>", "N/A", "NA", "NULL", "NaN", "None", "n/a", "nan", "null",
+)
+_SEPARATORS = {",": "comma", ";": "semicolon", "\t": "tab", "|": "vertical bar"}
+
+
+def read_table(path: str | pathlib.Path, *, format: str | None = None, text_columns: Sequence[str] = ()):
     """Read a data file into a DataFrame.
 
     Parameters
@@ -57,22 +67,30 @@ def read_table(path: str | pathlib.Path, *, format: str | None = None):
         The data file.
     format
         ``csv``, ``tsv``, ``stata`` or ``spss``; guessed from the suffix when omitted.
+    text_columns
+        Columns (the group column) whose cells are labels: only an empty cell is missing
+        there, so a group labelled NA, None or null is kept.
 
     Returns
     -------
     pandas.DataFrame
+        Column names stripped of surrounding spaces. A header naming a column twice, or
+        a delimited file whose first line shows another separator than its format's,
+        is refused.
     """
     import pandas as pd
 
     path = pathlib.Path(path)
+    if path.is_dir():
+        raise DataError(
+            f"Data path {shorten(str(path))} is a folder, not a file; set data.path to the data file inside it."
+        )
     if not path.is_file():
-        raise DataError(f"Data file {str(path)!r} does not exist; check data.path (relative to the pipeline file).")
+        raise DataError(f"Data file {shorten(str(path))} does not exist; check data.path (relative to the pipeline file).")
     fmt = format or guess_format(path)
     try:
-        if fmt == "csv":
-            frame = pd.read_csv(path)
-        elif fmt == "tsv":
-            frame = pd.read_csv(path, sep="\t")
+        if fmt in ("csv", "tsv"):
+            frame = _read_delimited(path, fmt, text_columns)
         elif fmt == "stata":
             frame = pd.read_stata(path, convert_categoricals=False)
         elif fmt == "spss":
@@ -90,11 +108,55 @@ def read_table(path: str | pathlib.Path, *, format: str | None = None):
         raise
     except Exception as exc:  # parser errors of every reader
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise DataError(f"Cannot read data file {path.name!r} as {fmt}: {first}; check the file and its format.") from None
+        raise DataError(
+            f"Cannot read data file {shorten(path.name)} as {fmt}: {first[:200]}; check the file and its format."
+        ) from None
     if frame.shape[1] == 0 or frame.shape[0] == 0:
-        raise DataError(f"Data file {path.name!r} has no rows or no columns; check the file.")
+        raise DataError(f"Data file {shorten(path.name)} has no rows or no columns; check the file.")
     frame.columns = [str(c).strip() for c in frame.columns]
     return frame
+
+
+def _header(path: pathlib.Path, sep: str) -> list[str]:
+    """The first line of a delimited file, split on ``sep``."""
+    with open(path, newline="", encoding="utf-8-sig", errors="replace") as fh:
+        first = next(csv.reader(fh, delimiter=sep), [])
+        return first
+
+
+def _refuse_other_separator(path: pathlib.Path, fmt: str, sep: str, header: list[str]) -> None:
+    line = sep.join(header)
+    if len(header) > 1:
+        return
+    seen = [c for c in _SEPARATORS if c != sep and c in line]
+    if not seen:
+        return
+    other = seen[0]
+    fix = ("set data.format: tsv (or rename the file .tsv)" if other == "\t"
+           else "set data.format: csv (or rename the file .csv)" if other == ","
+           else "save it comma-separated")
+    raise DataError(
+        f"Data file {shorten(path.name)} is read as {fmt} ({_SEPARATORS[sep]}-separated) but its first line looks "
+        f"{_SEPARATORS[other]}-separated; {fix}."
+    )
+
+
+def _read_delimited(path: pathlib.Path, fmt: str, text_columns: Sequence[str]):
+    import pandas as pd
+
+    sep = "," if fmt == "csv" else "\t"
+    header = _header(path, sep)
+    _refuse_other_separator(path, fmt, sep, header)
+    names = [h.strip() for h in header]
+    twice = sorted({n for n in names if names.count(n) > 1})
+    if twice:
+        raise DataError(
+            f"Data file {shorten(path.name)} names column {shorten(twice[0])} twice in its header; "
+            "rename one of them so each column has its own name."
+        )
+    keep = {str(c) for c in text_columns}
+    na = {raw: ([""] if raw.strip() in keep else list(NA_TEXTS)) for raw in header}
+    return pd.read_csv(path, sep=sep, keep_default_na=False, na_values=na)
 
 
 InvarianceErrorTypes = (DataError, SpecificationError)

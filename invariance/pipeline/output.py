@@ -173,6 +173,10 @@ MANIFEST = "manifest.json"
 MANIFEST_TOOL = "invariance output folder"
 
 
+def _folder(path: pathlib.Path) -> str:
+    return shorten(str(path), 240)
+
+
 def _files_in(folder: pathlib.Path) -> dict[str, pathlib.Path]:
     """Relative POSIX path -> path of every entry under ``folder`` that is not a folder."""
     out = {}
@@ -213,15 +217,16 @@ def _foreign_entry(folder: pathlib.Path) -> str | None:
     except (OSError, ValueError, KeyError, TypeError, AttributeError):
         listed = None
     if listed is None:
-        return next((rel for rel in sorted(present)), "(no manifest)")
+        shown = ", ".join(shorten(rel) for rel in sorted(present)[:3]) + (" ..." if len(present) > 3 else "")
+        return f"no {MANIFEST} of an earlier run; it holds {shown}"
     for rel in sorted(present):
         if rel == MANIFEST:
             continue
         if rel not in listed:
-            return rel
+            return f"it holds {shorten(rel)}, which no run wrote"
         path = present[rel]
         if path.is_symlink() or not path.is_file() or _sha256(path) != listed[rel]:
-            return f"{rel} (changed since the run wrote it)"
+            return f"its {shorten(rel)} was changed since the run wrote it"
     return None
 
 
@@ -245,7 +250,7 @@ def _probe_writable(out_dir: pathlib.Path) -> None:
         base = base.parent
     if not base.is_dir():
         raise SpecificationError(
-            f"Output folder {shorten(str(out_dir))} cannot be made: {shorten(str(base))} is a file; "
+            f"Output folder {_folder(out_dir)} cannot be made: {_folder(base)} is a file; "
             "choose another --out (or output.folder)."
         )
     try:
@@ -253,7 +258,7 @@ def _probe_writable(out_dir: pathlib.Path) -> None:
         probe.rmdir()
     except OSError as exc:
         raise SpecificationError(
-            f"Output folder {shorten(str(out_dir))} is not writable ({exc.strerror or exc} in {shorten(str(base))}); "
+            f"Output folder {_folder(out_dir)} is not writable ({exc.strerror or exc} in {_folder(base)}); "
             "choose a folder you can write to for --out (or output.folder)."
         ) from None
 
@@ -281,15 +286,15 @@ def check_destination(out_dir: pathlib.Path, *, protected: Sequence[tuple[pathli
     fix = "choose a new folder for --out (or output.folder)"
     for folder, what in _protected(protected):
         if out_dir == folder:
-            raise SpecificationError(f"Output folder {shorten(str(out_dir))} is {what}, which a run never replaces; {fix}.")
+            raise SpecificationError(f"Output folder {_folder(out_dir)} is {what}, which a run never replaces; {fix}.")
     if out_dir.is_symlink() or (out_dir.exists() and not out_dir.is_dir()):
-        raise SpecificationError(f"Output folder {shorten(str(out_dir))} is an existing file; {fix}.")
+        raise SpecificationError(f"Output folder {_folder(out_dir)} is an existing file; {fix}.")
     if out_dir.exists() and any(out_dir.iterdir()):
         foreign = _foreign_entry(out_dir)
         if foreign is not None:
             raise SpecificationError(
-                f"Output folder {shorten(str(out_dir))} is not the output of an earlier run "
-                f"(it holds {shorten(foreign)}, which the run did not write); {fix}, or empty that folder yourself."
+                f"Output folder {_folder(out_dir)} is not the output of an earlier run ({foreign}); "
+                f"{fix}, or empty that folder yourself."
             )
     _probe_writable(out_dir)
 

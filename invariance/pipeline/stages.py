@@ -55,7 +55,7 @@ FIT_KEYS = ("chi2", "df", "pvalue", "cfi", "tli", "rmsea", "rmsea_ci90", "srmr",
 
 def stage_data(spec: PipelineSpec, state: dict) -> dict:
     """Read the data, apply missing codes and run the checks (nothing is fitted)."""
-    raw = read_table(spec.data_path, format=spec.data_format)
+    raw = read_table(spec.data_path, format=spec.data_format, text_columns=(spec.group,))
     frame = apply_missing(raw, spec.missing)
     checked = check_data(
         frame,

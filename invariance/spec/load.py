@@ -494,13 +494,16 @@ def plain_document(obj, path: tuple = ()):
         return {(k if isinstance(k, str) else _plain_key(k, path)): plain_document(v, path + (k,)) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
         return [plain_document(v, path + (i,)) for i, v in enumerate(obj)]
-    if obj is None or isinstance(obj, (str, bool, int, float)):
+    if obj is None or type(obj) in (str, bool, int, float):
         return obj
-    if isinstance(obj, os.PathLike):
-        return os.fspath(obj)
     item = getattr(obj, "item", None)
     if callable(item) and getattr(obj, "shape", None) == ():  # a NumPy scalar
         return plain_document(item(), path)
+    for base in (bool, int, float, str):  # subclasses (enums and the like)
+        if isinstance(obj, base):
+            return base(obj)
+    if isinstance(obj, os.PathLike):
+        return os.fspath(obj)
     where = ".".join(str(p) for p in path) or "(top level)"
     raise SpecificationError(
         f"Pipeline value at {where} is a {type(obj).__name__} ({shorten(obj)}); use plain numbers, text, "
