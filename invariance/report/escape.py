@@ -51,10 +51,13 @@ def csv_cell(value: Any) -> Any:
 
 def csv_safe_frame(frame):
     """A copy of a DataFrame whose text cells and column names pass :func:`csv_cell`."""
+    from pandas.api.types import is_bool_dtype, is_numeric_dtype
+
     out = frame.copy()
-    for col in out.columns:
-        if out[col].dtype == object:
-            out[col] = out[col].map(csv_cell)
+    for k in range(out.shape[1]):
+        col = out.iloc[:, k]
+        if not (is_numeric_dtype(col.dtype) or is_bool_dtype(col.dtype)):
+            out.isetitem(k, col.astype(object).map(csv_cell))
     out.columns = [csv_cell(str(c)) if isinstance(c, str) else c for c in out.columns]
     return out
 
