@@ -38,6 +38,7 @@ from typing import Any, Callable, Iterable, Iterator, Mapping, Sequence
 import numpy as np
 
 from ...errors import InvarianceWarning, SpecificationError
+from ...report.escape import write_csv
 
 __all__ = ["Task", "TaskOutcome", "BatchResult", "run_batch", "task_seed", "highest_level", "Progress", "single_thread_blas"]
 
@@ -167,7 +168,7 @@ class BatchResult:
 
     def write_csv(self, path) -> None:
         """Write the summary table (batch.csv)."""
-        self.table().to_csv(path, index=False)
+        write_csv(self.table(), path)
 
 
 def _one_line(exc: BaseException) -> str:
