@@ -168,8 +168,13 @@ def main(argv: list[str] | None = None) -> int:
         return 1
 
 
+#: The longest error line printed; a longer one keeps its start and its end (the fix).
+MAX_LINE = 1000
+
+
 def _one_line(text: str) -> str:
-    return visible(" ".join(text.split()))
+    line = visible(" ".join(text.split()))
+    return line if len(line) <= MAX_LINE else f"{line[:700]} ... {line[-250:]}"
 
 
 if __name__ == "__main__":  # pragma: no cover

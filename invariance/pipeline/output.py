@@ -16,6 +16,7 @@ import shutil
 import tempfile
 from typing import Callable, Sequence
 
+from ..data.read import file_sha256
 from ..errors import shorten
 
 __all__ = ["MANIFEST", "check_destination", "level_table", "write_manifest", "write_outputs", "format_table", "to_json"]
@@ -187,21 +188,11 @@ def _files_in(folder: pathlib.Path) -> dict[str, pathlib.Path]:
     return out
 
 
-def _sha256(path: pathlib.Path) -> str:
-    import hashlib
-
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
-
-
 def write_manifest(folder: pathlib.Path) -> pathlib.Path:
     """List every file in ``folder`` with its SHA-256 in :data:`MANIFEST`."""
     from .. import __version__
 
-    files = {rel: _sha256(p) for rel, p in sorted(_files_in(folder).items()) if rel != MANIFEST}
+    files = {rel: file_sha256(p) for rel, p in sorted(_files_in(folder).items()) if rel != MANIFEST}
     doc = {"written_by": MANIFEST_TOOL, "version": __version__, "files": files}
     path = folder / MANIFEST
     path.write_text(json.dumps(doc, indent=2) + "\n", encoding="utf-8")
@@ -225,7 +216,7 @@ def _foreign_entry(folder: pathlib.Path) -> str | None:
         if rel not in listed:
             return f"it holds {shorten(rel)}, which no run wrote"
         path = present[rel]
-        if path.is_symlink() or not path.is_file() or _sha256(path) != listed[rel]:
+        if path.is_symlink() or not path.is_file() or file_sha256(path) != listed[rel]:
             return f"its {shorten(rel)} was changed since the run wrote it"
     return None
 
