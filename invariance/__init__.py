@@ -1,6 +1,6 @@
 """invariance: measurement invariance testing for multi-group factor models."""
 
-from .estimate.api import fit_level, fit_levels
+from .estimate.api import compare_levels, fit_level, fit_levels
 from .data import SampleStats, sample_stats
 from .errors import (
     ConvergenceWarning,
@@ -15,11 +15,10 @@ from .estimate import fit
 from .model import LEVELS, ModelSpec, Release, Structure, build_level
 from .model.ordinal_levels import ORDINAL_LEVELS, build_ordinal_level
 from .data.ordinal_stats import OrdinalStats, ordinal_stats
-from .estimate.ordinal_api import fit_ordinal_level, fit_ordinal_levels
 from .pipeline import PipelineSpec, RunResult, check, load_pipeline, run
 from .estimate.result import FitResult
 
-__version__ = "0.1.0"
+from .version import __version__
 
 __all__ = [
     "LEVELS",
@@ -42,11 +41,10 @@ __all__ = [
     "build_level",
     "build_ordinal_level",
     "check",
+    "compare_levels",
     "fit",
     "fit_level",
     "fit_levels",
-    "fit_ordinal_level",
-    "fit_ordinal_levels",
     "load_pipeline",
     "ordinal_stats",
     "run",

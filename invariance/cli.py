@@ -13,7 +13,7 @@ import sys
 import warnings
 
 from .errors import InvarianceError
-from .report.escape import terminal_text, visible
+from .escape import terminal_text, visible
 
 __all__ = ["main", "build_parser"]
 

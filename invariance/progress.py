@@ -1,8 +1,9 @@
-"""A small progress reporter for long work (partial search, batches, simulations).
+"""Progress of long work (fitting the levels, partial search, batches, simulations).
 
-Progress goes to standard error on one line that is rewritten in place. It is silent
-when ``quiet=True`` or when the stream is not an interactive terminal (a log file, a
-pipe, CI), so redirected output never fills with carriage returns.
+A thin layer over tqdm (a widely used progress library): one line on standard error,
+rewritten in place. It is silent when ``quiet=True`` or when the stream is not an
+interactive terminal (a log file, a pipe, CI), so redirected output never fills with
+carriage returns.
 
 Examples
 --------
@@ -19,9 +20,15 @@ import sys
 import time
 from typing import IO, Iterable, Iterator, TypeVar
 
+from tqdm import tqdm
+
 __all__ = ["Progress", "track", "format_duration"]
 
 T = TypeVar("T")
+
+NOTE_WIDTH = 40
+BAR_FORMAT = "{desc}  {n_fmt}/{total_fmt} ({percentage:3.0f}%)  elapsed {elapsed}  left ~{remaining}{postfix}"
+COUNT_FORMAT = "{desc}  {n_fmt} done  elapsed {elapsed}{postfix}"
 
 
 def format_duration(seconds: float) -> str:
@@ -78,33 +85,32 @@ class Progress:
         self.label = str(label)
         self.stream = sys.stderr if stream is None else stream
         self.enabled = (not quiet) and _is_terminal(self.stream)
-        self.min_interval = float(min_interval)
         self.count = 0
         self.note = ""
         self._start = time.monotonic()
-        self._last_draw = -float("inf")
-        self._width = 0
-        self._closed = False
+        self._bar = tqdm(
+            total=self.total,
+            desc=self.label,
+            file=self.stream,
+            disable=not self.enabled,
+            mininterval=float(min_interval),
+            leave=True,
+            bar_format=BAR_FORMAT if self.total else COUNT_FORMAT,
+        )
 
-    # ------------------------------------------------------------ protocol
     def __enter__(self) -> "Progress":
         return self
 
     def __exit__(self, *exc) -> None:
         self.close()
 
-    # ------------------------------------------------------------- actions
     def update(self, n: int = 1, *, note: str | None = None) -> None:
         """Record ``n`` more steps done, optionally with a short note (current item)."""
         self.count += int(n)
         if note is not None:
             self.note = str(note)
-        if not self.enabled:
-            return
-        now = time.monotonic()
-        done = self.total is not None and self.count >= self.total
-        if done or now - self._last_draw >= self.min_interval:
-            self._draw(now)
+            self._bar.set_postfix_str(self.note[:NOTE_WIDTH], refresh=False)
+        self._bar.update(int(n))
 
     def line(self, now: float | None = None) -> str:
         """The text of the progress line as it would be drawn now."""
@@ -112,35 +118,19 @@ class Progress:
         elapsed = now - self._start
         parts = [self.label] if self.label else []
         if self.total:
-            frac = min(self.count / self.total, 1.0)
-            parts.append(f"{self.count}/{self.total} ({frac:4.0%})")
+            parts.append(f"{self.count}/{self.total} ({min(self.count / self.total, 1.0):4.0%})")
             parts.append(f"elapsed {format_duration(elapsed)}")
             if 0 < self.count < self.total:
                 parts.append(f"left ~{format_duration(elapsed * (self.total - self.count) / self.count)}")
         else:
-            parts.append(f"{self.count} done")
-            parts.append(f"elapsed {format_duration(elapsed)}")
+            parts += [f"{self.count} done", f"elapsed {format_duration(elapsed)}"]
         if self.note:
-            parts.append(self.note[:40])
+            parts.append(self.note[:NOTE_WIDTH])
         return "  ".join(parts)
-
-    def _draw(self, now: float) -> None:
-        text = self.line(now)
-        pad = " " * max(self._width - len(text), 0)
-        self.stream.write("\r" + text + pad)
-        self.stream.flush()
-        self._width = len(text)
-        self._last_draw = now
 
     def close(self) -> None:
         """Draw the final state and end the line (once)."""
-        if self._closed:
-            return
-        self._closed = True
-        if self.enabled and self.count:
-            self._draw(time.monotonic())
-            self.stream.write("\n")
-            self.stream.flush()
+        self._bar.close()
 
 
 def track(

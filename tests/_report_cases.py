@@ -194,7 +194,7 @@ def hs_case(*, rename=None, group_names=None, factor_names=None, bifactor=False,
         sc = used["scalar"].estimates()
         means = sc[(sc["parameter"] == "mean") & sc["free"]]
         results["latent_means"] = [
-            {"factor": r.lhs, "group": r.group, "reference": reference, "estimate": r.estimate, "se": r.se,
+            {"factor": r.variable, "group": r.group, "reference": reference, "estimate": r.estimate, "se": r.se,
              "ci95": [r.estimate - 1.96 * r.se, r.estimate + 1.96 * r.se], "pvalue": r.pvalue}
             for r in means.itertuples()
         ]

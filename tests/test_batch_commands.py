@@ -65,13 +65,14 @@ def test_pipeline_variants(tmp_path):
 
     (tmp_path / "sub").mkdir()
     path = tmp_path / "sub" / "study.yaml"
-    path.write_text(yaml.safe_dump({"data": {"path": "d.csv", "group": "site"}, "model": {"factors": {"F": ["a"]}},
-                                    "output": {"folder": "x"}}))
+    path.write_text(yaml.safe_dump({"data": {"path": "d.csv", "group": "site", "reference": "north"},
+                                    "model": {"factors": {"F": ["a"]}}, "output": {"folder": "x"}}))
     vary = parse_vary(["data.group=site,region", "estimator=ml"])
     out = pipeline_variants(path, vary)
     assert [n for n, _ in out] == ["study-site-ml", "study-region-ml"]
     doc = out[1][1]
     assert doc["data"]["group"] == "region" and doc["estimator"] == "ml" and "output" not in doc
+    assert "reference" not in doc["data"]  # a site name means nothing for another grouping column
     assert doc["data"]["path"] == str((tmp_path / "sub" / "d.csv").resolve())
     with pytest.raises(SpecificationError, match="KEY=VALUE"):
         parse_vary(["data.group"])
@@ -121,3 +122,21 @@ def test_example_plan_file_is_valid():
     kw = load_plan(path)
     assert kw["population"].groups == ("harbor", "ridge") and kw["shift"].item == "so04"
     assert kw["population"].invariant() == {"loading": True, "intercept": True, "residual": True}
+
+
+def test_the_help_example_runs_on_the_demo(tmp_path, capsys):
+    # the example printed by `invariance batch --help`, on the demo pipeline (invented data)
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    ap = argparse.ArgumentParser(prog="invariance")
+    sub = ap.add_subparsers(dest="command")
+    add_commands(sub)
+    epilog = sub.choices["batch"].epilog
+    argv = epilog.split("invariance ", 1)[1].split()
+    assert argv[:2] == ["batch", "pipelines/shift_outlook_by_site.yaml"] and "data.group=site,occupation" in argv
+    argv[1] = str(root / argv[1])
+    args = _parse([*argv, "--out", str(tmp_path / "b"), "--quiet"])
+    assert args.handler(args) == 0, capsys.readouterr()
+    table = pd.read_csv(tmp_path / "b" / "batch.csv")
+    assert list(table["status"]) == ["ok", "ok"]

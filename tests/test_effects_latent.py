@@ -28,14 +28,14 @@ def test_means_and_ratios_match_parameter_estimates(hs_stats):
     est = res.estimates()
     gw = est[est.group == "Grant-White"]
     for m in lc.means:
-        row = gw[(gw.parameter == "mean") & (gw.lhs == m.factor)].iloc[0]
+        row = gw[(gw.parameter == "mean") & (gw.variable == m.factor)].iloc[0]
         assert m.difference == pytest.approx(row.estimate, abs=1e-8)
         assert m.se == pytest.approx(row.se, rel=1e-4)
         assert m.standardized == pytest.approx(m.difference, rel=1e-8)
         assert m.ci_low < m.difference < m.ci_high
         assert m.ci_high - m.difference == pytest.approx(1.959964 * m.se, rel=1e-5)
     for v in lc.variances:
-        row = gw[(gw.parameter == "variance") & (gw.lhs == v.factor)].iloc[0]
+        row = gw[(gw.parameter == "variance") & (gw.variable == v.factor)].iloc[0]
         assert v.ratio == pytest.approx(row.estimate, rel=1e-8)
         assert v.se == pytest.approx(row.se, rel=1e-4)
     assert len(lc.means) == 3 and not lc.notes

@@ -66,15 +66,15 @@ def test_bifactor_scalar_recovers_population(data):
     z = []
     for row in est.itertuples():
         if row.parameter == "loading":
-            truth = lam[ITEMS.index(row.lhs), fac[row.rhs]]
+            truth = lam[ITEMS.index(row.variable), fac[row.other]]
         elif row.parameter == "intercept":
-            truth = nu[ITEMS.index(row.lhs)]
+            truth = nu[ITEMS.index(row.variable)]
         elif row.parameter == "residual":
-            truth = theta[ITEMS.index(row.lhs)]
+            truth = theta[ITEMS.index(row.variable)]
         elif row.parameter == "variance":
-            truth = var[row.group][fac[row.lhs]]
+            truth = var[row.group][fac[row.variable]]
         elif row.parameter == "mean":
-            truth = mean[row.group][fac[row.lhs]]
+            truth = mean[row.group][fac[row.variable]]
         else:  # pragma: no cover - no other free parameters in this model
             raise AssertionError(row.parameter)
         z.append((row.estimate - truth) / row.se)

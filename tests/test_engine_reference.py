@@ -117,8 +117,8 @@ def test_political_democracy_structural_paths_match_semopy():
 def test_estimates_table_and_standard_errors(hs, hs_structure):
     r = inv.fit_level(hs, hs_structure, "configural")
     est = r.estimates()
-    assert {"group", "parameter", "lhs", "rhs", "label", "free", "estimate", "se", "z", "pvalue", "std"} <= set(est)
-    lam = est[(est.parameter == "loading") & (est.lhs == "x1")]
+    assert {"group", "parameter", "variable", "other", "label", "free", "estimate", "se", "z", "pvalue", "std"} <= set(est)
+    lam = est[(est.parameter == "loading") & (est.variable == "x1")]
     # with the factor variance fixed at 1 the loading of x1 is about .900 (SE .081), from memory
     assert lam.estimate.iloc[0] == pytest.approx(0.900, abs=2e-3)
     assert lam.se.iloc[0] == pytest.approx(0.081, abs=2e-3)

@@ -353,7 +353,7 @@ def test_labels_with_control_characters_and_formulas(hs_dir, hs_frame):
 
 
 def test_escape_functions():
-    from invariance.report.escape import csv_cell, terminal_text, visible
+    from invariance.escape import csv_cell, terminal_text, visible
     from invariance.report.render import md_escape
     from invariance.report.tables import latex_escape
 

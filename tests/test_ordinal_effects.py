@@ -21,7 +21,7 @@ from invariance.model.ordinal_levels import build_ordinal_level
 from invariance.data.ordinal_stats import ordinal_stats_from_arrays
 from invariance.estimate import fit_dwls
 from invariance.effects.ordinal import bifactor_indices_latent, category_sd, dmacs_expected_score, dmacs_latent
-from invariance.estimate.ordinal_api import ordinal_effects
+from invariance.effects.ordinal import ordinal_effects
 
 
 def test_dmacs_latent_matches_quadrature():

@@ -16,7 +16,10 @@ from invariance.estimate.dwls_robust import dwls_difference, fit_dwls
 from invariance.model import Release, Structure
 from invariance.data.ordinal_stats import ordinal_stats_from_arrays
 from invariance.model.ordinal_levels import ORDINAL_LEVELS, build_ordinal_level
-from invariance.estimate.ordinal_api import release_search, release_tests
+from invariance.estimate.interface import DiagonallyWeighted
+from invariance.model import LevelBuilder
+from invariance.partial import release_search
+from invariance.partial.candidates import release_tests
 
 GROUPS = ["east", "west", "south"]
 
@@ -104,16 +107,24 @@ def test_planted_threshold_shift_is_flagged():
     # The specific factors' means stay 0 (common practice for bifactor scalar models):
     # freed, they are weakly identified next to the general mean and absorb the shift.
     ost = _population(41, (4, 0.5))
-    out = release_search(BIFACTOR, ost, "scalar", kinds=("threshold",), fixed_means=SPECIFIC)
-    assert [(r.parameter, r.item) for r in out["released"]] == [("threshold", "q5")]
-    first = out["steps"][0]["candidates"]
-    assert first[0]["item"] == "q5" and first[0]["pvalue"] < 1e-10
-    assert len(out["steps"]) == 2            # the second round finds nothing more
-    assert out["fit"].converged
+    builder, est, scalar = _scalar(ost)
+    out = release_search(scalar, ost, lambda f: False, estimator=est, builder=builder, parameters=("threshold",),
+                         correction="bonferroni")
+    assert [(r.parameter, r.item) for r in out.releases] == [("threshold", "q5")]
+    assert out.releases[0].test == "refit" and out.releases[0].pvalue < 1e-10
+    assert out.stop_reason == "no_significant"   # the second round finds nothing more
+    assert out.fit.converged
+
+
+def _scalar(ost):
+    builder = LevelBuilder(BIFACTOR, tuple(ost.names), None, tuple(SPECIFIC), tuple(int(k) for k in ost.n_categories))
+    est = DiagonallyWeighted()
+    return builder, est, est.fit(builder.build("scalar"), ost)
 
 
 def test_nothing_flagged_without_planted_shift():
     ost = _population(42, None)
-    rows = release_tests(BIFACTOR, ost, "scalar", kinds=("threshold",), fixed_means=SPECIFIC)
+    builder, est, scalar = _scalar(ost)
+    rows = release_tests(est, scalar, ost, ("threshold",), builder=builder)
     assert len(rows) == len(ITEMS)
-    assert all(r["pvalue"] >= 0.05 / len(ITEMS) for r in rows)
+    assert all(r.pvalue >= 0.05 / len(ITEMS) for r in rows)

@@ -70,7 +70,7 @@ def test_epc_matches_refit_change(hs):
     spec = release_constraint(fits["scalar"].spec, t.constraint)
     refit = fit(spec, stats)
     est = refit.estimates()
-    sel = est[(est.parameter == "intercept") & (est.lhs == t.constraint.item)].set_index("group")["estimate"]
+    sel = est[(est.parameter == "intercept") & (est.variable == t.constraint.item)].set_index("group")["estimate"]
     g, epc, _ = t.epc[0]
     other = [x for x in t.constraint.groups if x != g][0]
     assert (sel[g] - sel[other]) == pytest.approx(epc, rel=0.2)

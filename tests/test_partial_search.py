@@ -7,7 +7,8 @@ import numpy as np
 import pytest
 from scipy import stats as st
 
-from invariance import SpecificationError, Structure, build_level, fit
+from invariance import EstimationError, Release, SpecificationError, Structure, build_level, fit
+from invariance.estimate.interface import MaximumLikelihood
 from invariance.data.moments import stats_from_arrays
 from invariance.partial import adjust_pvalues, flagged_items, level_parameters, release_search
 
@@ -160,16 +161,46 @@ def test_until_clean_searches_a_level_that_holds(planted):
 
 
 def test_refit_jobs_pickle_for_process_or_distributed_executors(planted):
-    # A process pool or a distributed backend ships (spec, stats, start) jobs and the
-    # FitResult back: both must survive pickling with the function itself.
+    # A process pool or a distributed backend ships (estimator, fit, stats, candidate)
+    # jobs and the refit back: both must survive pickling with the function itself.
     import pickle
 
+    from invariance.estimate.interface import MaximumLikelihood
+    from invariance.partial.candidates import release_tests
     from invariance.partial.search import _refit
-    from invariance.partial.score import map_theta
 
+    est = MaximumLikelihood()
     f = fit(build_level(BIFACTOR, planted.names, "scalar"), planted)
-    job = (f.spec, planted, map_theta(f.spec, f.theta, f.spec))
+    cand = release_tests(est, f, planted, ("intercept",))[0]
+    job = (est, f, planted, cand)
     fn, job2 = pickle.loads(pickle.dumps((_refit, job)))
-    res = fn(job2)
+    res, why = fn(job2)
+    assert why is None
     back = pickle.loads(pickle.dumps(res))
-    assert back.fit.chi2 == pytest.approx(f.fit.chi2, rel=1e-6)
+    # one constraint fewer: the refit cannot fit worse than the restricted model
+    assert back.spec.df == f.spec.df - cand.df
+    assert back.fit.chi2 <= f.fit.chi2 + 1e-8
+
+
+@dataclasses.dataclass(frozen=True)
+class _FailsOnI10(MaximumLikelihood):
+    """ML whose fit of any model with i10's intercept released cannot be estimated."""
+
+    def fit(self, spec, stats, *, start=None):
+        if any(r.item == "i10" and r.parameter == "intercept" for r in spec.released):
+            raise EstimationError("the model could not be estimated: forced for the test")
+        return MaximumLikelihood.fit(self, spec, stats, start=start)
+
+
+def test_failed_refit_is_recorded_and_the_next_candidate_tried(planted):
+    # the planted i10 intercept is the most significant candidate at scalar; its refit is
+    # made to fail, so the search must record it and move on to the next significant one
+    metric = fit(build_level(BIFACTOR, planted.names, "metric", released=[Release("loading", "i3", "g")]), planted)
+    scalar = fit(build_level(BIFACTOR, planted.names, "scalar", released=[Release("loading", "i3", "g")]), planted)
+    plain = release_search(scalar, planted, chi2_judge(metric), max_releases=1)
+    assert (plain.releases[0].item, plain.releases[0].parameter) == ("i10", "intercept")
+    r = release_search(scalar, planted, lambda f: False, estimator=_FailsOnI10(), max_releases=1)
+    assert [k["label"] for k in r.skipped][:1] == ["intercept:i10"]
+    assert "forced for the test" in r.skipped[0]["reason"]
+    assert r.to_dict()["skipped"][0]["label"] == "intercept:i10"
+    assert len(r.releases) == 1 and r.releases[0].item != "i10"

@@ -3,7 +3,7 @@
 import pytest
 
 from invariance.errors import SpecificationError
-from invariance.pipeline.partial_stage import partial_settings, structural_settings
+from invariance.spec.options import partial_settings, structural_settings
 
 
 def test_partial_defaults_and_enabling():

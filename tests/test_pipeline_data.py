@@ -46,9 +46,12 @@ def test_read_spss_when_extra_installed(tmp_path):
 
 
 def test_unknown_suffix_and_missing_file(tmp_path):
-    (tmp_path / "x.xlsx").write_text("a")
+    (tmp_path / "x.xls").write_text("a")  # the old binary workbook format is not read
     with pytest.raises(Exception, match="data.format"):
-        read_table(tmp_path / "x.xlsx")
+        read_table(tmp_path / "x.xls")
+    (tmp_path / "broken.xlsx").write_text("a")  # not a workbook: one line naming the file
+    with pytest.raises(DataError, match="Cannot read data file 'broken.xlsx' as excel"):
+        read_table(tmp_path / "broken.xlsx")
     with pytest.raises(DataError, match="does not exist"):
         read_table(tmp_path / "nope.csv")
 

@@ -86,7 +86,7 @@ def test_output_folder_files(hs_all_levels):
     assert res.out_dir == out.resolve()
     assert sorted(p.name for p in out.iterdir()) == [
         "estimates.csv", "figures", "levels.csv", "manifest.json", "pipeline.yaml", "report.html", "report.md", "results.json",
-        "table_levels.csv", "table_levels.md", "table_levels.tex",
+        *(f"table_{name}.{ext}" for name in ("latent", "levels", "loadings") for ext in ("csv", "md", "tex")),
     ]
     table = pd.read_csv(out / "levels.csv")
     assert table["level"].tolist() == ["configural", "metric", "scalar", "strict"]
@@ -205,18 +205,18 @@ def test_spss_without_extra_gives_clear_error(tmp_path, monkeypatch):
 
 
 def test_unconverged_configural_is_not_called_noninvariance(hs_dir, monkeypatch):
-    from invariance.pipeline import stages
+    import dataclasses
 
-    real = stages.FITTERS["ml"]
+    from invariance.estimate.interface import MaximumLikelihood
 
-    def no_convergence(model, stats):
-        import dataclasses
+    real = MaximumLikelihood.fit
 
-        res = real(model, stats)
+    def no_convergence(self, model, stats, *, start=None):
+        res = real(self, model, stats, start=start)
         msg = "iteration limit reached before convergence"
         return dataclasses.replace(res, converged=False, status=msg, problems=(f"not converged: {msg}",))
 
-    monkeypatch.setitem(stages.FITTERS, "ml", no_convergence)
+    monkeypatch.setattr(MaximumLikelihood, "fit", no_convergence)
     d = invariance.run(hs_doc(str(hs_dir / "hs.csv")), quiet=True).to_dict()
     assert d["levels"][0]["converged"] is False
     assert d["levels"][0]["decision"] == "fails"

@@ -8,31 +8,28 @@ from invariance.pipeline import stages
 from conftest import hs_doc
 
 
-@pytest.fixture()
-def restore_stages():
-    saved = list(stages.STAGES)
-    yield
-    stages.STAGES[:] = saved
-
-
-def test_added_stage_sees_fits_and_its_result_is_merged(hs_dir, restore_stages):
+def test_added_stage_sees_fits_and_its_result_is_merged(hs_dir):
     seen = {}
 
     def extra(spec, state):
-        seen["levels"] = sorted(state["fits"])
-        # a later stage may refine level entries in place (e.g. partial invariance)
-        state["level_rows"][0]["note"] = "seen"
-        return {"extra_section": {"n_fits": len(state["fits"])}}
+        seen["levels"] = sorted(state.fits)
+        # a stage returns its results and a new state; the old one is never changed
+        new = state.update(extra={**state.extra, "mine": 1}).warn("extra: seen")
+        assert "mine" not in state.extra and "extra: seen" not in state.warnings
+        return {"extra_section": {"n_fits": len(state.fits)}}, new
 
-    invariance.pipeline.add_stage("extra", extra, after="fits")
-    names = [n for n, _ in stages.STAGES]
+    before = stages.STAGES
+    table = invariance.pipeline.with_stage("extra", extra, after="fits")
+    names = [n for n, _ in table]
     assert names.index("extra") == names.index("fits") + 1
-    d = invariance.run(hs_doc(str(hs_dir / "hs.csv"), levels=["configural", "metric"]), quiet=True).to_dict()
+    assert stages.STAGES is before and "extra" not in dict(stages.STAGES)  # the default table is immutable
+    d = invariance.run(hs_doc(str(hs_dir / "hs.csv"), levels=["configural", "metric"]), quiet=True,
+                       stages=table).to_dict()
     assert seen["levels"] == ["configural", "metric"]
     assert d["extra_section"] == {"n_fits": 2}
-    assert d["levels"][0]["note"] == "seen"
+    assert "extra: seen" in d["warnings"]
 
 
-def test_add_stage_rejects_unknown_anchor(restore_stages):
+def test_with_stage_rejects_unknown_anchor():
     with pytest.raises(ValueError, match="Unknown stage"):
-        invariance.pipeline.add_stage("x", lambda s, st: {}, after="nope")
+        invariance.pipeline.with_stage("x", lambda s, st: ({}, st), after="nope")

@@ -57,3 +57,23 @@ def test_format_duration():
     assert format_duration(0) == "0:00"
     assert format_duration(75) == "1:15"
     assert format_duration(3 * 3600 + 62) == "3:01:02"
+
+
+def test_fitting_stages_advance_the_line():
+    # the runner advances one step per stage, naming the stage; quiet runs draw nothing
+    from types import SimpleNamespace
+
+    from invariance.pipeline.runner import run_stages
+
+    spec = SimpleNamespace(title="t", estimator="ml", seed=1)
+    stages = [("data", lambda spec, state: {"a": 1}), ("fits", lambda spec, state: {"b": 2})]
+    out = FakeTerminal()
+    with Progress(len(stages), label="fitting", stream=out, min_interval=0.0) as bar:
+        results, _ = run_stages(spec, stages, progress=bar)
+    assert results["a"] == 1 and results["b"] == 2 and bar.count == 2
+    last = out.getvalue().strip().split("\r")[-1]
+    assert "fitting" in last and "2/2" in last and "fits" in last
+    quiet = FakeTerminal()
+    with Progress(len(stages), label="fitting", stream=quiet, quiet=True) as bar:
+        run_stages(spec, stages, progress=bar)
+    assert quiet.getvalue() == ""

@@ -18,6 +18,8 @@ from pathlib import Path
 import pytest
 from PIL import Image
 
+from invariance.report.parts import FOLD_ROWS
+
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "pipelines" / "shift_outlook_by_site.yaml"
 CORE = ["summary", "data", "model", "levels", "changes", "profiles", "cautions", "provenance"]
@@ -80,3 +82,23 @@ def test_demo_publication_table_rows(demo_run):
     rows = [l.split("|")[1].strip() for l in md[2:] if l.startswith("|")]
     assert rows == ["Configural", "Metric", "Scalar", "Strict"]
     assert "not tested" in md[5]
+
+
+def test_demo_paper_tables_and_folded_long_tables(demo_run):
+    out, _ = demo_run
+    for name in ("loadings", "latent"):
+        for ext in ("csv", "md", "tex"):
+            assert (out / f"table_{name}.{ext}").stat().st_size > 0, (name, ext)
+    for path in out.glob("table_*.md"):
+        text = path.read_text(encoding="utf-8")
+        assert "&lt;" not in text and "&gt;" not in text, path.name
+    html = (out / "report.html").read_text(encoding="utf-8")
+    md = (out / "report.md").read_text(encoding="utf-8")
+    # long tables (the 48-row screening table, the loadings) are folded; the levels table is not
+    folded = re.findall(r"<details><summary>[^<]*\((\d+) rows\)</summary>", html)
+    assert folded and all(int(n) > FOLD_ROWS for n in folded)
+    assert len(re.findall(r"<details><summary>", md)) == len(folded)
+    levels = html.split('<section id="levels">')[1].split("</section>")[0]
+    assert "<details>" not in levels
+    # user-facing text cites published sources, not the project's internal documents
+    assert "METHODS" not in html and "METHODS" not in md

@@ -12,7 +12,7 @@ from PIL import Image
 
 from invariance.report import write_reports
 from invariance.report.diagram import model_diagram
-from invariance.report.plots import change_chart, dmacs_heatmap, forest_chart, profile_chart
+from invariance.report.plots import DPI, PAGE_WIDTH, change_chart, dmacs_heatmap, forest_chart, profile_chart
 
 
 def decode(png: bytes) -> Image.Image:
@@ -44,7 +44,7 @@ def test_diagram_for_every_family(structure):
         loads.update({(i, general): -0.4 for i in ITEMS})
     paths = {(f, general): 0.7 for f in structure["factors"]} if structure["family"] == "second_order" else {}
     im = decode(model_diagram(structure, loadings=loads, paths=paths, correlations={("A", "B"): 0.3}))
-    assert im.width == 975 and im.height >= 300
+    assert im.width == round(PAGE_WIDTH * DPI) and im.height >= 2 * DPI
     # the structure alone (no estimates) still draws
     decode(model_diagram(structure))
     assert model_diagram({"factors": {}}) is None
@@ -65,15 +65,18 @@ def test_charts_with_many_groups_and_items():
 
 
 def test_threshold_profiles_for_ordinal_items(tmp_path):
-    # an ordinal run reports thresholds instead of intercepts; the profile section draws them
+    # an ordinal run reports thresholds instead of intercepts; the profile section draws the
+    # ones that differ across groups (o3's are equal in both groups and are left out)
     rows = []
-    for g in ("north", "south"):
+    for g, shift in (("north", 0.0), ("south", 0.2)):
         for it in ("o1", "o2", "o3"):
-            rows.append({"level": "configural", "group": g, "parameter": "loading", "lhs": it, "rhs": "F",
-                         "label": "", "free": True, "estimate": 0.7, "se": 0.05, "z": 14.0, "pvalue": 0.0, "std": 0.7})
+            d = 0.0 if it == "o3" else shift
+            rows.append({"level": "configural", "group": g, "parameter": "loading", "variable": it, "other": "F",
+                         "label": "", "free": True, "estimate": 0.7 - d, "se": 0.05, "z": 14.0, "pvalue": 0.0,
+                         "std": 0.7})
             for t in ("t1", "t2"):
-                rows.append({"level": "configural", "group": g, "parameter": "threshold", "lhs": it, "rhs": t,
-                             "label": "", "free": True, "estimate": -0.5 if t == "t1" else 0.6, "se": 0.08,
+                rows.append({"level": "configural", "group": g, "parameter": "threshold", "variable": it, "other": t,
+                             "label": "", "free": True, "estimate": (-0.5 if t == "t1" else 0.6) + d, "se": 0.08,
                              "z": 7.0, "pvalue": 0.0, "std": 0.0})
     results = {"groups": {"north": 250, "south": 240}, "reference_group": "north",
                "levels": [{"level": "configural", "converged": True, "chi2": 10.0, "df": 4, "decision": "holds"}]}
@@ -83,4 +86,15 @@ def test_threshold_profiles_for_ordinal_items(tmp_path):
     assert {"profile-threshold.png", "profile-loading.png", "model.png"} <= names
     assert "profile-intercept.png" not in names
     html = (tmp_path / "report.html").read_text(encoding="utf-8")
-    assert "Thresholds per group" in html
+    assert "Thresholds that differ across groups" in html and "left out: 2 held equal" in html
+
+
+def test_profiles_leave_out_parameters_equal_in_every_group(tmp_path):
+    rows = [{"level": "metric", "group": g, "parameter": "loading", "variable": it, "other": "F", "label": "",
+             "free": True, "estimate": 0.7, "se": 0.05, "z": 14.0, "pvalue": 0.0, "std": 0.7}
+            for g in ("north", "south") for it in ("o1", "o2", "o3")]
+    results = {"groups": {"north": 250, "south": 240}, "reference_group": "north",
+               "levels": [{"level": "metric", "converged": True, "chi2": 10.0, "df": 4, "decision": "holds"}]}
+    paths = write_reports(tmp_path, results, pd.DataFrame(rows), {})
+    assert not [p for p in paths if p.name.startswith("profile-")]
+    assert "All loadings are held equal across groups" in (tmp_path / "report.md").read_text(encoding="utf-8")

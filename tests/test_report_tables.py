@@ -16,9 +16,11 @@ from invariance.report.tables import (
     level_table_csv,
     level_table_latex,
     level_table_markdown,
+    _md_cell,
     latex_escape,
     write_level_tables,
 )
+from invariance.pipeline.output import level_table
 
 
 def test_journal_number_style():
@@ -34,19 +36,29 @@ def test_journal_number_style():
     assert level_label({"level": "metric"}) == "Metric"
 
 
-def test_csv_keeps_full_precision():
+def test_machine_and_paper_level_tables():
+    # levels.csv is the machine table (full precision); table_levels.csv the paper table:
+    # exactly the cells of table_levels.md, with a plain hyphen for minus
     results, _, _ = cached_case("three")
-    rows = list(csv.DictReader(io.StringIO(level_table_csv(results))))
-    assert [r["level"] for r in rows] == ["configural", "metric", "scalar", "strict"]
-    for r, e in zip(rows, results["levels"]):
-        assert float(r["chi2"]) == e["chi2"] and float(r["df"]) == e["df"]
-        assert float(r["rmsea_ci90_lower"]) == e["rmsea_ci90"][0]
-        assert float(r["rmsea_ci90_upper"]) == e["rmsea_ci90"][1]
-        if e["delta"] is None:
-            assert r["delta_chi2"] == ""
-        else:
-            assert math.isclose(float(r["delta_cfi"]), e["delta"]["cfi"])
-    assert "intercept of x3" in rows[2]["released"]
+    machine = level_table(results)
+    assert list(machine["level"]) == ["configural", "metric", "scalar", "strict"]
+    for (_, r), e in zip(machine.iterrows(), results["levels"]):
+        assert r["chi2"] == e["chi2"] and r["rmsea_lo"] == e["rmsea_ci90"][0]
+    rows = list(csv.reader(io.StringIO(level_table_csv(results))))
+    assert tuple(rows[0]) == DISPLAY_COLUMNS
+    md = [l for l in level_table_markdown(results).splitlines()[2:] if l.startswith("|")]
+    for cells, line in zip(rows[1:], md):
+        shown = [c.strip() for c in line.strip("|").split(" | ")]
+        assert [c.replace("-", "\u2212") for c in cells] == [c.replace("-", "\u2212") for c in shown]
+    assert "Partial scalar" == rows[3][0]
+
+
+def test_markdown_cells_keep_less_than_signs():
+    # "< .001" must read as printed; only a "<" that could open an HTML tag is escaped (CommonMark)
+    results, _, _ = cached_case("three")
+    md = level_table_markdown(results)
+    assert "&lt;" not in md and "&gt;" not in md and "< .001" in md
+    assert _md_cell("<b>x</b> | y") == "\\<b>x\\</b> \\| y"
 
 
 def test_markdown_table_layout():

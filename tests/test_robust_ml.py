@@ -141,7 +141,7 @@ def test_robust_se_against_semopy_sandwich(hs):
     s = sample_stats(hs, ITEMS)
     r = fit(build_level(STRUCT, s.names, "configural"), s, estimator="ml_robust")
     e = r.estimates()
-    ours = e[e.parameter == "residual"].set_index("lhs")["se"]
+    ours = e[e.parameter == "residual"].set_index("variable")["se"]
     for item in ITEMS:
         assert ours[item] == pytest.approx(float(ref[item]), rel=0.01), item
 
@@ -272,22 +272,30 @@ def test_saturated_observed_information_equals_expected_at_complete_data_mle(hs)
     # at the complete-data MLE (sample moments) observed and expected information of the
     # saturated normal model coincide (the score's derivative terms in x - xbar vanish)
     from invariance.data import missing_patterns
+    from invariance.data.em import pattern_moments
     from invariance.estimate.robust import saturated_information, saturated_observed_information
 
     s = sample_stats(hs, ITEMS[:4])
     g = s.groups[0]
     pat = missing_patterns(g.raw)
     A = saturated_information(pat, g.mean, g.cov)
-    B = saturated_observed_information(g.raw, pat, g.mean, g.cov)
+    B = saturated_observed_information(pattern_moments(g.raw), g.mean, g.cov)
     assert np.allclose(A, B, rtol=1e-5, atol=1e-6 * np.abs(A).max())
 
 
 def test_api_passes_estimator_and_missing_through(hs):
     from invariance import fit_levels
 
-    r = fit_levels(hs, STRUCT, ["configural"], group="school", estimator="ml_robust", missing="fiml")
+    r = fit_levels(hs, STRUCT, ["configural"], group="school", estimator="ml_robust", incomplete="full_information")
     s = sample_stats(hs, ITEMS, "school")
     ref = fit(build_level(STRUCT, s.names, "configural"), s, estimator="ml_robust")
     assert r["configural"].estimator == "ml_robust"
     assert r["configural"].extra["scaling_factor"] == pytest.approx(ref.extra["scaling_factor"], rel=1e-8)
-    assert r["configural"].extra["missing"][s.names[0]]["method"] == "fiml"
+    # incomplete= means what the pipeline's data.incomplete means: how rows with a
+    # missing item are used (the missing-value codes are not its business)
+    holey = hs.copy()
+    holey.loc[holey.index[:10], ITEMS[0]] = np.nan
+    full = fit_levels(holey, STRUCT, ["configural"], group="school", incomplete="full_information")["configural"]
+    lw = fit_levels(holey, STRUCT, ["configural"], group="school", incomplete="listwise")["configural"]
+    assert full.extra["missing"][s.names[0]]["method"] == "fiml"
+    assert sum(full.group_n) == len(hs) and sum(lw.group_n) == len(hs) - 10

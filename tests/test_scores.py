@@ -115,7 +115,7 @@ STRUCT = Structure(factors={"alpha": ("q1", "q2", "q3"), "beta": ("q4", "q5", "q
 def test_factor_scores_table_one_row_per_case_used(tmp_path):
     rng = np.random.default_rng(14)
     d = _two_group_frame(rng)
-    res = fit_level(d, STRUCT, "scalar", group="site")
+    res = fit_level(d, STRUCT, "scalar", group="site", incomplete="listwise")
     fs = factor_scores(res, d, group="site", method="bartlett", id="case")
     assert len(fs.table) == sum(res.group_n) == len(d) - 2
     assert list(fs.table.columns) == ["case", "group", "alpha", "beta"]

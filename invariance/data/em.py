@@ -9,11 +9,27 @@ T = -2 (logL_model - logL_H1) (METHODS section 6).
 
 from __future__ import annotations
 
+import hashlib
+from collections import OrderedDict
 from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["Patterns", "missing_patterns", "EMResult", "em_saturated", "pattern_loglik"]
+__all__ = [
+    "Patterns",
+    "missing_patterns",
+    "PatternMoments",
+    "pattern_moments",
+    "pattern_terms",
+    "pattern_loglik",
+    "pattern_loglik_moments",
+    "ContentCache",
+    "CACHE",
+    "EMResult",
+    "em_saturated",
+]
+
+_LOG2PI = float(np.log(2 * np.pi))
 
 
 @dataclass(frozen=True, eq=False)
@@ -47,7 +63,13 @@ def missing_patterns(x: np.ndarray) -> Patterns:
     """Group the rows of ``x`` (NaN = missing) by their pattern of observed items."""
     x = np.asarray(x, dtype=float)
     obs = ~np.isnan(x)
-    uniq, first, inv = np.unique(obs, axis=0, return_index=True, return_inverse=True)
+    if obs.shape[1] <= 62:
+        # one integer code per row: unique on a 1-d array is far cheaper than on rows
+        codes = obs.astype(np.int64) @ (np.int64(1) << np.arange(obs.shape[1], dtype=np.int64))
+        _, first, inv = np.unique(codes, return_index=True, return_inverse=True)
+        uniq = obs[first]
+    else:
+        uniq, first, inv = np.unique(obs, axis=0, return_index=True, return_inverse=True)
     inv = np.asarray(inv).reshape(-1)
     order = np.lexsort((first, -uniq.sum(axis=1)))
     rank = np.empty_like(order)
@@ -59,18 +81,153 @@ def missing_patterns(x: np.ndarray) -> Patterns:
     return Patterns(observed, case, counts, rows)
 
 
-def pattern_loglik(x: np.ndarray, pat: Patterns, mean: np.ndarray, cov: np.ndarray) -> float:
-    """Normal log-likelihood of incomplete data: every case on its observed items."""
-    total = 0.0
-    for k, rows in enumerate(pat.rows):
+@dataclass(frozen=True, eq=False)
+class PatternMoments:
+    """Sufficient statistics of incomplete data, one block per missingness pattern.
+
+    Arrays are padded to all ``p`` items: entries of items a pattern does not observe
+    are 0, so every pattern is one slice of a stack and the patterns are processed in
+    one batched call (METHODS section 14).
+
+    Attributes
+    ----------
+    observed
+        (K, p) boolean: the items each pattern observes (patterns with none dropped).
+    counts
+        (K,) cases per pattern, as floats.
+    means
+        (K, p) pattern means over the observed items.
+    covs
+        (K, p, p) pattern covariances (divisor n_k) over the observed items.
+    """
+
+    observed: np.ndarray
+    counts: np.ndarray
+    means: np.ndarray
+    covs: np.ndarray
+
+    @property
+    def n(self) -> float:
+        return float(self.counts.sum())
+
+    def reorder(self, ix) -> "PatternMoments":
+        """The same statistics with items in the order ``ix`` (new item i = old ix[i])."""
+        ix = np.asarray(ix)
+        return PatternMoments(self.observed[:, ix], self.counts, self.means[:, ix], self.covs[:, ix][:, :, ix])
+
+
+def _pattern_moments(x: np.ndarray) -> PatternMoments:
+    pat = missing_patterns(x)
+    keep = [k for k in range(pat.n_patterns) if pat.observed[k].any()]
+    K, p = len(keep), x.shape[1]
+    means, covs = np.zeros((K, p)), np.zeros((K, p, p))
+    for j, k in enumerate(keep):
         o = pat.observed[k]
-        if not o.any():
-            continue
-        R = np.linalg.cholesky(cov[np.ix_(o, o)])
-        e = np.linalg.solve(R, (x[np.ix_(rows, o)] - mean[o]).T)
-        logdet = 2.0 * np.log(np.diag(R)).sum()
-        total += -0.5 * (rows.size * (o.sum() * np.log(2 * np.pi) + logdet) + np.sum(e * e))
-    return float(total)
+        xo = x[np.ix_(pat.rows[k], o)]
+        m = xo.mean(axis=0)
+        e = xo - m
+        means[j, o] = m
+        covs[j][np.ix_(o, o)] = e.T @ e / xo.shape[0]
+    return PatternMoments(pat.observed[keep], pat.counts[keep].astype(float), means, covs)
+
+
+class ContentCache:
+    """Results of pure functions of a data array, keyed by the array's content.
+
+    The key does not depend on the order of the columns: a result is computed once in
+    a canonical column order and handed out reordered (``result.reorder(ix)``), so
+    statistics whose items were reordered (levels, refits, the MCAR test) still hit.
+    Holds at most ``size`` results (oldest dropped first).
+    """
+
+    def __init__(self, size: int = 512) -> None:
+        self.size = size
+        self._store: "OrderedDict[tuple, object]" = OrderedDict()
+
+    @staticmethod
+    def key(x: np.ndarray) -> tuple[tuple, np.ndarray]:
+        """(content key, canonical column order) of ``x``."""
+        x = np.asarray(x, dtype=float)
+        cols = [hashlib.blake2b(np.ascontiguousarray(x[:, j]).tobytes(), digest_size=16).digest() for j in range(x.shape[1])]
+        order = np.array(sorted(range(x.shape[1]), key=cols.__getitem__), dtype=np.int64)
+        return (x.shape, b"".join(cols[j] for j in order)), order
+
+    def get(self, kind: str, x: np.ndarray, compute):
+        """``compute(x)`` through the cache; ``compute`` must return an object with ``reorder``."""
+        x = np.asarray(x, dtype=float)
+        key, order = self.key(x)
+        full = (kind, key)
+        hit = self._store.get(full)
+        if hit is None:
+            hit = compute(x[:, order])
+            self._store[full] = hit
+            if len(self._store) > self.size:
+                self._store.popitem(last=False)
+        else:
+            self._store.move_to_end(full)
+        return hit.reorder(np.argsort(order))
+
+    def clear(self) -> None:
+        self._store.clear()
+
+
+#: the one cache of per-group statistics computed from raw data (patterns, EM, H1 information)
+CACHE = ContentCache()
+
+
+def pattern_moments(x: np.ndarray) -> PatternMoments:
+    """Per-pattern counts, means and covariances of ``x`` (NaN = missing), cached by content."""
+    return CACHE.get("patterns", x, _pattern_moments)
+
+
+def pattern_terms(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray):
+    """Batched inverse, log-determinant and mean residual of every pattern's block.
+
+    Each Sigma_oo is padded to p x p with the identity on the unobserved items, so one
+    stacked Cholesky factorization covers all patterns; the inverse is zeroed outside
+    the observed block.
+
+    Returns
+    -------
+    W : (K, p, p)
+        Sigma_oo^-1, zero outside the observed block.
+    logdet : (K,)
+        log|Sigma_oo|.
+    d : (K, p)
+        m_k - mu_o, zero on unobserved items.
+
+    Raises
+    ------
+    numpy.linalg.LinAlgError
+        When a block is not positive definite.
+    """
+    oo = pm.observed[:, :, None] & pm.observed[:, None, :]
+    pad = np.where(oo, cov[None], np.eye(cov.shape[0])[None])
+    R = np.linalg.cholesky(pad)
+    logdet = 2.0 * np.log(np.diagonal(R, axis1=1, axis2=2)).sum(axis=1)
+    W = np.linalg.inv(pad) * oo
+    d = (pm.means - mean[None]) * pm.observed
+    return W, logdet, d
+
+
+def pattern_loglik_moments(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray) -> float:
+    """Normal log-likelihood of incomplete data from its pattern statistics.
+
+    sum_k -n_k/2 [p_k log 2pi + log|Sigma_oo| + tr(Sigma_oo^-1 (S_k + d_k d_k'))].
+    """
+    W, logdet, d = pattern_terms(pm, mean, cov)
+    quad = np.einsum("kij,kij->k", W, pm.covs) + np.einsum("ki,kij,kj->k", d, W, d)
+    pk = pm.observed.sum(axis=1)
+    return float(-0.5 * pm.counts @ (pk * _LOG2PI + logdet + quad))
+
+
+def pattern_loglik(x: np.ndarray, pat: Patterns | None, mean: np.ndarray, cov: np.ndarray) -> float:
+    """Normal log-likelihood of incomplete data: every case on its observed items.
+
+    ``pat`` is accepted for compatibility and not needed: the pattern statistics of
+    ``x`` come from the cache.
+    """
+    return pattern_loglik_moments(pattern_moments(x), mean, cov)
 
 
 @dataclass(frozen=True, eq=False)
@@ -83,30 +240,36 @@ class EMResult:
     iterations: int
     converged: bool
 
+    def reorder(self, ix) -> "EMResult":
+        """The same estimates with items in the order ``ix``."""
+        ix = np.asarray(ix)
+        return EMResult(self.mean[ix], self.cov[np.ix_(ix, ix)], self.loglik, self.iterations, self.converged)
 
-def _em_step(blocks, mean: np.ndarray, cov: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
-    """One EM update of the saturated normal model (E-step by pattern, then M-step)."""
-    p = mean.size
-    t1 = np.zeros(p)
-    t2 = np.zeros((p, p))
-    for o, xo in blocks:
-        m = ~o
-        if not m.any():
-            t1 += xo.sum(axis=0)
-            t2 += xo.T @ xo
-            continue
-        beta = np.linalg.solve(cov[np.ix_(o, o)], cov[np.ix_(o, m)])   # (po, pm)
-        xm = mean[m] + (xo - mean[o]) @ beta                            # conditional means
-        cres = cov[np.ix_(m, m)] - cov[np.ix_(m, o)] @ beta            # conditional covariance
-        full = np.empty((xo.shape[0], p))
-        full[:, o] = xo
-        full[:, m] = xm
-        t1 += full.sum(axis=0)
-        t2 += full.T @ full
-        t2[np.ix_(m, m)] += xo.shape[0] * cres
-    new_mean = t1 / n
-    new_cov = t2 / n - np.outer(new_mean, new_mean)
-    return new_mean, (new_cov + new_cov.T) / 2
+
+def _em_step(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
+    """One EM update of the saturated normal model from the pattern statistics, and the
+    log-likelihood at the input point (from the same factorizations).
+
+    E-step for all patterns at once: with H_k = Sigma W_k (W_k the padded inverse of
+    Sigma_oo) the conditional mean of a case is a_k + H_k x_o, a_k = mu - H_k mu_o, and
+    the conditional covariance Sigma - H_k Sigma; their sums over a pattern's cases
+    need only n_k, m_k and S_k (Little & Rubin 2002, section 11.2).
+    """
+    W, logdet, d = pattern_terms(pm, mean, cov)
+    n = pm.counts
+    quad = np.einsum("kij,kij->k", W, pm.covs) + np.einsum("ki,kij,kj->k", d, W, d)
+    ll = float(-0.5 * n @ (pm.observed.sum(axis=1) * _LOG2PI + logdet + quad))
+    H = cov[None] @ W                                            # (K, p, p)
+    a = mean[None] - np.einsum("kij,kj->ki", H, mean[None] * pm.observed)
+    Hm = np.einsum("kij,kj->ki", H, pm.means)
+    sxx = pm.covs + pm.means[:, :, None] * pm.means[:, None, :]  # per case: S_k + m_k m_k'
+    t1 = n @ (a + Hm)
+    outer = a[:, :, None] * (a + 2.0 * Hm)[:, None, :]
+    t2 = np.einsum("k,kij->ij", n, outer + H @ sxx @ H.transpose(0, 2, 1) + (cov[None] - H @ cov[None]))
+    tot = n.sum()
+    new_mean = t1 / tot
+    new_cov = t2 / tot - np.outer(new_mean, new_mean)
+    return new_mean, (new_cov + new_cov.T) / 2, ll
 
 
 def _change(m0, c0, m1, c1) -> float:
@@ -126,14 +289,16 @@ def em_saturated(
     EM updates (Dempster, Laird & Rubin 1977) accelerated by squared extrapolation
     (SQUAREM, Varadhan & Roland 2008): two EM steps give the direction, an extrapolated
     point is accepted only when its covariance is positive definite and the likelihood
-    does not fall, so the iteration stays monotone.
+    does not fall, so the iteration stays monotone. Every step works on the pattern
+    statistics (:func:`pattern_moments`), and the result is cached by the data's
+    content (:data:`CACHE`): the MCAR test and refits of the same group reuse it.
 
     Parameters
     ----------
     x
         (n, p) data, NaN where missing; every row must observe at least one item.
     patterns
-        Precomputed :func:`missing_patterns` of ``x``.
+        Accepted for compatibility; the pattern statistics come from the cache.
     max_iter, tol
         Limit on EM updates; convergence when an EM update moves no mean or covariance
         entry by more than ``tol`` relative to the item variances.
@@ -144,46 +309,63 @@ def em_saturated(
         With complete data the estimates are the sample mean and covariance after one
         step.
     """
-    x = np.asarray(x, dtype=float)
-    n, p = x.shape
-    pat = missing_patterns(x) if patterns is None else patterns
+    return CACHE.get(f"em:{max_iter}:{tol!r}", x, lambda xc: _em_run(xc, max_iter=max_iter, tol=tol))
+
+
+def _squarem_point(pm, mean, cov, m1, c1, m2, c2, ll):
+    """The SQUAREM extrapolation from (mean, cov) through two EM steps, stabilized by one
+    EM step, or None when it is not positive definite or its likelihood falls below
+    ``ll`` (the EM step after it cannot lower it again, so the run stays monotone)."""
+    p = mean.size
+    th0 = np.concatenate([mean, cov.ravel()])
+    r = np.concatenate([m1, c1.ravel()]) - th0
+    v = np.concatenate([m2, c2.ravel()]) - 2 * np.concatenate([m1, c1.ravel()]) + th0
+    alpha = -np.sqrt(r @ r) / max(np.sqrt(v @ v), 1e-300)
+    if alpha >= -1.0:
+        return None
+    th = th0 - 2 * alpha * r + alpha**2 * v
+    me, ce = th[:p], th[p:].reshape(p, p)
+    try:
+        me2, ce2, lle = _em_step(pm, me, (ce + ce.T) / 2)
+    except np.linalg.LinAlgError:
+        return None
+    return (me2, ce2) if lle >= ll else None
+
+
+def _pairwise_start(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Starting means and covariance: available-case moments (each pair over the cases
+    observing both items), or the diagonal of the variances when those are not positive
+    definite."""
     mean = np.nanmean(x, axis=0)
-    var = np.nanvar(x, axis=0)
-    cov = np.diag(np.where(var > 0, var, 1.0))
-    blocks = [(pat.observed[k], x[np.ix_(rows, pat.observed[k])]) for k, rows in enumerate(pat.rows)]
-    ll = pattern_loglik(x, pat, mean, cov)
+    obs = ~np.isnan(x)
+    xc = np.where(obs, x - mean, 0.0)
+    cnt = obs.T.astype(float) @ obs.astype(float)
+    cov = (xc.T @ xc) / np.maximum(cnt, 1.0)
+    try:
+        np.linalg.cholesky(cov)
+        return mean, cov
+    except np.linalg.LinAlgError:
+        var = np.diag(cov)
+        return mean, np.diag(np.where(var > 0, var, 1.0))
+
+
+def _em_run(x: np.ndarray, *, max_iter: int, tol: float) -> EMResult:
+    pm = pattern_moments(x)
+    mean, cov = _pairwise_start(x)
     converged = False
     steps = 0
     while steps < max_iter:
-        m1, c1 = _em_step(blocks, mean, cov, n)
+        m1, c1, ll = _em_step(pm, mean, cov)
         steps += 1
         if _change(mean, cov, m1, c1) < tol:
             mean, cov, converged = m1, c1, True
             break
-        m2, c2 = _em_step(blocks, m1, c1, n)
+        m2, c2, _ = _em_step(pm, m1, c1)
         steps += 1
         if _change(m1, c1, m2, c2) < tol:
             mean, cov, converged = m2, c2, True
             break
-        th0 = np.concatenate([mean, cov.ravel()])
-        r = np.concatenate([m1, c1.ravel()]) - th0
-        v = np.concatenate([m2, c2.ravel()]) - 2 * np.concatenate([m1, c1.ravel()]) + th0
-        alpha = -np.sqrt(r @ r) / max(np.sqrt(v @ v), 1e-300)
-        accepted = False
-        if alpha < -1.0:
-            th = th0 - 2 * alpha * r + alpha**2 * v
-            me, ce = th[:p], th[p:].reshape(p, p)
-            ce = (ce + ce.T) / 2
-            try:
-                np.linalg.cholesky(ce)
-                me, ce = _em_step(blocks, me, ce, n)
-                steps += 1
-                lle = pattern_loglik(x, pat, me, ce)
-                if lle >= ll:
-                    mean, cov, ll, accepted = me, ce, lle, True
-            except np.linalg.LinAlgError:
-                pass
-        if not accepted:
-            mean, cov = m2, c2
-            ll = pattern_loglik(x, pat, mean, cov)
-    return EMResult(mean, cov, pattern_loglik(x, pat, mean, cov), steps, converged)
+        ext = _squarem_point(pm, mean, cov, m1, c1, m2, c2, ll)
+        steps += ext is not None
+        mean, cov = ext if ext is not None else (m2, c2)
+    return EMResult(mean, cov, pattern_loglik_moments(pm, mean, cov), steps, converged)

@@ -1,9 +1,10 @@
 """Reading data files into a pandas DataFrame, with missing-value codes applied.
 
 Formats are chosen from the file suffix (or given explicitly): comma-separated
-(``.csv``), tab-separated (``.tsv``, ``.tab``), Stata (``.dta``, through pandas) and
+(``.csv``), tab-separated (``.tsv``, ``.tab``), Stata (``.dta``, through pandas),
 SPSS (``.sav``, ``.zsav``, through the optional ``spss`` extra, which installs
-pyreadstat).
+pyreadstat) and Excel workbooks (``.xlsx``, ``.xlsm``, through pandas with openpyxl:
+the first sheet, or the one named by ``sheet``).
 """
 
 from __future__ import annotations
@@ -25,6 +26,7 @@ FORMATS = {
     "tsv": (".tsv", ".tab"),
     "stata": (".dta",),
     "spss": (".sav", ".zsav"),
+    "excel": (".xlsx", ".xlsm"),
 }
 
 
@@ -36,7 +38,7 @@ def guess_format(path: pathlib.Path) -> str:
             return name
     raise SpecificationError(
         f"Cannot tell the format of data file {path.name!r} from its suffix; use .csv, .tsv, "
-        f".dta or .sav, or set data.format to one of {', '.join(FORMATS)}."
+        f".dta, .sav or .xlsx, or set data.format to one of {', '.join(FORMATS)}."
     )
 
 
@@ -58,7 +60,30 @@ NA_TEXTS = (
 _SEPARATORS = {",": "comma", ";": "semicolon", "\t": "tab", "|": "vertical bar"}
 
 
-def read_table(path: str | pathlib.Path, *, format: str | None = None, text_columns: Sequence[str] = ()):
+def _read_excel(path: pathlib.Path, sheet: str | int | None):
+    """One sheet of an Excel workbook (the first when ``sheet`` is None)."""
+    import pandas as pd
+
+    with pd.ExcelFile(path, engine="openpyxl") as book:
+        names = [str(n) for n in book.sheet_names]
+        if sheet is None:
+            sheet = 0
+        if isinstance(sheet, int) and not 0 <= sheet < len(names):
+            raise DataError(
+                f"Data file {path.name!r} has {len(names)} sheet(s), so there is no sheet {sheet}; "
+                f"set data.sheet to a position from 0 to {len(names) - 1} or to a name: {', '.join(names)}."
+            )
+        if isinstance(sheet, str) and sheet not in names:
+            raise DataError(
+                f"Data file {path.name!r} has no sheet {sheet!r}; set data.sheet to one of: {', '.join(names)}."
+            )
+        return pd.read_excel(book, sheet_name=sheet)
+
+
+def read_table(
+    path: str | pathlib.Path, *, format: str | None = None, sheet: str | int | None = None,
+    text_columns: Sequence[str] = (),
+):
     """Read a data file into a DataFrame.
 
     Parameters
@@ -66,10 +91,12 @@ def read_table(path: str | pathlib.Path, *, format: str | None = None, text_colu
     path
         The data file.
     format
-        ``csv``, ``tsv``, ``stata`` or ``spss``; guessed from the suffix when omitted.
+        ``csv``, ``tsv``, ``stata``, ``spss`` or ``excel``; guessed from the suffix when omitted.
+    sheet
+        Excel workbooks only: the sheet, by name or 0-based position (default the first).
     text_columns
         Columns (the group column) whose cells are labels: only an empty cell is missing
-        there, so a group labelled NA, None or null is kept.
+        there, so a group labelled NA, None or null is kept (CSV and TSV files).
 
     Returns
     -------
@@ -88,6 +115,8 @@ def read_table(path: str | pathlib.Path, *, format: str | None = None, text_colu
     if not path.is_file():
         raise DataError(f"Data file {shorten(str(path))} does not exist; check data.path (relative to the pipeline file).")
     fmt = format or guess_format(path)
+    if sheet is not None and fmt != "excel":
+        raise SpecificationError(f"data.sheet applies to Excel workbooks only, and {path.name!r} is read as {fmt}; remove data.sheet.")
     try:
         if fmt in ("csv", "tsv"):
             frame = _read_delimited(path, fmt, text_columns)
@@ -102,6 +131,8 @@ def read_table(path: str | pathlib.Path, *, format: str | None = None, text_colu
                     "pip install 'invariance[spss]' or save the data as CSV."
                 ) from None
             frame = pd.read_spss(path, convert_categoricals=False)
+        elif fmt == "excel":
+            frame = _read_excel(path, sheet)
         else:
             raise SpecificationError(f"Unknown data format {fmt!r}; use one of {', '.join(FORMATS)}.")
     except InvarianceErrorTypes:

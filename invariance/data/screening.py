@@ -69,7 +69,7 @@ SCREENING_RULES = {
     "item_kurtosis": {"value": 7.0, "source": "common practice; West, Finch & Curran (1995)"},
     "floor_ceiling_share": {"value": 0.15, "source": "common practice"},
     "item_total_min": {"value": 0.30, "source": "common practice"},
-    "small_group": {"value": 200, "source": "common practice (METHODS section 13)"},
+    "small_group": {"value": 200, "source": "common practice (groups under about 200 cases make the tests weak)"},
 }
 
 

@@ -53,8 +53,8 @@ __all__ = [
 #: Name given to the general, higher-order or single factor when none is given.
 DEFAULT_GENERAL = "general"
 #: Information criteria by which the best structure is marked.
-CRITERIA = ("aic", "bic", "sabic")
-_STATS = ("chi2", "df", "pvalue", "cfi", "tli", "rmsea", "srmr", "aic", "bic", "sabic", "n", "n_params")
+CRITERIA = ("aic", "bic", "bic_adjusted")
+_STATS = ("chi2", "df", "pvalue", "cfi", "tli", "rmsea", "srmr", "aic", "bic", "bic_adjusted", "n", "n_params")
 
 
 def build_structure(
@@ -201,7 +201,7 @@ class StructureComparison:
         return pd.DataFrame([{k: v for k, v in r.items() if k != "problems"} for r in self.rows])
 
     def best(self, criterion: str = "bic", group: str = "all") -> str | None:
-        """The family marked best by ``criterion`` (``aic``, ``bic``, ``sabic``) in ``group``."""
+        """The family marked best by ``criterion`` (``aic``, ``bic``, ``bic_adjusted``) in ``group``."""
         if criterion not in CRITERIA:
             raise SpecificationError(
                 f"The criterion must be one of {', '.join(CRITERIA)}; got {criterion!r}."

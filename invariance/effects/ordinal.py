@@ -28,7 +28,10 @@ from typing import Mapping, Sequence
 import numpy as np
 from scipy.special import ndtr
 
-__all__ = ["dmacs_latent", "dmacs_expected_score", "category_sd", "bifactor_indices_latent"]
+from ..data.ordinal_stats import OrdinalStats
+from ..estimate.result import FitResult
+
+__all__ = ["dmacs_latent", "dmacs_expected_score", "category_sd", "bifactor_indices_latent", "ordinal_effects"]
 
 _GH_X, _GH_W = np.polynomial.hermite_e.hermegauss(40)   # weight exp(-x^2/2)
 _GH_W = _GH_W / _GH_W.sum()
@@ -164,3 +167,65 @@ def bifactor_indices_latent(
         "h_general": float(1.0 / (1.0 + 1.0 / np.sum(lg**2 / (1.0 - lg**2)))),
         "specific": per,
     }
+
+
+def ordinal_effects(result: FitResult, stats: OrdinalStats, *, focal: str, reference: str | None = None) -> dict:
+    """dMACS per item (latent-response and expected-score scales) and, for bifactor
+    structures, latent-response bifactor indices per group.
+
+    Parameters
+    ----------
+    result
+        A DWLS fit of an ordinal level (usually scalar with its releases).
+    stats
+        The ordinal statistics it was fitted to.
+    focal, reference
+        The two groups compared (reference: the model's reference group by default).
+
+    Returns
+    -------
+    dict
+        ``dmacs``: item -> {``latent``, ``expected_score``}; ``bifactor``: group ->
+        indices (only when the model has one factor loading on every item and others).
+    """
+    spec = result.spec
+    if tuple(stats.items) != tuple(spec.items):
+        stats = stats.reorder_items(spec.items)
+    ref = reference or spec.reference
+    gr, gf = spec.groups.index(ref), spec.groups.index(focal)
+    mats = {g: result.matrices[g] for g in (gr, gf)}
+    fits = {g: stats.fits[stats.names.index(spec.groups[g])] for g in (gr, gf)}
+    lam_f, beta_f, psi_f, th_f, nu_f, al_f, tau_f = mats[gf]
+    A = np.linalg.inv(np.eye(beta_f.shape[0]) - beta_f)
+    phi_f = A @ psi_f @ A.T
+    alpha_f = A @ al_f
+    dm = {}
+    for i, it in enumerate(spec.items):
+        pr = {"nu": mats[gr][4][i], "lam": mats[gr][0][i], "theta": mats[gr][3][i, i], "tau": mats[gr][6][i]}
+        pf = {"nu": nu_f[i], "lam": lam_f[i], "theta": th_f[i, i], "tau": tau_f[i]}
+        nr, nf = fits[gr].n, fits[gf].n
+        sd_lat = [np.sqrt(result.sigma[g][i, i]) for g in (gr, gf)]
+        sd_obs = [category_sd(fits[g].thresholds[i]) for g in (gr, gf)]
+        pooled = float(np.sqrt(((nr - 1) * sd_obs[0] ** 2 + (nf - 1) * sd_obs[1] ** 2) / (nr + nf - 2)))
+        lat = dmacs_latent(pr["nu"], pr["lam"], pf["nu"], pf["lam"], alpha_f, phi_f,
+                           sd_r=sd_lat[0], sd_f=sd_lat[1], n_r=nr, n_f=nf)
+        if stats.n_categories[i] == 0:
+            # a continuous item is its own response scale: the two versions coincide
+            dm[it] = {"latent": lat, "expected_score": lat}
+            continue
+        dm[it] = {"latent": lat, "expected_score": dmacs_expected_score(pr, pf, alpha_f, phi_f, sd_pooled=pooled)}
+    out = {"reference": ref, "focal": focal, "dmacs": dm}
+    p = len(spec.items)
+    lam0 = result.matrices[0][0]
+    full = [c for c in range(lam0.shape[1]) if np.all(lam0[:, c] != 0)]
+    if len(full) == 1 and lam0.shape[1] > 1:
+        gcol = full[0]
+        bif = {}
+        for g, gname in enumerate(spec.groups):
+            std = result.standardized(gname)
+            L, T = std["lambda"], np.diag(std["theta"])
+            specifics = {spec.factors[c]: [c, *np.flatnonzero(L[:, c] != 0).tolist()]
+                         for c in range(L.shape[1]) if c != gcol and np.any(L[:, c] != 0)}
+            bif[gname] = bifactor_indices_latent(L, T, general=gcol, specifics=specifics)
+        out["bifactor"] = bif
+    return out

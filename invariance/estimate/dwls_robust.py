@@ -42,8 +42,9 @@ from ..data.polychoric import _single_thread
 from ..data.ordinal_stats import OrdinalStats
 from .result import FitResult
 from .dwls import DWLSObjective, ordinal_start_values
-from .ml import diagnose
+from .ml import diagnose, estimation_record
 from .optimize import minimize
+from .starts import DEFAULT_STARTS, run_starts, variance_bounds
 
 __all__ = ["fit_dwls", "dwls_difference", "robust_pieces"]
 
@@ -117,6 +118,9 @@ def fit_dwls(
     *,
     start: np.ndarray | None = None,
     max_iter: int = 500,
+    variances: str = "unrestricted",
+    starts: int = DEFAULT_STARTS,
+    seed: int | None = None,
 ) -> FitResult:
     """Estimate an ordinal multi-group model by DWLS with robust statistics.
 
@@ -130,6 +134,11 @@ def fit_dwls(
         Starting vector (chosen from the statistics when omitted).
     max_iter
         Iteration limit of the scoring runs.
+    variances, starts, seed
+        As for :func:`invariance.estimate.ml.fit`: bounds on the free variance
+        parameters, alternative starts and their seed. A factor collapsing onto one
+        item shows, in the theta parameterization, as a loading and thresholds growing
+        without bound: it is caught and named as a run-away solution.
 
     Returns
     -------
@@ -138,17 +147,20 @@ def fit_dwls(
         holds the adjusted statistics and indices described in the module docstring.
     """
     with _single_thread():  # small products: BLAS threads only add overhead
-        return _fit_dwls(spec, stats, start=start, max_iter=max_iter)
+        return _fit_dwls(spec, stats, start=start, max_iter=max_iter, variances=variances, starts=starts, seed=seed)
 
 
-def _fit_dwls(spec, stats, *, start, max_iter) -> FitResult:
+def _fit_dwls(spec, stats, *, start, max_iter, variances, starts, seed) -> FitResult:
     if tuple(stats.names) != tuple(spec.groups):
         stats = stats.subset(spec.groups)
     if tuple(stats.items) != tuple(spec.items):
         stats = stats.reorder_items(spec.items)
     obj = DWLSObjective(spec, stats)
-    x0 = ordinal_start_values(spec, stats) if start is None else np.asarray(start, float)
-    out = minimize(obj, x0, max_iter=max_iter)
+    lower = variance_bounds(spec) if variances == "nonnegative" else None
+    out, record = run_starts(obj, spec, lambda: ordinal_start_values(spec, stats), start=start, starts=starts,
+                             seed=seed, lower=lower, max_iter=max_iter)
+    estimation = estimation_record(spec, out, record, lower,
+                                   options=dict(variances=variances, starts=starts, seed=seed))
     if not np.isfinite(out.fun):
         raise EstimationError(
             f"The {spec.level or 'ordinal'} model could not be estimated: {out.message}; "
@@ -169,7 +181,7 @@ def _fit_dwls(spec, stats, *, start, max_iter) -> FitResult:
         s_, mu_, _, _ = implied_moments(m[:6])
         sigmas.append(s_)
         mus.append(mu_)
-    problems = diagnose(spec, [m[:6] for m in matrices], sigmas, bread)
+    problems = estimation["runaway"] + diagnose(spec, [m[:6] for m in matrices], sigmas, bread) + estimation["at_bound"]
     acov = None
     if not any(p.startswith("singular information") for p in problems):
         binv = np.linalg.inv(bread)
@@ -206,7 +218,7 @@ def _fit_dwls(spec, stats, *, start, max_iter) -> FitResult:
         chi2=t, df=int(df), pvalue=float(_st.chi2.sf(t, df)) if df > 0 else nan,
         cfi=cfi(t, df, t_b, df_b), tli=tli(t, df, t_b, df_b), rmsea=rmsea(t, df, N, G),
         rmsea_ci90=rmsea_interval(t, df, N, G), srmr=srmr, loglik=nan, loglik_saturated=nan,
-        aic=nan, bic=nan, sabic=nan, mc=nan, n_params=int(spec.n_params), n=int(N),
+        aic=nan, bic=nan, bic_adjusted=nan, mc=nan, n_params=int(spec.n_params), n=int(N),
         baseline_chi2=float(t_b), baseline_df=int(df_b),
     )
     if not out.converged:
@@ -226,7 +238,7 @@ def _fit_dwls(spec, stats, *, start, max_iter) -> FitResult:
         status=out.message, iterations=out.iterations, fit=fs, problems=tuple(problems),
         matrices=matrices, sigma=tuple(sigmas), mu=tuple(mus),
         group_n=tuple(int(f.n) for f in stats.fits),
-        extra={"robust": robust},
+        extra={"robust": robust, "estimation": estimation},
     )
 
 

@@ -20,48 +20,61 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..data.em import em_saturated, missing_patterns, pattern_loglik
+from ..data.em import PatternMoments, em_saturated, pattern_moments, pattern_terms
 from ..data.moments import SampleStats
 from ..model.spec import ModelSpec
 from .kernels import (
     compile_spec,
+    factor_jacobian,
+    factored_gradient,
+    factored_information,
+    factored_moment_hessian,
+    gram,
     group_matrices,
     implied_moments,
     layout_jacobians,
-    ml_derivatives,
-    ml_hessian,
-    moment_jacobian,
+    second_derivative_part,
 )
 from .linalg import partition
 
-__all__ = ["FIMLObjective", "independence_loglik"]
+__all__ = ["FIMLObjective", "independence_loglik", "pattern_m2ll"]
 
 _LOG2PI = float(np.log(2 * np.pi))
 
 
 class _GroupData:
-    """Pattern bookkeeping of one group: observed items, counts, means, covariances."""
+    """One group's data: the cases, their pattern statistics and logL_H1 (all cached)."""
 
     def __init__(self, x: np.ndarray, loglik_h1: float | None) -> None:
         self.x = x
-        self.pat = missing_patterns(x)
-        self.obs, self.nk, self.mk, self.Sk = [], [], [], []
-        for k, rows in enumerate(self.pat.rows):
-            o = self.pat.observed[k]
-            if not o.any():
-                continue
-            xo = x[np.ix_(rows, o)]
-            m = xo.mean(axis=0)
-            e = xo - m
-            self.obs.append(np.flatnonzero(o))
-            self.nk.append(float(rows.size))
-            self.mk.append(m)
-            self.Sk.append(e.T @ e / rows.size)
+        self.pm: PatternMoments = pattern_moments(x)
         if loglik_h1 is None:
-            em = em_saturated(x, patterns=self.pat)
-            loglik_h1 = em.loglik
+            loglik_h1 = em_saturated(x).loglik
         self.loglik_h1 = float(loglik_h1)
-        self.n = float(sum(self.nk))
+        self.n = self.pm.n
+        self._last: tuple | None = None
+
+    def terms(self, sigma: np.ndarray, mu: np.ndarray):
+        """:func:`pattern_m2ll` with parts, remembered for the last moments (the optimizer
+        asks for the value, the derivatives and the Hessian at the same point)."""
+        key = sigma.tobytes() + mu.tobytes()
+        if self._last is None or self._last[0] != key:
+            self._last = (key, pattern_m2ll(self.pm, sigma, mu, parts=True))
+        return self._last[1]
+
+
+def pattern_m2ll(pm: PatternMoments, sigma: np.ndarray, mu: np.ndarray, *, parts: bool = False):
+    """-2 logL of one group from its pattern statistics, all patterns batched.
+
+    sum_k n_k [p_k log 2pi + log|Sigma_oo| + tr(Sigma_oo^-1 (S_k + d_k d_k'))]
+    (METHODS section 14). With ``parts=True`` also returns (W, d, C): the padded
+    inverses, mean residuals and second moments about the implied mean of every pattern.
+    """
+    W, logdet, d = pattern_terms(pm, mu, sigma)
+    C = pm.covs + d[:, :, None] * d[:, None, :]
+    pk = pm.observed.sum(axis=1)
+    val = float(pm.counts @ (pk * _LOG2PI + logdet + np.einsum("kij,kij->k", W, C)))
+    return (val, W, d, C) if parts else val
 
 
 class FIMLObjective:
@@ -69,7 +82,10 @@ class FIMLObjective:
 
     Same interface as :class:`~invariance.estimate.objective.MLObjective`: ``value``
     is T = -2 (logL_model - logL_H1); ``derivatives`` gives T, its gradient and the
-    expected information (expected Hessian of T).
+    expected information (expected Hessian of T). Every evaluation is batched over a
+    group's patterns (one stacked factorization), and the derivatives are contracted
+    once per group through the factored Jacobian
+    (:func:`~invariance.estimate.kernels.factor_jacobian`).
 
     Parameters
     ----------
@@ -106,30 +122,14 @@ class FIMLObjective:
             total = 0.0
             for lay, d in zip(self.layouts, self.data):
                 sigma, mu, _, _ = implied_moments(group_matrices(lay, theta))
-                total += pattern_loglik(d.x, d.pat, mu, sigma)
-            return total
+                total += d.terms(sigma, mu)[0]
+            return -0.5 * total
         except np.linalg.LinAlgError:
             return -np.inf
 
-    def _group_m2ll(self, d: _GroupData, sigma: np.ndarray, mu: np.ndarray) -> float:
-        total = 0.0
-        for o, n, m, S in zip(d.obs, d.nk, d.mk, d.Sk):
-            R = np.linalg.cholesky(sigma[np.ix_(o, o)])
-            Ri = np.linalg.inv(R)
-            W = Ri.T @ Ri
-            e = m - mu[o]
-            total += n * (o.size * _LOG2PI + 2.0 * np.log(np.diag(R)).sum() + np.sum(S * W) + e @ W @ e)
-        return total
-
     def value(self, theta: np.ndarray) -> float:
-        try:
-            total = 0.0
-            for lay, d in zip(self.layouts, self.data):
-                sigma, mu, _, _ = implied_moments(group_matrices(lay, theta))
-                total += self._group_m2ll(d, sigma, mu)
-        except np.linalg.LinAlgError:
-            return np.inf
-        return float(total + 2.0 * self.loglik_h1)
+        ll = self.loglik(theta)
+        return float(-2.0 * ll + 2.0 * self.loglik_h1) if np.isfinite(ll) else np.inf
 
     def moments(self, theta: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
         """Implied (Sigma, mu) of every group."""
@@ -139,29 +139,29 @@ class FIMLObjective:
         """Per group: (matrices, Sigma, mu, dS, dm) at ``theta`` (local parameters)."""
         return layout_jacobians(self.layouts, theta)
 
+    def _group(self, lay, d: _GroupData, theta: np.ndarray):
+        """Per group: value, factored Jacobian, and the pattern terms (W, d, C)."""
+        mats = group_matrices(lay, theta)
+        sigma, mu, G, A = implied_moments(mats)
+        val, W, e, C = d.terms(sigma, mu)
+        return mats, G, A, factor_jacobian(lay, mats, G, A), val, W, e, C
+
     def derivatives(self, theta: np.ndarray, *, information: bool = True):
         q = self.n_params
         grad = np.zeros(q)
         info = np.zeros((q, q)) if information else None
         total = 2.0 * self.loglik_h1
         for lay, d in zip(self.layouts, self.data):
-            mats = group_matrices(lay, theta)
-            sigma, mu, G, A = implied_moments(mats)
-            dS, dm = moment_jacobian(lay, mats, G, A)
-            total += self._group_m2ll(d, sigma, mu)
+            _, _, _, fj, val, W, e, C = self._group(lay, d, theta)
+            total += val
+            n = d.pm.counts
+            WC = W @ C
+            Gs = np.tensordot(n, W - WC @ W, axes=1)           # sum_k n_k (W - W C W)
+            w = np.tensordot(n, np.einsum("kij,kj->ki", W, e), axes=1)
             u = lay.params
-            gg = np.zeros(u.size)
-            hh = np.zeros((u.size, u.size)) if information else None
-            for o, n, m, S in zip(d.obs, d.nk, d.mk, d.Sk):
-                g1, h1, _ = ml_derivatives(
-                    sigma[np.ix_(o, o)], mu[o], S, m, dS[:, o][:, :, o], dm[:, o], information=information
-                )
-                gg += n * g1
-                if information:
-                    hh += n * h1
-            grad[u] += gg
+            grad[u] += factored_gradient(fj, Gs, w)
             if information:
-                info[np.ix_(u, u)] += hh
+                info[np.ix_(u, u)] += factored_information(fj, gram(fj.H, W), n)
         if not np.isfinite(total):
             raise np.linalg.LinAlgError("implied covariance not positive definite")
         return float(total), grad, info
@@ -169,50 +169,27 @@ class FIMLObjective:
     def hessian(self, theta: np.ndarray) -> np.ndarray:
         """Exact (observed) Hessian of T, analytic.
 
-        Per pattern the moment part of the complete-data Hessian on the observed rows
-        and columns; the second-derivative part is linear in Gs = W - W C W and w = W d,
-        so the patterns' embedded Gs and w are summed and contracted once per group by
-        the complete-data kernel (METHODS section 2; Kenward & Molenberghs 1998 for why
-        the observed information is the one to use under MAR).
+        The first-derivative part is summed over patterns from their Gram matrices
+        (:func:`~invariance.estimate.kernels.factored_moment_hessian`); the
+        second-derivative part is linear in Gs = W - W C W and w = W d, so the
+        patterns' sums are contracted once per group (METHODS section 2; Kenward &
+        Molenberghs 1998 for why the observed information is the one to use under MAR).
         """
         q = self.n_params
         H = np.zeros((q, q))
         for lay, d in zip(self.layouts, self.data):
-            mats = group_matrices(lay, theta)
-            sigma, mu, G, A = implied_moments(mats)
-            dS, dm = moment_jacobian(lay, mats, G, A)
-            p = sigma.shape[0]
-            Gs_t = np.zeros((p, p))
-            w_t = np.zeros(p)
-            hh = np.zeros((dS.shape[0], dS.shape[0]))
-            for o, n, m, S in zip(d.obs, d.nk, d.mk, d.Sk):
-                W = np.linalg.inv(sigma[np.ix_(o, o)])
-                e = m - mu[o]
-                C = S + np.outer(e, e)
-                hh += n * _moment_part(W, C, W @ e, dS[:, o][:, :, o], dm[:, o])
-                Gs_t[np.ix_(o, o)] += n * (W - W @ C @ W)
-                w_t[o] += n * (W @ e)
-            # second-derivative part: the complete-data kernel at moments giving (Gs_t, w_t)
-            Wf = np.linalg.inv(sigma)
-            dd = sigma @ w_t
-            Cf = sigma - sigma @ Gs_t @ sigma
-            full = ml_hessian(lay, mats, sigma, mu, G, A, Cf - np.outer(dd, dd), mu + dd, dS, dm)
-            hh += full - _moment_part(Wf, Cf, w_t, dS, dm)
+            mats, G, A, fj, _, W, e, C = self._group(lay, d, theta)
+            n = d.pm.counts
+            M = W @ C @ W
+            we = np.einsum("kij,kj->ki", W, e)
+            kw = np.concatenate([we, we @ fj.H], axis=1)
+            He = factored_moment_hessian(fj, gram(fj.H, W), gram(fj.H, M), kw, n)
+            Gs = np.tensordot(n, W - M, axes=1)
+            He += second_derivative_part(lay, mats, G, A, Gs, n @ we)
+            hh = He if fj.P is None else fj.P.T @ He @ fj.P
             u = lay.params
             H[np.ix_(u, u)] += hh
         return (H + H.T) / 2
-
-
-def _moment_part(W: np.ndarray, C: np.ndarray, w: np.ndarray, dS: np.ndarray, dm: np.ndarray) -> np.ndarray:
-    """Hessian terms of F built from first derivatives of the moments only::
-
-        -tr(W S_u W S_v) + 2 tr(W S_u W C W S_v) + 2 mu_v' W S_u w + 2 mu_u' W S_v w + 2 mu_u' W mu_v
-    """
-    WS = W @ dS                                            # (u, p, p): W S_u
-    H = -np.einsum("uij,vji->uv", WS, WS) + 2.0 * np.einsum("uij,vji->uv", WS @ (W @ C), WS)
-    a = np.einsum("uij,j->ui", dS, w) @ W                  # rows: (W S_u w)'
-    H += 2.0 * (dm @ a.T + a @ dm.T) + 2.0 * dm @ W @ dm.T
-    return H
 
 
 def independence_loglik(x: np.ndarray) -> float:

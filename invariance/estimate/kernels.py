@@ -12,6 +12,8 @@ parameter), ``dm`` arrays shape (u, p).
 
 from __future__ import annotations
 
+import functools
+import weakref
 from dataclasses import dataclass
 
 import numpy as np
@@ -28,6 +30,13 @@ __all__ = [
     "ml_discrepancy",
     "ml_derivatives",
     "ml_hessian",
+    "second_derivative_part",
+    "FactoredJacobian",
+    "factor_jacobian",
+    "gram",
+    "factored_gradient",
+    "factored_information",
+    "factored_moment_hessian",
 ]
 
 
@@ -197,36 +206,40 @@ def ml_derivatives(
     mu: np.ndarray,
     S: np.ndarray,
     mean: np.ndarray,
-    dS: np.ndarray,
-    dm: np.ndarray,
+    fj: "FactoredJacobian",
     *,
+    logdet_s: float = 0.0,
     information: bool = True,
-) -> tuple[np.ndarray, np.ndarray | None, np.ndarray]:
-    """Gradient and expected information of one group's ML discrepancy.
+) -> tuple[float, np.ndarray, np.ndarray | None]:
+    """Discrepancy, gradient and expected information of one group's ML discrepancy.
+
+    Uses the factored Jacobian (:func:`factor_jacobian`), so no (u, p, p) array is built.
 
     Returns
     -------
+    F : float
+        The discrepancy (METHODS section 2) with ``logdet_s`` = log|S|.
     grad : (u,) array
-        dF/dtheta.
+        dF/dtheta = tr(Gs S_u) - 2 mu_u' W d, Gs = W - W (S + dd') W.
     info : (u, u) array or None
         E[d2F/dtheta dtheta'] = tr(W dS_u W dS_v) + 2 dm_u' W dm_v.
-    W : (p, p) array
-        Sigma^-1.
+
+    Raises
+    ------
+    numpy.linalg.LinAlgError
+        When Sigma is not positive definite.
     """
     R = np.linalg.cholesky(sigma)
     Rinv = np.linalg.inv(R)
     W = Rinv.T @ Rinv
     d = mean - mu
     Wd = W @ d
-    Gs = W - W @ (S + np.outer(d, d)) @ W
-    u = dS.shape[0]
-    grad = np.tensordot(dS, Gs, axes=([1, 2], [0, 1])) - 2.0 * dm @ Wd
-    info = None
-    if information:
-        X = (Rinv @ dS @ Rinv.T).reshape(u, -1)
-        Y = dm @ Rinv.T
-        info = X @ X.T + 2.0 * (Y @ Y.T)
-    return grad, info, W
+    WC = W @ S
+    f = 2.0 * np.log(np.diag(R)).sum() + np.trace(WC) - logdet_s - S.shape[0] + d @ Wd
+    Gs = W - (WC + np.outer(Wd, d)) @ W
+    grad = factored_gradient(fj, Gs, Wd)
+    info = factored_information(fj, gram(fj.H, W)) if information else None
+    return float(f), grad, info
 
 
 def ml_hessian(
@@ -238,8 +251,6 @@ def ml_hessian(
     A: np.ndarray,
     S: np.ndarray,
     mean: np.ndarray,
-    dS: np.ndarray,
-    dm: np.ndarray,
 ) -> np.ndarray:
     """Exact (observed) Hessian of one group's ML discrepancy, local parameters.
 
@@ -248,10 +259,10 @@ def ml_hessian(
         F_uv = tr(Gs Sigma_uv) - 2 w' mu_uv - tr(W S_u W S_v) + 2 tr(W S_u W C W S_v)
                + 2 mu_v' W S_u w + 2 mu_u' W S_v w + 2 mu_u' W mu_v
 
-    The second-derivative terms tr(Gs Sigma_uv) - 2 w' mu_uv are contracted in closed
-    form per pair of matrix entries (Lambda, B, Psi, alpha; Theta and nu enter linearly).
+    The first-derivative terms come from the factored Jacobian
+    (:func:`factored_moment_hessian`); the second-derivative terms from
+    :func:`second_derivative_part`.
     """
-    lam, beta, psi, theta, nu, alpha = mats
     R = np.linalg.cholesky(sigma)
     Rinv = np.linalg.inv(R)
     W = Rinv.T @ Rinv
@@ -259,15 +270,23 @@ def ml_hessian(
     w = W @ d
     Cm = S + np.outer(d, d)
     Gs = W - W @ Cm @ W
-    u = dS.shape[0]
-    # moment part
-    X = Rinv @ dS @ Rinv.T                      # (u, p, p)
-    Q = Rinv @ Cm @ Rinv.T
-    Xf = X.reshape(u, -1)
-    XQ = (X @ Q).reshape(u, -1)
-    H = -(Xf @ Xf.T) + 2.0 * (XQ @ Xf.T)
-    a = np.einsum("uij,j->ui", dS, w) @ W       # (u, p): W S_u w as rows
-    H += 2.0 * (dm @ a.T + a @ dm.T) + 2.0 * dm @ W @ dm.T
+    fj = factor_jacobian(lay, mats, G, A)
+    kw = np.concatenate([w, fj.H.T @ w])
+    He = factored_moment_hessian(fj, gram(fj.H, W), gram(fj.H, W @ Cm @ W), kw)
+    He += second_derivative_part(lay, mats, G, A, Gs, w)
+    return _to_params(fj, None, He)[1]
+
+
+def second_derivative_part(
+    lay: GroupLayout, mats: tuple[np.ndarray, ...], G: np.ndarray, A: np.ndarray, Gs: np.ndarray, w: np.ndarray
+) -> np.ndarray:
+    """tr(Gs Sigma_uv) - 2 w' mu_uv per pair of free entries (not mapped to parameters).
+
+    Contracted in closed form per pair of matrix entries (Lambda, B, Psi, alpha; Theta
+    and nu enter linearly). Linear in (Gs, w): full-information ML passes the sums over
+    its missingness patterns.
+    """
+    lam, beta, psi, theta, nu, alpha = mats
     # second-derivative contraction, per entry
     k = lay.ent_mat.size
     Ke = np.zeros((k, k))
@@ -288,41 +307,39 @@ def ml_hessian(
     cA, _, _, pA = lay.sel[ALPHA]
     offP = (cP != dP).astype(float)
     if pL.size:
-        Ke[np.ix_(pL, pL)] = 2.0 * Gs[np.ix_(iL, iL)] * Phi[np.ix_(jL, jL)].T
+        Ke[pL[:, None], pL[None, :]] = 2.0 * Gs[iL[:, None], iL[None, :]] * Phi[jL[:, None], jL[None, :]].T
         if pP.size:
             blk = 2.0 * GsG[iL][:, cP] * A[jL][:, dP] + offP[None, :] * 2.0 * GsG[iL][:, dP] * A[jL][:, cP]
-            Ke[np.ix_(pL, pP)] = blk
-            Ke[np.ix_(pP, pL)] = blk.T
+            Ke[pL[:, None], pP[None, :]] = blk
+            Ke[pP[:, None], pL[None, :]] = blk.T
         if pB.size:
             blk = 2.0 * (GsG[iL][:, eB] * Phi[fB][:, jL].T + GsLPhi[iL][:, fB] * A[jL][:, eB])
             blk -= 2.0 * w[iL][:, None] * A[jL][:, eB] * Aa[fB][None, :]
-            Ke[np.ix_(pL, pB)] = blk
-            Ke[np.ix_(pB, pL)] = blk.T
+            Ke[pL[:, None], pB[None, :]] = blk
+            Ke[pB[:, None], pL[None, :]] = blk.T
         if pA.size:
             blk = -2.0 * w[iL][:, None] * A[jL][:, cA]
-            Ke[np.ix_(pL, pA)] = blk
-            Ke[np.ix_(pA, pL)] = blk.T
+            Ke[pL[:, None], pA[None, :]] = blk
+            Ke[pA[:, None], pL[None, :]] = blk.T
     if pB.size:
         blk = (
-            2.0 * AtMA[np.ix_(eB, eB)].T * Phi[np.ix_(fB, fB)]
-            + A[np.ix_(fB, eB)].T * AZA[np.ix_(eB, fB)].T
-            + A[np.ix_(fB, eB)] * AZA[np.ix_(eB, fB)]
+            2.0 * AtMA[eB[:, None], eB[None, :]].T * Phi[fB[:, None], fB[None, :]]
+            + A[fB[:, None], eB[None, :]].T * AZA[eB[:, None], fB[None, :]].T
+            + A[fB[:, None], eB[None, :]] * AZA[eB[:, None], fB[None, :]]
         )
-        Ke[np.ix_(pB, pB)] = blk
+        Ke[pB[:, None], pB[None, :]] = blk
         if pP.size:
             # rows: Psi entries (c, d); cols: B entries (e, f)
-            blk = 2.0 * A[np.ix_(fB, cP)].T * Kf[np.ix_(eB, dP)].T
-            blk += offP[:, None] * 2.0 * A[np.ix_(fB, dP)].T * Kf[np.ix_(eB, cP)].T
-            blk = np.where(offP[:, None] > 0, blk, 2.0 * A[np.ix_(fB, cP)].T * Kf[np.ix_(eB, cP)].T)
-            Ke[np.ix_(pP, pB)] = blk
-            Ke[np.ix_(pB, pP)] = blk.T
+            blk = 2.0 * A[fB[:, None], cP[None, :]].T * Kf[eB[:, None], dP[None, :]].T
+            blk += offP[:, None] * 2.0 * A[fB[:, None], dP[None, :]].T * Kf[eB[:, None], cP[None, :]].T
+            blk = np.where(offP[:, None] > 0, blk, 2.0 * A[fB[:, None], cP[None, :]].T * Kf[eB[:, None], cP[None, :]].T)
+            Ke[pP[:, None], pB[None, :]] = blk
+            Ke[pB[:, None], pP[None, :]] = blk.T
         if pA.size:
-            blk = -2.0 * Atv[eB][:, None] * A[np.ix_(fB, cA)]
-            Ke[np.ix_(pB, pA)] = blk
-            Ke[np.ix_(pA, pB)] = blk.T
-    if not (lay.P.shape[0] == lay.P.shape[1] and np.array_equal(lay.P, np.eye(k))):
-        Ke = lay.P.T @ Ke @ lay.P
-    return H + Ke
+            blk = -2.0 * Atv[eB][:, None] * A[fB[:, None], cA[None, :]]
+            Ke[pB[:, None], pA[None, :]] = blk
+            Ke[pA[:, None], pB[None, :]] = blk.T
+    return Ke
 
 
 def layout_jacobians(layouts, theta: np.ndarray) -> list[tuple]:
@@ -334,3 +351,204 @@ def layout_jacobians(layouts, theta: np.ndarray) -> list[tuple]:
         dS, dm = moment_jacobian(lay, mats, G, A)
         out.append((mats, sigma, mu, dS, dm))
     return out
+
+
+# -- factored derivatives: every dSigma is a symmetric rank-2 term ------------------------
+
+@dataclass(frozen=True, eq=False)
+class FactoredJacobian:
+    """The moment Jacobian of one group without building (u, p, p) arrays.
+
+    Every free entry e has dSigma_e = s_e (a_e b_e' + b_e a_e') and dmu_e = t_e c_e,
+    with a_e, b_e, c_e columns of the basis K = [I_p | G | C'] (G = Lambda A,
+    C = A Psi G'): a loading (i, j) has a = e_i, b = C_j'; a factor regression (i, j)
+    a = G_i, b = C_j'; a factor (co)variance (i, j) a = G_i, b = G_j; a residual
+    (co)variance (i, j) a = e_i, b = e_j (s = 1/2 on diagonals); intercepts and factor
+    means have t = 1. Contractions with any p x p matrix X then need only the small
+    Gram matrix K'XK, gathered by index: the cost per group grows as p^2 (the item
+    block of K is the identity and is never multiplied).
+
+    Attributes
+    ----------
+    H
+        (p, 2m): the non-identity columns [G | C'] of the basis.
+    ia, ib, ic
+        (k,) basis columns of a_e, b_e, c_e.
+    s, t
+        (k,) scale of the covariance and mean parts (0 where an entry has none).
+    P
+        Entries -> local parameters (k x u), or ``None`` when it is the identity.
+    """
+
+    H: np.ndarray
+    ia: np.ndarray
+    ib: np.ndarray
+    ic: np.ndarray
+    s: np.ndarray
+    t: np.ndarray
+    P: np.ndarray | None
+
+
+def _factor_pattern(lay: GroupLayout) -> tuple[np.ndarray, ...]:
+    """The theta-free part of a group's factored Jacobian: (ia, ib, ic, s, t0, tsrc, ident)."""
+    p, m = lay.p, lay.m
+    k = lay.ent_mat.size
+    ia, ib, ic = np.zeros(k, np.int64), np.zeros(k, np.int64), np.zeros(k, np.int64)
+    s, t0, tsrc = np.zeros(k), np.zeros(k), np.full(k, -1, np.int64)
+    gcol, ccol = p, p + m                                   # offsets of the G and C' blocks
+    r, c, _, pos = lay.sel[LAMBDA]
+    ia[pos], ib[pos], s[pos], ic[pos], tsrc[pos] = r, ccol + c, 1.0, r, c
+    r, c, _, pos = lay.sel[BETA]
+    ia[pos], ib[pos], s[pos], ic[pos], tsrc[pos] = gcol + r, ccol + c, 1.0, gcol + r, c
+    r, c, _, pos = lay.sel[PSI]
+    ia[pos], ib[pos], s[pos] = gcol + r, gcol + c, np.where(r == c, 0.5, 1.0)
+    r, c, _, pos = lay.sel[THETA]
+    ia[pos], ib[pos], s[pos] = r, c, np.where(r == c, 0.5, 1.0)
+    r, _, _, pos = lay.sel[NU]
+    ic[pos], t0[pos] = r, 1.0
+    r, _, _, pos = lay.sel[ALPHA]
+    ic[pos], t0[pos] = gcol + r, 1.0
+    ident = lay.P.shape[0] == lay.P.shape[1] and np.array_equal(lay.P, np.eye(k))
+    return ia, ib, ic, s, t0, tsrc, ident
+
+
+_PATTERNS: "weakref.WeakKeyDictionary[GroupLayout, tuple]" = weakref.WeakKeyDictionary()
+
+
+def factor_jacobian(lay: GroupLayout, mats: tuple[np.ndarray, ...], G: np.ndarray, A: np.ndarray) -> FactoredJacobian:
+    """The :class:`FactoredJacobian` of one group at its matrices (see :func:`moment_jacobian`)."""
+    pat = _PATTERNS.get(lay)
+    if pat is None:
+        pat = _PATTERNS[lay] = _factor_pattern(lay)
+    ia, ib, ic, s, t0, tsrc, ident = pat
+    C = A @ mats[2] @ G.T
+    Aa = A @ mats[5]
+    t = np.where(tsrc >= 0, Aa[tsrc], t0)
+    return FactoredJacobian(np.hstack([G, C.T]), ia, ib, ic, s, t, None if ident else lay.P)
+
+
+def gram(H: np.ndarray, X: np.ndarray) -> np.ndarray:
+    """K'XK for K = [I | H] and symmetric X of shape (..., p, p)."""
+    XH = X @ H
+    top = np.concatenate([X, XH], axis=-1)
+    bottom = np.concatenate([np.swapaxes(XH, -1, -2), np.swapaxes(H, -1, -2) @ XH], axis=-1)
+    return np.concatenate([top, bottom], axis=-2)
+
+
+def _to_params(fj: FactoredJacobian, g: np.ndarray | None, M: np.ndarray | None):
+    if fj.P is None:
+        return g, M
+    return (None if g is None else fj.P.T @ g), (None if M is None else fj.P.T @ M @ fj.P)
+
+
+def factored_gradient(fj: FactoredJacobian, Gs: np.ndarray, w: np.ndarray) -> np.ndarray:
+    """tr(Gs dSigma_u) - 2 dmu_u' w for every local parameter u."""
+    Q = gram(fj.H, Gs)
+    kw = np.concatenate([w, fj.H.T @ w])
+    g = 2.0 * fj.s * Q[fj.ia, fj.ib] - 2.0 * fj.t * kw[fj.ic]
+    return _to_params(fj, g, None)[0]
+
+
+def _wsum(weights: np.ndarray | None, X: np.ndarray) -> np.ndarray:
+    """sum_k weights_k X_k over the leading axis (a plain copy for one unweighted slice)."""
+    if weights is None:
+        return X[0] if X.shape[0] == 1 else X.sum(axis=0)
+    return weights[0] * X[0] if X.shape[0] == 1 else np.tensordot(weights, X, axes=1)
+
+
+#: largest n^4 (n the basis size) for which stacked products go through a moment tensor
+_TENSOR_LIMIT = 3_000_000
+
+
+@functools.lru_cache(maxsize=64)
+def _vech_index(n: int) -> np.ndarray:
+    """(n, n) position of entry (i, j) in the lower-triangle vector (symmetric)."""
+    v = np.zeros((n, n), dtype=np.int64)
+    r, c = np.tril_indices(n)
+    v[r, c] = np.arange(r.size)
+    v[c, r] = np.arange(r.size)
+    return v
+
+
+class _PairSums:
+    """Weighted sums over a stack of Gram matrices of entrywise products of gathered blocks:
+    sum_k w_k X_k[i, j'] Y_k[l, m'] for index vectors i, j, l, m.
+
+    One matrix: gathered directly. A stack (missingness patterns) with a small basis:
+    through the moment tensor T = sum_k w_k X_k (x) Y_k, one matrix product (fast BLAS),
+    then gathered; otherwise gathered per pattern and summed.
+    """
+
+    def __init__(self, weights: np.ndarray | None) -> None:
+        self.w = weights
+        self._tensors: dict = {}
+
+    def __call__(self, X: np.ndarray, Y: np.ndarray, i, j, l, m) -> np.ndarray:
+        K, n = X.shape[0], X.shape[1]
+        w = np.ones(K) if self.w is None else self.w
+        if K == 1:
+            return w[0] * X[0][i[:, None], j[None, :]] * Y[0][l[:, None], m[None, :]]
+        if n**4 <= _TENSOR_LIMIT:
+            # symmetric X_k, Y_k: the tensor over their lower triangles suffices
+            key = (id(X), id(Y))
+            T = self._tensors.get(key)
+            if T is None:
+                r, c = np.tril_indices(n)
+                T = self._tensors[key] = (X[:, r, c].T * w) @ Y[:, r, c]
+            v = _vech_index(n)
+            return T[v[i[:, None], j[None, :]], v[l[:, None], m[None, :]]]
+        return np.tensordot(w, X[:, i][:, :, j] * Y[:, l][:, :, m], axes=1)
+
+
+def factored_information(fj: FactoredJacobian, QW: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
+    """Expected information tr(W S_u W S_v) + 2 mu_u' W mu_v from Gram matrices QW = K'WK.
+
+    ``QW`` may be a stack (K, n, n) with ``weights`` (K,): the weighted sum is returned
+    (full-information ML: one W per missingness pattern); a single (n, n) matrix is
+    unweighted.
+    """
+    a, b, c = fj.ia, fj.ib, fj.ic
+    if QW.ndim == 2:
+        Qa, Qb = QW[a], QW[b]
+        cov = Qa[:, a] * Qb[:, b] + Qa[:, b] * Qb[:, a]
+        mean = QW[c[:, None], c[None, :]]
+    else:
+        ps = _PairSums(weights)
+        cov = ps(QW, QW, a, a, b, b) + ps(QW, QW, a, b, b, a)
+        mean = _wsum(weights, QW)[c[:, None], c[None, :]]
+    s, t = fj.s, fj.t
+    info = 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * mean)
+    return _to_params(fj, None, info)[1]
+
+
+def factored_moment_hessian(fj: FactoredJacobian, QW: np.ndarray, QM: np.ndarray, kw: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
+    """First-derivative part of the exact Hessian of F, per entry (not yet mapped by P)::
+
+        -tr(W S_u W S_v) + 2 tr(W S_u M S_v) + 2 mu_v' W S_u w + 2 mu_u' W S_v w + 2 mu_u' W mu_v
+
+    with M = W C W, w = W d; ``QW`` = K'WK, ``QM`` = K'MK, ``kw`` = K'w, each optionally
+    stacked over patterns with ``weights``.
+    """
+    a, b, c = fj.ia, fj.ib, fj.ic
+    if QW.ndim == 2:
+        # one matrix: gather each block once
+        Wa, Wb, Ma, Mb = QW[a], QW[b], QM[a], QM[b]
+        Waa, Wab, Wba, Wbb = Wa[:, a], Wa[:, b], Wb[:, a], Wb[:, b]
+        cov = Mb[:, a] * Wab + Mb[:, b] * Waa + Ma[:, a] * Wbb + Ma[:, b] * Wba - (Waa * Wbb + Wab * Wba)
+        Y = Wa[:, c] * kw[b][:, None] + Wb[:, c] * kw[a][:, None]
+        QWsum = QW
+    else:
+        ps = _PairSums(weights)
+        cross = ps(QM, QW, b, a, a, b) + ps(QM, QW, b, b, a, a) + ps(QM, QW, a, a, b, b) + ps(QM, QW, a, b, b, a)
+        cov = cross - ps(QW, QW, a, a, b, b) - ps(QW, QW, a, b, b, a)
+        # sum_k w_k (W_k[a, c'] kw_k[b] + W_k[b, c'] kw_k[a]) through U = sum_k w_k kw_k (x) W_k
+        w = np.ones(QW.shape[0]) if weights is None else weights
+        n = QW.shape[1]
+        U = ((kw.T * w) @ QW.reshape(QW.shape[0], -1)).reshape(n, n, n)
+        Y = U[b[:, None], a[:, None], c[None, :]] + U[a[:, None], b[:, None], c[None, :]]
+        QWsum = _wsum(weights, QW)
+    s, t = fj.s, fj.t
+    Ys = s[:, None] * t[None, :] * Y
+    H = 2.0 * (s[:, None] * s[None, :] * cov + Ys + Ys.T)
+    H += 2.0 * t[:, None] * t[None, :] * QWsum[c[:, None], c[None, :]]
+    return H

@@ -17,7 +17,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import linalg as sla
+from scipy.linalg import lapack as _lapack
 
 __all__ = ["ArrowPartition", "partition", "arrow_solve", "arrow_inverse", "arrow_min_eigen"]
 
@@ -41,6 +41,21 @@ def partition(group_params, q: int) -> ArrowPartition:
     return ArrowPartition(q, shared, local)
 
 
+def _cho_factor(M: np.ndarray) -> np.ndarray:
+    """Lower Cholesky factor (LAPACK potrf, no input checks); LinAlgError if not PD."""
+    c, info = _lapack.dpotrf(M, lower=1, clean=1)
+    if info != 0:
+        raise np.linalg.LinAlgError("matrix not positive definite")
+    return c
+
+
+def _cho_solve(c: np.ndarray, b: np.ndarray) -> np.ndarray:
+    x, info = _lapack.dpotrs(c, b, lower=1)
+    if info != 0:
+        raise np.linalg.LinAlgError("invalid Cholesky solve")
+    return x
+
+
 def _eliminate(H: np.ndarray, part: ArrowPartition, rhs: np.ndarray | None):
     s = part.shared
     schur = H[np.ix_(s, s)].copy()
@@ -49,12 +64,12 @@ def _eliminate(H: np.ndarray, part: ArrowPartition, rhs: np.ndarray | None):
     for loc in part.local:
         if not loc.size:
             continue
-        c = sla.cho_factor(H[np.ix_(loc, loc)], check_finite=False)
+        c = _cho_factor(H[np.ix_(loc, loc)])
         B = H[np.ix_(s, loc)]
-        DiBt = sla.cho_solve(c, B.T, check_finite=False)
+        DiBt = _cho_solve(c, B.T)
         Dib = None
         if rhs is not None:
-            Dib = sla.cho_solve(c, rhs[loc], check_finite=False)
+            Dib = _cho_solve(c, rhs[loc])
             r -= B @ Dib
         schur -= B @ DiBt
         blocks.append((loc, c, DiBt, Dib))
@@ -65,7 +80,7 @@ def arrow_solve(H: np.ndarray, b: np.ndarray, part: ArrowPartition) -> np.ndarra
     """Solve H x = b for a positive-definite arrow matrix; raises LinAlgError otherwise."""
     schur, r, blocks = _eliminate(H, part, b)
     x = np.empty(part.q)
-    xs = sla.cho_solve(sla.cho_factor(schur, check_finite=False), r, check_finite=False) if part.shared.size else np.empty(0)
+    xs = _cho_solve(_cho_factor(schur), r) if part.shared.size else np.empty(0)
     x[part.shared] = xs
     for loc, _, DiBt, Dib in blocks:
         x[loc] = Dib - DiBt @ xs
@@ -78,7 +93,7 @@ def arrow_inverse(H: np.ndarray, part: ArrowPartition) -> np.ndarray:
     s = part.shared
     q = part.q
     out = np.zeros((q, q))
-    sinv = sla.cho_solve(sla.cho_factor(schur, check_finite=False), np.eye(s.size), check_finite=False) if s.size else np.zeros((0, 0))
+    sinv = _cho_solve(_cho_factor(schur), np.eye(s.size)) if s.size else np.zeros((0, 0))
     out[np.ix_(s, s)] = sinv
     if not blocks:
         return out
@@ -90,7 +105,7 @@ def arrow_inverse(H: np.ndarray, part: ArrowPartition) -> np.ndarray:
     off = 0
     for loc, c, _, _ in blocks:
         n = loc.size
-        LL[off : off + n, off : off + n] += sla.cho_solve(c, np.eye(n), check_finite=False)
+        LL[off : off + n, off : off + n] += _cho_solve(c, np.eye(n))
         off += n
     out[np.ix_(L, L)] = LL
     return (out + out.T) / 2

@@ -14,6 +14,7 @@ the sandwich covariance, the scaled statistic and robust fit indices
 from __future__ import annotations
 
 import dataclasses
+import functools
 import warnings
 
 import numpy as np
@@ -31,11 +32,13 @@ from .kernels import group_matrices, implied_moments
 from .fiml import FIMLObjective, independence_loglik
 from .linalg import arrow_inverse, arrow_min_eigen
 from .objective import MLObjective
-from .optimize import minimize
 from .robust import H1Moments, baseline_trace, robust_indices, sandwich, scaling_trace, score_products
+from .runaway import VARIANCE_CHOICES, describe_bounds, describe_runaway, weak_identification
+from .separate import fit_by_group, shares_nothing
 from .start import start_values
+from .starts import DEFAULT_STARTS, general_factors, run_starts, variance_bounds
 
-__all__ = ["ESTIMATORS", "fit", "diagnose", "observed_information"]
+__all__ = ["ESTIMATORS", "fit", "diagnose", "observed_information", "estimation_record", "refit_options"]
 
 #: Estimators accepted by :func:`fit`.
 ESTIMATORS = ("ml", "ml_robust")
@@ -104,6 +107,9 @@ def fit(
     start: np.ndarray | None = None,
     max_iter: int = 200,
     estimator: str = "ml",
+    variances: str = "unrestricted",
+    starts: int = DEFAULT_STARTS,
+    seed: int | None = None,
 ) -> FitResult:
     """Estimate a multi-group model by maximum likelihood.
 
@@ -116,7 +122,8 @@ def fit(
     information
         ``"expected"`` (default) or ``"observed"`` information for standard errors.
     start
-        Starting parameter vector; chosen from the data when omitted.
+        Warm start (e.g. a nested level's estimates); the analytic start and the
+        alternative starts follow when it fails (:mod:`invariance.estimate.starts`).
     max_iter
         Iteration limit of the scoring runs.
     estimator
@@ -127,10 +134,22 @@ def fit(
         Full-information ML is used automatically when the statistics hold missing
         values; ``extra["missing"]`` then reports, per group, the cases used, the
         patterns, the coverage of each item and Little's MCAR test.
+    variances
+        ``"unrestricted"`` (default): a solution with negative variances, or one that
+        runs away, is reported as improper; ``"nonnegative"``: residual and factor
+        variances are estimated within [0, inf) and estimates at 0 are named.
+    starts
+        Alternative starts for bifactor and second-order models (0: the analytic start only).
+    seed
+        Seed of the alternative starts (default :data:`~invariance.estimate.starts.DEFAULT_SEED`).
 
     Returns
     -------
     FitResult
+        ``extra["estimation"]`` says what was estimated (bounded or not), the starts
+        tried and the distinct optima found, estimates at a bound and run-away
+        parameters. A model whose groups share no parameter (configural) is fitted
+        group by group; ``extra["groups"]`` then holds the single-group results.
 
     Notes
     -----
@@ -139,10 +158,15 @@ def fit(
     """
     from ..data.ordinal_stats import OrdinalStats
 
+    if variances not in VARIANCE_CHOICES:
+        raise SpecificationError(
+            f"The variances option must be one of {', '.join(VARIANCE_CHOICES)}; got {variances!r}."
+        )
+    opts = dict(max_iter=max_iter, variances=variances, starts=starts, seed=seed)
     if isinstance(stats, OrdinalStats):
         from .dwls_robust import fit_dwls
 
-        return fit_dwls(spec, stats, start=start, max_iter=max_iter)
+        return fit_dwls(spec, stats, start=start, **opts)
     if estimator not in ESTIMATORS:
         raise SpecificationError(
             f"The estimator must be one of {', '.join(ESTIMATORS)}; got {estimator!r}."
@@ -155,20 +179,63 @@ def fit(
         stats = stats.subset(spec.groups)
     if tuple(stats.items) != tuple(spec.items):
         stats = stats.reorder_items(spec.items)
+    if shares_nothing(spec):
+        one = functools.partial(fit, information=information, estimator=estimator, **opts)
+        res = fit_by_group(spec, stats, one, start=start)
+        if any(g.missing is not None for g in stats.groups):
+            res.extra["missing"] = missing_report(stats)
+        return res
     full_info = any(g.has_missing for g in stats.groups)
     obj = FIMLObjective(spec, stats) if full_info else MLObjective(spec, stats)
-    x0 = start_values(spec, stats) if start is None else np.asarray(start, dtype=float)
     tol = 1e-12
     if full_info:
         # T is a difference of casewise log-likelihoods of size |logL_H1|: allow for their
         # rounding error in the convergence test (it is far below any reported digit)
         tol = max(tol, 2e-14 * abs(2.0 * obj.loglik_h1) / max(1.0, float(spec.df)))
-    out = minimize(obj, x0, max_iter=max_iter, tol=tol)
+    lower = variance_bounds(spec) if variances == "nonnegative" else None
+    out, record = run_starts(obj, spec, lambda: start_values(spec, stats), start=start, starts=starts,
+                             seed=seed, lower=lower, max_iter=max_iter, tol=tol)
     if not np.isfinite(out.fun):
         raise EstimationError(
             f"The {spec.level or 'model'} model could not be estimated: {out.message}; "
             "check the model structure and the items of each factor."
         )
+    return _finish(spec, stats, obj, out, information=information, estimator=estimator,
+                   estimation=estimation_record(spec, out, record, lower, options=opts))
+
+
+def estimation_record(spec: ModelSpec, out, record, lower, *, options: dict) -> dict:
+    """``extra["estimation"]``: what was estimated, with which ``options`` (variances,
+    starts, seed), and what the optimizer found."""
+    general = [spec.factors[c] for c in sorted(general_factors(spec))]
+    runaway = describe_runaway(spec, out.running, out.x, general=general) if out.status == 6 else []
+    notes = []
+    if record.runaway_below is not None and not runaway:
+        notes = [f"in group{'s' if len(spec.groups) > 1 else ''} {', '.join(spec.groups)} another start runs away "
+                   f"to a lower statistic ({record.runaway_below:.2f} against {out.fun:.2f}): the reported solution is "
+                   "the best converged one, not the infimum; estimate within bounds with estimation: "
+                   "{variances: nonnegative} to get the best admissible solution"]
+    at_bound = describe_bounds(spec, out.x, lower) if lower is not None else []
+    if runaway:
+        optimum = "no finite optimum: the estimates run away (reported where they were stopped)"
+    elif lower is not None:
+        optimum = "optimum within bounds (residual and factor variances >= 0)" + (
+            ", with estimates at a bound" if at_bound else "")
+    else:
+        optimum = "unbounded optimum (variances unrestricted)"
+    return {"variances": options["variances"], "optimum": optimum, "starts": record.to_dict(),
+            "at_bound": at_bound, "runaway": runaway, "notes": notes,
+            "options": {k: options[k] for k in ("variances", "starts", "seed")}}
+
+
+def refit_options(res: FitResult) -> dict:
+    """The estimation options of ``res`` (variances, starts, seed), for refits of variants of its model."""
+    return dict(res.extra.get("estimation", {}).get("options", {}))
+
+
+def _finish(spec, stats, obj, out, *, information: str, estimator: str, estimation: dict) -> FitResult:
+    """Standard errors, diagnosis, fit statistics and the result of one optimizer outcome."""
+    full_info = isinstance(obj, FIMLObjective)
     theta = out.x
     matrices = tuple(group_matrices(lay, theta) for lay in obj.layouts)
     moments = [implied_moments(m)[:2] for m in matrices]
@@ -182,7 +249,12 @@ def fit(
     else:
         info_se = info
     part = getattr(obj, "partition", None)
-    problems = diagnose(spec, matrices, sigmas, info_se, part)
+    problems = estimation["runaway"] + diagnose(spec, matrices, sigmas, info_se, part) + estimation["at_bound"]
+    general = sorted(general_factors(spec))
+    if not estimation["runaway"]:
+        lower = variance_bounds(spec) if estimation["variances"] == "nonnegative" else None
+        problems += weak_identification(spec, info_se, part, matrices, exclude=out.at_bound(lower),
+                                        general=spec.factors[general[0]] if len(general) == 1 else None)
     acov = None
     if not any(p.startswith("singular information") for p in problems):
         try:
@@ -192,21 +264,14 @@ def fit(
             acov = None
     if not out.converged:
         problems.insert(0, f"not converged: {out.message}")
-        warnings.warn(f"{spec.level or 'model'}: {out.message}", ConvergenceWarning, stacklevel=2)
+        warnings.warn(f"{spec.level or 'model'}: {out.message}", ConvergenceWarning, stacklevel=3)
     for p in problems:
         if not p.startswith("not converged"):
-            warnings.warn(f"{spec.level or 'model'}: {p}", ImproperSolutionWarning, stacklevel=2)
-    fs = compute_fit(
-        out.fun,
-        spec.df,
-        spec.n_params,
-        obj.S,
-        obj.mean,
-        sigmas,
-        mus,
-        obj.n,
-    )
-    extra: dict = {}
+            warnings.warn(f"{spec.level or 'model'}: {p}", ImproperSolutionWarning, stacklevel=3)
+    for note in estimation["notes"]:
+        warnings.warn(f"{spec.level or 'model'}: {note}", ConvergenceWarning, stacklevel=3)
+    fs = compute_fit(out.fun, spec.df, spec.n_params, obj.S, obj.mean, sigmas, mus, obj.n)
+    extra: dict = {"estimation": estimation}
     if full_info:
         fs = _full_information_fit(fs, obj, spec)
         extra["likelihood"] = "full_information"
@@ -237,14 +302,14 @@ def _full_information_fit(fs, obj: FIMLObjective, spec: ModelSpec):
     ll_h1 = obj.loglik_h1
     loglik = ll_h1 - 0.5 * fs.chi2
     t_b = -2.0 * sum(independence_loglik(d.x) for d in obj.data) + 2.0 * ll_h1
-    aic, bic, sabic = information_criteria(loglik, spec.n_params, fs.n)
+    aic, bic, bic_adjusted = information_criteria(loglik, spec.n_params, fs.n)
     return dataclasses.replace(
         fs,
         loglik=float(loglik),
         loglik_saturated=float(ll_h1),
         aic=aic,
         bic=bic,
-        sabic=sabic,
+        bic_adjusted=bic_adjusted,
         baseline_chi2=float(t_b),
         cfi=_cfi(fs.chi2, fs.df, t_b, fs.baseline_df),
         tli=_tli(fs.chi2, fs.df, t_b, fs.baseline_df),

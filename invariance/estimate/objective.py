@@ -20,13 +20,13 @@ from ..model.spec import ModelSpec
 from .linalg import partition
 from .kernels import (
     compile_spec,
+    factor_jacobian,
     group_matrices,
     implied_moments,
     layout_jacobians,
     ml_derivatives,
     ml_discrepancy,
     ml_hessian,
-    moment_jacobian,
 )
 
 __all__ = ["MLObjective"]
@@ -85,11 +85,10 @@ class MLObjective:
         for g, lay in enumerate(self.layouts):
             mats = group_matrices(lay, theta)
             sigma, mu, G, A = implied_moments(mats)
-            f = ml_discrepancy(sigma, mu, self.S[g], self.mean[g], self.logdet_s[g])
-            if not np.isfinite(f):
-                raise np.linalg.LinAlgError("implied covariance not positive definite")
-            dS, dm = moment_jacobian(lay, mats, G, A)
-            gg, hh, _ = ml_derivatives(sigma, mu, self.S[g], self.mean[g], dS, dm, information=information)
+            fj = factor_jacobian(lay, mats, G, A)
+            f, gg, hh = ml_derivatives(
+                sigma, mu, self.S[g], self.mean[g], fj, logdet_s=self.logdet_s[g], information=information
+            )
             u = lay.params
             total += self.n[g] * f
             grad[u] += self.n[g] * gg
@@ -104,8 +103,7 @@ class MLObjective:
         for g, lay in enumerate(self.layouts):
             mats = group_matrices(lay, theta)
             sigma, mu, G, A = implied_moments(mats)
-            dS, dm = moment_jacobian(lay, mats, G, A)
-            hh = ml_hessian(lay, mats, sigma, mu, G, A, self.S[g], self.mean[g], dS, dm)
+            hh = ml_hessian(lay, mats, sigma, mu, G, A, self.S[g], self.mean[g])
             u = lay.params
             H[np.ix_(u, u)] += self.n[g] * hh
         return H

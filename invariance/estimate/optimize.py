@@ -8,6 +8,17 @@ offer an exact ``hessian(theta)`` switch to Newton steps, which converge quadrat
 One front door, :func:`minimize`, serves every objective (see
 :mod:`invariance.estimate.objective`). Stop reasons come from the fixed table
 :data:`STATUS`.
+
+Lower bounds (``lower``, ``-inf`` where a parameter is unbounded) turn the scoring steps
+into projected steps: a parameter at its bound whose gradient pushes it further out is
+held there, the step is solved on the other parameters, and trial points are projected
+back onto the bounds (Bertsekas 1982, projected Newton methods).
+
+A run-away solution (a parameter heading off without bound, e.g. a residual variance
+going to minus infinity while a loading grows) is caught within tens of iterations by
+:func:`running_away`: the same parameters move the same way at every one of the last
+:data:`RUNAWAY_WINDOW` iterations by steps that do not shrink. Their indices are kept in
+``Outcome.running``.
 """
 
 from __future__ import annotations
@@ -19,7 +30,7 @@ from scipy import optimize as _sopt
 
 from .linalg import arrow_solve
 
-__all__ = ["STATUS", "Outcome", "minimize"]
+__all__ = ["STATUS", "RUNAWAY_WINDOW", "Outcome", "minimize", "running_away"]
 
 #: Fixed table of stop reasons: code -> message.
 STATUS = {
@@ -32,6 +43,9 @@ STATUS = {
     6: "estimates diverge (the model is empirically under-identified or its optimum lies on a boundary)",
 }
 
+#: Iterations over which a run-away trend is judged.
+RUNAWAY_WINDOW = 16
+
 
 @dataclass(frozen=True)
 class Outcome:
@@ -43,6 +57,14 @@ class Outcome:
     info: np.ndarray | None
     status: int
     iterations: int
+    #: indices of the parameters that ran away (status 6)
+    running: tuple[int, ...] = ()
+
+    def at_bound(self, lower: np.ndarray | None) -> np.ndarray:
+        """Indices of the estimates held at their lower bound."""
+        if lower is None:
+            return np.empty(0, dtype=np.int64)
+        return np.flatnonzero(np.isfinite(lower) & (self.x <= lower + 1e-8))
 
     @property
     def converged(self) -> bool:
@@ -71,52 +93,108 @@ def _solve(info: np.ndarray, grad: np.ndarray, part=None) -> np.ndarray:
     return -np.linalg.lstsq(info, grad, rcond=None)[0]
 
 
-def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float):
+def running_away(path: list[np.ndarray]) -> np.ndarray:
+    """Indices of parameters that run away along the last iterates ``path``.
+
+    A parameter runs away when it moved the same way at every step of the window, its
+    steps in the second half of the window are not shorter than in the first half (a
+    converging sequence has shrinking steps, at least by its linear rate), and it moved
+    by more than rounding noise (1e-3 of its size plus one) over the window.
+    """
+    if len(path) < RUNAWAY_WINDOW + 1:
+        return np.empty(0, dtype=np.int64)
+    X = np.asarray(path[-(RUNAWAY_WINDOW + 1):])
+    d = np.diff(X, axis=0)
+    same_way = np.all(d > 0, axis=0) | np.all(d < 0, axis=0)
+    half = RUNAWAY_WINDOW // 2
+    early = np.abs(d[:half]).sum(axis=0)
+    late = np.abs(d[half:]).sum(axis=0)
+    moved = np.abs(X[-1] - X[0]) > 1e-3 * (1.0 + np.abs(X[0]))
+    return np.flatnonzero(same_way & (late >= early) & moved)
+
+
+def _direction(obj, x, f, g, h, part, newton_ok: bool, free: np.ndarray | None) -> np.ndarray:
+    """Newton step (exact Hessian) when allowed and positive definite, else the scoring
+    step. With ``free`` given (bounded problems) the free parameters take that step and
+    the others a diagonally scaled gradient step (Bertsekas 1982)."""
+    if free is not None:
+        step = -g / np.maximum(np.abs(np.diag(h)), 1e-12)
+        if free.any():
+            sub = np.ix_(free, free)
+            try:
+                if not newton_ok:
+                    raise np.linalg.LinAlgError
+                c = np.linalg.cholesky(obj.hessian(x)[sub])
+                step[free] = -np.linalg.solve(c.T, np.linalg.solve(c, g[free]))
+            except np.linalg.LinAlgError:
+                step[free] = _solve(h[sub], g[free])
+        return step
+    if newton_ok:
+        try:
+            hx = obj.hessian(x)
+            if part is not None:
+                return -arrow_solve(hx, g, part)
+            c = np.linalg.cholesky(hx)
+            return -np.linalg.solve(c.T, np.linalg.solve(c, g))
+        except np.linalg.LinAlgError:
+            pass
+    return _solve(h, g, part)
+
+
+def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float, lower: np.ndarray | None = None):
+    """Scoring iterations; returns (x, f, g, h, status, iterations, running)."""
+    none = np.empty(0, dtype=np.int64)
+    if lower is not None:
+        x = np.maximum(x, lower)
     try:
         f, g, h = obj.derivatives(x)
     except np.linalg.LinAlgError:
-        return x, np.inf, None, None, 3, 0
+        return x, np.inf, None, None, 3, 0, none
     bound = 100.0 * (1.0 + np.max(np.abs(x)))  # far beyond any admissible scale of this data
     newton = hasattr(obj, "hessian")
     part = getattr(obj, "partition", None)
     decrement = np.inf
+    path = [x]
     for it in range(1, max_iter + 1):
-        step = None
-        if newton and decrement < 1.0:
-            try:
-                hx = obj.hessian(x)
-                step = -arrow_solve(hx, g, part) if part is not None else -np.linalg.solve(np.linalg.cholesky(hx).T, np.linalg.solve(np.linalg.cholesky(hx), g))
-            except np.linalg.LinAlgError:
-                step = None
-        if step is None:
-            step = _solve(h, g, part)
+        free = None
+        if lower is not None:
+            # epsilon-active set: near the bound and pushed towards it
+            free = ~((x <= lower + 1e-3) & (g > 0))
+        step = _direction(obj, x, f, g, h, part, newton and decrement < 1.0, free)
+        full = step if lower is None else np.maximum(x + step, lower) - x  # projected full step
         decrement = -float(g @ step)
-        if decrement < tol * max(1.0, abs(f)) and np.max(np.abs(step)) < 1e-5:
-            return x, f, g, h, 0, it - 1
+        if abs(float(g @ full)) < tol * max(1.0, abs(f)) and np.max(np.abs(full)) < 1e-5:
+            return x, f, g, h, 0, it - 1, none
         t = 1.0
         for _ in range(30):
-            xn = x + t * step
+            xn = x + t * step if lower is None else np.maximum(x + t * step, lower)
             fn = obj.value(xn)
-            if np.isfinite(fn) and fn <= f + 1e-4 * t * float(g @ step):
+            if np.isfinite(fn) and fn <= f + 1e-4 * float(g @ (xn - x)):
                 break
             t *= 0.5
         else:
-            return x, f, g, h, 2, it
+            return x, f, g, h, 2, it, none
         x = xn
-        if np.max(np.abs(x)) > bound:
+        path.append(x)
+        run = running_away(path)
+        if run.size or np.max(np.abs(x)) > bound:
             try:
                 f, g, h = obj.derivatives(x)
             except np.linalg.LinAlgError:
                 pass
-            return x, f, g, h, 6, it
+            if not run.size:
+                run = np.flatnonzero(np.abs(x) > bound / 10)
+            return x, f, g, h, 6, it, run
         try:
             f, g, h = obj.derivatives(x)
         except np.linalg.LinAlgError:
-            return x, np.inf, None, None, 2, it
-    return x, f, g, h, 1, max_iter
+            return x, np.inf, None, None, 2, it, none
+    return x, f, g, h, 1, max_iter, none
 
 
-def minimize(obj, x0: np.ndarray, *, max_iter: int = 200, tol: float = 1e-12) -> Outcome:
+def minimize(
+    obj, x0: np.ndarray, *, max_iter: int = 200, tol: float = 1e-12, lower: np.ndarray | None = None
+) -> Outcome:
     """Minimize ``obj`` from ``x0``.
 
     Fisher scoring (Gauss-Newton with the expected information) with backtracking;
@@ -132,15 +210,19 @@ def minimize(obj, x0: np.ndarray, *, max_iter: int = 200, tol: float = 1e-12) ->
         Iteration limit of each scoring run.
     tol
         Convergence tolerance on the Newton decrement, relative to the objective.
+    lower
+        Lower bounds (``-inf`` = none); ``None`` for an unbounded problem.
     """
     x0 = np.asarray(x0, dtype=float)
-    x, f, g, h, status, it = _scoring(obj, x0, max_iter=max_iter, tol=tol)
+    if lower is not None and not np.isfinite(lower).any():
+        lower = None
+    x, f, g, h, status, it, run = _scoring(obj, x0, max_iter=max_iter, tol=tol, lower=lower)
     if status == 0:
         return Outcome(x, f, g, h, 0, it)
     if status == 3:
         return Outcome(x, np.inf, np.full_like(x, np.nan), None, 3, 0)
     if status == 6:
-        return Outcome(x, f, g, h, 6, it)
+        return Outcome(x, f, g, h, 6, it, tuple(int(j) for j in run))
 
     def fun(z):
         try:
@@ -149,11 +231,15 @@ def minimize(obj, x0: np.ndarray, *, max_iter: int = 200, tol: float = 1e-12) ->
             return 1e20, np.zeros_like(z)
         return v, gr
 
-    res = _sopt.minimize(fun, x, jac=True, method="L-BFGS-B", options={"maxiter": 20000, "ftol": 1e-15, "gtol": 1e-9})
-    x2, f2, g2, h2, st2, it2 = _scoring(obj, res.x, max_iter=max_iter, tol=tol)
+    bounds = None if lower is None else [(lo if np.isfinite(lo) else None, None) for lo in lower]
+    res = _sopt.minimize(fun, x, jac=True, method="L-BFGS-B", bounds=bounds,
+                         options={"maxiter": 20000, "ftol": 1e-15, "gtol": 1e-9})
+    x2, f2, g2, h2, st2, it2, run2 = _scoring(obj, res.x, max_iter=max_iter, tol=tol, lower=lower)
     total = it + int(res.nit) + it2
     if st2 == 0:
         return Outcome(x2, f2, g2, h2, 4, total)
+    if st2 == 6:
+        return Outcome(x2, f2, g2, h2, 6, total, tuple(int(j) for j in run2))
     if f2 is not None and np.isfinite(f2) and g2 is not None:
         return Outcome(x2, f2, g2, h2, 5 if status != 1 else 1, total)
     return Outcome(x, f, g, h, status, total)

@@ -128,7 +128,7 @@ class FitResult:
     def estimates(self):
         """Every entry of every group as a pandas DataFrame.
 
-        Columns: group, parameter, lhs, rhs, label, free, estimate, se, z, pvalue, std
+        Columns: group, parameter, variable, other, label, free, estimate, se, z, pvalue, std
         (completely standardized value).
         """
         import pandas as pd
@@ -155,8 +155,8 @@ class FitResult:
             {
                 "group": [spec.groups[g] for g in spec.group],
                 "parameter": kinds,
-                "lhs": lhs,
-                "rhs": rhs,
+                "variable": lhs,
+                "other": rhs,
                 "label": spec.label,
                 "free": spec.free,
                 "estimate": est,

@@ -31,14 +31,13 @@ analytic moment Jacobian.
 
 from __future__ import annotations
 
+import hashlib
 from dataclasses import dataclass
-
-import weakref
 
 import numpy as np
 from scipy import stats as _st
 
-from ..data.em import Patterns, missing_patterns
+from ..data.em import CACHE, PatternMoments, Patterns, missing_patterns, pattern_moments, pattern_terms
 from ..data.moments import GroupStats, SampleStats
 from ..errors import DataError, EstimationError
 from ..model.spec import ModelSpec
@@ -48,6 +47,7 @@ __all__ = [
     "saturated_scores",
     "saturated_information",
     "saturated_observed_information",
+    "vech_permutation",
     "vech_jacobian",
     "H1Moments",
     "scaling_trace",
@@ -119,31 +119,59 @@ def saturated_information(pat: Patterns, mean: np.ndarray, cov: np.ndarray) -> n
     return A
 
 
-def saturated_observed_information(x: np.ndarray, pat: Patterns, mean: np.ndarray, cov: np.ndarray, h: float = 1e-5) -> np.ndarray:
-    """Observed information of the saturated model summed over cases.
+def _cross(X: np.ndarray, Y: np.ndarray, r: np.ndarray, c: np.ndarray) -> np.ndarray:
+    """tr(X E_i Y E_j) / (f_i f_j) over vech pairs i = (a, b), j = (c, d), E = e_a e_b' + e_b e_a'."""
+    return (
+        X[np.ix_(r, c)] * Y[np.ix_(c, r)] + X[np.ix_(r, r)] * Y[np.ix_(c, c)]
+        + X[np.ix_(c, c)] * Y[np.ix_(r, r)] + X[np.ix_(c, r)] * Y[np.ix_(r, c)]
+    )
 
-    Central differences of the analytic score sum in every (mu, vech Sigma) coordinate.
+
+def saturated_observed_information(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray) -> np.ndarray:
+    """Observed information of the saturated normal model, analytic, from pattern statistics.
+
+    Per pattern (n_k cases, observed block W = Sigma_oo^-1, d = m_k - mu_o,
+    C = S_k + dd', M = W C W) the Hessian of f = log|Sigma| + tr(W C) is: mean block 2W;
+    mean x covariance 2 e_j' W E W d; covariance block
+    -tr(W E_i W E_j) + tr(W E_i M E_j) + tr(M E_i W E_j). The information of logL is
+    sum_k n_k / 2 of these (Magnus & Neudecker 1988 matrix calculus; the observed form is
+    the one consistent under MAR, Kenward & Molenberghs 1998). At the complete-data ML
+    estimates it equals :func:`saturated_information`.
+
+    Returns
+    -------
+    (p + p(p+1)/2, p + p(p+1)/2) array
     """
     p = cov.shape[0]
     r, c = _vech(p)
-    k = p + r.size
-    H = np.empty((k, k))
-    scale = np.concatenate([np.sqrt(np.diag(cov)), np.sqrt(np.diag(cov)[r] * np.diag(cov)[c])])
-    for j in range(k):
-        step = h * scale[j]
-        out = []
-        for sgn in (1.0, -1.0):
-            m, S = mean.copy(), cov.copy()
-            if j < p:
-                m[j] += sgn * step
-            else:
-                a, b = r[j - p], c[j - p]
-                S[a, b] += sgn * step
-                if a != b:
-                    S[b, a] += sgn * step
-            out.append(saturated_scores(x, pat, m, S).sum(axis=0))
-        H[:, j] = -(out[0] - out[1]) / (2 * step)
-    return (H + H.T) / 2
+    f = np.where(r == c, 0.5, 1.0)
+    ff = np.outer(f, f)
+    W, _, d = pattern_terms(pm, mean, cov)
+    Cm = pm.covs + d[:, :, None] * d[:, None, :]
+    wd = np.einsum("kij,kj->ki", W, d)
+    out = np.zeros((p + r.size, p + r.size))
+    out[:p, :p] = np.tensordot(pm.counts, W, axes=1)
+    for n_k, Wk, Ck, wk in zip(pm.counts, W, Cm, wd):
+        Mk = Wk @ Ck @ Wk
+        out[:p, p:] += n_k * f * (Wk[:, r] * wk[c] + Wk[:, c] * wk[r])
+        out[p:, p:] += 0.5 * n_k * ff * (_cross(Wk, Mk, r, c) + _cross(Mk, Wk, r, c) - _cross(Wk, Wk, r, c))
+    out[p:, :p] = out[:p, p:].T
+    return (out + out.T) / 2
+
+
+def vech_permutation(ix: np.ndarray) -> np.ndarray:
+    """Coordinates of (mu, vech Sigma) after reordering items to ``ix`` (new i = old ix[i]).
+
+    Returns the old coordinate of every new coordinate.
+    """
+    ix = np.asarray(ix)
+    p = ix.size
+    r, c = _vech(p)
+    pos = np.full((p, p), -1)
+    pos[r, c] = np.arange(r.size)
+    a, b = ix[r], ix[c]
+    old = pos[np.maximum(a, b), np.minimum(a, b)]
+    return np.concatenate([ix, p + old])
 
 
 def vech_jacobian(dS: np.ndarray, dm: np.ndarray) -> np.ndarray:
@@ -162,25 +190,42 @@ def _group_raw(g: GroupStats) -> np.ndarray:
     return np.asarray(g.raw, dtype=float)
 
 
-_H1_CACHE: "weakref.WeakKeyDictionary[GroupStats, tuple]" = weakref.WeakKeyDictionary()
+@dataclass(frozen=True, eq=False)
+class _H1Info:
+    """V and Gamma of one group in (mu, vech Sigma) coordinates."""
+
+    V: np.ndarray
+    gamma: np.ndarray
+
+    def reorder(self, ix) -> "_H1Info":
+        k = vech_permutation(ix)
+        return _H1Info(self.V[np.ix_(k, k)], self.gamma[np.ix_(k, k)])
+
+
+def _h1_info(x: np.ndarray, mean: np.ndarray, cov: np.ndarray) -> _H1Info:
+    pat = missing_patterns(x)
+    Z = saturated_scores(x, pat, mean, cov)
+    if pat.n_patterns > 1 or not pat.observed.all():
+        V = saturated_observed_information(pattern_moments(x), mean, cov)
+    else:
+        V = saturated_information(pat, mean, cov)
+    Ainv = np.linalg.inv(V)
+    return _H1Info(V, Ainv @ (Z.T @ Z) @ Ainv)
 
 
 def _h1_group(g: GroupStats) -> tuple:
-    """(x, patterns, V, Gamma) of one group, cached per statistics object."""
-    hit = _H1_CACHE.get(g)
-    if hit is not None:
-        return hit
+    """(x, patterns, V, Gamma) of one group.
+
+    V and Gamma are cached by the content of the cases and the H1 moments
+    (:data:`invariance.data.em.CACHE`), whatever the order of the items: levels, refits
+    and reordered statistics of the same group share one computation.
+    """
     x = _group_raw(g)
-    pat = missing_patterns(x)
-    Z = saturated_scores(x, pat, g.mean, g.cov)
-    if pat.n_patterns > 1 or not pat.observed.all():
-        V = saturated_observed_information(x, pat, g.mean, g.cov)
-    else:
-        V = saturated_information(pat, g.mean, g.cov)
-    Ainv = np.linalg.inv(V)
-    out = (x, pat, V, Ainv @ (Z.T @ Z) @ Ainv)
-    _H1_CACHE[g] = out
-    return out
+    _, order = CACHE.key(x)
+    mom = np.round(np.concatenate([g.mean[order], g.cov[np.ix_(order, order)].ravel()]), 10)
+    kind = "h1:" + hashlib.blake2b(mom.tobytes(), digest_size=16).hexdigest()
+    hit = CACHE.get(kind, x, lambda xc: _h1_info(xc, g.mean[order], g.cov[np.ix_(order, order)]))
+    return x, missing_patterns(x), hit.V, hit.gamma
 
 
 class H1Moments:

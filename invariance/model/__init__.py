@@ -1,6 +1,6 @@
 """Model specification: structures, invariance levels and the entry table."""
 
-from .levels import LEVELS, build_level, level_rank
+from .levels import LEVELS, LevelBuilder, build_level, level_rank
 from .spec import MATRICES, PARAMETER_KINDS, ModelSpec, Release
 from .structure import FAMILIES, Structure
 
@@ -9,6 +9,7 @@ __all__ = [
     "LEVELS",
     "MATRICES",
     "PARAMETER_KINDS",
+    "LevelBuilder",
     "ModelSpec",
     "Release",
     "Structure",

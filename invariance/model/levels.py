@@ -22,15 +22,17 @@ Residual covariances are held equal at ``strict`` together with the residual var
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Iterable, Sequence
 
 import numpy as np
 
 from ..errors import SpecificationError
+from .ordinal_levels import ORDINAL_LEVELS, build_ordinal_level
 from .spec import ALPHA, BETA, LAMBDA, NU, PSI, THETA, ModelSpec, Release
 from .structure import Structure
 
-__all__ = ["LEVELS", "build_level", "level_rank"]
+__all__ = ["LEVELS", "LevelBuilder", "build_level", "level_rank"]
 
 LEVELS = ("configural", "metric", "scalar", "strict")
 
@@ -53,8 +55,9 @@ def build_level(
     reference: str | None = None,
     released: Iterable[Release] = (),
     fixed_means: Sequence[str] = (),
+    n_categories: Sequence[int] | None = None,
 ) -> ModelSpec:
-    """Build the multi-group model of one invariance level.
+    """Build the multi-group model of one invariance level (every item type).
 
     Parameters
     ----------
@@ -71,11 +74,20 @@ def build_level(
     fixed_means
         Factors whose means stay 0 in every group (for example the specific factors of
         a bifactor model, whose means are weakly identified next to the general mean).
+    n_categories
+        Ordered-categorical items: categories per item in model order (0 marks a
+        continuous item). The model is then the Wu & Estabrook (2016) one of
+        :func:`~invariance.model.ordinal_levels.build_ordinal_level`, whose levels are
+        :data:`~invariance.model.ordinal_levels.ORDINAL_LEVELS`. ``None`` (default):
+        every item is continuous.
 
     Returns
     -------
     ModelSpec
     """
+    if n_categories is not None:
+        return build_ordinal_level(structure, groups, level, n_categories, reference=reference,
+                                   released=released, fixed_means=fixed_means)
     rank = level_rank(level)
     groups = tuple(str(g) for g in groups)
     if not groups:
@@ -150,3 +162,39 @@ def build_level(
     spec = ModelSpec.from_rows(rows, items=items, factors=factors, groups=groups, level=level, reference=ref)
     spec = spec.release_all(released)
     return spec
+
+
+@dataclass(frozen=True)
+class LevelBuilder:
+    """Everything that fixes the model of a level except the level and its releases.
+
+    One builder serves every item type: with ``n_categories`` the levels are the ordinal
+    ones. Releases of ordinal models change an item's identification (Wu & Estabrook
+    2016), so :meth:`release` rebuilds the level rather than relabelling entries; for
+    continuous items the rebuilt model equals ``spec.release(...)``.
+
+    Attributes
+    ----------
+    structure, groups, reference, fixed_means, n_categories
+        As in :func:`build_level`.
+    """
+
+    structure: Structure
+    groups: tuple[str, ...]
+    reference: str | None = None
+    fixed_means: tuple[str, ...] = ()
+    n_categories: tuple[int, ...] | None = None
+
+    @property
+    def levels(self) -> tuple[str, ...]:
+        """The levels this builder knows, in order."""
+        return LEVELS if self.n_categories is None else ORDINAL_LEVELS
+
+    def build(self, level: str, released: Iterable[Release] = ()) -> ModelSpec:
+        """The model of ``level`` with ``released`` constraints freed."""
+        return build_level(self.structure, self.groups, level, reference=self.reference, released=released,
+                           fixed_means=self.fixed_means, n_categories=self.n_categories)
+
+    def release(self, spec: ModelSpec, release: Release) -> ModelSpec:
+        """``spec`` (a model this builder made) with one more constraint released."""
+        return self.build(spec.level, spec.released + (release,))

@@ -197,7 +197,7 @@ class ModelSpec:
         return out
 
     def entry_names(self) -> tuple[np.ndarray, np.ndarray]:
-        """(lhs, rhs) names of every entry: item and factor for loadings, outcome and
+        """(variable, other) names of every entry: item and factor for loadings, outcome and
         predictor for paths, the two variables of a covariance, ``None`` where absent."""
         items = np.array(self.items + (None,), dtype=object)
         facs = np.array(self.factors + (None,), dtype=object)
@@ -312,8 +312,8 @@ class ModelSpec:
             {
                 "group": [self.groups[g] for g in self.group],
                 "parameter": self.kinds(),
-                "lhs": lhs,
-                "rhs": rhs,
+                "variable": lhs,
+                "other": rhs,
                 "free": self.free,
                 "label": self.label,
                 "value": self.value,

@@ -37,7 +37,8 @@ def flagged_items(
     searches
         The release searches of the measurement levels, in level order.
     stats
-        The sample statistics (for the pooled SDs of dMACS).
+        The statistics (continuous items: the pooled SDs of dMACS; ordinal statistics
+        leave ``dmacs`` empty, their effects are reported per item by the effects stage).
     final
         The final accepted measurement model (default: the last search's final fit).
 
@@ -52,7 +53,7 @@ def flagged_items(
     if final is None and searches:
         final = searches[-1].fit
     sized = {}
-    if final is not None and final.level.startswith(("scalar", "strict")):
+    if isinstance(stats, SampleStats) and final is not None and final.level.startswith(("scalar", "strict")):
         for e in item_effects(final, stats):
             sized.setdefault(e.item, {})[e.group] = e.dmacs
     out = []

@@ -29,6 +29,7 @@ from scipy import stats as _st
 
 from ..data.moments import SampleStats
 from ..errors import SpecificationError
+from ..estimate.fiml import FIMLObjective
 from ..estimate.objective import MLObjective
 from ..model.spec import ALPHA, BETA, LAMBDA, NU, PSI, THETA, ModelSpec, Release
 from ..estimate.result import FitResult
@@ -354,7 +355,9 @@ def score_tests(
     for k in np.flatnonzero(upar >= 0):
         if rpar[k] >= 0:
             M[upar[k], rpar[k]] = 1.0
-    _, g, H = MLObjective(uspec, stats).derivatives(theta_u)
+    # incomplete cases: the casewise (full-information) likelihood, whose gradient is 0 at the fit
+    objective = FIMLObjective if any(gs.has_missing for gs in stats.groups) else MLObjective
+    _, g, H = objective(uspec, stats).derivatives(theta_u)
     HM = H @ M
     Hrr = M.T @ HM
     g_r = M.T @ g

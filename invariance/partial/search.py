@@ -28,19 +28,20 @@ Options
 
 from __future__ import annotations
 
-import warnings
 from dataclasses import dataclass, field
 from typing import Callable, Sequence
 
 import numpy as np
-from scipy import stats as _st
 
 from ..data.moments import SampleStats
-from ..errors import EstimationError, InvarianceWarning, SpecificationError
-from ..estimate.ml import fit as _fit
-from ..model.spec import Release
+from ..effects.dmacs import item_effects
+from ..errors import EstimationError, SpecificationError
+from ..estimate.interface import Estimator, estimator_for
 from ..estimate.result import FitResult
-from .score import Constraint, ScoreTests, map_theta, release_constraint, score_tests
+from ..model.levels import LevelBuilder
+from ..model.spec import Release
+from .candidates import refit_candidate, release_tests
+from .score import ScoreTests
 
 __all__ = [
     "CORRECTIONS",
@@ -70,6 +71,7 @@ STOP_REASONS = {
 }
 
 _LEVEL_PARAMETERS = {
+    "thresholds": ("threshold",),
     "metric": ("loading", "path"),
     "scalar": ("intercept",),
     "strict": ("residual", "residual_cov"),
@@ -200,6 +202,8 @@ class SearchResult:
         The search options used.
     initial_holds
         The judge's verdict before any release.
+    skipped
+        Candidates whose refit failed (``label``, ``groups``, ``reason``), in order.
     """
 
     level: str
@@ -211,6 +215,7 @@ class SearchResult:
     tests: ScoreTests | None
     options: dict
     initial_holds: bool = False
+    skipped: tuple[dict, ...] = ()
 
     @property
     def decision(self) -> str:
@@ -235,36 +240,104 @@ class SearchResult:
             "releases": [r.to_dict() for r in self.releases],
             "released": [r.to_dict() for r in self.released],
             "options": dict(self.options),
+            "skipped": [dict(k) for k in self.skipped],
             "fit": self.fit.summary(),
         }
 
 
-def _refit(job: tuple) -> FitResult | None:
-    """Refit a spec from starting values (module level, so executors can pickle it)."""
-    spec, stats, start = job
+def _refit(job: tuple) -> tuple[FitResult | None, str | None]:
+    """Refit one candidate (module level, so executors can pickle it): (fit, why it failed)."""
+    estimator, fit, stats, test = job
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", InvarianceWarning)
-            return _fit(spec, stats, start=start)
-    except EstimationError:
-        return None
+        rf = test.refit if test.refit is not None else refit_candidate(estimator, fit, stats, test.spec)
+    except EstimationError as exc:
+        return None, str(exc).splitlines()[0]
+    if not rf.converged:
+        return None, f"did not converge ({rf.status})"
+    return rf, None
 
 
-def _item_dmacs(fit: FitResult, stats: SampleStats, item: str, parameter: str) -> dict:
-    from ..effects.dmacs import item_effects
-
-    if parameter not in ("loading", "intercept") or item not in fit.spec.items:
+def _item_dmacs(fit: FitResult, stats, item: str, parameter: str) -> dict:
+    if not isinstance(stats, SampleStats) or parameter not in ("loading", "intercept") or item not in fit.spec.items:
         return {}
     if not (fit.level.startswith(("scalar", "strict"))):
         return {}  # intercepts are free per group below scalar: dMACS would mix them in
     return {e.group: e.dmacs for e in item_effects(fit, stats, [item])}
 
 
+def _check_options(correction, until, release_in, alpha, max_releases, verify_top) -> None:
+    if correction not in CORRECTIONS:
+        raise SpecificationError(f"The correction must be one of {', '.join(CORRECTIONS)}; got {correction!r}.")
+    if until not in UNTIL:
+        raise SpecificationError(f"'until' must be one of {', '.join(UNTIL)}; got {until!r}.")
+    if release_in not in RELEASE_MODES:
+        raise SpecificationError(f"'release_in' must be one of {', '.join(RELEASE_MODES)}; got {release_in!r}.")
+    if not 0 < alpha < 1:
+        raise SpecificationError(f"The significance level alpha must be between 0 and 1; got {alpha!r}.")
+    if int(max_releases) < 0 or int(verify_top) < 1:
+        raise SpecificationError("max_releases must be 0 or more and verify_top at least 1.")
+
+
+def _choose(estimator, current, stats, cands, sig, adj, *, verify, verify_top, correction, alpha, mapper, skipped):
+    """The candidate to release: (index, refit, lr statistic, lr p, adjusted p) or a stop reason.
+
+    Refits that fail (after the fit's own fallbacks) are recorded in ``skipped`` and the
+    next significant candidate is tried."""
+    if not verify:
+        for j in sig:
+            rf, why = _refit((estimator, current, stats, cands[j]))
+            if rf is not None:
+                return (j, rf, None, None, adj[j])
+            skipped.append({"label": cands[j].label, "groups": list(cands[j].groups), "reason": why})
+        return "refit_failed"
+    top = sig[:verify_top]
+    refits = list(mapper(_refit, [(estimator, current, stats, cands[j]) for j in top]))
+    lr_p = np.array([c.pvalue for c in cands], float)
+    lr = {}
+    for j, (rf, why) in zip(top, refits):
+        if rf is None:
+            lr_p[j] = 1.0
+            skipped.append({"label": cands[j].label, "groups": list(cands[j].groups), "reason": why})
+            continue
+        c = cands[j]
+        d = (c.statistic, c.pvalue) if c.test == "refit" else _difference(estimator, current, rf, stats)
+        lr[j] = (d[0], d[1], rf)
+        lr_p[j] = d[1]
+    adj_lr = adjust_pvalues(lr_p, correction)
+    ok = [j for j in top if j in lr and adj_lr[j] <= alpha]
+    if not ok:
+        return "not_confirmed"
+    j = min(ok, key=lambda k: (lr[k][1], -lr[k][0]))
+    return (j, lr[j][2], lr[j][0], lr[j][1], adj_lr[j])
+
+
+def _step(number: int, level: str, c, chosen: tuple, before: FitResult, stats, holds: bool) -> ReleaseStep:
+    """The record of one release: candidate ``c`` chosen as (index, refit, lr stat, lr p, adjusted p)."""
+    _, rf, lr_stat, lr_pv, adj_p = chosen
+    return ReleaseStep(
+        step=number, level=level, parameter=c.release.parameter, item=c.release.item,
+        factor=c.release.factor, groups=tuple(c.groups), label=c.label, test=c.test,
+        statistic=float(c.statistic), df=int(c.df), pvalue=float(c.pvalue),
+        adjusted_pvalue=float(adj_p), epc=tuple(c.epc),
+        lr_statistic=None if lr_stat is None else float(lr_stat),
+        lr_pvalue=None if lr_pv is None else float(lr_pv),
+        chi2_before=float(before.fit.chi2), chi2_after=float(rf.fit.chi2),
+        holds_after=holds, dmacs=_item_dmacs(rf, stats, c.release.item, c.release.parameter),
+    )
+
+
+def _difference(estimator, restricted, free, stats) -> tuple[float, float]:
+    d = estimator.difference(restricted, free, stats)
+    return float(d.chi2), (float(d.pvalue) if np.isfinite(d.pvalue) else 1.0)
+
+
 def release_search(
     fit: FitResult,
-    stats: SampleStats,
+    stats,
     judge: Callable[[FitResult], bool],
     *,
+    estimator: Estimator | None = None,
+    builder: LevelBuilder | None = None,
     parameters: Sequence[str] | None = None,
     alpha: float = 0.05,
     correction: str = "holm",
@@ -282,10 +355,17 @@ def release_search(
     fit
         The fitted level (restricted model).
     stats
-        Its sample statistics.
+        Its statistics (continuous, incomplete or ordinal).
     judge
         ``judge(fit) -> bool``: does this (partially released) level hold? The
         pipeline passes its comparison against the previous accepted level.
+    estimator
+        The :class:`~invariance.estimate.interface.Estimator` that ranks candidates
+        (score tests, or refits for DWLS) and refits; default: the one named by
+        ``fit.estimator`` with default options.
+    builder
+        The :class:`~invariance.model.levels.LevelBuilder` of the fitted level; needed
+        when releases rebuild the model (ordinal items).
     parameters
         Kinds of constraints to test; by default those the level adds
         (:func:`level_parameters`).
@@ -299,30 +379,24 @@ def release_search(
         ``all`` (free in every group) or ``groups`` (only the group a univariate test
         points to).
     verify
-        Confirm candidates by a likelihood-ratio refit before releasing.
+        Confirm candidates by the estimator's difference test of their refits before
+        releasing (likelihood ratio under ML, scaled under robust ML).
     verify_top
         How many of the most significant candidates to refit when verifying.
     executor
         Object with a ``map(fn, iterable)`` method for the refits (default: serial).
     until
         ``holds`` (default): stop as soon as the level holds; ``clean``: keep releasing
-        while a constraint is significant (locates every noninvariant parameter the
-        tests can see, even when the approximate-fit criteria already accept the level).
+        while a constraint is significant.
 
     Returns
     -------
     SearchResult
+        A candidate whose refit fails is recorded in ``skipped`` and the next one tried.
     """
-    if correction not in CORRECTIONS:
-        raise SpecificationError(f"The correction must be one of {', '.join(CORRECTIONS)}; got {correction!r}.")
-    if until not in UNTIL:
-        raise SpecificationError(f"'until' must be one of {', '.join(UNTIL)}; got {until!r}.")
-    if release_in not in RELEASE_MODES:
-        raise SpecificationError(f"'release_in' must be one of {', '.join(RELEASE_MODES)}; got {release_in!r}.")
-    if not 0 < alpha < 1:
-        raise SpecificationError(f"The significance level alpha must be between 0 and 1; got {alpha!r}.")
-    if int(max_releases) < 0 or int(verify_top) < 1:
-        raise SpecificationError("max_releases must be 0 or more and verify_top at least 1.")
+    _check_options(correction, until, release_in, alpha, max_releases, verify_top)
+    if estimator is None:
+        estimator = estimator_for(fit.estimator)
     level = fit.level
     kinds = tuple(parameters) if parameters is not None else level_parameters(level)
     mapper = map if executor is None else executor.map
@@ -332,7 +406,7 @@ def release_search(
     current = fit
     holds = initial_holds = bool(judge(current))
     steps: list[ReleaseStep] = []
-    tests: ScoreTests | None = None
+    skipped: list[dict] = []
     reason = "holds"
     ref = fit.spec.reference
     if (until == "clean" or not holds) and not current.converged:
@@ -341,79 +415,29 @@ def release_search(
         if len(steps) >= max_releases:
             reason = "max_releases"
             break
-        tests = score_tests(current, stats, parameters=kinds)
-        cands: list[tuple[Constraint, tuple[str, ...] | None, object, str]] = []
-        if release_in == "all":
-            for t in tests.multivariate:
-                if np.isfinite(t.statistic):
-                    cands.append((t.constraint, None, t, "multivariate"))
-        else:
-            for t in tests.univariate:
-                if np.isfinite(t.statistic):
-                    cands.append((t.constraint, (t.group,), t, "univariate"))
+        cands = release_tests(estimator, current, stats, kinds, release_in=release_in, builder=builder)
         if not cands:
             reason = "no_candidates"
             break
-        p = np.array([c[2].pvalue for c in cands])
-        stat = np.array([c[2].statistic for c in cands])
+        p = np.array([c.pvalue for c in cands])
+        stat = np.array([c.statistic for c in cands])
         adj = adjust_pvalues(p, correction)
-        is_ref = np.array([c[1] is not None and c[1][0] == ref for c in cands])
+        is_ref = np.array([c.groups == (ref,) for c in cands])
         order = np.lexsort((is_ref, -stat, adj))
         sig = [j for j in order if adj[j] <= alpha]
         if not sig:
             reason = "no_significant"
             break
-        chosen = None
-        if verify:
-            top = sig[:verify_top]
-            specs = [release_constraint(current.spec, cands[j][0], cands[j][1]) for j in top]
-            jobs = [(s, stats, map_theta(current.spec, current.theta, s)) for s in specs]
-            refits = list(mapper(_refit, jobs))
-            lr_p = p.copy()
-            lr = {}
-            for j, rf in zip(top, refits):
-                if rf is None or not rf.converged:
-                    lr_p[j] = 1.0
-                    continue
-                t_lr = max(current.fit.chi2 - rf.fit.chi2, 0.0)
-                d = max(current.spec.df - rf.spec.df, 1)
-                lr[j] = (t_lr, float(_st.chi2.sf(t_lr, d)), rf)
-                lr_p[j] = lr[j][1]
-            adj_lr = adjust_pvalues(lr_p, correction)
-            ok = [j for j in top if j in lr and adj_lr[j] <= alpha]
-            if not ok:
-                reason = "not_confirmed"
-                break
-            j = min(ok, key=lambda k: (lr[k][1], -lr[k][0]))
-            chosen = (j, lr[j][2], lr[j][0], lr[j][1], adj_lr[j])
-        else:
-            j = sig[0]
-            s = release_constraint(current.spec, cands[j][0], cands[j][1])
-            rf = _refit((s, stats, map_theta(current.spec, current.theta, s)))
-            if rf is None or not rf.converged:
-                reason = "refit_failed"
-                break
-            chosen = (j, rf, None, None, adj[j])
-        j, rf, lr_stat, lr_pv, adj_p = chosen
-        con, groups, t, kind = cands[j]
-        if kind == "multivariate":
-            epc = t.epc
-            freed = con.testable_groups
-        else:
-            epc = ((t.group, t.epc, t.epc_std),)
-            freed = groups
+        chosen = _choose(estimator, current, stats, cands, sig, adj, verify=verify, verify_top=verify_top,
+                         correction=correction, alpha=alpha, mapper=mapper, skipped=skipped)
+        if isinstance(chosen, str):
+            reason = chosen
+            break
+        rf = chosen[1]
         holds = bool(judge(rf))
-        steps.append(ReleaseStep(
-            step=len(steps) + 1, level=level, parameter=con.parameter, item=con.item,
-            factor=con.factor, groups=tuple(freed), label=con.label, test=kind,
-            statistic=float(t.statistic), df=int(t.df), pvalue=float(t.pvalue),
-            adjusted_pvalue=float(adj_p), epc=tuple(epc),
-            lr_statistic=None if lr_stat is None else float(lr_stat),
-            lr_pvalue=None if lr_pv is None else float(lr_pv),
-            chi2_before=float(current.fit.chi2), chi2_after=float(rf.fit.chi2),
-            holds_after=holds, dmacs=_item_dmacs(rf, stats, con.item, con.parameter),
-        ))
+        steps.append(_step(len(steps) + 1, level, cands[chosen[0]], chosen, current, stats, holds))
         current = rf
     if holds and until == "holds":
         reason = "holds"
-    return SearchResult(level, fit, current, holds, tuple(steps), reason, tests, options, initial_holds)
+    return SearchResult(level, fit, current, holds, tuple(steps), reason, None, options, initial_holds,
+                        tuple(skipped))

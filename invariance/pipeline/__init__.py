@@ -2,6 +2,6 @@
 
 from ..spec.load import PipelineSpec, load_pipeline, schema
 from .runner import RunResult, check, run
-from .stages import STAGES, add_stage
+from .stages import STAGES, with_stage
 
-__all__ = ["PipelineSpec", "RunResult", "STAGES", "add_stage", "check", "load_pipeline", "run", "schema"]
+__all__ = ["PipelineSpec", "RunResult", "STAGES", "check", "load_pipeline", "run", "schema", "with_stage"]

@@ -8,54 +8,25 @@ settings used.
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
-
 from ..partial.alignment import align
-from ..errors import SpecificationError
+from ..spec.load import PipelineSpec
+from ..spec.options import check_alignment_section
+from .state import RunState, StageOutput
 
-if TYPE_CHECKING:  # load.py imports this module
-    from ..spec.load import PipelineSpec
-
-__all__ = ["stage_alignment", "check_alignment_section"]
-
-
-def check_alignment_section(doc, structure) -> None:
-    """Refuse, when the pipeline is loaded, an alignment the model cannot have.
-
-    Alignment works factor by factor, so it needs single-factor or correlated-factor
-    models whose items each load on one factor.
-    """
-    opts = doc.get("alignment") or {}
-    if not opts.get("enabled", False):
-        return
-    family = structure.family
-    if family not in ("single", "correlated"):
-        raise SpecificationError(
-            f"alignment.enabled needs a single-factor or correlated-factor model, not {family}: an item's "
-            "intercept there depends on several factor means; set alignment.enabled to false."
-        )
-    seen: dict[str, str] = {}
-    for f, its in structure.factors.items():
-        for it in its:
-            if it in seen:
-                raise SpecificationError(
-                    f"alignment.enabled needs each item on one factor; {it} loads on {seen[it]} and {f}: "
-                    "drop the cross-loading or set alignment.enabled to false."
-                )
-            seen[it] = f
+__all__ = ["stage_alignment"]
 
 
-def stage_alignment(spec: "PipelineSpec", state: dict) -> dict:
+def stage_alignment(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Align the groups of the configural model when the pipeline asks for it."""
     opts = spec.section("alignment") or {}
     if not opts.get("enabled", False):
-        return {}
+        return {}, state
     check_alignment_section(spec.document, spec.structure)
-    res = state.get("fits", {}).get("configural")
+    res = state.fits.get("configural")
     if res is None or not res.converged:
         why = "was not fitted" if res is None else "did not converge"
-        state.setdefault("warnings", []).append(f"alignment skipped: the configural model {why}")
-        return {"alignment": {"enabled": True, "error": f"the configural model {why}"}}
+        return ({"alignment": {"enabled": True, "error": f"the configural model {why}"}},
+                state.warn(f"alignment skipped: the configural model {why}"))
     ref = opts.get("reference")
     al = align(
         res,
@@ -65,6 +36,4 @@ def stage_alignment(spec: "PipelineSpec", state: dict) -> dict:
         random_starts=int(opts.get("random_starts", 4)),
         seed=int(spec.seed or 0),
     )
-    state["alignment"] = al
-    state.setdefault("warnings", []).extend(f"alignment: {n}" for n in al.notes)
-    return {"alignment": {"enabled": True, **al.to_dict()}}
+    return {"alignment": {"enabled": True, **al.to_dict()}}, state.warn(*(f"alignment: {n}" for n in al.notes))

@@ -11,8 +11,7 @@
   as configural models, :func:`invariance.structures.compare_structures`. results.json
   ``structures`` (rows) and ``structure_notes`` (equivalences and problems).
 * ``scores`` (only with ``scores: {method, id}``): factor scores from the final accepted
-  model (``state["final_fit"]`` when a partial-invariance stage leaves one, else the fit of
-  the supported level), :func:`invariance.scores.factor_scores`; cases with missing items
+  model (the fit of the supported level, with the releases of the partial search), :func:`invariance.scores.factor_scores`; cases with missing items
   are scored from their observed items when the fit was full-information (or with
   ``scores.incomplete: true``); the table goes to
   scores.csv in the run folder, the summary (level, released constraints, determinacy,
@@ -21,16 +20,21 @@
 
 from __future__ import annotations
 
-from ..data.ordinal_stats import OrdinalStats
+from typing import Mapping
+import warnings
 
-from ..decide.compare import supported_level
-from ..errors import DataError, SpecificationError
+import numpy as np
+
+from ..data.ordinal_stats import OrdinalStats
+from ..errors import DataError, EstimationError, InvarianceWarning, SpecificationError
+from ..model.levels import build_level
 from ..effects.scores import factor_scores
 from ..data.screening import screen
 from ..decide.structures import compare_structures, group_fit
 from ..spec.load import PipelineSpec, thaw
+from .state import RunState, StageOutput
 
-__all__ = ["stage_screening", "stage_group_fit", "stage_structures", "stage_scores"]
+__all__ = ["stage_screening", "stage_group_fit", "stage_structures", "stage_scores", "reuse_fit"]
 
 
 def _section(spec: PipelineSpec, name: str) -> dict:
@@ -38,15 +42,48 @@ def _section(spec: PipelineSpec, name: str) -> dict:
 
 
 def _fitter(spec: PipelineSpec):
-    """The pipeline's estimator (the per-group and rival fits use the same one)."""
-    from .stages import FITTERS  # stages imports this module: look up at run time
+    """The pipeline's estimator with the run's estimation options (the per-group and
+    rival fits use the same one)."""
+    return spec.make_estimator().fit
 
-    return FITTERS.get(spec.estimator, FITTERS["ml"])
+
+def _same_model(a, b) -> bool:
+    """Do two model specifications have the same entry table?"""
+    return a.groups == b.groups and a.items == b.items and all(
+        np.array_equal(getattr(a, k), getattr(b, k)) for k in ("group", "matrix", "row", "col", "free", "label")
+    ) and np.array_equal(a.value, b.value, equal_nan=True)
 
 
-def stage_screening(spec: PipelineSpec, state: dict) -> dict:
+def reuse_fit(prefit: Mapping, level: str, model):
+    """``(result, notes)`` of a fit an earlier stage made of exactly ``model`` (the
+    configural model fitted group by group in ``group_fit``, kept in
+    ``RunState.extra["prefit"]``), else ``None``."""
+    kept = prefit.get(level)
+    if kept is None or not _same_model(kept[0], model):
+        return None
+    return kept[1], kept[2]
+
+
+def _configural_prefit(spec: PipelineSpec, state: dict, fitter):
+    """Fit the configural model (group by group: it shares nothing) and keep it for the
+    fits stage; returns the single-group results, or ``None`` when they are not available."""
+    stats = state["stats"]
+    model = build_level(spec.structure, stats.names, "configural", reference=state.get("reference"),
+                        released=spec.released, fixed_means=spec.fixed_means)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", InvarianceWarning)
+        try:
+            res = fitter(model, stats)
+        except (EstimationError, np.linalg.LinAlgError):
+            return None
+    notes = [str(w.message) for w in caught if issubclass(w.category, InvarianceWarning)]
+    state["prefit"] = {"configural": (model, res, notes)}
+    return res.extra.get("groups")
+
+
+def stage_screening(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Screen the items of every group (before any model is fitted)."""
-    checked = state["checked"]
+    checked = state.checked
     opts = _section(spec, "screening")
     out = screen(
         checked.frame,
@@ -59,19 +96,21 @@ def stage_screening(spec: PipelineSpec, state: dict) -> dict:
     )
     rec = out["recommendation"]
     if rec["estimator"] == "ml_robust" and spec.estimator == "ml":
-        state.setdefault("warnings", []).append("screening: " + rec["notes"][0])
+        state = state.warn("screening: " + rec["notes"][0])
     if rec["ordinal_items"]:
-        state.setdefault("warnings", []).append(
+        state = state.warn(
             "screening: items with fewer than five categories are fitted as continuous: "
             + ", ".join(rec["ordinal_items"])
         )
-    return {"screening": out}
+    return {"screening": out}, state
 
 
 def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
     """Fit the structure in each group separately, before the configural model.
 
-    The rule is ``compare.group_fit``, else ``decision.configural_fit``, else CFI >= .90
+    The configural model is fitted here, group by group (it shares no parameter), and
+    kept for the fits stage (:func:`reuse_fit`); the per-group table reads its
+    single-group results. The rule is ``compare.group_fit``, else ``decision.configural_fit``, else CFI >= .90
     and RMSEA <= .10 (common practice).
     """
     if isinstance(state["stats"], OrdinalStats):
@@ -81,32 +120,37 @@ def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
         )
         return {}
     rule = _section(spec, "compare").get("group_fit") or _section(spec, "decision").get("configural_fit") or {}
+    fitter = _fitter(spec)
+    per_group = _configural_prefit(spec, state, fitter)
+    if per_group is not None:
+        # the configural model's own single-group fits: no second fit of any group
+        fitter = lambda model, stats: per_group[stats.names[0]]  # noqa: E731
     gf = group_fit(
         state["stats"],
         spec.structure,
         cfi_min=float(rule.get("cfi", 0.90)),
         rmsea_max=float(rule.get("rmsea", 0.10)),
         warn=False,
-        fitter=_fitter(spec),
+        fitter=fitter,
     )
     state["group_fit"] = gf
     state.setdefault("warnings", []).extend(gf.messages)
     return {"group_fit": gf.to_dict()}
 
 
-def stage_structures(spec: PipelineSpec, state: dict) -> dict:
+def stage_structures(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Rival structures (only when ``compare.structures`` lists some)."""
     fams = _section(spec, "compare").get("structures")
     if not fams:
-        return {}
-    if isinstance(state["stats"], OrdinalStats):
+        return {}, state
+    if isinstance(state.stats, OrdinalStats):
         raise SpecificationError(
             "compare.structures works on continuous items only; remove it or data.ordinal from the pipeline."
         )
     st = spec.structure
     try:
         cmp_ = compare_structures(
-            state["stats"],
+            state.stats,
             st.factors,
             fams,
             general=st.general,
@@ -115,39 +159,32 @@ def stage_structures(spec: PipelineSpec, state: dict) -> dict:
         )
     except SpecificationError as exc:
         raise SpecificationError(f"compare.structures: {exc}") from None
-    state["structures"] = cmp_
     notes = list(cmp_.notes)
     if st.regressions:
         notes.insert(0, "Rival structures are compared on the measurement part only (factor regressions left out).")
     return {
         "structures": cmp_.to_records(),
         "structure_notes": {"equivalent": list(cmp_.equivalent), "notes": notes},
-    }
+    }, state
 
 
-def _final_fit(state: dict):
-    """The final accepted model: a partial model if a later stage left one, else the supported level."""
-    final = state.get("final_fit")
-    if final is not None:
-        return final
-    best = supported_level(state["level_rows"])
-    return None if best is None else state["fits"].get(best)
+def _final_fit(state: RunState):
+    """The final accepted model: the fit of the supported level (with its releases)."""
+    best = state.supported_level
+    return None if best is None else state.fits.get(best)
 
 
-def stage_scores(spec: PipelineSpec, state: dict) -> dict:
+def stage_scores(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Factor scores per case from the final accepted model (only with a ``scores`` section)."""
     if spec.section("scores") is None:
-        return {}
+        return {}, state
     opts = _section(spec, "scores")
     res = _final_fit(state)
     if res is None:
-        state.setdefault("warnings", []).append(
-            "scores: no level was supported, so no factor scores were written"
-        )
-        return {"scores": None}
-    checked = state["checked"]
+        return {"scores": None}, state.warn("scores: no level was supported, so no factor scores were written")
+    checked = state.checked
     # a full-information fit used every case with an observed item: score those cases too
-    fiml = any(getattr(g, "has_missing", False) for g in state["stats"].groups)
+    fiml = any(getattr(g, "has_missing", False) for g in state.stats.groups)
     frame = checked.frame.copy()
     id_col = opts.get("id")
     if id_col is None:
@@ -155,7 +192,7 @@ def stage_scores(spec: PipelineSpec, state: dict) -> dict:
         id_col = "row" if "row" not in frame.columns else "case_row"
         frame[id_col] = frame.index.to_numpy()
     else:
-        full = state["frame"]
+        full = state.frame
         if id_col not in full.columns:
             raise DataError(f"scores.id names column {id_col!r}, which is not in the data; check the spelling.")
         if id_col in frame.columns:
@@ -171,6 +208,5 @@ def stage_scores(spec: PipelineSpec, state: dict) -> dict:
         id=id_col,
         incomplete=bool(opts.get("incomplete", fiml)),
     )
-    state["scores_table"] = fs.table
-    state.setdefault("warnings", []).extend(f"scores: {n}" for n in fs.notes)
-    return {"scores": fs.to_dict()}
+    state = state.update(scores_table=fs.table).warn(*(f"scores: {n}" for n in fs.notes))
+    return {"scores": fs.to_dict()}, state

@@ -18,6 +18,7 @@ from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
 from ..model.structure import Structure
 from ..spec.load import PipelineSpec
+from .state import RunState, StageOutput
 
 __all__ = ["safe_names", "semopy_description", "stage_crosscheck", "TOLERANCE"]
 
@@ -67,12 +68,12 @@ def _verdict(rel: float, theirs: float, ours: float, their_df: int, our_df: int)
     return "differ: semopy found a lower chi-square"
 
 
-def stage_crosscheck(spec: PipelineSpec, state: dict) -> dict:
+def stage_crosscheck(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Per group: this package's single-group configural chi-square against semopy's."""
     import pandas as pd
     import semopy
 
-    stats = state["stats"]
+    stats = state.stats
     desc = semopy_description(spec.structure)
     names = safe_names(spec.structure)
     safe_desc = semopy_description(spec.structure, names=names)
@@ -111,4 +112,4 @@ def stage_crosscheck(spec: PipelineSpec, state: dict) -> dict:
         except Exception as exc:  # semopy's own failures are reported, not raised
             row["agreement"] = f"semopy failed: {str(exc).splitlines()[0] if str(exc) else type(exc).__name__}"
         rows.append(row)
-    return {"crosscheck": {"engine": f"semopy {semopy.__version__}", "model": desc, "groups": rows}}
+    return {"crosscheck": {"engine": f"semopy {semopy.__version__}", "model": desc, "groups": rows}}, state

@@ -1,4 +1,5 @@
-"""Pipeline glue for robust ML and missing data (used by :mod:`invariance.pipeline.stages`).
+"""Pipeline glue for robust ML and missing data (used by :mod:`invariance.pipeline.stages`;
+the statistics themselves come from :mod:`invariance.estimate.interface`).
 
 Pipeline keys (schema.json):
 
@@ -23,60 +24,27 @@ the number of patterns, the coverage of each item and Little's (1988) MCAR test.
 
 from __future__ import annotations
 
-from typing import Mapping
 
 import numpy as np
 
 from ..data.mcar import little_mcar, missing_report
-from ..errors import EstimationError
-from ..estimate.robust import H1Moments, robust_difference
 
-__all__ = [
-    "INCOMPLETE",
-    "ROBUST_KEYS",
-    "stats_method",
-    "display_view",
-    "display_note",
-    "incomplete_choice",
-    "difference_choice",
-    "cases_used_text",
-    "missing_section",
-    "robust_level_fields",
-    "decision_view",
-    "robust_delta",
-]
+__all__ = ["display_view", "display_note", "cases_used_text", "missing_section"]
 
-INCOMPLETE = ("full_information", "listwise")
-ROBUST_KEYS = ("chi2_scaled", "scaling_factor", "pvalue_scaled", "cfi_robust", "tli_robust", "rmsea_robust")
-
-
-def incomplete_choice(spec) -> str:
-    """The pipeline's ``data.incomplete`` (default ``full_information``)."""
-    return str(spec.document["data"].get("incomplete", "full_information"))
-
-
-def difference_choice(spec) -> str:
-    """``"auto"`` or ``"2010"`` from ``decision.scaled_difference``."""
-    dec = spec.document.get("decision", {})
-    return "2010" if dec.get("scaled_difference", "auto") == "strictly_positive" else "auto"
-
-
-def stats_method(spec, checked) -> str:
-    """The :func:`~invariance.data.sample_stats` method for this run."""
+def cases_used_text(spec, checked) -> str:
+    """How rows with a missing item were used, as it really happened."""
     frame = checked.frame[list(checked.items)]
-    has_missing = bool(frame.isna().to_numpy().any())
-    return "fiml" if has_missing and incomplete_choice(spec) == "full_information" else "listwise"
-
-
-def cases_used_text(method: str, has_missing: bool) -> str:
-    if method == "fiml":
+    incomplete = frame.isna().to_numpy()
+    some = int(incomplete.any(axis=1).sum())
+    if not some:
+        return "complete cases (no missing item values)"
+    if spec.incomplete == "full_information":
         return "every case with at least one observed item (full-information ML)"
-    if has_missing:
-        return "complete cases (listwise deletion, as the pipeline asks)"
-    return "complete cases (no missing item values)"
+    why = "dwls uses complete cases" if spec.ordinal is not None else "data.incomplete: listwise"
+    return f"complete cases ({some} rows with a missing item dropped listwise; {why})"
 
 
-def missing_section(stats, checked, method: str) -> dict:
+def missing_section(stats, checked, incomplete: str) -> dict:
     """Per group: method, cases used and dropped, patterns, coverage, Little's test."""
     by = missing_report(stats)
     for g in checked.groups:
@@ -87,46 +55,8 @@ def missing_section(stats, checked, method: str) -> dict:
             # information about the data, whatever the handling (Little 1988)
             entry["little"] = little_mcar(block).to_dict()
         entry.setdefault("little", None)
-    return {"method": "full_information" if method == "fiml" else "listwise", "by_group": by}
-
-
-def robust_level_fields(res) -> dict:
-    """The robust statistics of one fitted level (``None`` under plain ML)."""
-    out = {}
-    for k in ROBUST_KEYS:
-        v = res.extra.get(k)
-        out[k] = None if v is None or not np.isfinite(v) else float(v)
-    return out
-
-
-def decision_view(row: Mapping) -> dict:
-    """A level row whose CFI, TLI and RMSEA are the robust ones (for judging)."""
-    view = dict(row)
-    for k in ("cfi", "tli", "rmsea"):
-        v = row.get(f"{k}_robust")
-        if v is not None:
-            view[k] = v
-    return view
-
-
-def robust_delta(delta: dict, res, base_res, stats, *, method: str, cache: dict) -> dict:
-    """Add the scaled difference to ``delta``; its p value becomes the deciding one."""
-    key = id(stats)
-    if key not in cache:
-        cache[key] = H1Moments(stats)
-    out = dict(delta)
-    out["pvalue_normal"] = delta.get("pvalue")
-    try:
-        d = robust_difference(res, base_res, stats, method=method, h1=cache[key])
-    except EstimationError as exc:
-        # no scaled test can be formed: decide on the normal-theory difference and say so
-        out.update({"chi2_scaled": None, "scaling": None, "test": "normal_theory", "note": str(exc)})
-        return out
-    out["chi2_scaled"] = None if not np.isfinite(d.chi2) else float(d.chi2)
-    out["scaling"] = None if not np.isfinite(d.scaling) else float(d.scaling)
-    out["test"] = d.test
-    out["pvalue"] = None if not np.isfinite(d.pvalue) else float(d.pvalue)
-    return out
+    fiml = any(getattr(g, "has_missing", False) for g in stats.groups)
+    return {"method": "full_information" if fiml else "listwise", "by_group": by}
 
 
 def display_view(results: dict) -> dict:

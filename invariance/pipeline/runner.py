@@ -12,11 +12,17 @@ from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Any, Mapping
 
+import pandas as pd
+
 from ..errors import SpecificationError, shorten
-from ..report.escape import terminal_text, write_csv
+from ..progress import Progress
+from ..escape import terminal_text, write_csv
 from ..spec.load import PipelineSpec, load_pipeline, thaw
+from ..version import __version__
+from .crosscheck import stage_crosscheck
 from .output import check_destination, format_table, level_table, to_json, write_outputs
-from .stages import STAGES, stage_data, stage_levels, stage_stats
+from .stages import STAGES, stage_data, stage_levels, stage_stats, with_stage
+from .state import RunState
 
 __all__ = ["RunResult", "Interrupted", "run", "check", "default_out_dir"]
 
@@ -131,8 +137,6 @@ def _protected(spec: PipelineSpec) -> list[tuple[pathlib.Path, str]]:
 
 
 def _estimates(fits: Mapping[str, Any]):
-    import pandas as pd
-
     frames = []
     for lv, res in fits.items():
         est = res.estimates()
@@ -162,20 +166,28 @@ def _context(spec: PipelineSpec, results: dict, quiet: bool) -> dict:
     }
 
 
-def run_stages(spec: PipelineSpec, stages=None, *, extra: dict | None = None) -> tuple[dict, dict]:
-    """Run stages in order; returns (results, state)."""
-    from .. import __version__
+def run_stages(spec: PipelineSpec, stages=None, *, executor=None,
+               progress: Progress | None = None) -> tuple[dict, RunState]:
+    """Run stages in order (default :data:`~invariance.pipeline.stages.STAGES`); returns
+    (results, the final :class:`~invariance.pipeline.state.RunState`).
 
-    state: dict = {"warnings": [], **(extra or {})}
+    ``progress`` (optional) is advanced once per stage, with the stage's name as note.
+    """
+    state = RunState(executor=executor)
     results: dict = {
         "invariance_version": __version__,
         "title": spec.title,
         "estimator": spec.estimator,
         "seed": spec.seed,
     }
-    for _name, stage in stages if stages is not None else STAGES:
-        results.update(stage(spec, state))
-    results["warnings"] = list(dict.fromkeys(state["warnings"]))
+    for name, stage in stages if stages is not None else STAGES:
+        if progress is not None:
+            progress.update(0, note=name)
+        out, state = stage(spec, state)
+        results.update(out)
+        if progress is not None:
+            progress.update()
+    results["warnings"] = list(dict.fromkeys(state.warnings))
     return results, state
 
 
@@ -187,6 +199,7 @@ def run(
     crosscheck: bool = False,
     write: bool | None = None,
     executor=None,
+    stages: tuple | None = None,
 ) -> RunResult:
     """Run a pipeline: fit the levels, decide, and write the outputs.
 
@@ -210,31 +223,34 @@ def run(
         An object with a ``map(fn, iterable)`` method (for example
         :class:`invariance.batch.executor.DaskExecutor`) on which the partial-invariance
         search runs its likelihood-ratio refits (``partial.verify: true``); serial otherwise.
+    stages
+        The stage table (default :data:`~invariance.pipeline.stages.STAGES`); build
+        another with :func:`~invariance.pipeline.stages.with_stage`.
 
     Returns
     -------
     RunResult
     """
     with _stop_signals_interrupt():
-        return _run(pipeline, out=out, quiet=quiet, crosscheck=crosscheck, write=write, executor=executor)
+        return _run(pipeline, out=out, quiet=quiet, crosscheck=crosscheck, write=write, executor=executor,
+                    stages=stages)
 
 
-def _run(pipeline, *, out, quiet: bool, crosscheck: bool, write: bool | None, executor) -> RunResult:
+def _run(pipeline, *, out, quiet: bool, crosscheck: bool, write: bool | None, executor, stages) -> RunResult:
     spec = load_pipeline(pipeline)
     out_dir = _out_dir(out, spec, write)
     protected = _protected(spec)
     if out_dir is not None:
         check_destination(out_dir, protected=protected)
-    stages = list(STAGES)
+    stages = STAGES if stages is None else tuple(stages)
     if crosscheck:
-        from .crosscheck import stage_crosscheck
-
-        stages.append(("crosscheck", stage_crosscheck))
-    results, state = run_stages(spec, stages, extra={"executor": executor})
+        stages = with_stage("crosscheck", stage_crosscheck, table=stages)
+    with Progress(len(stages), label="fitting", quiet=quiet) as bar:
+        results, state = run_stages(spec, stages, executor=executor, progress=bar)
     results = json.loads(to_json(results))
-    estimates = _estimates(state["fits"])
+    estimates = _estimates(state.fits)
     if out_dir is not None:
-        from ..report import write_reports
+        from ..report import write_reports  # lazy: the report layer loads matplotlib
 
         context = _context(spec, results, quiet)
 
@@ -243,8 +259,8 @@ def _run(pipeline, *, out, quiet: bool, crosscheck: bool, write: bool | None, ex
             write_csv(level_table(results), folder / "levels.csv")
             write_csv(estimates, folder / "estimates.csv")
             (folder / "pipeline.yaml").write_text(spec.text, encoding="utf-8")
-            if state.get("scores_table") is not None:
-                write_csv(state["scores_table"], folder / "scores.csv")
+            if state.scores_table is not None:
+                write_csv(state.scores_table, folder / "scores.csv")
             write_reports(folder, results, estimates, context)
 
         out_dir = write_outputs(out_dir, [files], protected=protected)
@@ -259,7 +275,7 @@ def _run(pipeline, *, out, quiet: bool, crosscheck: bool, write: bool | None, ex
     return RunResult(
         results=_freeze(results),
         estimates=estimates,
-        fits=MappingProxyType(dict(state["fits"])),
+        fits=state.fits,
         spec=spec,
         out_dir=out_dir,
     )
@@ -278,7 +294,7 @@ def check(pipeline) -> dict:
     """
     spec = load_pipeline(pipeline)
     results, state = run_stages(spec, [("data", stage_data), ("stats", stage_stats), ("levels", stage_levels)])
-    checked = state["checked"]
+    checked = state.checked
     return {
         "pipeline": str(spec.source) if spec.source else None,
         "data_file": str(spec.data_path),

@@ -9,6 +9,10 @@ Front door: :func:`write_reports`. Files written into ``out_dir``:
     The same sections in Markdown, linking the figures written beside it.
 ``table_levels.csv``, ``table_levels.md``, ``table_levels.tex``
     The stepwise table (levels as rows) for papers (:mod:`invariance.report.tables`).
+``table_<name>.csv``, ``.md``, ``.tex``
+    The other paper tables, when the results have them: ``loadings`` (standardized, per
+    group), ``latent`` (means, variances, covariances), ``paths`` (standardized paths and
+    R²), ``flagged``, ``structural`` and ``structures`` (rival structures).
 
 Sections, in order, are listed in :data:`invariance.report.registry.SECTIONS`; each is
 one builder function, and a section whose data are absent is skipped. The keys read
@@ -32,9 +36,11 @@ from .parts import Figure, Section
 from .registry import SECTIONS, build_sections
 from .render import render_html, render_markdown
 from .sections import ReportInput
-from .tables import LEVEL_TABLE_FILES, write_level_tables
+from .paper_tables import estimate_tables
+from .result_tables import result_tables
+from .tables import LEVEL_TABLE_FILES, PaperTable, write_level_tables, write_table
 
-__all__ = ["LEVEL_TABLE_FILES", "SECTIONS", "ReportInput", "build_report", "write_reports"]
+__all__ = ["LEVEL_TABLE_FILES", "SECTIONS", "ReportInput", "build_report", "paper_tables", "write_reports"]
 
 REPORT_HTML = "report.html"
 REPORT_MD = "report.md"
@@ -75,6 +81,12 @@ def build_report(
     return build_sections(inp, progress=progress), _meta(inp)
 
 
+def paper_tables(results: Mapping[str, Any], estimates: pd.DataFrame | None) -> list[PaperTable]:
+    """Every paper table beyond the levels: loadings, latent, paths, flagged, structural, structures."""
+    shown = display_results(results or {})
+    return estimate_tables(shown, estimates) + result_tables(shown)
+
+
 def _figures(sections: list[Section]) -> list[Figure]:
     return [p for s in sections for p in s.parts if isinstance(p, Figure)]
 
@@ -91,7 +103,7 @@ def write_reports(out_dir: Path, results: dict, estimates: pd.DataFrame, context
         ``reference_group``, ``levels``, ``flagged``, ``decision_rule`` and optional
         sections (see :mod:`invariance.report.inputs`).
     estimates
-        All estimates, with columns level, group, parameter, lhs, rhs, label, free,
+        All estimates, with columns level, group, parameter, variable, other, label, free,
         estimate, se, z, pvalue, std.
     context
         ``pipeline_text``, ``data_file``, ``data_sha256``, ``seed``, ``structure``,
@@ -100,7 +112,7 @@ def write_reports(out_dir: Path, results: dict, estimates: pd.DataFrame, context
     Returns
     -------
     list of Path
-        Every file written: report.html, report.md, the three tables, the figures.
+        Every file written: report.html, report.md, the tables, the figures.
     """
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -128,5 +140,7 @@ def write_reports(out_dir: Path, results: dict, estimates: pd.DataFrame, context
         md.write_text(render_markdown(sections, meta, fig_paths), encoding="utf-8")
         bar.update(note=REPORT_MD)
         tables = write_level_tables(out_dir, results)
+        for table in paper_tables(results, estimates):
+            tables += write_table(out_dir, table)
         bar.update(note="tables")
     return [html, md, *tables, *written]

@@ -41,7 +41,7 @@ LEVEL_LABELS = {
     "scalar": "Scalar",
     "strict": "Strict",
     "threshold": "Threshold",
-    "thresholds": "Thresholds",
+    "thresholds": "Threshold",
 }
 
 MINUS = "\u2212"
@@ -109,8 +109,13 @@ def fmt_p(x: Any, *, minus: str = MINUS) -> str:
     return fmt_bounded(v, minus=minus)
 
 
-ESTIMATOR_LABELS = {"ml": "ML", "ml_robust": "robust ML (scaled statistics, sandwich SEs)", "mlr": "robust ML", "robust_ml": "robust ML", "fiml": "FIML (ML with missing data)",
-                    "dwls": "DWLS", "wlsmv": "DWLS (robust)", "uls": "ULS"}
+#: The pipeline's estimator codes (spec/schema.json) and their names in the report.
+ESTIMATOR_LABELS = {
+    "ml": "ML",
+    "ml_robust": "robust ML (scaled statistics, sandwich SEs)",
+    "fiml": "FIML (ML with missing data)",
+    "dwls": "DWLS (mean-and-variance adjusted statistic)",
+}
 
 
 def estimator_label(code: Any) -> str:

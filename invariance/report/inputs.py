@@ -64,6 +64,8 @@ OPTIONAL_KEYS = {
     "scale_bias": ("scale_bias",),
     "group_fit": ("group_fit",),
     "alignment": ("alignment",),
+    "structural": ("structural",),
+    "structures": ("structures", "structure_notes"),
 }
 
 # Which family of cutoffs a level's step constrains (Chen 2007 distinguishes them).

@@ -9,45 +9,23 @@ from . import inputs as I
 from .formatting import fmt_bounded, fnum, level_label
 from .parts import Figure, Section, Table, Text, cell, records_table
 from .plots import dmacs_heatmap, profile_chart
+from .result_tables import flagged_table
+from .table_sections import table_part
 from .sections import ReportInput
 
 __all__ = ["dmacs_values", "section_effects", "section_flagged", "section_profiles"]
 
-FLAG_NAMES = {
-    "item": "Item", "parameter": "Parameter", "factor": "Factor", "groups": "Groups", "level": "Level",
-    "statistic": "Statistic", "lm": "Score test", "score": "Score test", "df": "df", "pvalue": "p",
-    "p": "p", "p_adjusted": "p (adjusted)", "adjusted_pvalue": "p (adjusted)", "dmacs": "dMACS",
-    "dmacs_max": "dMACS (largest)", "test": "Test", "lr_statistic": "LR \u03c7\u00b2", "lr_pvalue": "p (LR)",
-}
-#: Flag fields left out of the table (long per-group lists shown elsewhere).
-FLAG_HIDDEN = ("epc",)
 #: Most markers (rows x groups) in one profile figure: larger sets are split so each fits a page.
 MAX_MARKERS = 90
 KIND_TITLES = {"loading": "Loadings", "intercept": "Intercepts", "threshold": "Thresholds"}
 
 
 def section_flagged(inp: ReportInput) -> Section | None:
-    """Items whose parameters were flagged as differing across groups."""
-    flagged = [f for f in inp.results.get("flagged") or [] if isinstance(f, Mapping)]
-    if not flagged:
+    """Items whose parameters were flagged as differing across groups (``table_flagged``)."""
+    table = flagged_table(inp.results)
+    if table is None:
         return None
-    shown = [{k: v for k, v in f.items() if k not in FLAG_HIDDEN} for f in flagged]
-    tab = records_table(shown, names=FLAG_NAMES, caption="Parameters flagged as differing across groups")
-    first = ["Item", "Parameter", "Factor", "Groups", "Level"]
-    order = [tab.columns.index(c) for c in first if c in tab.columns]
-    order += [k for k in range(len(tab.columns)) if k not in order]
-    tab = Table(
-        tuple(tab.columns[k] for k in order),
-        tuple(tuple(r[k] for k in order) for r in tab.rows),
-        caption=tab.caption,
-        numeric=tuple(tab.is_numeric(k) for k in order),
-    )
-    return Section("flagged", "Flagged items", (
-        tab,
-        Text("A flag says the data disagree with an equality constraint; its size is in the dMACS column "
-             "(rough guides .2 small, .4 medium, .6 large: Nye, Bradburn, Olenick, Bialko & Drasgow 2019).",
-             style="note"),
-    ))
+    return Section("flagged", "Flagged items", (table_part(table),))
 
 
 def _released_rows(entry: Mapping[str, Any] | None, kind: str, rows: dict[str, tuple[str, str]]) -> list[str]:
@@ -61,8 +39,33 @@ def _released_rows(entry: Mapping[str, Any] | None, kind: str, rows: dict[str, t
     return out
 
 
+def _profile_values(sub) -> tuple[dict[str, tuple[str, str]], dict[tuple[str, str], tuple[float, float | None]]]:
+    """Row name -> (item, other) and (row, group) -> (estimate, se) of one parameter kind."""
+    rows: dict[str, tuple[str, str]] = {}
+    values: dict[tuple[str, str], tuple[float, float | None]] = {}
+    for r in sub.to_dict("records"):
+        item, other = str(r["variable"]), r.get("other")
+        other = "" if other is None or (isinstance(other, float) and other != other) else str(other)
+        name = f"{item} \u2190 {other}" if r["parameter"] == "loading" and other else f"{item} {other}".strip()
+        rows.setdefault(name, (item, other))
+        v = fnum(r.get("estimate"))
+        if v is not None:
+            values[(name, str(r["group"]))] = (v, fnum(r.get("se")))
+    return rows, values
+
+
+def _differs(name: str, groups: list[str], values: Mapping) -> bool:
+    """Whether a row's estimate is not the same in every group (free or released there)."""
+    vals = [values[(name, g)][0] for g in groups if (name, g) in values]
+    return len(vals) > 1 and max(vals) - min(vals) > 1e-8 * (1.0 + max(abs(v) for v in vals))
+
+
 def section_profiles(inp: ReportInput) -> Section | None:
-    """Loadings and intercepts (or thresholds) of every item across groups."""
+    """Loadings and intercepts (or thresholds) that differ across groups, group by group.
+
+    Rows held equal across groups at the accepted level are left out (they would show the
+    same value in every group); the section says which kinds were all equal.
+    """
     acc = inp.accepted
     level = acc.get("level") if acc else None
     est = inp.estimates_at(level)
@@ -72,24 +75,19 @@ def section_profiles(inp: ReportInput) -> Section | None:
     if est.empty or "parameter" not in est:
         return None
     groups = [g for g in inp.groups] or [str(g) for g in dict.fromkeys(est["group"].astype(str))]
+    model = level_label(acc or {"level": level}).lower()
     parts: list = []
+    equal: list[str] = []
     for kind in ("loading", "threshold", "intercept"):
         sub = est[est["parameter"] == kind]
         if sub.empty:
             continue
-        rows: dict[str, tuple[str, str]] = {}
-        values: dict[tuple[str, str], tuple[float, float | None]] = {}
-        for _, r in sub.iterrows():
-            item = str(r["lhs"])
-            other = r.get("rhs")
-            other = "" if other is None or (isinstance(other, float) and other != other) else str(other)
-            name = f"{item} \u2190 {other}" if kind == "loading" and other else (f"{item} {other}".strip())
-            rows.setdefault(name, (item, other))
-            v = fnum(r.get("estimate"))
-            if v is not None:
-                values[(name, str(r["group"]))] = (v, fnum(r.get("se")))
-        rel = _released_rows(acc, kind, rows)
-        names = list(rows)
+        rows, values = _profile_values(sub)
+        names = [n for n in rows if _differs(n, groups, values)]
+        if not names:
+            equal.append(KIND_TITLES[kind].lower())
+            continue
+        rel = _released_rows(acc, kind, {n: rows[n] for n in names})
         per = max(4, int(MAX_MARKERS / max(len(groups), 1)))
         per = math.ceil(len(names) / math.ceil(len(names) / per))  # even split
         chunks = [names[k:k + per] for k in range(0, len(names), per)]
@@ -99,15 +97,16 @@ def section_profiles(inp: ReportInput) -> Section | None:
                                 title=KIND_TITLES[kind] + part_of, xlabel=f"{kind} (unstandardized, 95% interval)")
             if png is None:
                 continue
-            cap = (f"{KIND_TITLES[kind]}{part_of} per group under the "
-                   f"{level_label(acc or {'level': level}).lower()} model. "
-                   "Constrained parameters are equal across groups by construction")
-            cap += "; released ones (\u2020, shaded) are estimated per group." if rel else "; none were released."
+            cap = f"{KIND_TITLES[kind]}{part_of} that differ across groups under the {model} model"
+            cap += ("; released ones (\u2020, shaded) are estimated per group." if rel else
+                    f" (left out: {len(rows) - len(names)} held equal across groups).")
             stem = f"profile-{kind}" + (f"-{n_chunk}" if len(chunks) > 1 else "")
             parts.append(Figure(stem, png, alt=f"{KIND_TITLES[kind]}{part_of} of each item in each group", caption=cap))
-    if not parts:
-        return None
-    return Section("profiles", "Item profiles across groups", tuple(parts))
+    if equal:
+        parts.append(Text(f"All {' and '.join(equal)} are held equal across groups under the {model} model, "
+                          "so they are the same in every group (the standardized loadings per group are in "
+                          "table_loadings).", style="note"))
+    return Section("profiles", "Item profiles across groups", tuple(parts)) if parts else None
 
 
 def _add(out: dict, item: Any, group: Any, value: Any) -> None:

@@ -214,7 +214,7 @@ def _means_from_estimates(inp: ReportInput) -> list[dict]:
     if "free" in sub:
         sub = sub[sub["free"].astype(bool)]
     return [
-        {"factor": str(r["lhs"]), "group": str(r["group"]), "estimate": fnum(r.get("estimate")),
+        {"factor": str(r["variable"]), "group": str(r["group"]), "estimate": fnum(r.get("estimate")),
          "se": fnum(r.get("se")), "pvalue": fnum(r.get("pvalue"))}
         for _, r in sub.iterrows()
     ]

@@ -29,6 +29,8 @@ __all__ = [
 
 MAX_ROWS = 200
 MAX_CODE = 20000
+#: Tables with more rows than this are folded (shown on request) so the results stay near the top.
+FOLD_ROWS = 15
 
 
 @dataclass(frozen=True)
@@ -70,6 +72,11 @@ class Table:
 
     def row_style(self, k: int) -> str:
         return self.row_styles[k] if k < len(self.row_styles) else ""
+
+    @property
+    def folded(self) -> bool:
+        """Whether the table is long enough to be folded (more than :data:`FOLD_ROWS` rows)."""
+        return len(self.rows) > FOLD_ROWS
 
 
 @dataclass(frozen=True)

@@ -1,7 +1,9 @@
 """Charts of the report, drawn with matplotlib's object interface (no pyplot state).
 
 Figures are rendered by the Agg canvas directly, so the report never touches the
-user's pyplot backend or global figure list.
+user's pyplot backend or global figure list. Margins are set once from the text they
+must hold (:func:`place`) rather than by a layout engine, and figures are drawn at
+:data:`DPI`: both keep writing the report shorter than the fitting it reports.
 
 Every chart is sized for a page (6.5 inches wide), uses the Okabe-Ito colour-blind-safe
 palette, and never relies on colour alone: groups also differ by marker, lines by dash
@@ -41,7 +43,9 @@ PALETTE = ("#000000", "#E69F00", "#0072B2", "#56B4E9", "#D55E00", "#009E73", "#C
 MARKERS = ("o", "s", "^", "D", "v", "P", "X", "*")
 DASHES = ("-", "--", "-.", ":")
 OK_COLOR, BAD_COLOR = "#0072B2", "#D55E00"
-DPI = 150
+DPI = 100
+#: Approximate width of one character of 8-point text, and the height of one text line, in inches.
+CHAR_IN, LINE_IN = 0.062, 0.16
 
 _RC = {
     "font.size": 8.5,
@@ -62,11 +66,32 @@ def mpl_text(s: object) -> str:
 
 
 def new_figure(height: float, *, width: float = PAGE_WIDTH) -> Figure:
-    """A figure of the page width, drawn with the Agg canvas."""
+    """A figure of the page width, drawn with the Agg canvas (margins set by :func:`place`)."""
     with matplotlib.rc_context(_RC):
-        fig = Figure(figsize=(width, height), dpi=DPI, layout="constrained")
+        fig = Figure(figsize=(width, height), dpi=DPI)
     FigureCanvasAgg(fig)
     return fig
+
+
+def label_width(labels: Sequence[str]) -> float:
+    """Inches the longest of ``labels`` takes in 8-point text."""
+    return CHAR_IN * max((len(str(t)) for t in labels), default=0)
+
+
+def place(fig: Figure, *, left: float, bottom: float, top: float = 0.3, right: float = 0.15,
+          wspace: float | None = None) -> None:
+    """Set the axes margins in inches (left, bottom, top, right) for the figure's size."""
+    w, h = fig.get_size_inches()
+    left, right = min(left, 0.45 * w), min(right, 0.3 * w)
+    bottom, top = min(bottom, 0.6 * h), min(top, 0.3 * h)
+    fig.subplots_adjust(left=left / w, right=1 - right / w, bottom=bottom / h, top=1 - top / h, wspace=wspace)
+
+
+def bottom_legend(fig: Figure, handles, labels, *, ncols: int) -> float:
+    """A legend centred at the foot of the figure; returns the inches it takes."""
+    fig.legend(handles, labels, loc="lower center", bbox_to_anchor=(0.5, 0.0), ncols=max(ncols, 1), frameon=False)
+    rows = math.ceil(len(labels) / max(ncols, 1))
+    return 0.12 + 0.2 * rows
 
 
 def png_bytes(fig: Figure) -> bytes:
@@ -135,7 +160,10 @@ def change_chart(steps: Sequence[Mapping], *, deciding: Sequence[str] | None = N
             Patch(facecolor=BAD_COLOR, edgecolor="black", hatch="////", label="beyond cutoff"),
             Line2D([0], [0], color="black", linestyle="--", label="cutoff"),
         ]
-        fig.legend(handles=handles, loc="outside lower center", ncols=3, frameon=False)
+        foot = bottom_legend(fig, handles, [h.get_label() for h in handles], ncols=3)
+        rotated = len(steps) > 4
+        ticks = LINE_IN * 2 + (label_width(labels) * 0.5 if rotated else 0.0)
+        place(fig, left=0.6, bottom=foot + ticks + 0.1, wspace=0.45)
         return png_bytes(fig)
 
 
@@ -180,7 +208,7 @@ def profile_chart(
         return None
     n, G = len(rows), len(groups)
     with matplotlib.rc_context(_RC):
-        fig = new_figure(0.9 + 0.26 * n * max(1.0, G / 3))
+        fig = new_figure(max(1.8, 1.2 + 0.26 * n * max(1.0, G / 3)))
         ax = fig.subplots()
         _style_axes(ax)
         rel = set(released)
@@ -218,7 +246,8 @@ def profile_chart(
 
             handles.append(Patch(facecolor="#dddddd", label="\u2020 released"))
             labels.append("\u2020 released")
-        fig.legend(handles, labels, loc="outside lower center", ncols=min(len(labels), 5), frameon=False)
+        foot = bottom_legend(fig, handles, labels, ncols=min(len(labels), 5))
+        place(fig, left=label_width(ticks) + 0.2, bottom=foot + 0.45, top=0.3 if title else 0.1)
         return png_bytes(fig)
 
 
@@ -253,10 +282,13 @@ def dmacs_heatmap(items: Sequence[str], groups: Sequence[str], values: Mapping[t
                       ha="right" if len(groups) > 3 else "center")
         ax.set_yticks(range(len(items)), [mpl_text(i) for i in items])
         ax.set_xlabel("focal group (compared with the reference group)")
-        cb = fig.colorbar(im, ax=ax, shrink=0.8)
+        cb = fig.colorbar(im, ax=ax, shrink=0.8, fraction=0.08, pad=0.04)
         cb.set_label("dMACS")
         for t in (0.2, 0.4, 0.6):
             cb.ax.axhline(t, color="white", linewidth=1)
+        rotated = len(groups) > 3
+        ticks = label_width([mpl_text(g) for g in groups]) * 0.5 if rotated else LINE_IN
+        place(fig, left=label_width([mpl_text(i) for i in items]) + 0.2, bottom=ticks + 0.45, top=0.1, right=0.2)
         return png_bytes(fig)
 
 
@@ -281,6 +313,7 @@ def forest_chart(rows: Sequence[tuple[str, float, float | None, float | None]], 
         ax.set_ylim(-0.6, n - 0.4)
         ax.grid(axis="x", color="#cccccc", linewidth=0.5)
         ax.set_xlabel(mpl_text(xlabel))
+        place(fig, left=label_width([mpl_text(r[0]) for r in rows]) + 0.2, bottom=0.5, top=0.1)
         return png_bytes(fig)
 
 
@@ -326,5 +359,6 @@ def guide_chart(
 
             handles.append(Line2D([0], [0], color="black", linestyle="--"))
             labels.append("guide (common practice)")
-        fig.legend(handles, labels, loc="outside lower center", ncols=min(len(labels), 5), frameon=False)
+        foot = bottom_legend(fig, handles, labels, ncols=min(len(labels), 5))
+        place(fig, left=0.7, bottom=foot + 0.45, top=0.1)
         return png_bytes(fig)

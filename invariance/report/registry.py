@@ -26,6 +26,7 @@ from .other_sections import (
 )
 from .parts import Section, Text
 from .screening_section import section_group_fit, section_screening
+from .table_sections import section_loadings, section_paths, section_structural, section_structures
 from .sections import (
     ReportInput,
     section_changes,
@@ -43,14 +44,18 @@ SECTIONS: tuple[tuple[str, Callable[[ReportInput], Section | None]], ...] = (
     ("data", section_data),
     ("screening", section_screening),
     ("group_fit", section_group_fit),
+    ("structures", section_structures),
     ("model", section_model),
     ("levels", section_levels),
     ("changes", section_changes),
+    ("loadings", section_loadings),
     ("flagged", section_flagged),
     ("profiles", section_profiles),
     ("effects", section_effects),
     ("bifactor", section_bifactor),
     ("latent_means", section_latent_means),
+    ("structural", section_structural),
+    ("paths", section_paths),
     ("alignment", section_alignment),
     ("further", section_further),
     ("cautions", section_cautions),

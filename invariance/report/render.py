@@ -17,7 +17,7 @@ from typing import Any, Mapping, Sequence
 from jinja2 import Environment, PackageLoader, StrictUndefined
 from markupsafe import Markup
 
-from .escape import terminal_text, visible
+from ..escape import terminal_text, visible
 from .parts import Section
 
 __all__ = ["MdRaw", "md_escape", "render_html", "render_markdown"]

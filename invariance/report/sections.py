@@ -51,7 +51,7 @@ class ReportInput:
     results
         The results.json dict (see :mod:`invariance.report.inputs` for the keys read).
     estimates
-        All estimates: columns level, group, parameter, lhs, rhs, label, free,
+        All estimates: columns level, group, parameter, variable, other, label, free,
         estimate, se, z, pvalue, std.
     context
         ``pipeline_text``, ``data_file``, ``data_sha256``, ``seed``, ``structure``
@@ -93,7 +93,7 @@ class ReportInput:
                 if str(it) not in out:
                     out.append(str(it))
         if not out and not self.estimates.empty and "parameter" in self.estimates:
-            out = [str(x) for x in dict.fromkeys(self.estimates.loc[self.estimates["parameter"] == "intercept", "lhs"])]
+            out = [str(x) for x in dict.fromkeys(self.estimates.loc[self.estimates["parameter"] == "intercept", "variable"])]
         return out
 
     @property
@@ -104,9 +104,9 @@ class ReportInput:
         """Estimates of one level (empty frame if the level or the columns are missing)."""
         est = self.estimates
         if est is None or est.empty or level is None or "level" not in est:
-            return pd.DataFrame(columns=["group", "parameter", "lhs", "rhs", "estimate", "se", "std", "label"])
+            return pd.DataFrame(columns=["group", "parameter", "variable", "other", "estimate", "se", "std", "label"])
         sub = est[est["level"].astype(str) == str(level)]
-        keys = [c for c in ("group", "parameter", "lhs", "rhs") if c in sub]
+        keys = [c for c in ("group", "parameter", "variable", "other") if c in sub]
         return sub.drop_duplicates(subset=keys, keep="last") if keys else sub
 
 
@@ -245,8 +245,8 @@ def _std_values(est: pd.DataFrame, group: str | None, parameter: str) -> dict[tu
     out = {}
     for _, r in sub.iterrows():
         v = fnum(r.get(col))
-        if v is not None and r.get("rhs") is not None and not (isinstance(r.get("rhs"), float)):
-            out[(str(r["lhs"]), str(r["rhs"]))] = v
+        if v is not None and r.get("other") is not None and not (isinstance(r.get("other"), float)):
+            out[(str(r["variable"]), str(r["other"]))] = v
     return out
 
 

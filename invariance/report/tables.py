@@ -12,10 +12,13 @@ from __future__ import annotations
 
 import csv
 import io
+import re
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any, Mapping, Sequence
 
 from .formatting import (
+    MINUS,
     decision_label,
     estimator_label,
     fmt_bounded,
@@ -27,11 +30,16 @@ from .formatting import (
     level_label,
     release_text,
 )
-from .escape import csv_cell, visible
+from ..escape import csv_cell, visible
 from .inputs import ROBUST_NOTE_KEY, display_results, levels, new_releases, rule_name
 
 __all__ = [
     "LEVEL_TABLE_FILES",
+    "PaperTable",
+    "csv_text",
+    "table_latex",
+    "table_markdown",
+    "write_table",
     "level_rows",
     "level_table_csv",
     "level_table_display",
@@ -39,6 +47,7 @@ __all__ = [
     "level_table_markdown",
     "level_table_note",
     "write_level_tables",
+    "write_texts",
 ]
 
 #: File names written by :func:`write_level_tables`.
@@ -167,17 +176,32 @@ def level_table_note(results: Mapping[str, Any]) -> str:
 
 
 def level_table_csv(results: Mapping[str, Any]) -> str:
-    """CSV text of :func:`level_rows` (full precision, empty cells for missing values)."""
+    """CSV text of the paper table: the cells of the Markdown and LaTeX versions.
+
+    The machine table with every value at full precision is ``levels.csv``
+    (:func:`invariance.pipeline.output.level_table`).
+    """
+    return csv_text(DISPLAY_COLUMNS, level_table_display(results, minus="-"))
+
+
+def csv_text(columns: Sequence[str], rows: Sequence[Sequence[str]]) -> str:
+    """CSV text of a header and rows of cells (the CSV writer of every paper table)."""
     buf = io.StringIO()
-    w = csv.DictWriter(buf, fieldnames=CSV_COLUMNS, lineterminator="\n")
-    w.writeheader()
-    for r in level_rows(results):
-        w.writerow({k: ("" if v is None else (repr(v) if isinstance(v, float) else csv_cell(v))) for k, v in r.items()})
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow([csv_cell(str(c)) for c in columns])
+    for r in rows:
+        w.writerow([csv_cell(str(c).replace(MINUS, "-")) for c in r])
     return buf.getvalue()
 
 
+_TAG_START = re.compile(r"<(?=[A-Za-z/!?])")
+
+
 def _md_cell(s: str) -> str:
-    return visible(s).replace("\\", "\\\\").replace("|", "\\|").replace("<", "&lt;").replace(">", "&gt;").replace("\n", " ")
+    """One Markdown table cell: pipes and backslashes escaped, a ``<`` that could open an
+    HTML tag backslash-escaped (CommonMark), so ``< .001`` stays as printed."""
+    s = visible(str(s).replace("\n", " ")).replace("\\", "\\\\").replace("|", "\\|")
+    return _TAG_START.sub(r"\\<", s)
 
 
 def level_table_markdown(results: Mapping[str, Any]) -> str:
@@ -235,13 +259,86 @@ def level_table_latex(results: Mapping[str, Any], *, label: str = "tab:invarianc
 
 def write_level_tables(out_dir: Path, results: Mapping[str, Any]) -> list[Path]:
     """Write :data:`LEVEL_TABLE_FILES` into ``out_dir``; returns the paths written."""
-    out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
     results = display_results(results)
     texts = (level_table_csv(results), level_table_markdown(results), level_table_latex(results))
+    return write_texts(out_dir, LEVEL_TABLE_FILES, texts)
+
+
+def write_texts(out_dir: Path, names: Sequence[str], texts: Sequence[str]) -> list[Path]:
+    """Write each text to its file name in ``out_dir`` (UTF-8); returns the paths."""
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
     paths = []
-    for name, text in zip(LEVEL_TABLE_FILES, texts):
+    for name, text in zip(names, texts):
         p = out_dir / name
         p.write_text(text, encoding="utf-8")
         paths.append(p)
     return paths
+
+
+@dataclass(frozen=True)
+class PaperTable:
+    """A table for a paper, written as ``table_<name>.csv``, ``.md`` and ``.tex``.
+
+    The three files hold the same cells: the CSV with a plain hyphen for minus (so
+    spreadsheets read numbers), the Markdown with the Unicode minus, the LaTeX with
+    ``$-$``. ``numeric`` marks right-aligned columns; ``note`` is printed below.
+    """
+
+    name: str
+    caption: str
+    columns: tuple[str, ...]
+    rows: tuple[tuple[str, ...], ...]
+    note: str = ""
+    numeric: tuple[bool, ...] = ()
+
+    @property
+    def files(self) -> tuple[str, str, str]:
+        """The three file names."""
+        return tuple(f"table_{self.name}.{ext}" for ext in ("csv", "md", "tex"))
+
+
+def table_markdown(table: PaperTable) -> str:
+    """A Markdown pipe table with its caption above and its note below."""
+    n = len(table.columns)
+    align = [("---:" if k < len(table.numeric) and table.numeric[k] else ":---") for k in range(n)]
+    lines = [f"**{_md_cell(table.caption)}**", "", "| " + " | ".join(_md_cell(c) for c in table.columns) + " |",
+             "|" + "|".join(align) + "|"]
+    lines += ["| " + " | ".join(_md_cell(c) for c in r) + " |" for r in table.rows]
+    if table.note:
+        lines += ["", "*Note.* " + _md_cell(table.note)]
+    return "\n".join(lines) + "\n"
+
+
+def _tex_cell(text: str) -> str:
+    out = latex_escape(text).replace("\\textless{} ", "$<$ ")
+    return out.replace("\u2020", "\\textsuperscript{\\dag}").replace("\u2021", "\\textsuperscript{\\ddag}")
+
+
+def table_latex(table: PaperTable) -> str:
+    """A booktabs ``table`` float: caption, label ``tab:<name>``, tabular and note."""
+    spec = "".join("r" if k < len(table.numeric) and table.numeric[k] else "l" for k in range(len(table.columns)))
+    lines = [
+        "% Requires \\usepackage{booktabs}",
+        "\\begin{table}[htbp]",
+        "\\centering",
+        f"\\caption{{{_tex_cell(table.caption)}}}",
+        f"\\label{{tab:{latex_escape(table.name)}}}",
+        "\\small",
+        f"\\begin{{tabular}}{{{spec}}}",
+        "\\toprule",
+        " & ".join(_tex_cell(c) for c in table.columns) + " \\\\",
+        "\\midrule",
+        *(" & ".join(_tex_cell(c) for c in r) + " \\\\" for r in table.rows),
+        "\\bottomrule",
+        "\\end{tabular}",
+    ]
+    if table.note:
+        lines += ["", "\\par\\smallskip\\footnotesize\\textit{Note.} " + _tex_cell(table.note)]
+    return "\n".join([*lines, "\\end{table}", ""])
+
+
+def write_table(out_dir: Path, table: PaperTable) -> list[Path]:
+    """Write one :class:`PaperTable` as CSV, Markdown and LaTeX; returns the three paths."""
+    texts = (csv_text(table.columns, table.rows), table_markdown(table), table_latex(table))
+    return write_texts(out_dir, table.files, texts)

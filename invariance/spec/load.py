@@ -21,13 +21,15 @@ from typing import Any, Mapping
 import yaml
 
 from ..decide.compare import DecisionRule, make_rule
+from ..data.read import guess_format
 from ..errors import SpecificationError, shorten
+from ..estimate.interface import Estimator, estimator_for
 from ..model.levels import LEVELS, build_level
 from ..model.spec import Release
 from ..model.structure import Structure
 from ..model.ordinal_levels import ORDINAL_LEVELS, build_ordinal_level
-from ..pipeline.align_stage import check_alignment_section
 from .checks import check_finite_numbers, check_meaning
+from .options import PartialSettings, check_alignment_section, partial_settings, structural_settings
 
 __all__ = ["PipelineSpec", "load_pipeline", "parse_yaml", "plain_document", "schema", "validate_document", "thaw"]
 
@@ -71,7 +73,7 @@ class PipelineSpec:
         The pipeline file (``None`` for a dict).
     base_dir
         Folder that relative paths are resolved against.
-    data_path, data_format, group, groups, reference, missing
+    data_path, data_format, data_sheet, group, groups, reference, missing
         Data settings (``missing`` a tuple of codes or a column -> codes mapping).
     structure
         The measurement structure.
@@ -96,6 +98,15 @@ class PipelineSpec:
         Ordinal items: item -> tuples of adjacent category values merged into one.
     fixed_means
         Factors whose means stay 0 in every group.
+    incomplete
+        ``data.incomplete``: ``full_information`` or ``listwise`` (ordinal items: always
+        ``listwise``).
+    scaled_difference
+        ``decision.scaled_difference`` as the robust difference method: ``auto`` or ``2010``.
+    partial
+        The ``partial:`` section (:class:`~invariance.spec.options.PartialSettings`).
+    structural
+        The ``structural.levels`` steps, in order.
     """
 
     document: Mapping[str, Any]
@@ -104,6 +115,7 @@ class PipelineSpec:
     base_dir: pathlib.Path
     data_path: pathlib.Path
     data_format: str | None
+    data_sheet: str | int | None
     group: str
     groups: tuple[str, ...] | None
     reference: str | None
@@ -120,10 +132,28 @@ class PipelineSpec:
     ordinal: tuple[str, ...] | None = None
     merge: Mapping[str, tuple[tuple[float, ...], ...]] | None = None
     fixed_means: tuple[str, ...] = ()
+    incomplete: str = "full_information"
+    scaled_difference: str = "auto"
+    partial: PartialSettings = PartialSettings()
+    structural: tuple[str, ...] = ()
+
+    def make_estimator(self) -> Estimator:
+        """The run's :class:`~invariance.estimate.interface.Estimator` with its typed options."""
+        return estimator_for(self.estimator, incomplete=self.incomplete, scaled_difference=self.scaled_difference,
+                             ordinal=self.ordinal, merge=self.merge, options=self.fit_options())
 
     def section(self, name: str, default=None):
         """A top-level section of the document (for stages added later)."""
         return self.document.get(name, default)
+
+    def fit_options(self) -> dict:
+        """Options of every fit of the run that the pipeline sets: ``variances`` and
+        ``starts`` (section ``estimation``) and ``seed`` (keywords of
+        :func:`invariance.estimate.ml.fit`); empty when it sets none."""
+        opts = dict(self.document.get("estimation") or {})
+        if self.seed is not None:
+            opts["seed"] = int(self.seed)
+        return opts
 
     def to_dict(self) -> dict:
         """The validated document as plain dicts and lists."""
@@ -436,6 +466,68 @@ def _missing(data: Mapping):
     return tuple(m)
 
 
+def _incomplete(data: Mapping, ordinal) -> str:
+    """``data.incomplete``, read once; ordinal items use complete cases only."""
+    value = data.get("incomplete")
+    if ordinal is not None:
+        if value == "full_information":
+            raise SpecificationError(
+                "data.incomplete: full_information is not available for ordinal items (dwls uses complete cases); "
+                "use listwise or drop the key."
+            )
+        return "listwise"
+    return "full_information" if value is None else str(value)
+
+
+def _scaled_difference(dec: Mapping, estimator: str) -> str:
+    value = dec.get("scaled_difference")
+    if value is not None and estimator != "ml_robust":
+        raise SpecificationError(
+            f"decision.scaled_difference applies to estimator ml_robust, not {estimator}; drop it or set estimator: ml_robust."
+        )
+    return "2010" if value == "strictly_positive" else "auto"
+
+
+def _check_ordinal_sections(doc: Mapping, ordinal) -> None:
+    """Refuse the sections that need continuous-item statistics when items are ordinal."""
+    if ordinal is None:
+        return
+    asked = []
+    if doc.get("scores") is not None:
+        asked.append("scores")
+    if (doc.get("alignment") or {}).get("enabled", False):
+        asked.append("alignment")
+    if (doc.get("compare") or {}).get("structures"):
+        asked.append("compare.structures")
+    if asked:
+        raise SpecificationError(
+            f"{asked[0]} is not available for ordinal items yet; drop it or fit the items as continuous "
+            "(drop data.ordinal)."
+        )
+
+
+def _structural_steps(doc: Mapping, ordinal) -> tuple[str, ...]:
+    steps = structural_settings(doc.get("structural"))
+    if steps and ordinal is not None:
+        raise SpecificationError(
+            "structural levels are not available for ordinal items yet; drop the structural section "
+            "or fit the items as continuous (drop data.ordinal)."
+        )
+    return steps
+
+def _sheet(data: Mapping, base_dir: pathlib.Path) -> str | int | None:
+    """``data.sheet``, refused at load time unless the data file is an Excel workbook."""
+    sheet = data.get("sheet")
+    if sheet is None:
+        return None
+    fmt = data.get("format") or guess_format(base_dir / data["path"])
+    if fmt != "excel":
+        raise SpecificationError(
+            f"data.sheet applies to Excel workbooks (.xlsx) only, and {data['path']!r} is read as {fmt}; remove data.sheet."
+        )
+    return sheet
+
+
 def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir: pathlib.Path) -> PipelineSpec:
     """Validate a document and build the :class:`PipelineSpec`."""
     validate_document(doc)
@@ -447,6 +539,7 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
     ordinal, merge, estimator = _ordinal(data, structure, doc.get("estimator"))
     levels = _levels(doc.get("levels", ORDINAL_LEVELS if ordinal else LEVELS), ordinal=ordinal is not None)
     check_alignment_section(doc, structure)
+    _check_ordinal_sections(doc, ordinal)
     dec = doc.get("decision", {})
     rule = make_rule(
         criteria=dec.get("criteria"),
@@ -465,6 +558,7 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
         base_dir=base_dir,
         data_path=(base_dir / data["path"]).resolve(),
         data_format=data.get("format"),
+        data_sheet=_sheet(data, base_dir),
         group=data["group"],
         groups=None if groups is None else tuple(str(g) for g in groups),
         reference=None if ref is None else str(ref),
@@ -481,6 +575,10 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
         ordinal=ordinal,
         merge=merge,
         fixed_means=_fixed_means(model, structure),
+        incomplete=_incomplete(data, ordinal),
+        scaled_difference=_scaled_difference(dec, estimator),
+        partial=partial_settings(doc.get("partial")),
+        structural=_structural_steps(doc, ordinal),
     )
 
 

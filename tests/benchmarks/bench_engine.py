@@ -1,7 +1,7 @@
 """Engine benchmark (a script, not a test): prints timings measured in this one run.
 
 1. The configural Holzinger & Swineford model by school against semopy's two per-school
-   fits (each semopy fit plus its statistics), as a ratio. Target: at least 5x faster.
+   fits (shared with bench_speed.py, which prints the issue-12 targets).
 2. The scalar model of a 12-item bifactor structure (general + 3 specific factors) at 2,
    8 and 32 groups (N = 500 per group), with time per group. Target: no worse than
    linear in the number of groups.
@@ -14,10 +14,10 @@ from __future__ import annotations
 import argparse
 import statistics
 import time
-import warnings
 
 import numpy as np
 import pandas as pd
+from bench_speed import bench_holzinger
 
 
 def _best(fn, repeat):
@@ -27,40 +27,6 @@ def _best(fn, repeat):
         out = fn()
         times.append(time.perf_counter() - t)
     return statistics.median(times), out
-
-
-def bench_holzinger(repeat):
-    import semopy
-
-    import invariance as inv
-
-    hs = semopy.examples.holzinger39.get_data()
-    syntax = "visual =~ x1 + x2 + x3\ntextual =~ x4 + x5 + x6\nspeed =~ x7 + x8 + x9"
-    parts = [sub for _, sub in hs.groupby("school")]
-
-    def semopy_fit():
-        chi2 = 0.0
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            for sub in parts:
-                m = semopy.Model(syntax)
-                m.fit(sub)
-                chi2 += float(semopy.calc_stats(m)["chi2"].iloc[0])
-        return chi2
-
-    st = inv.Structure({"visual": ["x1", "x2", "x3"], "textual": ["x4", "x5", "x6"], "speed": ["x7", "x8", "x9"]})
-
-    def ours():
-        return inv.fit_level(hs, st, "configural", group="school").fit.chi2
-
-    ours()
-    semopy_fit()
-    t_sem, chi_sem = _best(semopy_fit, repeat)
-    t_our, chi_our = _best(ours, repeat)
-    print("Holzinger & Swineford configural model by school (2 groups, 9 items)")
-    print(f"  semopy, two per-school fits : {t_sem * 1e3:8.1f} ms   chi2 = {chi_sem:.4f}")
-    print(f"  invariance, one 2-group fit : {t_our * 1e3:8.1f} ms   chi2 = {chi_our:.4f}")
-    print(f"  ratio semopy / invariance   : {t_sem / t_our:8.1f} x   (target >= 5)")
 
 
 def _bifactor_data(n_groups, n, rng):

@@ -2,7 +2,7 @@
 
 ``invariance batch PIPELINE... [--vary KEY=V1,V2] [--scheduler ADDRESS] [--workers N] [--out DIR]``
     Runs every pipeline (with ``--vary``: once per value of a pipeline key, such as
-    ``data.group=site,region`` for several grouping columns) into ``DIR/<pipeline name>/`` (the files of a single run) and
+    ``data.group=site,occupation`` for several grouping columns) into ``DIR/<pipeline name>/`` (the files of a single run) and
     writes ``DIR/batch.csv`` (a row per pipeline: status, highest level supported,
     flagged items, seed, seconds, error). Exit code 0 when every pipeline ran, 2 when
     some failed (one line on stderr; each error in batch.csv), as for bad input.
@@ -20,7 +20,7 @@ import json
 import sys
 from pathlib import Path
 
-from ...report.escape import write_csv
+from ...escape import write_csv
 from .planfile import load_plan
 from .runner import Task, run_batch
 from .simulate import plan
@@ -42,11 +42,16 @@ def _common(p: argparse.ArgumentParser, out_default: str) -> None:
 
 def add_commands(subparsers) -> None:
     """Add the ``batch`` and ``plan`` commands to an argparse subparsers object."""
-    b = subparsers.add_parser("batch", help="run several pipelines as one batch on Dask",
-                              description="Run several pipelines as one batch on Dask.")
+    b = subparsers.add_parser(
+        "batch", help="run several pipelines as one batch on Dask",
+        description="Run several pipelines as one batch on Dask.",
+        epilog="example (the demo): invariance batch pipelines/shift_outlook_by_site.yaml "
+               "--vary data.group=site,occupation --workers 0",
+    )
     b.add_argument("pipelines", nargs="+", metavar="PIPELINE", help="pipeline files")
     b.add_argument("--vary", metavar="KEY=V1,V2", action="append", default=[],
-                   help="run every pipeline once per value of a key, e.g. data.group=site,region (repeatable)")
+                   help="run every pipeline once per value of a key, e.g. data.group=site,occupation on the demo "
+                        "(repeatable; varying data.group drops data.reference and data.groups)")
     _common(b, "batch_results")
     b.set_defaults(handler=cmd_batch)
     p = subparsers.add_parser("plan", help="Monte Carlo power, false alarms and cutoffs for a planned study",

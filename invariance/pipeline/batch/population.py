@@ -85,14 +85,14 @@ class Population:
     def from_estimates(cls, table, structure: Structure, *, level: str | None = None) -> "Population":
         """From an estimates table: ``FitResult.estimates()`` or a run's estimates.csv.
 
-        ``table`` is a DataFrame or a CSV path with the columns group, parameter, lhs,
-        rhs and estimate (and ``level`` when several levels are stacked: ``level``
+        ``table`` is a DataFrame or a CSV path with the columns group, parameter, variable,
+        other and estimate (and ``level`` when several levels are stacked: ``level``
         picks one, default the highest level present).
         """
         import pandas as pd
 
         frame = pd.read_csv(table, keep_default_na=False, na_values=[""]) if not isinstance(table, pd.DataFrame) else table
-        need = {"group", "parameter", "lhs", "rhs", "estimate"}
+        need = {"group", "parameter", "variable", "other", "estimate"}
         if not need <= set(frame.columns):
             raise SpecificationError(
                 f"The estimates table needs the columns {', '.join(sorted(need))}; it has {', '.join(map(str, frame.columns))}."
@@ -120,7 +120,7 @@ class Population:
             if kind not in where:
                 continue
             k, rows, cols = where[kind]
-            lhs, rhs = str(row.lhs), (None if pd.isna(row.rhs) else str(row.rhs))
+            lhs, rhs = str(row.variable), (None if pd.isna(row.other) else str(row.other))
             if lhs not in rows or (cols is not None and rhs not in cols):
                 raise SpecificationError(
                     f"The estimates table names {lhs!r}/{rhs!r}, which the model structure does not have; "

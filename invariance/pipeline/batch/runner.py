@@ -38,7 +38,7 @@ from typing import Any, Callable, Iterable, Iterator, Mapping, Sequence
 import numpy as np
 
 from ...errors import InvarianceWarning, SpecificationError
-from ...report.escape import write_csv
+from ...escape import write_csv
 
 __all__ = ["Task", "TaskOutcome", "BatchResult", "run_batch", "task_seed", "highest_level", "Progress", "single_thread_blas"]
 

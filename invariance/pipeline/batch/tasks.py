@@ -49,15 +49,19 @@ def pipeline_task(*, pipeline, out: str | Path, seed: int = 0) -> dict:
     return summary
 
 
+#: data keys that name groups of the grouping column.
+GROUP_BOUND = ("reference", "groups")
+
+
 def parse_vary(items: Sequence[str]) -> dict[str, list[str]]:
-    """``["data.group=site,region"]`` -> ``{"data.group": ["site", "region"]}``."""
+    """``["data.group=site,occupation"]`` -> ``{"data.group": ["site", "region"]}``."""
     out: dict[str, list[str]] = {}
     for text in items:
         key, sep, values = text.partition("=")
         vals = [v.strip() for v in values.split(",") if v.strip()]
         if not sep or not key.strip() or not vals:
             raise SpecificationError(
-                f"A variation must read KEY=VALUE,VALUE (for example data.group=site,region); got {text!r}."
+                f"A variation must read KEY=VALUE,VALUE (for example data.group=site,occupation); got {text!r}."
             )
         out[key.strip()] = vals
     return out
@@ -69,8 +73,10 @@ def pipeline_variants(path: str | Path, vary: Mapping[str, Sequence[str]]) -> li
     Keys are dotted paths into the pipeline (``data.group``, ``data.reference``,
     ``estimator``). The data path is made absolute (it is relative to the pipeline
     file) and ``output.folder`` is dropped, since the batch gives every variant its
-    own folder. Returns ``(name, pipeline dict)`` pairs; names join the file stem and
-    the values.
+    own folder. Varying ``data.group`` drops ``data.reference`` and ``data.groups``
+    (they name groups of one column; each variant then uses its column's defaults)
+    unless they are varied too. Returns ``(name, pipeline dict)`` pairs; names join the
+    file stem and the values.
     """
     import yaml
 
@@ -89,6 +95,11 @@ def pipeline_variants(path: str | Path, vary: Mapping[str, Sequence[str]]) -> li
         if not base["output"]:
             del base["output"]
     keys = list(vary)
+    if "data.group" in vary and isinstance(base.get("data"), Mapping):
+        # the reference and the group list name groups of one grouping column: with another
+        # column they would not exist, so each variant takes its own (unless they are varied too)
+        drop = {k for k in GROUP_BOUND if f"data.{k}" not in vary}
+        base["data"] = {k: v for k, v in base["data"].items() if k not in drop}
     out = []
     for combo in itertools.product(*(vary[k] for k in keys)):
         doc = copy.deepcopy(base)

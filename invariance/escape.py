@@ -46,7 +46,18 @@ def csv_cell(value: Any) -> Any:
     if not isinstance(value, str):
         return value
     text = visible(value)  # a leading tab or carriage return becomes \x09 / \x0d
-    return "'" + text if text.startswith(_FORMULA_START) else text
+    if not text.startswith(_FORMULA_START) or _is_number(text):
+        return text
+    return "'" + text
+
+
+def _is_number(text: str) -> bool:
+    """A signed number written as text (``-0.012``) is shown as written, not prefixed."""
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
 
 
 def csv_safe_frame(frame):
