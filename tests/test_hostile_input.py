@@ -359,8 +359,8 @@ def test_escape_functions():
 
     assert visible("a\x1bb\u202e") == "a\\x1bb\\u202e"
     assert terminal_text("a\nb\tc\x9b") == "a\nb\tc\\x9b"
-    assert [csv_cell(v) for v in ("=1+1", "+1", "-x", "@a", "\tx", "ok", -1.5)] == [
-        "'=1+1", "'+1", "'-x", "'@a", "\\x09x", "ok", -1.5]
+    assert [csv_cell(v) for v in ("=1+1", "+1+cmd", "-x", "@a", "\tx", "ok", -1.5, "-0.25", "+1")] == [
+        "'=1+1", "'+1+cmd", "'-x", "'@a", "\\x09x", "ok", -1.5, "-0.25", "+1"]  # signed numbers stay
     assert "\x1b" not in md_escape("x\x1b") and "\x00" not in latex_escape("a\x00b")
 
 
