@@ -210,6 +210,20 @@ def test_duplicate_column_header(hs_dir, hs_frame, capsys):
     refused(capsys, ["check", p], "names column 'x1' twice", "rename one", cwd_tree=hs_dir)
 
 
+def test_excel_duplicate_header_and_na_group(hs_dir, hs_frame):
+    from invariance.data.read import read_table
+
+    d = hs_frame[["school", "x1", "x2", "x3"]].replace({"Pasteur": "NA"})
+    d.to_excel(hs_dir / "book.xlsx", index=False)
+    assert set(read_table(hs_dir / "book.xlsx", text_columns=("school",))["school"]) == {"Grant-White", "NA"}
+    d.columns = ["school", "x1", "x1", "x3"]
+    d.to_excel(hs_dir / "dup.xlsx", index=False)
+    before = snapshot(hs_dir)
+    with pytest.raises(DataError, match="names column 'x1' twice"):
+        read_table(hs_dir / "dup.xlsx")
+    assert snapshot(hs_dir) == before
+
+
 @pytest.mark.parametrize("label", ["NA", "None", "null", "N/A"])
 def test_group_labelled_like_missing_stays_a_group(hs_dir, hs_frame, label):
     d = hs_frame.copy()

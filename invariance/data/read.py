@@ -60,7 +60,7 @@ NA_TEXTS = (
 _SEPARATORS = {",": "comma", ";": "semicolon", "\t": "tab", "|": "vertical bar"}
 
 
-def _read_excel(path: pathlib.Path, sheet: str | int | None):
+def _read_excel(path: pathlib.Path, sheet: str | int | None, text_columns: Sequence[str] = ()):
     """One sheet of an Excel workbook (the first when ``sheet`` is None)."""
     import pandas as pd
 
@@ -77,7 +77,10 @@ def _read_excel(path: pathlib.Path, sheet: str | int | None):
             raise DataError(
                 f"Data file {path.name!r} has no sheet {sheet!r}; set data.sheet to one of: {', '.join(names)}."
             )
-        return pd.read_excel(book, sheet_name=sheet)
+        header = pd.read_excel(book, sheet_name=sheet, header=None, nrows=1).iloc[0].tolist()
+        header = [h for h in header if not (isinstance(h, float) and h != h)]
+        na = _na_values(path, header, text_columns)
+        return pd.read_excel(book, sheet_name=sheet, keep_default_na=False, na_values=na)
 
 
 def read_table(
@@ -96,7 +99,7 @@ def read_table(
         Excel workbooks only: the sheet, by name or 0-based position (default the first).
     text_columns
         Columns (the group column) whose cells are labels: only an empty cell is missing
-        there, so a group labelled NA, None or null is kept (CSV and TSV files).
+        there, so a group labelled NA, None or null is kept (CSV, TSV and Excel files).
 
     Returns
     -------
@@ -132,7 +135,7 @@ def read_table(
                 ) from None
             frame = pd.read_spss(path, convert_categoricals=False)
         elif fmt == "excel":
-            frame = _read_excel(path, sheet)
+            frame = _read_excel(path, sheet, text_columns)
         else:
             raise SpecificationError(f"Unknown data format {fmt!r}; use one of {', '.join(FORMATS)}.")
     except InvarianceErrorTypes:
@@ -178,7 +181,12 @@ def _read_delimited(path: pathlib.Path, fmt: str, text_columns: Sequence[str]):
     sep = "," if fmt == "csv" else "\t"
     header = _header(path, sep)
     _refuse_other_separator(path, fmt, sep, header)
-    names = [h.strip() for h in header]
+    return pd.read_csv(path, sep=sep, keep_default_na=False, na_values=_na_values(path, header, text_columns))
+
+
+def _na_values(path: pathlib.Path, header: Sequence, text_columns: Sequence[str]) -> dict:
+    """Per-column missing-value texts for pandas (a header naming a column twice is refused)."""
+    names = [str(h).strip() for h in header]
     twice = sorted({n for n in names if names.count(n) > 1})
     if twice:
         raise DataError(
@@ -186,8 +194,7 @@ def _read_delimited(path: pathlib.Path, fmt: str, text_columns: Sequence[str]):
             "rename one of them so each column has its own name."
         )
     keep = {str(c) for c in text_columns}
-    na = {raw: ([""] if raw.strip() in keep else list(NA_TEXTS)) for raw in header}
-    return pd.read_csv(path, sep=sep, keep_default_na=False, na_values=na)
+    return {raw: ([""] if str(raw).strip() in keep else list(NA_TEXTS)) for raw in header}
 
 
 InvarianceErrorTypes = (DataError, SpecificationError)
