@@ -279,7 +279,7 @@ def check_destination(out_dir: pathlib.Path, *, protected: Sequence[tuple[pathli
         if out_dir == folder:
             raise SpecificationError(f"Output folder {_folder(out_dir)} is {what}, which a run never replaces; {fix}.")
     if out_dir.is_symlink() or (out_dir.exists() and not out_dir.is_dir()):
-        raise SpecificationError(f"Output folder {_folder(out_dir)} is an existing file; {fix}.")
+        raise SpecificationError(f"Output folder {_folder(out_dir)} is an existing file or link; {fix}.")
     if out_dir.exists() and any(out_dir.iterdir()):
         foreign = _foreign_entry(out_dir)
         if foreign is not None:
