@@ -66,7 +66,7 @@ def test_fitting_stages_advance_the_line():
     from invariance.pipeline.runner import run_stages
 
     spec = SimpleNamespace(title="t", estimator="ml", seed=1)
-    stages = [("data", lambda spec, state: {"a": 1}), ("fits", lambda spec, state: {"b": 2})]
+    stages = [("data", lambda spec, state: ({"a": 1}, state)), ("fits", lambda spec, state: ({"b": 2}, state))]
     out = FakeTerminal()
     with Progress(len(stages), label="fitting", stream=out, min_interval=0.0) as bar:
         results, _ = run_stages(spec, stages, progress=bar)

@@ -38,7 +38,7 @@ from .separate import fit_by_group, shares_nothing
 from .start import start_values
 from .starts import DEFAULT_STARTS, general_factors, run_starts, variance_bounds
 
-__all__ = ["ESTIMATORS", "fit", "diagnose", "observed_information", "estimation_record", "refit_options"]
+__all__ = ["ESTIMATORS", "fit", "diagnose", "observed_information", "estimation_record"]
 
 #: Estimators accepted by :func:`fit`.
 ESTIMATORS = ("ml", "ml_robust")
@@ -226,11 +226,6 @@ def estimation_record(spec: ModelSpec, out, record, lower, *, options: dict) -> 
     return {"variances": options["variances"], "optimum": optimum, "starts": record.to_dict(),
             "at_bound": at_bound, "runaway": runaway, "notes": notes,
             "options": {k: options[k] for k in ("variances", "starts", "seed")}}
-
-
-def refit_options(res: FitResult) -> dict:
-    """The estimation options of ``res`` (variances, starts, seed), for refits of variants of its model."""
-    return dict(res.extra.get("estimation", {}).get("options", {}))
 
 
 def _finish(spec, stats, obj, out, *, information: str, estimator: str, estimation: dict) -> FitResult:

@@ -250,7 +250,8 @@ def stage_summary(spec: PipelineSpec, state: RunState) -> StageOutput:
     elif best is None:
         verdict = "The data do not support even configural invariance: " + PERMITS[None] + "."
     else:
-        verdict = f"The data support {best} invariance: {PERMITS[best]}."
+        name = "threshold" if best == "thresholds" else best  # the level is named in the singular in prose
+        verdict = f"The data support {name} invariance: {PERMITS[best]}."
         if estimation_failed:
             verdict += (
                 f" (The {first_bad['level']} model did not converge, so that step could not be judged; "

@@ -7,7 +7,7 @@ from typing import Any, Mapping
 
 from . import inputs as I
 from .formatting import fmt_bounded, fnum, level_label
-from .parts import Figure, Section, Table, Text, cell, records_table
+from .parts import Figure, Section, Table, Text, cell
 from .plots import dmacs_heatmap, profile_chart
 from .result_tables import flagged_table
 from .table_sections import table_part
