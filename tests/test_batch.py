@@ -70,7 +70,7 @@ def test_broken_task_is_reported_and_rest_complete(tmp_path):
     path = tmp_path / "batch.csv"
     res.write_csv(path)
     table = pd.read_csv(path, keep_default_na=False)
-    assert list(table.columns) == ["task", "status", "highest_level", "flagged", "seed", "seconds", "error"]
+    assert list(table.columns) == ["task", "status", "highest_level", "partial", "flagged", "seed", "seconds", "error"]
     assert table["status"].tolist() == ["ok", "ok", "failed", "ok", "ok"]
     assert table.loc[2, "error"] == "ValueError: deliberately broken task"
 

@@ -9,7 +9,8 @@ dSRMR 0.025 / 0.005 (METHODS section 5).
 import pytest
 from scipy import stats
 
-from invariance.decide.compare import PERMITS, judge_configural, judge_step, level_delta, make_rule, supported_level
+from invariance.decide.compare import judge_configural, judge_step, level_delta, make_rule
+from invariance.decide.verdict import PERMITS, supported_level
 from invariance.errors import SpecificationError
 
 

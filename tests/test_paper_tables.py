@@ -162,8 +162,9 @@ def test_flagged_table_against_the_flag_records(tmp_path):
     rows = _read_csv(write_table(tmp_path, table)[0])
     groups = [c.removeprefix("dMACS ") for c in rows[0] if c.startswith("dMACS ")]
     for r, f in zip(rows[1:], results["flagged"]):
-        assert r[0] == f["item"] and r[3] == f"{f['statistic']:.2f} ({f['df']})"
-        for g, text in zip(groups, r[5:]):
+        assert r[0] == f["item"] and r[4] == f"{f['statistic']:.2f} ({f['df']})"
+        assert r[2] == ", ".join(f.get("differs_in") or [])
+        for g, text in zip(groups, r[6:]):
             assert _num(text) == pytest.approx(f["dmacs"][g], abs=0.005)
 
 

@@ -70,6 +70,10 @@ def test_ordinal_pipeline_runs_the_wu_estabrook_sequence(tmp_path):
     assert scal["delta"]["pvalue"] < 1e-6
     assert scal["dwls"]["chi2_unadjusted"] is not None and scal["chi2"] is not None
     assert d["supported_level"] == "metric"
+    # Chen's cutoffs were calibrated for ML on continuous items: the run says so
+    # (METHODS section 14; Sass, Schmitt & Marsh 2014)
+    assert "Sass, Schmitt & Marsh 2014" in d["cutoff_calibration"] and "DWLS" in d["cutoff_calibration"]
+    assert d["cutoff_calibration"] in res.summary()
     # effects on the latent-response / expected-score scales from the metric model
     eff = d["effects"]["ordinal"]
     assert eff["level"] == "metric" and set(eff["by_group"]) == {"upland"}

@@ -114,8 +114,10 @@ def test_content_of_the_three_factor_report(three):
     assert "Chen (2007)" in html
     assert "holds partially" in html
     assert "intercept of x3 (all groups)" in html
-    # cutoffs shown beside each criterion (read from the decision rule: .030 loadings, .010 intercepts)
-    assert "\u2264 +.030" in html and "\u2264 +.010" in html and "\u2265 \u2212.010" in html
+    # cutoffs shown beside each criterion (read from the decision rule: .030 loadings, .010 intercepts),
+    # with the inequality under which the criterion passes (invariance.decide.compare: dCFI > -cutoff,
+    # dRMSEA and dSRMR < cutoff; Cheung & Rensvold 2002: dCFI <= -.01 signals noninvariance)
+    assert "&lt; +.030" in html and "&lt; +.010" in html and "&gt; \u2212.010" in html
     # the cautions and provenance
     assert "AERA" in html and "ITC Guidelines" in html and "200" in html
     assert "0" * 64 in html and "20261201" in html and "data: holzinger39.csv" in html
@@ -258,7 +260,7 @@ def test_sparse_and_odd_values_render(tmp_path):
     assert "could not be drawn" not in html
     assert "No decision was recorded" in html
     assert "inconclusive for now" in html and "did not converge" in html and "negative residual variance" in html
-    assert "\u2265 \u2212.020" in html  # the cutoff given on the criterion itself, read as a decrease
+    assert "&gt; \u2212.020" in html  # the cutoff given on the criterion itself, read as a decrease (dCFI > cutoff passes)
     ids = section_ids(html)
     assert "latent_means" not in ids and "effects" not in ids and "bifactor" in ids
 

@@ -33,6 +33,10 @@ def test_journal_number_style():
     assert fmt_p(1.5e-7) == "< .001" and fmt_p(0.2244) == ".224"
     assert fmt_bounded(None) == "" and fmt_bounded(float("nan")) == ""
     assert level_label({"level": "scalar", "released": [{"item": "x3"}]}) == "Partial scalar"
+    # a configural row is never partial, even when it lists up-front releases (issue 13)
+    assert level_label({"level": "configural", "released": [{"item": "x3", "parameter": "intercept"}]}) == "Configural"
+    # an up-front residual release does not make the scalar level partial (residuals are equal only at strict)
+    assert level_label({"level": "scalar", "released": [{"item": "x3", "parameter": "residual"}]}) == "Scalar"
     assert level_label({"level": "metric"}) == "Metric"
 
 

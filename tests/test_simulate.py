@@ -133,14 +133,14 @@ def test_pipeline_rules_agree_with_direct_readings(null_plan):
     # published rules (Cheung & Rensvold 2002; Chen 2007) must flag the same replications
     from functools import partial
 
-    from invariance.pipeline.batch.rules import cfi_rule, chen_rule, chi2_rule, default_rules
+    from invariance.pipeline.batch.rules import RUN_DEFAULT, cfi_rule, chen_any_rule, chi2_rule, default_rules
 
     rules = default_rules(0.05)
     direct = {
         "chi2 p<0.05": partial(chi2_rule, alpha=0.05),
         "dCFI<=-.01 (Cheung & Rensvold 2002)": cfi_rule,
-        "Chen 2007 (N>300, balanced)": partial(chen_rule, sample="large"),
-        "Chen 2007 (N<=300 or unbalanced)": partial(chen_rule, sample="small"),
+        RUN_DEFAULT: partial(chen_any_rule, sample="large"),
+        "Chen 2007 (N<=300 or unbalanced)": partial(chen_any_rule, sample="small"),
     }
     rows = null_plan.replications.to_dict("records")
     # shift the changes so that every rule meets both outcomes

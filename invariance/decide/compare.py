@@ -24,6 +24,14 @@ Preset cutoffs (:data:`PRESETS`):
     dSRMR 0.025 (loadings) and 0.005 (intercepts, residuals).
 ``cheung_rensvold2002``
     Cheung & Rensvold (2002): dCFI 0.010 only.
+
+How a decision is shown (:func:`shown_comparison`): decisions are taken at full
+precision (differences rounded to 10 decimals only to absorb floating-point noise, so
+0.940 - 0.950 counts as -0.010). The change and its cutoff are then printed with the
+same number of decimals, at least three and as many more as the shown numbers need to
+satisfy the inequality that decided, which is printed with them: a dCFI of -0.00996
+reads "-0.00996 > -0.010", never "-0.010 > -0.010". A printed comparison is therefore
+always true of the printed numbers.
 """
 
 from __future__ import annotations
@@ -38,13 +46,14 @@ from ..errors import SpecificationError
 __all__ = [
     "CRITERIA",
     "PRESETS",
-    "PERMITS",
     "DecisionRule",
     "make_rule",
+    "rule_from_section",
+    "shown_comparison",
     "level_delta",
     "judge_step",
     "judge_configural",
-    "supported_level",
+    "describe_check",
 ]
 
 CRITERIA = ("chi2", "cfi", "rmsea", "srmr")
@@ -84,23 +93,10 @@ PRESETS: dict[str, tuple[str, tuple[str, ...], dict[str, dict[str, float]]]] = {
     ),
 }
 
-#: What each supported level permits when comparing groups.
-PERMITS = {
-    None: "no group comparison: not even the configural model is supported, so the "
-    "questionnaire may not measure the same thing in every group",
-    "configural": "the same factor structure holds in every group; no group comparison of "
-    "scores, relations or means is justified",
-    "thresholds": "thresholds are equal (ordered items): the response categories divide the latent "
-    "responses alike in every group; no group comparison of scores, relations or means is justified yet",
-    "metric": "loadings are equal: relations (correlations, regressions, covariances) of the "
-    "factors can be compared across groups, but not their means",
-    "scalar": "loadings and intercepts are equal: latent (factor) means can be compared across groups",
-    "strict": "loadings, intercepts and residual variances are equal: observed sum scores can be "
-    "compared across groups, as well as latent means",
-}
-
 #: Default absolute fit the configural model needs (common practice).
 CONFIGURAL_FIT = {"cfi": 0.90, "rmsea": 0.10}
+#: Inequalities of the configural model's absolute fit (passes, fails).
+_ABSOLUTE = {"cfi": (">=", "<"), "rmsea": ("<=", ">")}
 
 
 @dataclass(frozen=True)
@@ -121,6 +117,9 @@ class DecisionRule:
         Where the cutoffs come from (named in the output).
     configural_fit
         Absolute fit the configural model needs: ``cfi`` (minimum) and ``rmsea`` (maximum).
+    preset_criteria
+        Deciding approximate-fit criteria whose cutoffs come from a published preset
+        (calibrated for ML on continuous items), not from the user.
     """
 
     criteria: tuple[str, ...]
@@ -129,6 +128,7 @@ class DecisionRule:
     cutoffs: Mapping[str, Mapping[str, float]]
     source: str
     configural_fit: Mapping[str, float]
+    preset_criteria: tuple[str, ...] = ()
 
     def cutoff(self, criterion: str, level: str) -> float:
         return self.cutoffs[criterion][level]
@@ -161,6 +161,7 @@ class DecisionRule:
             "cutoffs": {c: dict(v) for c, v in self.cutoffs.items()},
             "source": self.source,
             "configural_fit": dict(self.configural_fit),
+            "preset_criteria": list(self.preset_criteria),
             "rule": self.describe(),
         }
 
@@ -185,13 +186,14 @@ def make_rule(
             raise SpecificationError(f"Unknown cutoff preset {name!r}; use one of {', '.join(PRESETS)}.")
         source, default_criteria, table = PRESETS[name]
         table = {c: dict(v) for c, v in table.items()}
+        given = ()
     else:
         base = PRESETS["chen2007"][2]
         table = {c: dict(v) for c, v in base.items()}
         for c, v in cutoffs.items():
             table[c] = {**table.get(c, {}), **_per_level(v)}
-        given = ", ".join(sorted(cutoffs))
-        source = f"user cutoffs for {given} (others from Chen 2007)"
+        given = tuple(sorted(cutoffs))
+        source = f"user cutoffs for {', '.join(given)} (others from Chen 2007)"
         default_criteria = PRESETS["chen2007"][1]
     crit = tuple(criteria) if criteria else default_criteria
     for c in crit:
@@ -217,6 +219,25 @@ def make_rule(
         cutoffs={c: dict(v) for c, v in table.items()},
         source=source,
         configural_fit=cf,
+        preset_criteria=tuple(c for c in crit if c != "chi2" and c not in given),
+    )
+
+
+def rule_from_section(section: Mapping | None, *, alpha: float = 0.05) -> DecisionRule:
+    """The decision rule of a ``decision:`` section (pipeline file or planning file).
+
+    The one reading of those keys: ``run`` and ``plan`` both call it, so a plan judges
+    each step with exactly the rule a run would (defaults: Chen 2007 cutoffs, criteria
+    ``cfi`` and ``rmsea``, every criterion must pass). ``alpha`` is the default of the
+    section's ``alpha``.
+    """
+    dec = dict(section or {})
+    return make_rule(
+        criteria=dec.get("criteria"),
+        combine=dec.get("combine", "all"),
+        alpha=dec.get("alpha", alpha),
+        cutoffs=dec.get("cutoffs"),
+        configural_fit=dec.get("configural_fit"),
     )
 
 
@@ -245,33 +266,69 @@ def level_delta(restricted: Mapping, free: Mapping) -> dict:
     return {"chi2": dchi, "df": ddf, "pvalue": p, "cfi": diff("cfi"), "rmsea": diff("rmsea"), "srmr": diff("srmr")}
 
 
+#: Inequality that holds when a criterion passes, and the one shown when it fails.
+_RELATIONS = {"cfi": (">", "<="), "rmsea": ("<", ">="), "srmr": ("<", ">="), "chi2": (">=", "<")}
+_HOLDS = {
+    ">": lambda a, b: a > b, ">=": lambda a, b: a >= b, "<": lambda a, b: a < b, "<=": lambda a, b: a <= b,
+}
+
+
+def shown_comparison(value: float, cutoff: float, relation: str, *, min_digits: int = 3) -> tuple[str, str]:
+    """``value`` and ``cutoff`` as text for a decision taken by ``relation`` (``>``,
+    ``>=``, ``<``, ``<=``), which holds between them; see the module docstring.
+
+    The cutoff gets the fewest decimals (at least ``min_digits``) that show it exactly;
+    the value the fewest (at least ``min_digits``) for which the shown value and the shown
+    cutoff still satisfy ``relation``. Decisions compare numbers rounded to 10 decimals,
+    so 10 decimals always suffice.
+    """
+    a, b = round(float(value), 10), round(float(cutoff), 10)
+    vb = next(f"{b:.{d}f}" for d in range(min_digits, 11) if float(f"{b:.{d}f}") == b or d == 10)
+    for d in range(min_digits, 11):
+        va = f"{a:.{d}f}"
+        if _HOLDS[relation](float(va), float(vb)):
+            return (va.lstrip("-") if float(va) == 0 else va), vb
+    return repr(a), vb
+
+
+def _comparison(criterion: str, value: float, cutoff: float, passed: bool, relations=None) -> dict:
+    rel = (relations or _RELATIONS)[criterion][0 if passed else 1]
+    if criterion == "chi2" and value < 0.001 and cutoff >= 0.001:
+        return {"value_text": "< 0.001", "relation": rel, "cutoff_text": f"{cutoff:g}"}
+    va, vb = shown_comparison(value, cutoff, rel)
+    if relations is None and criterion != "chi2" and float(va) > 0:
+        va = "+" + va  # a change: signed
+    return {"value_text": va, "relation": rel, "cutoff_text": vb}
+
+
 def _check(criterion: str, delta: Mapping, level: str, rule: DecisionRule) -> dict:
     if criterion == "chi2":
         p = delta["pvalue"]
         passed = p is None or p >= rule.alpha
-        return {"criterion": "chi2", "value": p, "cutoff": rule.alpha, "passed": bool(passed)}
+        out = {"criterion": "chi2", "value": p, "cutoff": rule.alpha, "passed": bool(passed)}
+        return {**out, **(_comparison("chi2", p, rule.alpha, passed) if p is not None else {})}
     cut = rule.cutoff(criterion, level)
+    signed = -cut if criterion == "cfi" else cut
     value = delta[criterion]
     if value is None:
-        passed = True
-    else:
-        v = round(value, 10)
-        passed = v > -cut if criterion == "cfi" else v < cut
-    return {"criterion": criterion, "value": value, "cutoff": cut, "passed": bool(passed)}
+        return {"criterion": criterion, "value": None, "cutoff": cut, "passed": True}
+    v = round(value, 10)
+    passed = v > -cut if criterion == "cfi" else v < cut
+    out = {"criterion": criterion, "value": value, "cutoff": cut, "passed": bool(passed)}
+    return {**out, **_comparison(criterion, value, signed, passed)}
 
 
-def _describe_check(c: dict) -> str:
+def describe_check(c: Mapping, *, change: bool = True) -> str:
+    """One check in words, with the shown comparison that decided it."""
+    name = {"cfi": "CFI", "rmsea": "RMSEA", "srmr": "SRMR"}.get(c["criterion"], c["criterion"])
     if c["criterion"] == "chi2":
         if c["value"] is None:
             return "chi-square difference not testable (no df)"
-        rel = ">=" if c["passed"] else "<"
-        return f"chi-square difference p = {c['value']:.3g} {rel} {c['cutoff']:g}"
-    name = "dCFI" if c["criterion"] == "cfi" else f"d{c['criterion'].upper()}"
-    if c["criterion"] == "cfi":
-        rel = ">" if c["passed"] else "<="
-        return f"{name} = {c['value']:+.4f} {rel} -{c['cutoff']:.3f}"
-    rel = "<" if c["passed"] else ">="
-    return f"{name} = {c['value']:+.4f} {rel} {c['cutoff']:.3f}"
+        return f"chi-square difference p {'' if c['value_text'].startswith('<') else '= '}{c['value_text']} " \
+               f"{c['relation']} {c['cutoff_text']}"
+    if c.get("value_text") is None:
+        return f"{'d' if change else ''}{name} not available"
+    return f"{'d' if change else ''}{name} = {c['value_text']} {c['relation']} {c['cutoff_text']}"
 
 
 def judge_step(delta: Mapping, level: str, rule: DecisionRule, *, converged: bool = True) -> dict:
@@ -295,7 +352,7 @@ def judge_step(delta: Mapping, level: str, rule: DecisionRule, *, converged: boo
         if "cfi" not in by:
             approx_fail = bool(others) and not all(others)
         holds = not approx_fail and by.get("chi2", True)
-    text = "; ".join(_describe_check(c) for c in checks)
+    text = "; ".join(describe_check(c) for c in checks)
     return {"decision": "holds" if holds else "fails", "checks": checks, "reason": text}
 
 
@@ -304,22 +361,16 @@ def judge_configural(fit: Mapping, rule: DecisionRule, *, converged: bool = True
     if not converged:
         return {"decision": "fails", "checks": [], "reason": "the configural model did not converge"}
     checks = []
-    cfi_min = rule.configural_fit.get("cfi")
-    rmsea_max = rule.configural_fit.get("rmsea")
-    if cfi_min is not None and fit.get("cfi") is not None:
-        checks.append({"criterion": "cfi", "value": fit["cfi"], "cutoff": cfi_min, "passed": bool(fit["cfi"] >= cfi_min)})
-    if rmsea_max is not None and fit.get("rmsea") is not None:
-        checks.append(
-            {"criterion": "rmsea", "value": fit["rmsea"], "cutoff": rmsea_max, "passed": bool(fit["rmsea"] <= rmsea_max)}
-        )
+    for crit, bound, rel in (("cfi", rule.configural_fit.get("cfi"), _ABSOLUTE["cfi"]),
+                             ("rmsea", rule.configural_fit.get("rmsea"), _ABSOLUTE["rmsea"])):
+        if bound is None or fit.get(crit) is None:
+            continue
+        passed = _HOLDS[rel[0]](round(float(fit[crit]), 10), float(bound))
+        checks.append({"criterion": crit, "value": fit[crit], "cutoff": bound, "passed": bool(passed),
+                       **_comparison(crit, fit[crit], bound, passed, _ABSOLUTE)})
     improper = [p for p in problems if not p.startswith("not converged")]
     holds = all(c["passed"] for c in checks) and not improper
-    parts = []
-    for c in checks:
-        if c["criterion"] == "cfi":
-            parts.append(f"CFI = {c['value']:.3f} {'>=' if c['passed'] else '<'} {c['cutoff']:.2f}")
-        else:
-            parts.append(f"RMSEA = {c['value']:.3f} {'<=' if c['passed'] else '>'} {c['cutoff']:.2f}")
+    parts = [describe_check(c, change=False) for c in checks]
     if improper:
         parts.append("improper solution: " + "; ".join(improper))
     return {
@@ -327,14 +378,3 @@ def judge_configural(fit: Mapping, rule: DecisionRule, *, converged: bool = True
         "checks": checks,
         "reason": "; ".join(parts) + " (absolute fit, common practice)",
     }
-
-
-def supported_level(levels: Sequence[Mapping]) -> str | None:
-    """The highest level of an unbroken run of ``holds`` from the first level."""
-    best = None
-    for lv in levels:
-        if lv["decision"] in ("holds", "holds_partially"):
-            best = lv["level"]
-        else:
-            break
-    return best

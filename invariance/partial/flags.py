@@ -6,7 +6,8 @@ the test statistic with its df and p-value (the score test, and the likelihood-r
 statistic when the release was verified by a refit), and the effect size: dMACS of the
 item in each group against the reference (Nye & Drasgow 2011), computed on the final
 measurement model when intercepts are constrained there (scalar or strict, partial or
-not), otherwise left empty.
+not), otherwise left empty; and ``differs_in``, the groups whose released estimate
+differs from the others (:func:`invariance.partial.locate.differs_in`).
 """
 
 from __future__ import annotations
@@ -16,6 +17,7 @@ from typing import Iterable
 from ..data.moments import SampleStats
 from ..effects.dmacs import item_effects
 from ..estimate.result import FitResult
+from .locate import differs_in
 from .search import SearchResult
 
 __all__ = ["ITEM_PARAMETERS", "flagged_items"]
@@ -47,7 +49,8 @@ def flagged_items(
     list of dict
         Keys ``item``, ``parameter``, ``factor``, ``groups``, ``level``, ``test``,
         ``statistic``, ``df``, ``pvalue``, ``adjusted_pvalue``, ``lr_statistic``,
-        ``lr_pvalue``, ``epc``, ``dmacs`` (group -> value) and ``dmacs_max``.
+        ``lr_pvalue``, ``epc``, ``dmacs`` (group -> value), ``dmacs_max`` and
+        ``differs_in`` (groups, ``None`` when not located).
     """
     searches = list(searches)
     if final is None and searches:
@@ -62,6 +65,7 @@ def flagged_items(
             if r.parameter not in ITEM_PARAMETERS:
                 continue
             d = sized.get(r.item, {}) if r.parameter in ("loading", "intercept") else {}
+            where = differs_in(final, r.to_dict()) if final is not None else None
             out.append({
                 "item": r.item,
                 "parameter": r.parameter,
@@ -78,5 +82,6 @@ def flagged_items(
                 "epc": [{"group": g, "epc": e, "epc_std": z} for g, e, z in r.epc],
                 "dmacs": dict(d),
                 "dmacs_max": max(d.values()) if d else None,
+                "differs_in": None if where is None else list(where),
             })
     return out

@@ -17,12 +17,13 @@ import tempfile
 from typing import Callable, Sequence
 
 from ..data.read import file_sha256
+from ..decide.verdict import display_rows, where_text
 from ..errors import shorten
 
 __all__ = ["MANIFEST", "check_destination", "level_table", "write_manifest", "write_outputs", "format_table", "to_json"]
 
 TABLE_COLUMNS = (
-    "level", "decision", "compared_with", "converged", "chi2", "df", "pvalue", "cfi", "tli",
+    "level", "partial", "decision", "compared_with", "converged", "chi2", "df", "pvalue", "cfi", "tli",
     "rmsea", "rmsea_lo", "rmsea_hi", "srmr", "aic", "bic",
     "d_chi2", "d_df", "d_pvalue", "d_cfi", "d_rmsea", "d_srmr", "released", "reason",
 )
@@ -46,16 +47,19 @@ def to_json(results: dict) -> str:
 
 
 def level_table(results: dict):
-    """The stepwise level table as a DataFrame (one row per level)."""
+    """The stepwise level table as a DataFrame: one row per level, and for a level with
+    releases made at it the fully constrained row (``partial`` false) before the partial
+    one (:func:`invariance.decide.verdict.display_rows`)."""
     import pandas as pd
 
     rows = []
-    for lv in results["levels"]:
+    for lv in display_rows(results["levels"]):
         d = lv.get("delta") or {}
         ci = lv.get("rmsea_ci90") or [None, None]
         rows.append(
             {
                 "level": lv["level"],
+                "partial": lv["partial"],
                 "decision": lv["decision"],
                 "compared_with": lv.get("compared_with"),
                 "converged": lv["converged"],
@@ -93,9 +97,10 @@ def level_table(results: dict):
 
 
 def _release_text(r: dict) -> str:
+    """``intercept of so03 (differs in mesa)``: the located groups when known
+    (:func:`invariance.decide.verdict.where_text`), else the groups released in."""
     where = f" on {r['factor']}" if r.get("factor") else ""
-    groups = f" in {', '.join(r['groups'])}" if r.get("groups") else " in every group"
-    return f"{r['parameter']} of {r['item']}{where}{groups}"
+    return f"{r['parameter']} of {r['item']}{where} ({where_text(r.get('groups'), r.get('differs_in'))})"
 
 
 def _num(v, fmt: str) -> str:
@@ -106,10 +111,11 @@ def _partial_lines(results: dict) -> list[str]:
     """Flagged items and structural levels (written by the partial-invariance stage)."""
     out = []
     if results.get("flagged"):
-        out += ["", "Flagged (released by the score-test search):"]
+        out += ["", "Flagged (released by the search):"]
         for f in results["flagged"]:
             size = "" if f.get("dmacs_max") is None else f", dMACS up to {f['dmacs_max']:.2f}"
-            out.append(f"  {_release_text(f)} at {f['level']}: score test {f['statistic']:.2f} "
+            test = "score test" if f.get("test") in ("multivariate", "univariate") else "refit difference"
+            out.append(f"  {_release_text(f)} at {f['level']}: {test} {f['statistic']:.2f} "
                        f"on {f['df']} df, p {f['pvalue']:.2g}{size}")
     for s in results.get("structural") or []:
         if s == results["structural"][0]:
@@ -119,40 +125,51 @@ def _partial_lines(results: dict) -> list[str]:
     return out
 
 
-def format_table(results: dict) -> str:
-    """The stepwise table and the verdict as terminal text."""
-    from .robust_stage import display_note, display_view
-
-    note = display_note(results)
-    results = display_view(results)
-    head = f"{'level':<11}{'chi2':>10}{'df':>5}{'CFI':>7}{'RMSEA':>7}{'SRMR':>7}{'dchi2':>9}{'ddf':>5}{'p':>7}{'dCFI':>8}{'dRMSEA':>8}{'dSRMR':>8}  decision"
+def _table_lines(results: dict) -> list[str]:
+    """The stepwise table: fully constrained and partial rows (a partial row is labelled
+    ``partial <level>``)."""
+    head = (f"{'level':<17}{'chi2':>10}{'df':>5}{'CFI':>7}{'RMSEA':>7}{'SRMR':>7}{'dchi2':>9}{'ddf':>5}{'p':>7}"
+            f"{'dCFI':>8}{'dRMSEA':>8}{'dSRMR':>8}  decision")
     lines = [head, "-" * len(head)]
     for lv in results["levels"]:
         d = lv.get("delta") or {}
         p = d.get("pvalue")
         lines.append(
-            f"{lv['level']:<11}{_num(lv['chi2'], '.2f'):>10}{_num(lv['df'], 'd'):>5}"
+            f"{lv['row_name']:<17}{_num(lv['chi2'], '.2f'):>10}{_num(lv['df'], 'd'):>5}"
             f"{_num(lv['cfi'], '.3f'):>7}{_num(lv['rmsea'], '.3f'):>7}{_num(lv['srmr'], '.3f'):>7}"
             f"{_num(d.get('chi2'), '.2f'):>9}{_num(d.get('df'), 'd'):>5}"
             f"{('<.001' if p is not None and p < 0.001 else _num(p, '.3f')):>7}"
             f"{_num(d.get('cfi'), '+.4f'):>8}{_num(d.get('rmsea'), '+.4f'):>8}{_num(d.get('srmr'), '+.4f'):>8}"
             f"  {lv['decision']}"
         )
+    return lines
+
+
+def format_table(results: dict) -> str:
+    """The stepwise table and the verdict as terminal text."""
+    from .robust_stage import display_note, display_view
+
+    note = display_note(results)
+    results = display_view({**results, "levels": display_rows(results["levels"])})
     groups = ", ".join(f"{g} {n}" for g, n in results["groups"].items())
     out = [
         f"{results.get('title', 'invariance')}: {results['estimator']} on {results.get('data', {}).get('cases_used', 'complete cases')}; "
         f"groups (N used): {groups}; reference {results['reference_group']}",
         "",
-        *lines,
+        *_table_lines(results),
         *([note] if note else []),
         "",
         f"Rule: {results['decision_rule']['rule']}",
     ]
+    if results.get("cutoff_calibration"):
+        out.append(f"Caution: {results['cutoff_calibration']}")
     for lv in results["levels"]:
         if lv["decision"] != "not_tested":
-            out.append(f"  {lv['level']}: {lv['decision']} ({lv['reason']})")
+            out.append(f"  {lv['row_name']}: {lv['decision']} ({lv['reason']})")
     out.append("")
     out.append(results["verdict"])
+    if results.get("next_step"):
+        out.append(results["next_step"])
     out.extend(_partial_lines(results))
     cc = results.get("crosscheck")
     if cc:

@@ -173,13 +173,14 @@ def run_stages(spec: PipelineSpec, stages=None, *, executor=None,
 
     ``progress`` (optional) is advanced once per stage, with the stage's name as note.
     """
-    state = RunState(executor=executor)
     results: dict = {
         "invariance_version": __version__,
         "title": spec.title,
         "estimator": spec.estimator,
         "seed": spec.seed,
     }
+    # extra["results"]: what earlier stages returned, read-only (the summary reads scale_bias)
+    state = RunState(executor=executor, extra=MappingProxyType({"results": MappingProxyType(results)}))
     for name, stage in stages if stages is not None else STAGES:
         if progress is not None:
             progress.update(0, note=name)

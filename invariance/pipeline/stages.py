@@ -16,7 +16,8 @@ from __future__ import annotations
 
 from ..data.checks import check_data
 from ..data.read import apply_missing, file_sha256, read_table
-from ..decide.compare import PERMITS, judge_configural, judge_step, supported_level
+from ..decide.compare import judge_configural, judge_step
+from ..decide.verdict import constrained_record, supported_level
 from ..effects.ordinal import ordinal_effects
 from ..errors import DataError, SpecificationError
 from ..estimate.interface import FIT_KEYS, ROBUST_KEYS, quiet_fit
@@ -27,6 +28,7 @@ from . import robust_stage as _rs
 from .align_stage import stage_alignment
 from .before_after import reuse_fit, stage_group_fit, stage_scores, stage_screening, stage_structures
 from .partial_stage import release_rows, stage_effects
+from .verdict_stage import stage_summary
 from .state import RunState, Stage, StageOutput
 
 __all__ = ["STAGES", "Stage", "stage_data", "stage_stats", "stage_levels", "stage_fits",
@@ -180,7 +182,10 @@ def _fit_level(spec: PipelineSpec, state: RunState, level: str, carried: tuple, 
     search = None
     if spec.partial.searches(verdict["decision"]):
         if res.converged:
+            before = constrained_record({**row, "delta": delta, "compared_with": accepted[0], **verdict})
             search, res, row, delta, verdict = _search(spec, state, level, res, judge, notes)
+            if search.releases:
+                row["constrained"] = before  # the fully constrained model, shown before the partial one
         else:
             row["partial"] = {"stop_reason": "not_converged", "stop_message": STOP_REASONS["not_converged"]}
     improper = [p for p in res.problems if not p.startswith("not converged")]
@@ -220,50 +225,6 @@ def stage_fits(spec: PipelineSpec, state: RunState) -> StageOutput:
             stopped = f"{lv} failed and decision.stop_at_failure is true"
     state = state.update(fits=fits, level_rows=rows, searches=searches, supported_level=supported_level(rows))
     return {"levels": rows}, state.warn(*notes)
-
-
-def stage_summary(spec: PipelineSpec, state: RunState) -> StageOutput:
-    """Say which level the data support and what group comparisons it permits."""
-    rows = state.level_rows
-    best = state.supported_level
-    n_total = state.stats.n_total
-    ns = [g.n for g in state.stats.groups]
-    notes = []
-    if spec.rule.source.startswith("Chen (2007) cutoffs for total N > 300") and (
-        n_total <= 300 or max(ns) > 1.5 * min(ns)
-    ):
-        notes.append(
-            f"total N = {n_total}, group sizes {min(ns)} to {max(ns)}: Chen (2007) recommends the "
-            "small-sample cutoffs when N <= 300 or groups are unbalanced (here: the largest group more "
-            "than 1.5 times the smallest): consider decision.cutoffs: chen2007_small"
-        )
-    first_bad = next((r for r in rows if r["decision"] not in ("holds", "holds_partially")), None)
-    estimation_failed = first_bad is not None and (
-        first_bad["converged"] is False
-        or (first_bad["level"] == "configural" and any(not p.startswith("not converged") for p in first_bad["problems"]))
-    )
-    if best is None and estimation_failed:
-        verdict = (
-            "The configural model did not converge to a proper solution, so no level could be judged: "
-            "check the factor structure, the items and the group sizes before reading any result."
-        )
-    elif best is None:
-        verdict = "The data do not support even configural invariance: " + PERMITS[None] + "."
-    else:
-        name = "threshold" if best == "thresholds" else best  # the level is named in the singular in prose
-        verdict = f"The data support {name} invariance: {PERMITS[best]}."
-        if estimation_failed:
-            verdict += (
-                f" (The {first_bad['level']} model did not converge, so that step could not be judged; "
-                "a higher level may still hold.)"
-            )
-    return {
-        "supported_level": best,
-        "permits": PERMITS[best],
-        "verdict": verdict,
-        "decision_rule": spec.rule.to_dict(),
-        "stop_at_failure": spec.stop_at_failure,
-    }, state.warn(*notes)
 
 
 def _dict_stage(stage) -> Stage:

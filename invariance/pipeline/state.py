@@ -47,7 +47,7 @@ class RunState:
         Level -> fit, the level rows of results.json and the release searches (stage ``fits``).
     supported_level
         The highest level that holds, fully or partially (stage ``fits``, computed once by
-        :func:`invariance.decide.compare.supported_level`); every later stage reads it.
+        :func:`invariance.decide.verdict.supported_level`); every later stage reads it.
     scores_table
         Factor scores per case (stage ``scores``; written to scores.csv).
     warnings

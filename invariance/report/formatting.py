@@ -10,6 +10,8 @@ from __future__ import annotations
 import math
 from typing import Any, Iterable, Mapping
 
+from ..decide.verdict import is_partial
+
 __all__ = [
     "DECISION_LABELS",
     "LEVEL_LABELS",
@@ -131,24 +133,33 @@ def decision_label(code: Any) -> str:
 
 
 def level_label(entry: Mapping[str, Any]) -> str:
-    """Row name of one level: ``Scalar``, or ``Partial scalar`` when constraints were released."""
+    """Row name of one level: ``Scalar``, or ``Partial scalar`` when its model releases a
+    constraint at or below it (the row's ``partial`` flag when present, else read from
+    ``released``); the configural level is never partial."""
     name = str(entry.get("label") or entry.get("level") or "")
     base = LEVEL_LABELS.get(name, name.replace("_", " "))
-    if entry.get("released") and not base.lower().startswith("partial"):
+    partial = entry.get("partial")
+    if not isinstance(partial, bool):
+        partial = is_partial(entry)
+    if partial and entry.get("level") != "configural" and not base.lower().startswith("partial"):
         return "Partial " + base[:1].lower() + base[1:]
     return base
 
 
 def release_text(rel: Mapping[str, Any]) -> str:
-    """``intercept of x3 (Grant-White)``: one released constraint in words."""
+    """``intercept of x3 (differs in Grant-White)``: one released constraint in words,
+    naming the groups whose estimate differs when they were located (``differs_in``)."""
     par = str(rel.get("parameter", "parameter"))
     item = str(rel.get("item", "?"))
     fac = rel.get("factor")
     groups = rel.get("groups")
+    differs = rel.get("differs_in")
     s = f"{par} of {item}"
     if fac:
         s += f" on {fac}"
-    if groups:
+    if differs:
+        s += " (differs in " + ", ".join(str(g) for g in _as_list(differs)) + ")"
+    elif groups:
         s += " (" + ", ".join(str(g) for g in _as_list(groups)) + ")"
     else:
         s += " (all groups)"

@@ -5,7 +5,9 @@ so that a results dict from an older or newer pipeline still renders. Keys read:
 
 Top level
     ``title``, ``estimator``, ``groups`` (group -> N used), ``reference_group``,
-    ``levels``, ``flagged``, ``decision_rule`` (``name`` or ``source``, ``rule`` (the
+    ``levels``, ``flagged``, the verdict fields (``supported_level``,
+    ``supported_partially``, ``released_constraints``, ``cutoff_calibration``,
+    ``next_step``: :func:`verdict_fields`), ``decision_rule`` (``name`` or ``source``, ``rule`` (the
     rule in words), ``criteria``, ``cutoffs``, ``combine``, ``alpha``), ``verdict``,
     ``warnings``, ``stop_at_failure``, ``data`` (``file``, ``rows_by_group``,
     ``missing_by_group``, ``missing_codes``, ``cases_used``), and the optional sections
@@ -15,8 +17,10 @@ Each level
     ``pvalue``, ``cfi``, ``tli``, ``rmsea``, ``rmsea_ci90``, ``srmr``, ``aic``, ``bic``,
     ``delta`` (``chi2``, ``df``, ``pvalue``, ``cfi``, ``rmsea``, ``srmr``), ``decision``,
     ``released``, and optionally ``compared_with``, ``reason``, ``problems``,
+    ``constrained`` (the fully constrained row of a level with releases made at it),
     ``cutoffs`` and ``checks`` (or ``criteria``): a list of {``criterion``, ``value``,
-    ``cutoff``, ``passed``}.
+    ``cutoff``, ``passed``, and the shown comparison ``value_text``, ``relation``,
+    ``cutoff_text``}.
 
 Cutoffs may be given in any of these shapes (values for CFI/TLI may be given as a
 positive drop; they are read as a decrease):
@@ -31,6 +35,7 @@ from __future__ import annotations
 
 from typing import Any, Mapping
 
+from ..decide.verdict import display_rows
 from .formatting import fnum, is_number
 
 __all__ = [
@@ -38,6 +43,7 @@ __all__ = [
     "OPTIONAL_KEYS",
     "accepted_entry",
     "criteria_names",
+    "display_levels",
     "display_results",
     "cutoff",
     "first_key",
@@ -49,6 +55,7 @@ __all__ = [
     "rule",
     "rule_name",
     "rule_text",
+    "verdict_fields",
 ]
 
 #: Fit indices whose change between levels is judged against a cutoff.
@@ -93,6 +100,29 @@ def levels(results: Mapping[str, Any]) -> list[dict]:
     return [e for e in (results.get("levels") or []) if isinstance(e, Mapping)]
 
 
+def display_levels(results: Mapping[str, Any]) -> list[dict]:
+    """The level entries as the tables show them: a level with releases made at it as its
+    fully constrained row, then its partial row (each with ``label`` and ``partial``)."""
+    try:
+        return display_rows(levels(results))
+    except (TypeError, AttributeError, ValueError):  # an unexpected shape: the rows as given
+        return levels(results)
+
+
+def verdict_fields(results: Mapping[str, Any]) -> dict:
+    """The verdict of the run: ``supported_level``, ``supported_partially``,
+    ``released_constraints`` (list of dicts), ``cutoff_calibration`` and ``next_step``
+    (``None`` / empty when absent)."""
+    rel = results.get("released_constraints")
+    return {
+        "supported_level": results.get("supported_level"),
+        "supported_partially": results.get("supported_partially") is True,
+        "released_constraints": [dict(r) for r in rel if isinstance(r, Mapping)] if isinstance(rel, (list, tuple)) else [],
+        "cutoff_calibration": results.get("cutoff_calibration") if isinstance(results.get("cutoff_calibration"), str) else None,
+        "next_step": results.get("next_step") if isinstance(results.get("next_step"), str) else None,
+    }
+
+
 def rule(results: Mapping[str, Any]) -> dict:
     """The decision rule dict (``name``, ``criteria``, ``cutoffs``); empty if absent."""
     r = results.get("decision_rule")
@@ -122,7 +152,8 @@ def rule_text(results: Mapping[str, Any]) -> str | None:
 
 
 def level_checks(entry: Mapping[str, Any]) -> dict[str, dict]:
-    """The checks recorded on a level: index -> {value, cutoff, passed}."""
+    """The checks recorded on a level: index -> {value, cutoff, passed} and, when
+    recorded, the shown comparison (``value_text``, ``relation``, ``cutoff_text``)."""
     out = {}
     for c in (entry.get("checks") or entry.get("criteria") or []):
         if not isinstance(c, Mapping):
@@ -131,7 +162,8 @@ def level_checks(entry: Mapping[str, Any]) -> dict[str, dict]:
         if name is None:
             continue
         passed = next((c[k] for k in ("passed", "met", "ok", "within") if isinstance(c.get(k), bool)), None)
-        out[norm_index(str(name))] = {"value": c.get("value"), "cutoff": c.get("cutoff"), "passed": passed}
+        out[norm_index(str(name))] = {"value": c.get("value"), "cutoff": c.get("cutoff"), "passed": passed,
+                                      **{k: c[k] for k in ("value_text", "relation", "cutoff_text") if k in c}}
     return out
 
 
@@ -219,9 +251,11 @@ def cutoff(results: Mapping[str, Any], index: str, entry: Mapping[str, Any] | No
 
 
 def meets(index: str, change: Any, cut: float | None, *, pvalue: Any = None) -> bool | None:
-    """Whether a change stays within its cutoff (display only; the decision is recorded).
+    """Whether a change passes its cutoff by the inequality the decision rule uses
+    (display only, when a level records no checks; the decision is recorded).
 
-    CFI/TLI: change >= cutoff; RMSEA/SRMR: change <= cutoff; chi-square: p >= alpha.
+    CFI/TLI: change > cutoff; RMSEA/SRMR: change < cutoff; chi-square: p >= alpha
+    (:mod:`invariance.decide.compare`).
     """
     index = norm_index(index)
     if cut is None:
@@ -230,22 +264,28 @@ def meets(index: str, change: Any, cut: float | None, *, pvalue: Any = None) -> 
         return None if not is_number(pvalue) else float(pvalue) >= cut
     if not is_number(change):
         return None
-    return float(change) >= cut if index in ("cfi", "tli") else float(change) <= cut
+    v = round(float(change), 10)
+    return v > cut if index in ("cfi", "tli") else v < cut
 
 
 def new_releases(results: Mapping[str, Any]) -> list[tuple[dict, dict]]:
     """``(level entry, release)`` for each release at the first level that lists it
-    (later levels carry earlier releases forward)."""
+    (later levels carry earlier releases forward); a release gets ``differs_in`` from the
+    verdict's ``released_constraints`` or the ``flagged`` records when they locate it."""
+    where = {}
+    for r in list(results.get("flagged") or []) + verdict_fields(results)["released_constraints"]:
+        if isinstance(r, Mapping) and r.get("differs_in") is not None:
+            where[(r.get("parameter"), r.get("item"), r.get("factor"))] = r["differs_in"]
     seen, out = set(), []
     for e in levels(results):
         for r in e.get("released") or []:
             if not isinstance(r, Mapping):
                 continue
-            g = r.get("groups")
-            key = (r.get("parameter"), r.get("item"), r.get("factor"), tuple(g) if isinstance(g, (list, tuple)) else g)
+            key = (r.get("parameter"), r.get("item"), r.get("factor"))
             if key not in seen:
                 seen.add(key)
-                out.append((e, dict(r)))
+                d = where.get(key)
+                out.append((e, dict(r) if d is None else {**r, "differs_in": d}))
     return out
 
 
@@ -270,21 +310,9 @@ def display_results(results: Mapping[str, Any]) -> dict:
     for e in results.get("levels") or []:
         if not isinstance(e, Mapping):
             continue
-        row = dict(e)
-        if e.get("chi2_scaled") is not None:
-            row["chi2"], row["pvalue"] = e["chi2_scaled"], e.get("pvalue_scaled")
-            row["rmsea_ci90"] = None
-        for k in ("cfi", "tli", "rmsea"):
-            if e.get(f"{k}_robust") is not None:
-                row[k] = e[f"{k}_robust"]
-        d = e.get("delta")
-        if isinstance(d, Mapping):
-            d = dict(d)
-            if d.get("chi2_scaled") is not None:
-                d["chi2"] = d["chi2_scaled"]
-            if d.get("test"):
-                tests.add(_TESTS.get(str(d["test"]), str(d["test"])))
-            row["delta"] = d
+        row = _robust_row(e, tests)
+        if isinstance(e.get("constrained"), Mapping):
+            row["constrained"] = _robust_row(e["constrained"], tests)
         rows.append(row)
     view["levels"] = rows
     view[ROBUST_NOTE_KEY] = (
@@ -295,21 +323,45 @@ def display_results(results: Mapping[str, Any]) -> dict:
     return view
 
 
-def accepted_entry(results: Mapping[str, Any]) -> dict | None:
-    """The most constrained level that holds (fully or partially), else the configural one.
+def _robust_row(e: Mapping[str, Any], tests: set) -> dict:
+    """One level row with the scaled statistics and robust indices in place of the others."""
+    row = dict(e)
+    if e.get("chi2_scaled") is not None:
+        row["chi2"], row["pvalue"] = e["chi2_scaled"], e.get("pvalue_scaled")
+        row["rmsea_ci90"] = None
+    for k in ("cfi", "tli", "rmsea"):
+        if e.get(f"{k}_robust") is not None:
+            row[k] = e[f"{k}_robust"]
+    d = e.get("delta")
+    if isinstance(d, Mapping):
+        d = dict(d)
+        if d.get("chi2_scaled") is not None:
+            d["chi2"] = d["chi2_scaled"]
+        if d.get("test"):
+            tests.add(_TESTS.get(str(d["test"]), str(d["test"])))
+        row["delta"] = d
+    return row
 
-    Levels are nested: the chain stops at the first level that does not hold, so a
-    later level that "holds" against a failed one is not accepted.
+
+def accepted_entry(results: Mapping[str, Any]) -> dict | None:
+    """The level entry of the run's ``supported_level`` (the verdict), else the configural one.
+
+    Results without the verdict fields: the most constrained level of the unbroken run of
+    ``holds`` / ``holds_partially`` from the first level.
     """
     entries = levels(results)
-    ok = []
+    best = results.get("supported_level") if "supported_level" in results else None
+    if "supported_level" not in results:
+        ok = []
+        for e in entries:
+            if e.get("decision") in ("holds", "holds_partially") and e.get("converged", True) is not False:
+                ok.append(e)
+            else:
+                break
+        best = ok[-1].get("level") if ok else None
     for e in entries:
-        if e.get("decision") in ("holds", "holds_partially") and e.get("converged", True) is not False:
-            ok.append(e)
-        else:
-            break
-    if ok:
-        return ok[-1]
+        if best is not None and e.get("level") == best:
+            return e
     for e in entries:
         if e.get("level") == "configural":
             return e

@@ -31,7 +31,8 @@ KNOWN_KEYS = {
     "estimator", "groups", "reference_group", "levels", "flagged", "decision_rule", "warnings",
     "problems", "version", "created", "schema_version", "pipeline", "data", "seed", "title", "verdict",
     "invariance_version", "n_total", "model", "free_parameters", "supported_level", "permits",
-    "stop_at_failure", I.ROBUST_NOTE_KEY,
+    "stop_at_failure", "supported_partially", "released_constraints", "cutoff_calibration", "next_step",
+    I.ROBUST_NOTE_KEY,
 } | {k for keys in I.OPTIONAL_KEYS.values() for k in keys}
 
 PACKAGES = ("invariance", "numpy", "scipy", "pandas", "matplotlib", "jinja2", "semopy", "PyYAML", "jsonschema")

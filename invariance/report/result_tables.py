@@ -6,7 +6,8 @@ Each builder reads one results.json key and returns a
 empty); :func:`result_tables` returns all of them. The report shows the same tables.
 
 Keys read: ``flagged`` (records with item, parameter, factor, level, statistic, df,
-pvalue, adjusted_pvalue, dmacs: group -> value), ``structural`` (level records like
+pvalue, adjusted_pvalue, dmacs: group -> value, differs_in: the groups whose estimate
+differs), ``structural`` (level records like
 ``levels``), ``structures`` (rows: structure, group, chi2, df, cfi, tli, rmsea, srmr,
 aic, bic, bic_adjusted, best_aic, best_bic, best_bic_adjusted) and ``structure_notes``
 (``equivalent``: pairs of structures with the reason they fit identically).
@@ -64,9 +65,11 @@ def flagged_table(results: Mapping[str, Any]) -> PaperTable | None:
         what = str(f.get("parameter") or "")
         if f.get("factor"):
             what += f" on {f['factor']}"
+        where = f.get("differs_in")
         rows.append((
             str(f.get("item") or ""),
             what,
+            ", ".join(map(str, where)) if where else ("no single group" if isinstance(where, list) else ""),
             str(f.get("level") or ""),
             f"{stat} ({df})" if stat and df else stat,
             fmt_p(f.get("adjusted_pvalue") if f.get("adjusted_pvalue") is not None else f.get("pvalue")),
@@ -77,15 +80,18 @@ def flagged_table(results: Mapping[str, Any]) -> PaperTable | None:
         "flagged; p adjusted for the number of constraints tested (the run's correction). dMACS: the root "
         "mean squared difference between the group's and the reference group's expected item scores over the "
         "group's latent distribution, in pooled item standard deviations (Nye & Drasgow 2011); rough guides .2 small, .4 medium, .6 large (Nye, Bradburn, Olenick, "
-        "Bialko & Drasgow 2019)."
+        "Bialko & Drasgow 2019). Differs in: the groups whose released estimate differs from the other groups' "
+        "(Wald z of the estimate against the precision-weighted mean of the others, Bonferroni over groups, "
+        "named one at a time)."
     )
     return PaperTable(
         name="flagged",
         caption="Parameters flagged as differing across groups",
-        columns=("Item", "Parameter", "Level", "\u03c7\u00b2 (df)", "p (adjusted)", *(f"dMACS {g}" for g in groups)),
+        columns=("Item", "Parameter", "Differs in", "Level", "\u03c7\u00b2 (df)", "p (adjusted)",
+                 *(f"dMACS {g}" for g in groups)),
         rows=tuple(rows),
         note=note,
-        numeric=(False, False, False, True, True, *([True] * len(groups))),
+        numeric=(False, False, False, False, True, True, *([True] * len(groups))),
     )
 
 

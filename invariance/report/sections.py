@@ -111,24 +111,43 @@ class ReportInput:
 
 
 # ------------------------------------------------------------------ summary
-def section_summary(inp: ReportInput) -> Section | None:
-    """Overview: the highest level supported, the groups, the rule, warnings."""
+def _supported_lead(inp: ReportInput) -> Text | None:
+    """The lead sentence: the supported level (partial or not) from the verdict fields."""
     entries = I.levels(inp.results)
     acc = inp.accepted
-    parts: list = []
+    v = I.verdict_fields(inp.results)
     if acc is not None and acc.get("decision") in ("holds", "holds_partially"):
-        rel = [r for r in acc.get("released") or [] if isinstance(r, Mapping)]
-        lead = f"Most constrained level supported: {level_label(acc)}"
+        if "supported_partially" in inp.results:
+            label, rel = level_label({"level": acc.get("level"), "partial": v["supported_partially"]}), v["released_constraints"]
+        else:
+            label, rel = level_label(acc), [r for r in acc.get("released") or [] if isinstance(r, Mapping)]
+        lead = f"Most constrained level supported: {label}"
         if rel:
-            lead += f", with {len(rel)} constraint{'s' if len(rel) != 1 else ''} released"
-        parts.append(Text(lead + ".", style="lead"))
-    elif acc is not None and acc.get("decision") == "fails":
-        parts.append(Text(f"Not even the {level_label(acc).lower()} model is supported by the decision rule: the groups "
-                          "may not share one factor structure, so no invariance level can be claimed.", style="lead"))
-    elif entries:
-        parts.append(Text("No decision was recorded for the invariance levels.", style="lead"))
+            lead += f", resting on {len(rel)} released constraint{'s' if len(rel) != 1 else ''}"
+        return Text(lead + ".", style="lead")
+    if acc is not None and acc.get("decision") == "fails":
+        return Text(f"Not even the {level_label(acc).lower()} model is supported by the decision rule: the groups "
+                    "may not share one factor structure, so no invariance level can be claimed.", style="lead")
+    if entries:
+        return Text("No decision was recorded for the invariance levels.", style="lead")
+    return None
+
+
+def section_summary(inp: ReportInput) -> Section | None:
+    """Overview: the supported level (partial or not), the verdict, the groups, the rule,
+    the cutoffs' calibration, the next step, warnings."""
+    entries = I.levels(inp.results)
+    v = I.verdict_fields(inp.results)
+    parts: list = []
+    lead = _supported_lead(inp)
+    if lead is not None:
+        parts.append(lead)
     if isinstance(inp.results.get("verdict"), str) and inp.results["verdict"]:
         parts.append(Text(inp.results["verdict"]))
+    if v["cutoff_calibration"]:
+        parts.append(Text(v["cutoff_calibration"], style="caution"))
+    if v["next_step"]:
+        parts.append(Text(v["next_step"], style="note"))
     groups = inp.groups
     facts = []
     if groups:
@@ -298,6 +317,27 @@ def section_model(inp: ReportInput) -> Section | None:
 
 
 # ------------------------------------------------------------------- levels
+_RELATION_SIGNS = {">=": "\u2265", "<=": "\u2264", ">": ">", "<": "<"}
+
+
+def _journal(text: str) -> str:
+    """``-0.00996`` -> ``\u2212.00996``: a shown number in journal style, digits kept."""
+    sign = "\u2212" if text.startswith("-") else ("+" if text.startswith("+") else "")
+    body = text.lstrip("+-")
+    if body.startswith("0."):
+        body = body[1:]
+    return sign + body
+
+
+def _shown(c: Mapping[str, Any]) -> tuple[str, str] | None:
+    """(value, relation and cutoff) as the decision shows them, when the check records it."""
+    if not isinstance(c.get("value_text"), str) or not isinstance(c.get("relation"), str):
+        return None
+    rel = _RELATION_SIGNS.get(c["relation"], c["relation"])
+    value = c["value_text"] if c["value_text"].startswith("<") else _journal(c["value_text"])
+    return value, f"{rel} {_journal(str(c.get('cutoff_text', '')))}"
+
+
 def _absolute_rows(e: Mapping[str, Any], checks: dict[str, dict]) -> list[tuple]:
     """Rows for a level judged on its own fit (the configural model): value against cutoff."""
     rows = []
@@ -305,16 +345,22 @@ def _absolute_rows(e: Mapping[str, Any], checks: dict[str, dict]) -> list[tuple]
         cut = fnum(c.get("cutoff"))
         up = ix in ("cfi", "tli")
         value = c.get("value") if c.get("value") is not None else e.get(ix)
-        cut_text = "" if cut is None else ("\u2265 " if up else "\u2264 ") + fmt_bounded(cut)
+        shown = _shown(c)
+        if shown is not None:
+            value_text, cut_text = shown
+        else:
+            value_text = fmt_bounded(value)
+            cut_text = "" if cut is None else ("\u2265 " if up else "\u2264 ") + fmt_bounded(cut)
         ok = c.get("passed")
         if ok is None and cut is not None and fnum(value) is not None:
             ok = fnum(value) >= cut if up else fnum(value) <= cut
-        rows.append((ix.upper() if ix != "chi2" else "\u03c7\u00b2", fmt_bounded(value), cut_text or "none set", ok, "decides"))
+        rows.append((ix.upper() if ix != "chi2" else "\u03c7\u00b2", value_text, cut_text or "none set", ok, "decides"))
     return rows
 
 
 def _change_rows(inp: ReportInput, e: Mapping[str, Any], d: Mapping[str, Any], checks: dict[str, dict]) -> list[tuple]:
-    """Rows for a level judged by the change from the level before it."""
+    """Rows for a level judged by the change from the level before it: a deciding
+    criterion as the decision showed it (digits and inequality), the others for information."""
     names = I.criteria_names(inp.results)
     shown = names + [ix for ix in checks if ix not in names]
     shown += [ix for ix in ("cfi", "rmsea", "srmr", "chi2") if ix not in shown]
@@ -329,10 +375,14 @@ def _change_rows(inp: ReportInput, e: Mapping[str, Any], d: Mapping[str, Any], c
                       if fnum(d.get("chi2")) is not None else "")
             cut_text = "" if cut is None else f"p \u2265 {fmt_bounded(cut)}"
             ok = I.meets(ix, None, cut, pvalue=d.get("pvalue"))
+            if _shown(g) is not None:
+                cut_text = f"p {_shown(g)[1]}" + ("" if g["value_text"].startswith("<") else f" (p = {_shown(g)[0]})")
         else:
             change = fmt_delta(d.get(ix))
-            cut_text = "" if cut is None else (("\u2265 " if ix in ("cfi", "tli") else "\u2264 ") + fmt_delta(cut))
+            cut_text = "" if cut is None else (("> " if ix in ("cfi", "tli") else "< ") + fmt_delta(cut))
             ok = I.meets(ix, d.get(ix), cut)
+            if _shown(g) is not None:
+                change, cut_text = _shown(g)
         if isinstance(g.get("passed"), bool):
             ok = g["passed"]
         if not change and not cut_text:
@@ -343,9 +393,10 @@ def _change_rows(inp: ReportInput, e: Mapping[str, Any], d: Mapping[str, Any], c
 
 
 def _criteria_rows(inp: ReportInput) -> tuple[list[tuple[str, ...]], list[str]]:
-    """Rows (level, criterion, value, cutoff, within, role, decision) for every judged level."""
+    """Rows (level, criterion, value, cutoff, passes, role, decision) for every judged
+    row, the fully constrained and the partial row of a level alike."""
     rows, styles = [], []
-    for e in I.levels(inp.results):
+    for e in I.display_levels(inp.results):
         d = e.get("delta")
         checks = I.level_checks(e)
         if isinstance(d, Mapping):
@@ -373,7 +424,7 @@ def section_levels(inp: ReportInput) -> Section | None:
     if not entries:
         return None
     cells = level_table_display(inp.results)
-    styles = tuple(str(e.get("decision") or "") for e in entries)
+    styles = tuple(str(e.get("decision") or "") for e in I.display_levels(inp.results))
     parts: list = [
         Table(DISPLAY_COLUMNS, tuple(tuple(r) for r in cells), caption="Fit of each invariance level",
               note=level_table_note(inp.results),
@@ -398,10 +449,19 @@ def section_levels(inp: ReportInput) -> Section | None:
         intro.append("Testing stopped at the first level that failed; the levels after it were not tested.")
     if not r:
         intro.append("The results do not record the decision rule; cutoffs are shown where the results give them.")
+    if any(isinstance(c, Mapping) and c.get("value_text") for e in entries for c in e.get("checks") or []):
+        intro.append("Each deciding comparison is printed with the inequality that decided it and as many "
+                     "decimals as it needs to read true (decisions use full precision).")
+    if any(isinstance(e.get("constrained"), Mapping) for e in entries):
+        intro.append("A level where constraints were released shows the fully constrained model first, then "
+                     "the partial model.")
     parts.append(Text(" ".join(intro), style="note"))
+    calibration = I.verdict_fields(inp.results)["cutoff_calibration"]
+    if calibration:
+        parts.append(Text(calibration, style="caution"))
     rows, row_styles = _criteria_rows(inp)
     if rows:
-        parts.append(Table(("Level", "Criterion", "Change (or value)", "Cutoff", "Within cutoff", "Role", "Decision"),
+        parts.append(Table(("Level", "Criterion", "Change (or value)", "Against cutoff", "Passes", "Role", "Decision"),
                            tuple(rows), caption="Each criterion against its cutoff",
                            numeric=(False, False, True, True, False, False, False), row_styles=tuple(row_styles)))
     rel = [(level_label(e), release_text(x)) for e, x in I.new_releases(inp.results)]

@@ -1,6 +1,8 @@
 """Publication tables of the stepwise results: CSV, Markdown and LaTeX.
 
-One row per invariance level (in the order fitted); columns chi-square, df, p, CFI,
+One row per invariance level (in the order fitted), and for a level where constraints
+were released the fully constrained row before the partial one (``partial`` column;
+row names ``Scalar`` and ``Partial scalar``); columns chi-square, df, p, CFI,
 RMSEA with its 90% interval, SRMR, then the changes from the previous level
 (chi-square difference, df, p, change in CFI, RMSEA, SRMR) and the decision. The CSV
 keeps full precision with the interval bounds in separate columns; the Markdown and
@@ -31,7 +33,7 @@ from .formatting import (
     release_text,
 )
 from ..escape import csv_cell, visible
-from .inputs import ROBUST_NOTE_KEY, display_results, levels, new_releases, rule_name
+from .inputs import ROBUST_NOTE_KEY, display_levels, display_results, new_releases, rule_name
 
 __all__ = [
     "LEVEL_TABLE_FILES",
@@ -54,7 +56,7 @@ __all__ = [
 LEVEL_TABLE_FILES = ("table_levels.csv", "table_levels.md", "table_levels.tex")
 
 CSV_COLUMNS = (
-    "level", "model", "converged", "chi2", "df", "pvalue", "cfi", "tli", "rmsea",
+    "level", "model", "partial", "converged", "chi2", "df", "pvalue", "cfi", "tli", "rmsea",
     "rmsea_ci90_lower", "rmsea_ci90_upper", "srmr", "aic", "bic", "delta_chi2", "delta_df",
     "delta_pvalue", "delta_cfi", "delta_rmsea", "delta_srmr", "decision", "released",
 )
@@ -78,15 +80,16 @@ def _ci(entry: Mapping[str, Any]) -> tuple[float | None, float | None]:
 
 
 def level_rows(results: Mapping[str, Any]) -> list[dict]:
-    """Plain numeric rows (one per level) with the :data:`CSV_COLUMNS` keys."""
+    """Plain numeric rows (one per shown level row) with the :data:`CSV_COLUMNS` keys."""
     rows = []
-    for e in levels(results):
+    for e in display_levels(results):
         d = e.get("delta") if isinstance(e.get("delta"), Mapping) else {}
         lo, hi = _ci(e)
         rows.append(
             {
                 "level": e.get("level"),
                 "model": level_label(e),
+                "partial": e.get("partial"),
                 "converged": e.get("converged"),
                 "chi2": fnum(e.get("chi2")),
                 "df": fnum(e.get("df")),

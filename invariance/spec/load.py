@@ -20,7 +20,7 @@ from typing import Any, Mapping
 
 import yaml
 
-from ..decide.compare import DecisionRule, make_rule
+from ..decide.compare import DecisionRule, rule_from_section
 from ..data.read import guess_format
 from ..errors import SpecificationError, shorten
 from ..estimate.interface import Estimator, estimator_for
@@ -541,13 +541,7 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
     check_alignment_section(doc, structure)
     _check_ordinal_sections(doc, ordinal)
     dec = doc.get("decision", {})
-    rule = make_rule(
-        criteria=dec.get("criteria"),
-        combine=dec.get("combine", "all"),
-        alpha=dec.get("alpha", 0.05),
-        cutoffs=dec.get("cutoffs"),
-        configural_fit=dec.get("configural_fit"),
-    )
+    rule = rule_from_section(dec)
     out = doc.get("output", {}).get("folder")
     groups = data.get("groups")
     ref = data.get("reference")

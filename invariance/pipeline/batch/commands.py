@@ -90,7 +90,7 @@ def cmd_batch(args: argparse.Namespace) -> int:
                     processes=args.processes, quiet=args.quiet)
     res.write_csv(out / "batch.csv")
     table = res.table()
-    print(table[["task", "status", "highest_level", "flagged", "error"]].to_string(index=False))
+    print(table[["task", "status", "highest_level", "partial", "flagged", "error"]].to_string(index=False))
     print(f"{len(tasks) - res.n_failed} of {len(tasks)} pipelines ran ({res.backend}); summary in {out / 'batch.csv'}")
     if res.n_failed:
         first = next(o for o in res.outcomes if not o.ok)

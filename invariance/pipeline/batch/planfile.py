@@ -23,8 +23,8 @@ Layout (every key checked; unknown keys are rejected with the allowed ones)::
     alpha: 0.05
     seed: 1
     decision: {criteria: [cfi, rmsea], combine: paired, cutoffs: chen2007_small}   # optional:
-                                # your own rule (a pipeline's decision keys), reported
-                                # beside the default rules
+                                # your own rule (a pipeline's decision keys, read by the
+                                # same code as a run's), reported beside the default rules
 """
 
 from __future__ import annotations
@@ -34,7 +34,7 @@ from typing import Any, Mapping
 
 from ...errors import SpecificationError
 from ...model.structure import Structure
-from ...decide.compare import make_rule
+from ...decide.compare import rule_from_section
 from .population import Population, Shift
 from .rules import decision_rule, default_rules
 
@@ -123,7 +123,6 @@ def load_plan(source: str | Path | Mapping) -> dict:
                 raise SpecificationError(f"The plan key {key!r} must be a number; got {d[key]!r}.") from None
     if d.get("decision") is not None:
         dec = _check_keys(d["decision"], _DECISION_KEYS, "decision")
-        rule = make_rule(criteria=dec.get("criteria"), combine=dec.get("combine", "all"),
-                         alpha=float(dec.get("alpha", out.get("alpha", 0.05))), cutoffs=dec.get("cutoffs"))
+        rule = rule_from_section(dec, alpha=float(out.get("alpha", 0.05)))
         out["rules"] = {**default_rules(out.get("alpha", 0.05)), f"your rule: {rule.describe()}": decision_rule(rule)}
     return out

@@ -3,10 +3,14 @@
 A planning rule takes the changes of one step (restricted minus free: ``dchi2``,
 ``ddf``, ``p``, ``dcfi``, ``drmsea``, ``dsrmr``) and the step's level (``metric``,
 ``scalar``, ``strict``) and returns True when it signals noninvariance (METHODS
-section 5). The defaults wrap the pipeline's own decision rules
-(:mod:`invariance.compare`) through :func:`decision_rule`, so a plan judges exactly
-as a run does. :func:`chi2_rule`, :func:`cfi_rule` and :func:`chen_rule` are
-independent direct readings of the published rules; the tests check that both agree.
+section 5). The defaults are built by the very function that reads a pipeline's
+``decision:`` section (:func:`invariance.decide.compare.rule_from_section`) and judged
+by the run's own :func:`~invariance.decide.compare.judge_step`, through
+:func:`decision_rule`, so a plan judges exactly as a run does; the Chen (2007) rules
+are the run's reading (every listed criterion must pass: a step is flagged when dCFI
+or dRMSEA crosses its cutoff). :func:`chi2_rule`, :func:`cfi_rule`, :func:`chen_any_rule`
+(the run's reading) and :func:`chen_rule` (Chen's joint reading, ``combine: paired``)
+are independent direct readings of the published rules; the tests check that both agree.
 """
 
 from __future__ import annotations
@@ -15,9 +19,9 @@ from typing import Callable, Mapping
 
 import numpy as np
 
-from ...decide.compare import DecisionRule, judge_step, make_rule
+from ...decide.compare import DecisionRule, judge_step, rule_from_section
 
-__all__ = ["Rule", "chi2_rule", "cfi_rule", "chen_rule", "decision_rule", "default_rules", "finite"]
+__all__ = ["Rule", "chi2_rule", "cfi_rule", "chen_rule", "chen_any_rule", "RUN_DEFAULT", "decision_rule", "default_rules", "finite"]
 
 Rule = Callable[[Mapping, str], bool]
 
@@ -48,6 +52,13 @@ def chen_rule(delta: Mapping, level: str, *, sample: str = "large") -> bool:
     return bool(rd(delta["dcfi"]) <= -c and (rd(delta["drmsea"]) >= r or rd(delta["dsrmr"]) >= s))
 
 
+def chen_any_rule(delta: Mapping, level: str, *, sample: str = "large") -> bool:
+    """Chen (2007) cutoffs read as a run reads them by default (criteria dCFI and dRMSEA,
+    every one must pass): flagged when dCFI <= -c or dRMSEA >= r."""
+    c, r = CHEN[sample][:2]
+    return bool(round(delta["dcfi"], 10) <= -c or round(delta["drmsea"], 10) >= r)
+
+
 class decision_rule:  # noqa: N801 - used like a function
     """A pipeline :class:`~invariance.compare.DecisionRule` as a planning rule.
 
@@ -66,17 +77,21 @@ class decision_rule:  # noqa: N801 - used like a function
         return f"decision_rule({self.rule.describe()!r})"
 
 
+#: Name of the default planning rule that is a run's default decision rule.
+RUN_DEFAULT = "Chen 2007 (N>300, balanced; run default)"
+
+
 def default_rules(alpha: float = 0.05) -> dict[str, Rule]:
-    """The rules the planner reports by default, by name."""
-    paired = ("cfi", "rmsea", "srmr")
-    return {
-        f"chi2 p<{alpha:g}": decision_rule(make_rule(criteria=("chi2",), alpha=alpha)),
-        "dCFI<=-.01 (Cheung & Rensvold 2002)": decision_rule(make_rule(cutoffs="cheung_rensvold2002")),
-        "Chen 2007 (N>300, balanced)": decision_rule(make_rule(criteria=paired, combine="paired", cutoffs="chen2007")),
-        "Chen 2007 (N<=300 or unbalanced)": decision_rule(
-            make_rule(criteria=paired, combine="paired", cutoffs="chen2007_small")
-        ),
+    """The rules the planner reports by default, by name: each is a pipeline ``decision:``
+    section read by :func:`~invariance.decide.compare.rule_from_section`; the
+    :data:`RUN_DEFAULT` one is what a run with no ``decision:`` section applies."""
+    sections = {
+        f"chi2 p<{alpha:g}": {"criteria": ["chi2"], "alpha": alpha},
+        "dCFI<=-.01 (Cheung & Rensvold 2002)": {"cutoffs": "cheung_rensvold2002"},
+        RUN_DEFAULT: {},
+        "Chen 2007 (N<=300 or unbalanced)": {"cutoffs": "chen2007_small"},
     }
+    return {name: decision_rule(rule_from_section(sec, alpha=alpha)) for name, sec in sections.items()}
 
 
 def finite(delta: Mapping) -> bool:

@@ -37,6 +37,7 @@ from typing import Any, Callable, Iterable, Iterator, Mapping, Sequence
 
 import numpy as np
 
+from ...decide.verdict import supported_level
 from ...errors import InvarianceWarning, SpecificationError
 from ...escape import write_csv
 
@@ -100,17 +101,10 @@ class TaskOutcome:
 
 
 def highest_level(levels: Sequence[Mapping]) -> str | None:
-    """Highest level of an unbroken run of supported decisions from the first level.
-
-    A level counts as supported when its ``decision`` is ``holds`` or ``holds_partially``.
-    """
-    best = None
-    for lv in levels:
-        if lv.get("decision") in ("holds", "holds_partially"):
-            best = lv.get("level")
-        else:
-            break
-    return best
+    """Highest level of an unbroken run of supported decisions from the first level
+    (``holds`` or ``holds_partially``): :func:`invariance.decide.verdict.supported_level`,
+    for results that lack the run's own ``supported_level``."""
+    return supported_level(levels)
 
 
 def _flagged_text(flagged) -> str:
@@ -129,11 +123,13 @@ def _flagged_text(flagged) -> str:
 
 def _summary_fields(value) -> dict:
     if not isinstance(value, Mapping):
-        return {"highest_level": "", "flagged": ""}
+        return {"highest_level": "", "partial": "", "flagged": ""}
     level = value.get("highest_level", value.get("supported_level"))
     if level is None and isinstance(value.get("levels"), Sequence):
         level = highest_level(value["levels"])
-    return {"highest_level": level or "", "flagged": _flagged_text(value.get("flagged"))}
+    partial = value.get("supported_partially")
+    return {"highest_level": level or "", "partial": "" if partial is None else bool(partial),
+            "flagged": _flagged_text(value.get("flagged"))}
 
 
 @dataclass(frozen=True)
@@ -154,7 +150,8 @@ class BatchResult:
         return sum(not o.ok for o in self.outcomes)
 
     def table(self):
-        """One row per task: task, status, highest_level, flagged, seed, seconds, error."""
+        """One row per task: task, status, highest_level, partial (whether it holds only
+        partially), flagged, seed, seconds, error."""
         import pandas as pd
 
         rows = []
@@ -163,7 +160,7 @@ class BatchResult:
                 {"task": o.name, "status": o.status, **_summary_fields(o.value), "seed": str(o.seed),
                  "seconds": round(o.seconds, 3), "error": o.error}
             )
-        cols = ["task", "status", "highest_level", "flagged", "seed", "seconds", "error"]
+        cols = ["task", "status", "highest_level", "partial", "flagged", "seed", "seconds", "error"]
         return pd.DataFrame(rows, columns=cols)
 
     def write_csv(self, path) -> None:

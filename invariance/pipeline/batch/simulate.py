@@ -29,6 +29,7 @@ import numpy as np
 from scipy import stats as _st
 
 from ...data.moments import stats_from_arrays
+from ...decide.compare import level_delta
 from ...errors import EstimationError, SpecificationError
 from ...estimate.ml import fit
 from ...model.levels import LEVELS, build_level
@@ -66,14 +67,14 @@ def replicate(*, population: Population, sizes: Sequence[int], levels: Sequence[
     steps = {}
     for free, lv in zip(levels[:-1], levels[1:]):
         a, b = fits[lv], fits[free]
-        dchi2, ddf = a["chi2"] - b["chi2"], a["df"] - b["df"]
+        d = level_delta(a, b)  # the run's own change computation
         steps[lv] = {
-            "dchi2": dchi2,
-            "ddf": ddf,
-            "p": float(_st.chi2.sf(dchi2, ddf)) if np.isfinite(dchi2) else np.nan,
-            "dcfi": a["cfi"] - b["cfi"],
-            "drmsea": a["rmsea"] - b["rmsea"],
-            "dsrmr": a["srmr"] - b["srmr"],
+            "dchi2": d["chi2"],
+            "ddf": d["df"],
+            "p": d["pvalue"] if np.isfinite(d["chi2"]) and d["pvalue"] is not None else np.nan,
+            "dcfi": d["cfi"],
+            "drmsea": d["rmsea"],
+            "dsrmr": d["srmr"],
             "converged": bool(a["converged"] and b["converged"]),
         }
     return {"fits": fits, "steps": steps}

@@ -20,13 +20,15 @@ __all__ = ["pipeline_task", "summarize_results", "pipeline_variants", "parse_var
 def summarize_results(results: Mapping[str, Any]) -> dict:
     """The batch summary of one pipeline's results.json content.
 
-    Keeps each level's ``level`` and ``decision``, the flagged items, and the highest
-    level supported (the run's ``supported_level``, else the end of an unbroken run of
-    ``holds`` / ``holds_partially`` decisions; ``"none"`` when not even configural holds).
+    Keeps each level's ``level`` and ``decision``, the flagged items, the highest level
+    supported (the run's ``supported_level``, else the end of an unbroken run of
+    ``holds`` / ``holds_partially`` decisions; ``"none"`` when not even configural holds)
+    and whether it holds only partially (the run's ``supported_partially``).
     """
     levels = [{"level": lv.get("level"), "decision": lv.get("decision")} for lv in results.get("levels", [])]
     best = results["supported_level"] if "supported_level" in results else highest_level(levels)
-    return {"levels": levels, "flagged": list(results.get("flagged", []) or []), "highest_level": best or "none"}
+    return {"levels": levels, "flagged": list(results.get("flagged", []) or []), "highest_level": best or "none",
+            "supported_partially": results.get("supported_partially")}
 
 
 def pipeline_task(*, pipeline, out: str | Path, seed: int = 0) -> dict:
