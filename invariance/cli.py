@@ -1,16 +1,19 @@
 """The command line: ``invariance run | check | new | demo | batch | plan``.
 
 Exit codes: 0 the command ran (whatever the invariance verdict), 2 bad input (one line
-on stderr, no traceback), 1 internal error.
+on stderr, no traceback), 1 internal error, 128 + the signal number when a run was
+interrupted (Ctrl-C 130, SIGTERM 143, SIGHUP 129; nothing half-written is left).
 """
 
 from __future__ import annotations
 
 import argparse
+import signal
 import sys
 import warnings
 
 from .errors import InvarianceError
+from .escape import terminal_text, visible
 
 __all__ = ["main", "build_parser"]
 
@@ -84,18 +87,20 @@ def _cmd_check(args) -> int:
     from .pipeline.runner import check
 
     info = check(args.pipeline)
-    print(f"Pipeline {info['pipeline']}: valid. Data {info['data_file']}: {len(info['items'])} items, "
-          f"group column {info['group_column']!r}, reference group {info['reference_group']}, model {info['family']}.")
-    print("Levels to fit: " + ", ".join(f"{lv} ({q} free parameters)" for lv, q in info["free_parameters"].items()) + ".")
-    print(f"{'group':<16}{'rows':>7}{'used':>10}  missing values by item")
+    lines = [
+        f"Pipeline {info['pipeline']}: valid. Data {info['data_file']}: {len(info['items'])} items, "
+        f"group column {info['group_column']!r}, reference group {info['reference_group']}, model {info['family']}.",
+        "Levels to fit: " + ", ".join(f"{lv} ({q} free parameters)" for lv, q in info["free_parameters"].items()) + ".",
+        f"{'group':<16}{'rows':>7}{'used':>10}  missing values by item",
+    ]
     for g, rows in info["rows"].items():
         miss = {k: v for k, v in info["missing"][g].items() if v}
         text = ", ".join(f"{k} {v}" for k, v in miss.items()) or "none"
-        print(f"{g:<16}{rows:>7}{info['groups'][g]:>10}  {text}")
+        lines.append(f"{g:<16}{rows:>7}{info['groups'][g]:>10}  {text}")
     if info.get("cases_used"):
-        print(f"Cases used: {info['cases_used']}.")
-    for w in info["warnings"]:
-        print(f"note: {w}")
+        lines.append(f"Cases used: {info['cases_used']}.")
+    lines += [f"note: {w}" for w in info["warnings"]]
+    print(terminal_text("\n".join(lines)))
     return 0
 
 
@@ -144,15 +149,17 @@ def main(argv: list[str] | None = None) -> int:
         print(f"error: {_one_line(str(exc))}", file=sys.stderr)
         return 2
     except FileNotFoundError as exc:
-        print(f"error: file not found: {exc.filename}; check the path", file=sys.stderr)
+        print(f"error: file not found: {_one_line(str(exc.filename))}; check the path", file=sys.stderr)
         return 2
     except OSError as exc:  # unreadable input, unwritable output folder
         where = f": {exc.filename}" if getattr(exc, "filename", None) else ""
-        print(f"error: {exc.strerror or exc}{where}; check the path and its permissions", file=sys.stderr)
+        print(_one_line(f"error: {exc.strerror or exc}{where}; check the path and its permissions"), file=sys.stderr)
         return 2
-    except KeyboardInterrupt:
-        print("error: interrupted", file=sys.stderr)
-        return 1
+    except KeyboardInterrupt as exc:  # Ctrl-C, or SIGTERM / SIGHUP during a run
+        signum = getattr(exc, "signum", signal.SIGINT)
+        print(f"error: interrupted by {signal.Signals(signum).name}; no output folder was written "
+              "(an earlier one is kept): run again to finish", file=sys.stderr)
+        return 128 + int(signum)
     except Exception as exc:  # internal error: keep the traceback for a bug report
         import traceback
 
@@ -161,8 +168,13 @@ def main(argv: list[str] | None = None) -> int:
         return 1
 
 
+#: The longest error line printed; a longer one keeps its start and its end (the fix).
+MAX_LINE = 1000
+
+
 def _one_line(text: str) -> str:
-    return " ".join(text.split())
+    line = visible(" ".join(text.split()))
+    return line if len(line) <= MAX_LINE else f"{line[:700]} ... {line[-250:]}"
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -27,7 +27,26 @@ __all__ = [
     "InvarianceWarning",
     "ConvergenceWarning",
     "ImproperSolutionWarning",
+    "shorten",
 ]
+
+#: The longest user value quoted whole in a message.
+QUOTE_LIMIT = 60
+
+
+def shorten(value: object, limit: int = QUOTE_LIMIT) -> str:
+    """``repr`` of a user value for a message, cut to about ``limit`` characters.
+
+    Control characters are shown escaped (``repr`` does that), so a quoted value can
+    neither flood the terminal nor drive it.
+    """
+    long_text = isinstance(value, str) and len(value) > 10 * limit
+    text = repr(value[: 2 * limit] if long_text else value)
+    if len(text) <= limit:
+        return text
+    size = len(value) if long_text else len(text)
+    return f"{text[: limit - 20]}...{text[-12:]} ({size} characters)"
+
 
 
 class InvarianceError(Exception):

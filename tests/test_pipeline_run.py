@@ -85,7 +85,7 @@ def test_output_folder_files(hs_all_levels):
     out = path.parent / "out"
     assert res.out_dir == out.resolve()
     assert sorted(p.name for p in out.iterdir()) == [
-        "estimates.csv", "figures", "levels.csv", "pipeline.yaml", "report.html", "report.md", "results.json",
+        "estimates.csv", "figures", "levels.csv", "manifest.json", "pipeline.yaml", "report.html", "report.md", "results.json",
         *(f"table_{name}.{ext}" for name in ("latent", "levels", "loadings") for ext in ("csv", "md", "tex")),
     ]
     table = pd.read_csv(out / "levels.csv")

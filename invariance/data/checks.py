@@ -12,9 +12,9 @@ from typing import Sequence
 
 import numpy as np
 
-from ..errors import DataError
+from ..errors import DataError, shorten
 
-__all__ = ["CheckedData", "check_data", "SMALL_GROUP"]
+__all__ = ["CheckedData", "check_data", "far_out_values", "MAX_MAGNITUDE", "SMALL_GROUP"]
 
 #: Groups smaller than this make the tests weak (common practice: about 200 per group).
 SMALL_GROUP = 200
@@ -108,7 +108,7 @@ def check_data(
     if no_group:
         warnings.append(f"{no_group} rows have no value in group column {group!r} and were left out")
     frame = frame.loc[keys.notna()]
-    labels = frame[group].map(_group_label)
+    labels = _labels(frame[group], group)
     out = pd.DataFrame({group: labels.to_numpy()}, index=frame.index)
     for col in items:
         raw = frame[col]
@@ -117,10 +117,13 @@ def check_data(
         if bad.any():
             example = raw[bad].iloc[0]
             raise DataError(
-                f"Item {col!r} holds non-numeric values such as {str(example)!r}; recode them or "
+                f"Item {shorten(col)} holds non-numeric values such as {shorten(str(example))}; recode them or "
                 f"list them under data.missing."
             )
-        out[col] = num.astype(float)
+        out[col] = _finite(num.astype(float), col)
+        far = far_out_values(out[col].to_numpy())
+        if far:
+            warnings.append(_far_out_note(col, out[col].to_numpy(), far))
     present = sorted(set(labels), key=_sort_key)
     if groups is None:
         groups = present
@@ -184,6 +187,80 @@ def check_data(
         complete=complete,
         missing=missing,
         warnings=tuple(warnings),
+    )
+
+
+#: Largest magnitude accepted in an item (beyond it, squares and products lose all precision).
+MAX_MAGNITUDE = 1e9
+
+
+def _labels(keys, group: str):
+    """Group labels as text without surrounding spaces; labels that differ only by spaces
+    are refused (they would split one group in two)."""
+    labels = keys.map(_group_label)
+    stripped = labels.str.strip()
+    spaced = {}
+    for raw in dict.fromkeys(labels):
+        spaced.setdefault(" ".join(raw.split()), []).append(raw)
+    clash = next((v for v in spaced.values() if len(v) > 1), None)
+    if clash:
+        raise DataError(
+            f"Group labels {shorten(clash[0])} and {shorten(clash[1])} in column {shorten(group)} differ only by "
+            "spaces; correct the data so each group is spelled one way."
+        )
+    return stripped
+
+
+def _finite(values, col: str):
+    """``values`` when every observed value is finite and of a sane magnitude."""
+    arr = values.to_numpy()
+    with np.errstate(invalid="ignore"):
+        bad = ~np.isnan(arr) & ~(np.abs(arr) <= MAX_MAGNITUDE)
+    if bad.any():
+        k = int(np.flatnonzero(bad)[0])
+        row = values.index[k]
+        where = f"data row {row + 1}" if isinstance(row, (int, np.integer)) else f"row {shorten(row)}"
+        raise DataError(
+            f"Item {shorten(col)} holds {float(arr[k])!r} ({where}); item values must be finite and within "
+            f"+-{MAX_MAGNITUDE:g}: correct it, or list it under data.missing if it is a missing-value code."
+        )
+    return values
+
+
+def far_out_values(values: np.ndarray) -> list[float]:
+    """Whole-number values far outside the rest -- typically missing-value codes such as
+    -9 or 99 on a 1-5 scale.
+
+    A value counts when it lies beyond 3 interquartile ranges from the quartiles (Tukey's
+    1977 "far out" fences; the interquartile range taken as at least 1) and its distance
+    to the nearest other value is at least the range of the other values.
+    """
+    obs = values[~np.isnan(values)]
+    if obs.size < 10:
+        return []
+    q1, q3 = np.percentile(obs, [25, 75])
+    iqr = max(q3 - q1, 1.0)
+    cand = np.unique(obs[((obs < q1 - 3 * iqr) | (obs > q3 + 3 * iqr)) & (obs == np.round(obs))])
+    rest = obs[~np.isin(obs, cand)]
+    if cand.size == 0 or rest.size == 0:
+        return []
+    lo, hi = rest.min(), rest.max()
+    gap = np.where(cand < lo, lo - cand, cand - hi)
+    return [float(v) for v in cand[gap >= max(hi - lo, 1.0)]]
+
+
+def _code_text(v: float) -> str:
+    return str(int(v)) if float(v).is_integer() else repr(v)
+
+
+def _far_out_note(col: str, values: np.ndarray, far: list[float]) -> str:
+    obs = values[~np.isnan(values)]
+    rest = obs[~np.isin(obs, far)]
+    counts = ", ".join(f"{_code_text(v)} ({int((obs == v).sum())} times)" for v in far[:3])
+    codes = ", ".join(_code_text(v) for v in far[:3])
+    return (
+        f"item {col} holds {counts}, far outside its other values ({_code_text(rest.min())} to "
+        f"{_code_text(rest.max())}); if these are missing-value codes, add data.missing: [{codes}]"
     )
 
 

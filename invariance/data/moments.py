@@ -224,7 +224,15 @@ def _full_information(name: str, x: np.ndarray, items: Sequence[str]) -> GroupSt
     if const.size:
         raise DataError(f"Item {items[const[0]]!r} is constant in group {name!r}; drop the item or the group.")
     pat = missing_patterns(xu)
-    em = em_saturated(xu, patterns=pat)
+    try:
+        em = em_saturated(xu, patterns=pat)
+    except (np.linalg.LinAlgError, FloatingPointError, ValueError):
+        i, j = np.unravel_index(np.argmin(pair + np.diag(np.full(p, np.inf))), pair.shape)
+        raise DataError(
+            f"The saturated model of group {name!r} cannot be estimated from so many missing values "
+            f"(items {items[i]!r} and {items[j]!r} are observed together in only {int(pair[i, j])} cases); "
+            "drop the items observed least often, or collect more complete data."
+        ) from None
     if not em.converged:
         warnings.warn(
             f"EM for the saturated model of group {name!r} stopped after {em.iterations} updates "

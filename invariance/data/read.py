@@ -9,15 +9,16 @@ the first sheet, or the one named by ``sheet``).
 
 from __future__ import annotations
 
+import csv
 import hashlib
 import pathlib
 from typing import Mapping, Sequence
 
 import numpy as np
 
-from ..errors import DataError, SpecificationError
+from ..errors import DataError, SpecificationError, shorten
 
-__all__ = ["FORMATS", "read_table", "apply_missing", "file_sha256", "guess_format"]
+__all__ = ["FORMATS", "NA_TEXTS", "read_table", "apply_missing", "file_sha256", "guess_format"]
 
 #: Known formats and the suffixes that select them.
 FORMATS = {
@@ -50,7 +51,16 @@ def file_sha256(path: pathlib.Path) -> str:
     return h.hexdigest()
 
 
-def _read_excel(path: pathlib.Path, sheet: str | int | None):
+#: Cell texts read as missing in item columns (pandas' default list). A group column keeps
+#: them as labels: a group called NA, None or null stays a group.
+NA_TEXTS = (
+    "", "#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN", "-nan", "1.#IND", "1.#QNAN",
+    "<NA>", "N/A", "NA", "NULL", "NaN", "None", "n/a", "nan", "null",
+)
+_SEPARATORS = {",": "comma", ";": "semicolon", "\t": "tab", "|": "vertical bar"}
+
+
+def _read_excel(path: pathlib.Path, sheet: str | int | None, text_columns: Sequence[str] = ()):
     """One sheet of an Excel workbook (the first when ``sheet`` is None)."""
     import pandas as pd
 
@@ -67,10 +77,16 @@ def _read_excel(path: pathlib.Path, sheet: str | int | None):
             raise DataError(
                 f"Data file {path.name!r} has no sheet {sheet!r}; set data.sheet to one of: {', '.join(names)}."
             )
-        return pd.read_excel(book, sheet_name=sheet)
+        header = pd.read_excel(book, sheet_name=sheet, header=None, nrows=1).iloc[0].tolist()
+        header = [h for h in header if not (isinstance(h, float) and h != h)]
+        na = _na_values(path, header, text_columns)
+        return pd.read_excel(book, sheet_name=sheet, keep_default_na=False, na_values=na)
 
 
-def read_table(path: str | pathlib.Path, *, format: str | None = None, sheet: str | int | None = None):
+def read_table(
+    path: str | pathlib.Path, *, format: str | None = None, sheet: str | int | None = None,
+    text_columns: Sequence[str] = (),
+):
     """Read a data file into a DataFrame.
 
     Parameters
@@ -81,24 +97,32 @@ def read_table(path: str | pathlib.Path, *, format: str | None = None, sheet: st
         ``csv``, ``tsv``, ``stata``, ``spss`` or ``excel``; guessed from the suffix when omitted.
     sheet
         Excel workbooks only: the sheet, by name or 0-based position (default the first).
+    text_columns
+        Columns (the group column) whose cells are labels: only an empty cell is missing
+        there, so a group labelled NA, None or null is kept (CSV, TSV and Excel files).
 
     Returns
     -------
     pandas.DataFrame
+        Column names stripped of surrounding spaces. A header naming a column twice, or
+        a delimited file whose first line shows another separator than its format's,
+        is refused.
     """
     import pandas as pd
 
     path = pathlib.Path(path)
+    if path.is_dir():
+        raise DataError(
+            f"Data path {shorten(str(path))} is a folder, not a file; set data.path to the data file inside it."
+        )
     if not path.is_file():
-        raise DataError(f"Data file {str(path)!r} does not exist; check data.path (relative to the pipeline file).")
+        raise DataError(f"Data file {shorten(str(path))} does not exist; check data.path (relative to the pipeline file).")
     fmt = format or guess_format(path)
     if sheet is not None and fmt != "excel":
         raise SpecificationError(f"data.sheet applies to Excel workbooks only, and {path.name!r} is read as {fmt}; remove data.sheet.")
     try:
-        if fmt == "csv":
-            frame = pd.read_csv(path)
-        elif fmt == "tsv":
-            frame = pd.read_csv(path, sep="\t")
+        if fmt in ("csv", "tsv"):
+            frame = _read_delimited(path, fmt, text_columns)
         elif fmt == "stata":
             frame = pd.read_stata(path, convert_categoricals=False)
         elif fmt == "spss":
@@ -111,18 +135,66 @@ def read_table(path: str | pathlib.Path, *, format: str | None = None, sheet: st
                 ) from None
             frame = pd.read_spss(path, convert_categoricals=False)
         elif fmt == "excel":
-            frame = _read_excel(path, sheet)
+            frame = _read_excel(path, sheet, text_columns)
         else:
             raise SpecificationError(f"Unknown data format {fmt!r}; use one of {', '.join(FORMATS)}.")
     except InvarianceErrorTypes:
         raise
     except Exception as exc:  # parser errors of every reader
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise DataError(f"Cannot read data file {path.name!r} as {fmt}: {first}; check the file and its format.") from None
+        raise DataError(
+            f"Cannot read data file {shorten(path.name)} as {fmt}: {first[:200]}; check the file and its format."
+        ) from None
     if frame.shape[1] == 0 or frame.shape[0] == 0:
-        raise DataError(f"Data file {path.name!r} has no rows or no columns; check the file.")
+        raise DataError(f"Data file {shorten(path.name)} has no rows or no columns; check the file.")
     frame.columns = [str(c).strip() for c in frame.columns]
     return frame
+
+
+def _header(path: pathlib.Path, sep: str) -> list[str]:
+    """The first line of a delimited file, split on ``sep``."""
+    with open(path, newline="", encoding="utf-8-sig", errors="replace") as fh:
+        first = next(csv.reader(fh, delimiter=sep), [])
+        return first
+
+
+def _refuse_other_separator(path: pathlib.Path, fmt: str, sep: str, header: list[str]) -> None:
+    line = sep.join(header)
+    if len(header) > 1:
+        return
+    seen = [c for c in _SEPARATORS if c != sep and c in line]
+    if not seen:
+        return
+    other = seen[0]
+    fix = ("set data.format: tsv (or rename the file .tsv)" if other == "\t"
+           else "set data.format: csv (or rename the file .csv)" if other == ","
+           else "save it comma-separated")
+    raise DataError(
+        f"Data file {shorten(path.name)} is read as {fmt} ({_SEPARATORS[sep]}-separated) but its first line looks "
+        f"{_SEPARATORS[other]}-separated; {fix}."
+    )
+
+
+def _read_delimited(path: pathlib.Path, fmt: str, text_columns: Sequence[str]):
+    import pandas as pd
+
+    sep = "," if fmt == "csv" else "\t"
+    header = _header(path, sep)
+    _refuse_other_separator(path, fmt, sep, header)
+    return pd.read_csv(path, sep=sep, keep_default_na=False, na_values=_na_values(path, header, text_columns))
+
+
+def _na_values(path: pathlib.Path, header: Sequence, text_columns: Sequence[str]) -> dict:
+    """Per-column missing-value texts for pandas (a header naming a column twice is refused)."""
+    names = [str(h).strip() for h in header]
+    twice = sorted({n for n in names if names.count(n) > 1})
+    if twice:
+        raise DataError(
+            f"Data file {shorten(path.name)} names column {shorten(twice[0])} twice in its header; "
+            "rename one of them so each column has its own name."
+        )
+    keep = {str(c) for c in text_columns}
+    return {raw: ([""] if str(raw).strip() in keep else list(NA_TEXTS)) for raw in header}
 
 
 InvarianceErrorTypes = (DataError, SpecificationError)

@@ -11,7 +11,7 @@ which fit reached the lower chi-square (the better minimum).
 from __future__ import annotations
 
 import warnings
-
+from typing import Mapping
 
 from ..errors import InvarianceWarning
 from ..estimate.ml import fit as ml_fit
@@ -20,29 +20,42 @@ from ..model.structure import Structure
 from ..spec.load import PipelineSpec
 from .state import RunState, StageOutput
 
-__all__ = ["semopy_description", "stage_crosscheck", "TOLERANCE"]
+__all__ = ["safe_names", "semopy_description", "stage_crosscheck", "TOLERANCE"]
 
 #: Relative chi-square difference still counted as agreement.
 TOLERANCE = 1e-3
 
 
-def semopy_description(structure: Structure) -> str:
-    """The structure written in semopy's model description language."""
+def semopy_description(structure: Structure, *, names: Mapping[str, str] | None = None) -> str:
+    """The structure written in semopy's model description language.
+
+    ``names`` renames items and factors (see :func:`safe_names`); by default the
+    structure's own names are written.
+    """
+    n = (lambda x: names.get(x, x)) if names else (lambda x: x)
     lines = []
     latents = list(structure.factor_names)
     for f, items in structure.measured_by.items():
-        lines.append(f"{f} =~ " + " + ".join(items))
+        lines.append(f"{n(f)} =~ " + " + ".join(n(i) for i in items))
     if structure.family == "second_order":
-        lines.append(f"{structure.general} =~ " + " + ".join(structure.factors))
+        lines.append(f"{n(structure.general)} =~ " + " + ".join(n(f) for f in structure.factors))
     for out, pred in structure.regressions:
-        lines.append(f"{out} ~ {pred}")
+        lines.append(f"{n(out)} ~ {n(pred)}")
     if structure.family == "bifactor":
         for a in range(len(latents)):
             for b in range(a):
-                lines.append(f"{latents[a]} ~~ 0*{latents[b]}")
+                lines.append(f"{n(latents[a])} ~~ 0*{n(latents[b])}")
     for a, b in structure.residual_covariances:
-        lines.append(f"{a} ~~ {b}")
+        lines.append(f"{n(a)} ~~ {n(b)}")
     return "\n".join(lines)
+
+
+def safe_names(structure: Structure) -> dict[str, str]:
+    """Item and factor names -> plain identifiers (``v1``, ``v2``, ...; ``f1``, ...), so that
+    names with spaces or operator characters reach semopy intact."""
+    out = {it: f"v{k + 1}" for k, it in enumerate(structure.items)}
+    out.update({f: f"f{k + 1}" for k, f in enumerate(structure.factor_names)})
+    return out
 
 
 def _verdict(rel: float, theirs: float, ours: float, their_df: int, our_df: int) -> str:
@@ -62,13 +75,15 @@ def stage_crosscheck(spec: PipelineSpec, state: RunState) -> StageOutput:
 
     stats = state.stats
     desc = semopy_description(spec.structure)
+    names = safe_names(spec.structure)
+    safe_desc = semopy_description(spec.structure, names=names)
     rows = []
     for g in stats.names:
         sub = stats.subset([g])
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", InvarianceWarning)
             ours = ml_fit(build_level(spec.structure, (g,), "configural"), sub)
-        data = pd.DataFrame(sub.groups[0].raw, columns=list(sub.items))
+        data = pd.DataFrame(sub.groups[0].raw, columns=[names[i] for i in sub.items])
         row = {
             "group": g,
             "n": int(sub.groups[0].n),
@@ -82,7 +97,7 @@ def stage_crosscheck(spec: PipelineSpec, state: RunState) -> StageOutput:
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
-                model = semopy.Model(desc)
+                model = semopy.Model(safe_desc)
                 model.fit(data)
                 st = semopy.calc_stats(model)
             sc = float(st["chi2"].iloc[0])

@@ -2,7 +2,8 @@
 
 Every file of a run is written into a temporary folder beside the destination, which is
 renamed into place only when everything was written: a run never leaves a half-written
-output folder behind.
+output folder behind. The last file written is :data:`MANIFEST`, the list of the files the
+run wrote; only a folder that still holds exactly those files is ever replaced.
 """
 
 from __future__ import annotations
@@ -13,11 +14,13 @@ import os
 import pathlib
 import shutil
 import tempfile
-from typing import Callable
+from typing import Callable, Sequence
 
+from ..data.read import file_sha256
 from ..decide.verdict import display_rows, where_text
+from ..errors import shorten
 
-__all__ = ["check_destination", "level_table", "write_outputs", "format_table", "to_json"]
+__all__ = ["MANIFEST", "check_destination", "level_table", "write_manifest", "write_outputs", "format_table", "to_json"]
 
 TABLE_COLUMNS = (
     "level", "partial", "decision", "compared_with", "converged", "chi2", "df", "pvalue", "cfi", "tli",
@@ -181,39 +184,162 @@ def format_table(results: dict) -> str:
     return "\n".join(out)
 
 
-#: A folder holding this file is the output of an earlier run and may be replaced.
-MARKER = "results.json"
+#: The file, written last into every output folder, that lists the files the tool wrote
+#: there (relative path -> SHA-256). Only a folder holding it, and still holding exactly
+#: those files unchanged, is the tool's own and may be replaced by a later run.
+MANIFEST = "manifest.json"
+MANIFEST_TOOL = "invariance output folder"
 
 
-def check_destination(out_dir: pathlib.Path) -> None:
-    """Refuse to replace anything but an empty folder or an earlier run's output folder."""
+def _folder(path: pathlib.Path) -> str:
+    return shorten(str(path), 240)
+
+
+def _files_in(folder: pathlib.Path) -> dict[str, pathlib.Path]:
+    """Relative POSIX path -> path of every entry under ``folder`` that is not a folder."""
+    out = {}
+    for root, dirs, files in os.walk(folder, followlinks=False):
+        base = pathlib.Path(root)
+        for name in files + [d for d in dirs if (base / d).is_symlink()]:
+            out[(base / name).relative_to(folder).as_posix()] = base / name
+    return out
+
+
+def write_manifest(folder: pathlib.Path) -> pathlib.Path:
+    """List every file in ``folder`` with its SHA-256 in :data:`MANIFEST`."""
+    from .. import __version__
+
+    files = {rel: file_sha256(p) for rel, p in sorted(_files_in(folder).items()) if rel != MANIFEST}
+    doc = {"written_by": MANIFEST_TOOL, "version": __version__, "files": files}
+    path = folder / MANIFEST
+    path.write_text(json.dumps(doc, indent=2) + "\n", encoding="utf-8")
+    return path
+
+
+def _foreign_entry(folder: pathlib.Path) -> str | None:
+    """``None`` when ``folder`` is the tool's own output; else the first entry that is not."""
+    present = _files_in(folder)
+    try:
+        doc = json.loads((folder / MANIFEST).read_text(encoding="utf-8"))
+        listed = dict(doc["files"]) if doc.get("written_by") == MANIFEST_TOOL else None
+    except (OSError, ValueError, KeyError, TypeError, AttributeError):
+        listed = None
+    if listed is None:
+        shown = ", ".join(shorten(rel) for rel in sorted(present)[:3]) + (" ..." if len(present) > 3 else "")
+        return f"no {MANIFEST} of an earlier run; it holds {shown}"
+    for rel in sorted(present):
+        if rel == MANIFEST:
+            continue
+        if rel not in listed:
+            return f"it holds {shorten(rel)}, which no run wrote"
+        path = present[rel]
+        if path.is_symlink() or not path.is_file() or file_sha256(path) != listed[rel]:
+            return f"its {shorten(rel)} was changed since the run wrote it"
+    return None
+
+
+def _protected(extra: Sequence[tuple[pathlib.Path, str]]) -> list[tuple[pathlib.Path, str]]:
+    cwd = pathlib.Path.cwd().resolve()
+    out = [(cwd, "the working folder")]
+    out += [(a, "a folder above the working folder") for a in cwd.parents]
+    for folder, what in extra:
+        folder = pathlib.Path(folder).resolve()
+        out.append((folder, what))
+        out += [(a, f"a folder above {what}") for a in folder.parents]
+    return out
+
+
+def _probe_writable(out_dir: pathlib.Path) -> None:
+    """Make and remove a probe folder where ``out_dir`` will be created (nothing is left)."""
     from ..errors import SpecificationError
 
-    if not out_dir.exists():
-        return
-    if not out_dir.is_dir():
-        raise SpecificationError(f"Output folder {str(out_dir)!r} is an existing file; choose another --out.")
-    if any(out_dir.iterdir()) and not (out_dir / MARKER).is_file():
+    base = out_dir.parent
+    while not base.exists():
+        base = base.parent
+    if not base.is_dir():
         raise SpecificationError(
-            f"Output folder {str(out_dir)!r} exists and is not the output of an earlier run; "
-            "choose a new or empty folder for --out (or output.folder)."
+            f"Output folder {_folder(out_dir)} cannot be made: {_folder(base)} is a file; "
+            "choose another --out (or output.folder)."
         )
+    try:
+        probe = pathlib.Path(tempfile.mkdtemp(prefix=".invariance-probe.", dir=base))
+        probe.rmdir()
+    except OSError as exc:
+        raise SpecificationError(
+            f"Output folder {_folder(out_dir)} is not writable ({exc.strerror or exc} in {_folder(base)}); "
+            "choose a folder you can write to for --out (or output.folder)."
+        ) from None
+
+
+def check_destination(out_dir: pathlib.Path, *, protected: Sequence[tuple[pathlib.Path, str]] = ()) -> None:
+    """Refuse any destination but a new folder, an empty one, or the tool's own output folder.
+
+    Parameters
+    ----------
+    out_dir
+        The output folder.
+    protected
+        ``(folder, description)`` pairs that must never be replaced (the pipeline file's and
+        the data file's folders); the working folder and every folder above it, or above
+        any of these, are always refused.
+
+    Raises
+    ------
+    SpecificationError
+        One line naming the folder and the fix. Nothing is changed on disk.
+    """
+    from ..errors import SpecificationError
+
+    out_dir = pathlib.Path(out_dir).resolve()
+    fix = "choose a new folder for --out (or output.folder)"
+    for folder, what in _protected(protected):
+        if out_dir == folder:
+            raise SpecificationError(f"Output folder {_folder(out_dir)} is {what}, which a run never replaces; {fix}.")
+    if out_dir.is_symlink() or (out_dir.exists() and not out_dir.is_dir()):
+        raise SpecificationError(f"Output folder {_folder(out_dir)} is an existing file or link; {fix}.")
+    if out_dir.exists() and any(out_dir.iterdir()):
+        foreign = _foreign_entry(out_dir)
+        if foreign is not None:
+            raise SpecificationError(
+                f"Output folder {_folder(out_dir)} is not the output of an earlier run ({foreign}); "
+                f"{fix}, or empty that folder yourself."
+            )
+    _probe_writable(out_dir)
+
+
+def _new_folder(parent: pathlib.Path, name: str) -> pathlib.Path:
+    """A fresh hidden folder (mode from the umask, unlike ``tempfile.mkdtemp``'s 0700)."""
+    import secrets
+
+    for _ in range(100):
+        path = parent / f".{name}.{secrets.token_hex(4)}.partial"
+        try:
+            path.mkdir()
+            return path
+        except FileExistsError:
+            continue
+    raise FileExistsError(f"no free temporary folder name in {parent}")
 
 
 def write_outputs(
     out_dir: pathlib.Path,
     writers: list[Callable[[pathlib.Path], list[pathlib.Path] | pathlib.Path]],
+    *,
+    protected: Sequence[tuple[pathlib.Path, str]] = (),
 ) -> pathlib.Path:
     """Run every writer on a temporary folder, then move the folder to ``out_dir``.
 
     Parameters
     ----------
     out_dir
-        Destination. An existing folder there (empty, or an earlier run's output with its
-        results.json) is replaced only after every file of the new run was written; any
-        other existing path is refused.
+        Destination. An existing folder there is replaced only if it is empty or the
+        tool's own output (:data:`MANIFEST` lists every file in it, unchanged), and only
+        after every file of the new run was written; anything else is refused
+        (:func:`check_destination`).
     writers
         Functions that write their files into the folder they are given.
+    protected
+        Folders that are never replaced, as for :func:`check_destination`.
 
     Returns
     -------
@@ -221,22 +347,24 @@ def write_outputs(
         ``out_dir``.
     """
     out_dir = pathlib.Path(out_dir).resolve()
-    check_destination(out_dir)
+    check_destination(out_dir, protected=protected)
     out_dir.parent.mkdir(parents=True, exist_ok=True)
-    tmp = pathlib.Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.", suffix=".partial", dir=out_dir.parent))
+    tmp = _new_folder(out_dir.parent, out_dir.name)
+    old = None
     try:
         for w in writers:
             w(tmp)
-        old = None
+        write_manifest(tmp)
         if out_dir.exists():
-            old = out_dir.parent / f".{out_dir.name}.{os.getpid()}.old"
-            if old.exists():
-                shutil.rmtree(old)
+            old = _new_folder(out_dir.parent, out_dir.name + ".old")
+            old.rmdir()
             out_dir.rename(old)
         tmp.rename(out_dir)
-        if old is not None:
-            shutil.rmtree(old, ignore_errors=True)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
+        if old is not None and old.exists() and not out_dir.exists():
+            old.rename(out_dir)  # put the earlier output back
         raise
+    if old is not None:
+        shutil.rmtree(old, ignore_errors=True)
     return out_dir

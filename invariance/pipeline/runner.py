@@ -2,16 +2,21 @@
 
 from __future__ import annotations
 
+import contextlib
 import datetime as _dt
 import json
 import pathlib
+import signal
+import threading
 from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Any, Mapping
 
 import pandas as pd
 
+from ..errors import SpecificationError, shorten
 from ..progress import Progress
+from ..escape import terminal_text, write_csv
 from ..spec.load import PipelineSpec, load_pipeline, thaw
 from ..version import __version__
 from .crosscheck import stage_crosscheck
@@ -19,7 +24,7 @@ from .output import check_destination, format_table, level_table, to_json, write
 from .stages import STAGES, stage_data, stage_levels, stage_stats, with_stage
 from .state import RunState
 
-__all__ = ["RunResult", "run", "check", "default_out_dir"]
+__all__ = ["RunResult", "Interrupted", "run", "check", "default_out_dir"]
 
 
 def _freeze(obj):
@@ -79,6 +84,56 @@ def default_out_dir(spec: PipelineSpec) -> pathlib.Path | None:
     if spec.source is not None:
         return spec.source.parent / "results" / spec.source.stem
     return None
+
+
+class Interrupted(KeyboardInterrupt):
+    """A run stopped by SIGTERM or SIGHUP, handled like Ctrl-C (``signum`` says which)."""
+
+    def __init__(self, signum: int):
+        super().__init__(f"stopped by {signal.Signals(signum).name}")
+        self.signum = signum
+
+
+def _raise_interrupted(signum, _frame):
+    raise Interrupted(signum)
+
+
+@contextlib.contextmanager
+def _stop_signals_interrupt():
+    """SIGTERM and SIGHUP raise :class:`Interrupted` (like SIGINT's KeyboardInterrupt), so the
+    output writer removes its temporary folder; the earlier handlers come back afterwards."""
+    names = ("SIGTERM", "SIGHUP")
+    sigs = [getattr(signal, n) for n in names if hasattr(signal, n)]
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = {s: signal.signal(s, _raise_interrupted) for s in sigs}
+    try:
+        yield
+    finally:
+        for s, h in previous.items():
+            signal.signal(s, h)
+
+
+def _out_dir(out, spec: PipelineSpec, write: bool | None) -> pathlib.Path | None:
+    """The output folder from ``out`` (checked), the pipeline, or ``None`` (nothing written)."""
+    if out is not None and not isinstance(out, (str, pathlib.PurePath)):
+        raise SpecificationError(
+            f"out must be a folder path (str or pathlib.Path); got {type(out).__name__} {shorten(out)}."
+        )
+    if isinstance(out, str) and not out.strip():
+        raise SpecificationError("out is empty; name a new folder for the outputs.")
+    if write is False:
+        return None
+    return pathlib.Path(out).resolve() if out is not None else default_out_dir(spec)
+
+
+def _protected(spec: PipelineSpec) -> list[tuple[pathlib.Path, str]]:
+    """Folders an output folder may never be: those of the pipeline file and the data file."""
+    out = [(spec.data_path.parent, f"the folder of the data file {spec.data_path.name}")]
+    if spec.source is not None:
+        out.append((spec.source.parent, f"the folder of the pipeline file {spec.source.name}"))
+    return out
 
 
 def _estimates(fits: Mapping[str, Any]):
@@ -177,12 +232,17 @@ def run(
     -------
     RunResult
     """
+    with _stop_signals_interrupt():
+        return _run(pipeline, out=out, quiet=quiet, crosscheck=crosscheck, write=write, executor=executor,
+                    stages=stages)
+
+
+def _run(pipeline, *, out, quiet: bool, crosscheck: bool, write: bool | None, executor, stages) -> RunResult:
     spec = load_pipeline(pipeline)
-    out_dir = pathlib.Path(out).resolve() if out is not None else default_out_dir(spec)
-    if write is False:
-        out_dir = None
+    out_dir = _out_dir(out, spec, write)
+    protected = _protected(spec)
     if out_dir is not None:
-        check_destination(out_dir)
+        check_destination(out_dir, protected=protected)
     stages = STAGES if stages is None else tuple(stages)
     if crosscheck:
         stages = with_stage("crosscheck", stage_crosscheck, table=stages)
@@ -197,16 +257,16 @@ def run(
 
         def files(folder: pathlib.Path):
             (folder / "results.json").write_text(to_json(results), encoding="utf-8")
-            level_table(results).to_csv(folder / "levels.csv", index=False)
-            estimates.to_csv(folder / "estimates.csv", index=False)
+            write_csv(level_table(results), folder / "levels.csv")
+            write_csv(estimates, folder / "estimates.csv")
             (folder / "pipeline.yaml").write_text(spec.text, encoding="utf-8")
             if state.scores_table is not None:
-                state.scores_table.to_csv(folder / "scores.csv", index=False)
+                write_csv(state.scores_table, folder / "scores.csv")
             write_reports(folder, results, estimates, context)
 
-        out_dir = write_outputs(out_dir, [files])
+        out_dir = write_outputs(out_dir, [files], protected=protected)
     if not quiet:
-        print(format_table(results))
+        print(terminal_text(format_table(results)))
         if out_dir is not None:
             try:
                 shown = out_dir.relative_to(pathlib.Path.cwd().resolve())

@@ -15,7 +15,9 @@ import re
 from typing import Any, Mapping, Sequence
 
 from jinja2 import Environment, PackageLoader, StrictUndefined
+from markupsafe import Markup
 
+from ..escape import terminal_text, visible
 from .parts import Section
 
 __all__ = ["MdRaw", "md_escape", "render_html", "render_markdown"]
@@ -33,10 +35,18 @@ def md_escape(value: Any) -> str:
         return ""
     if isinstance(value, MdRaw):
         return str(value)
-    s = str(value)
+    s = visible(str(value).replace("\n", " "))
     s = s.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
     s = _MD_SPECIAL.sub(r"\\\1", s)
     return s.replace("\n", " ")
+
+
+def _html_finalize(value: Any) -> Any:
+    """Control characters shown as escapes before autoescaping (markup built on purpose stays);
+    line breaks and tabs stay."""
+    if isinstance(value, Markup):
+        return Markup(terminal_text(value))
+    return terminal_text(value) if isinstance(value, str) else value
 
 
 def _fence(text: str) -> MdRaw:
@@ -56,7 +66,7 @@ def _env(*, html: bool) -> Environment:
         trim_blocks=True,
         lstrip_blocks=True,
         keep_trailing_newline=True,
-        finalize=None if html else md_escape,
+        finalize=_html_finalize if html else md_escape,
     )
     env.filters["b64"] = _b64
     env.globals["raw"] = MdRaw

@@ -32,6 +32,7 @@ from .formatting import (
     level_label,
     release_text,
 )
+from ..escape import csv_cell, visible
 from .inputs import ROBUST_NOTE_KEY, display_levels, display_results, new_releases, rule_name
 
 __all__ = [
@@ -190,9 +191,9 @@ def csv_text(columns: Sequence[str], rows: Sequence[Sequence[str]]) -> str:
     """CSV text of a header and rows of cells (the CSV writer of every paper table)."""
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(list(columns))
+    w.writerow([csv_cell(str(c)) for c in columns])
     for r in rows:
-        w.writerow([str(c).replace(MINUS, "-") for c in r])
+        w.writerow([csv_cell(str(c).replace(MINUS, "-")) for c in r])
     return buf.getvalue()
 
 
@@ -202,7 +203,7 @@ _TAG_START = re.compile(r"<(?=[A-Za-z/!?])")
 def _md_cell(s: str) -> str:
     """One Markdown table cell: pipes and backslashes escaped, a ``<`` that could open an
     HTML tag backslash-escaped (CommonMark), so ``< .001`` stays as printed."""
-    s = str(s).replace("\\", "\\\\").replace("|", "\\|").replace("\n", " ")
+    s = visible(str(s).replace("\n", " ")).replace("\\", "\\\\").replace("|", "\\|")
     return _TAG_START.sub(r"\\<", s)
 
 
@@ -224,7 +225,7 @@ _TEX = {
 
 def latex_escape(s: str) -> str:
     """Escape the LaTeX special characters of plain text."""
-    s = "".join(_TEX.get(ch, ch) for ch in str(s))
+    s = "".join(_TEX.get(ch, ch) for ch in visible(s))
     return s.replace("\u2212", "$-$").replace("\u0394", r"$\Delta$").replace("\u03c7\u00b2", r"$\chi^2$")
 
 

@@ -7,6 +7,7 @@ import pathlib
 
 import yaml
 
+from ..data.checks import far_out_values
 from ..data.read import read_table
 from ..errors import DataError, SpecificationError
 
@@ -41,7 +42,7 @@ def starter_pipeline(data: str | pathlib.Path, *, group: str, out: str | pathlib
         The pipeline YAML.
     """
     data = pathlib.Path(data)
-    frame = read_table(data)
+    frame = read_table(data, text_columns=(group,))
     if group not in frame.columns:
         raise DataError(
             f"Group column {group!r} is not in {data.name}; the columns are {', '.join(map(str, frame.columns[:12]))}"
@@ -62,9 +63,11 @@ def starter_pipeline(data: str | pathlib.Path, *, group: str, out: str | pathlib
         rel = os.path.relpath(data.resolve(), out.resolve().parent)
     else:
         rel = str(data)
+    codes = sorted({v for c in items for v in far_out_values(frame[c].to_numpy(dtype=float))})
+    codes = [int(v) if float(v).is_integer() else v for v in codes]
     body = {
         "title": f"{data.stem} by {group}",
-        "data": {"path": rel, "group": group, "missing": []},
+        "data": {"path": rel, "group": group, "missing": codes},
         "model": {"factors": {"factor1": items}},
         "estimator": "ml",
         "levels": ["configural", "metric", "scalar", "strict"],
@@ -76,6 +79,8 @@ def starter_pipeline(data: str | pathlib.Path, *, group: str, out: str | pathlib
         "# Starter pipeline written by `invariance new`. Edit model.factors (factor -> items);\n"
         "# add model.general for a general factor over all items (bifactor model).\n"
         "# data.missing lists codes meaning 'missing' (or give column -> codes).\n"
+        + (f"# data.missing was filled with {', '.join(map(str, codes))}: values far outside the items' other values\n"
+           "# (missing-value codes, as it looks); delete any that is a real answer.\n" if codes else "")
         + yaml.safe_dump(body, sort_keys=False, default_flow_style=None, width=100)
     )
     if out is not None:

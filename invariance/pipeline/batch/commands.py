@@ -20,6 +20,7 @@ import json
 import sys
 from pathlib import Path
 
+from ...escape import write_csv
 from .planfile import load_plan
 from .runner import Task, run_batch
 from .simulate import plan
@@ -112,7 +113,7 @@ def cmd_plan(args: argparse.Namespace) -> int:
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     (out / "plan.json").write_text(json.dumps(res.to_dict(), indent=2, default=float) + "\n")
-    res.replications.to_csv(out / "replications.csv", index=False)
+    write_csv(res.replications, out / "replications.csv")
     t = res.table()
     fmt = lambda v: "n/a" if v is None or v != v else f"{v:.3f}"
     t["rate"] = t["rate"].map(fmt)

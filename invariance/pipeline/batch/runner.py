@@ -39,6 +39,7 @@ import numpy as np
 
 from ...decide.verdict import supported_level
 from ...errors import InvarianceWarning, SpecificationError
+from ...escape import write_csv
 
 __all__ = ["Task", "TaskOutcome", "BatchResult", "run_batch", "task_seed", "highest_level", "Progress", "single_thread_blas"]
 
@@ -164,7 +165,7 @@ class BatchResult:
 
     def write_csv(self, path) -> None:
         """Write the summary table (batch.csv)."""
-        self.table().to_csv(path, index=False)
+        write_csv(self.table(), path)
 
 
 def _one_line(exc: BaseException) -> str:
