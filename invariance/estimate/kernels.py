@@ -251,8 +251,11 @@ def ml_hessian(
     A: np.ndarray,
     S: np.ndarray,
     mean: np.ndarray,
+    *,
+    fj: "FactoredJacobian | None" = None,
 ) -> np.ndarray:
-    """Exact (observed) Hessian of one group's ML discrepancy, local parameters.
+    """Exact (observed) Hessian of one group's ML discrepancy, local parameters
+    (``fj``: the factored Jacobian at this point, when already computed).
 
     With W = Sigma^-1, d = m - mu, C = S + dd', Gs = W - W C W, w = W d::
 
@@ -270,7 +273,8 @@ def ml_hessian(
     w = W @ d
     Cm = S + np.outer(d, d)
     Gs = W - W @ Cm @ W
-    fj = factor_jacobian(lay, mats, G, A)
+    if fj is None:
+        fj = factor_jacobian(lay, mats, G, A)
     kw = np.concatenate([w, fj.H.T @ w])
     He = factored_moment_hessian(fj, gram(fj.H, W), gram(fj.H, W @ Cm @ W), kw)
     He += second_derivative_part(lay, mats, G, A, Gs, w)
