@@ -42,7 +42,8 @@ from ..data.polychoric import _single_thread
 from ..data.ordinal_stats import OrdinalStats
 from .result import FitResult
 from .dwls import DWLSObjective, ordinal_start_values
-from .ml import diagnose, estimation_record
+from .kernels import implied_moments
+from .solution import diagnose, estimation_record
 from .optimize import minimize
 from .starts import DEFAULT_STARTS, run_starts, variance_bounds
 
@@ -174,8 +175,6 @@ def _fit_dwls(spec, stats, *, start, max_iter, variances, starts, seed) -> FitRe
     problems = []
     matrices = tuple(obj.matrices(g, theta) for g in range(len(spec.groups)))
     sigmas = []
-    from .kernels import implied_moments
-
     mus = []
     for m in matrices:
         s_, mu_, _, _ = implied_moments(m[:6])
