@@ -15,14 +15,13 @@ from __future__ import annotations
 
 import dataclasses
 import functools
-import warnings
 
 import numpy as np
 from scipy import stats as _st
 
 from ..data.moments import SampleStats
 from ..data.ordinal_stats import OrdinalStats
-from ..errors import ConvergenceWarning, EstimationError, ImproperSolutionWarning, SpecificationError
+from ..errors import EstimationError, SpecificationError
 from ..data.mcar import missing_report
 from .indices import cfi as _cfi
 from .indices import compute_fit, information_criteria
@@ -36,7 +35,7 @@ from .linalg import arrow_inverse
 from .objective import MLObjective
 from .robust import H1Moments, baseline_trace, robust_indices, sandwich, scaling_trace, score_products
 from .runaway import VARIANCE_CHOICES, weak_identification
-from .solution import diagnose, estimation_record, observed_information
+from .solution import diagnose, estimation_record, observed_information, warn_problems
 from .separate import fit_by_group, shares_nothing
 from .start import start_values
 from .starts import DEFAULT_STARTS, general_factors, run_starts, variance_bounds
@@ -186,18 +185,6 @@ def _standard_errors(spec, obj, out, matrices, sigmas, *, information: str, esti
     return info_se, problems, acov
 
 
-def _warn(spec: ModelSpec, out, problems: list[str], notes: list[str]) -> None:
-    """Emit the convergence, improper-solution and estimation-note warnings."""
-    if not out.converged:
-        problems.insert(0, f"not converged: {out.message}")
-        warnings.warn(f"{spec.level or 'model'}: {out.message}", ConvergenceWarning, stacklevel=4)
-    for p in problems:
-        if not p.startswith("not converged"):
-            warnings.warn(f"{spec.level or 'model'}: {p}", ImproperSolutionWarning, stacklevel=4)
-    for note in notes:
-        warnings.warn(f"{spec.level or 'model'}: {note}", ConvergenceWarning, stacklevel=4)
-
-
 def _finish(spec, stats, obj, out, *, information: str, estimator: str, estimation: dict) -> FitResult:
     """Standard errors, diagnosis, fit statistics and the result of one optimizer outcome."""
     theta = out.x
@@ -207,7 +194,7 @@ def _finish(spec, stats, obj, out, *, information: str, estimator: str, estimati
     mus = tuple(mu for _, mu in moments)
     info_se, problems, acov = _standard_errors(spec, obj, out, matrices, sigmas, information=information,
                                                estimation=estimation)
-    _warn(spec, out, problems, estimation["notes"])
+    warn_problems(spec, out, problems, estimation["notes"])
     fs = compute_fit(out.fun, spec.df, spec.n_params, obj.S, obj.mean, sigmas, mus, obj.n)
     extra: dict = {"estimation": estimation}
     if isinstance(obj, FIMLObjective):

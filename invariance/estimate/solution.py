@@ -4,14 +4,17 @@ solution (:func:`diagnose`) and the record of how it was estimated
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 
+from ..errors import ConvergenceWarning, ImproperSolutionWarning
 from ..model.spec import ModelSpec
 from .linalg import arrow_min_eigen
 from .runaway import describe_bounds, describe_runaway
 from .starts import general_factors
 
-__all__ = ["observed_information", "diagnose", "estimation_record"]
+__all__ = ["observed_information", "diagnose", "estimation_record", "warn_problems"]
 
 
 def observed_information(obj, theta: np.ndarray, h: float = 1e-6) -> np.ndarray:
@@ -91,3 +94,16 @@ def estimation_record(spec: ModelSpec, out, record, lower, *, options: dict) -> 
     return {"variances": options["variances"], "optimum": optimum, "starts": record.to_dict(),
             "at_bound": at_bound, "runaway": runaway, "notes": notes,
             "options": {k: options[k] for k in ("variances", "starts", "seed")}}
+
+
+def warn_problems(spec: ModelSpec, out, problems: list[str], notes=(), *, stacklevel: int = 4) -> None:
+    """Emit the convergence, improper-solution and estimation-note warnings of a fit;
+    a failed convergence is put first in ``problems``."""
+    if not out.converged:
+        problems.insert(0, f"not converged: {out.message}")
+        warnings.warn(f"{spec.level or 'model'}: {out.message}", ConvergenceWarning, stacklevel=stacklevel)
+    for p in problems:
+        if not p.startswith("not converged"):
+            warnings.warn(f"{spec.level or 'model'}: {p}", ImproperSolutionWarning, stacklevel=stacklevel)
+    for note in notes:
+        warnings.warn(f"{spec.level or 'model'}: {note}", ConvergenceWarning, stacklevel=stacklevel)
