@@ -24,10 +24,8 @@ from .kernels import (
     group_matrices,
     implied_moments,
     layout_jacobians,
-    ml_derivatives,
-    ml_discrepancy,
-    ml_hessian,
 )
+from .ml_kernels import ml_derivatives, ml_discrepancy, ml_hessian
 
 __all__ = ["MLObjective"]
 
