@@ -69,22 +69,16 @@ def fit(
     information
         ``"expected"`` (default) or ``"observed"`` information for standard errors.
     start
-        Warm start (e.g. a nested level's estimates); the analytic start and the
-        alternative starts follow when it fails (:mod:`invariance.estimate.starts`).
+        Warm start; the analytic and alternative starts follow when it fails.
     max_iter
         Iteration limit of the scoring runs.
     estimator
-        ``"ml"`` (normal theory, default) or ``"ml_robust"``: sandwich ``acov`` from
-        casewise scores, and in ``extra`` the scaled statistic ``chi2_scaled``, its
-        ``scaling_factor`` and ``pvalue_scaled``, and ``cfi_robust``, ``tli_robust``,
-        ``rmsea_robust``; the normal-theory covariance stays in ``extra["acov_normal"]``.
-        Full-information ML is used automatically when the statistics hold missing
-        values; ``extra["missing"]`` then reports, per group, the cases used, the
-        patterns, the coverage of each item and Little's MCAR test.
+        ``"ml"`` (normal theory, default) or ``"ml_robust"`` (sandwich ``acov``, scaled
+        statistic and robust indices in ``extra``; see the module docstring). Missing
+        values in ``stats`` mean full-information ML, reported in ``extra["missing"]``.
     variances
-        ``"unrestricted"`` (default): a solution with negative variances, or one that
-        runs away, is reported as improper; ``"nonnegative"``: residual and factor
-        variances are estimated within [0, inf) and estimates at 0 are named.
+        ``"unrestricted"`` (default; negative variances or a run-away are reported as
+        improper) or ``"nonnegative"`` (variances estimated within [0, inf)).
     starts
         Alternative starts for bifactor and second-order models (0: the analytic start only).
     seed
@@ -93,15 +87,11 @@ def fit(
     Returns
     -------
     FitResult
-        ``extra["estimation"]`` says what was estimated (bounded or not), the starts
-        tried and the distinct optima found, estimates at a bound and run-away
-        parameters. A model whose groups share no parameter (configural) is fitted
-        group by group; ``extra["groups"]`` then holds the single-group results.
+        ``extra["estimation"]``: what was estimated, the starts and optima, estimates
+        at a bound, run-away parameters. Groups sharing no parameter (configural) are
+        fitted one by one (``extra["groups"]``); ordinal statistics go to
+        :func:`~invariance.estimate.dwls_robust.fit_dwls`.
 
-    Notes
-    -----
-    Ordinal statistics (:class:`~invariance.ordinal.OrdinalStats`) dispatch to the DWLS
-    estimator, :func:`invariance.estimate.dwls_robust.fit_dwls`.
     """
     _check_options(variances=variances, estimator=estimator, information=information,
                    ordinal=isinstance(stats, OrdinalStats))
