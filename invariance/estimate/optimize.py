@@ -28,7 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize as _sopt
 
-from .linalg import arrow_solve
+from .linalg import arrow_solve, pd_solve
 
 __all__ = ["STATUS", "RUNAWAY_WINDOW", "Outcome", "minimize", "running_away"]
 
@@ -80,14 +80,12 @@ def _solve(info: np.ndarray, grad: np.ndarray, part=None) -> np.ndarray:
     growing ridge when info is (near) singular or indefinite."""
     scale = max(np.abs(np.diag(info)).max(), 1.0)
     ridge = 0.0
-    eye = np.eye(info.shape[0])
     for _ in range(8):
         try:
-            M = info + ridge * scale * eye if ridge else info
+            M = info + ridge * scale * np.eye(info.shape[0]) if ridge else info
             if part is not None:
                 return -arrow_solve(M, grad, part)
-            c = np.linalg.cholesky(M)
-            return -np.linalg.solve(c.T, np.linalg.solve(c, grad))
+            return -pd_solve(M, grad)
         except np.linalg.LinAlgError:
             ridge = 1e-8 if not ridge else ridge * 100
     return -np.linalg.lstsq(info, grad, rcond=None)[0]
@@ -127,8 +125,7 @@ def _direction(obj, x, f, g, h, part, newton_ok: bool, free: np.ndarray | None) 
             try:
                 if not newton_ok:
                     raise np.linalg.LinAlgError
-                c = np.linalg.cholesky(obj.hessian(x)[sub])
-                step[free] = -np.linalg.solve(c.T, np.linalg.solve(c, g[free]))
+                step[free] = -pd_solve(obj.hessian(x)[sub], g[free])
             except np.linalg.LinAlgError:
                 step[free] = _solve(h[sub], g[free])
         return step, h
@@ -137,8 +134,7 @@ def _direction(obj, x, f, g, h, part, newton_ok: bool, free: np.ndarray | None) 
             hx = obj.hessian(x)
             if part is not None:
                 return -arrow_solve(hx, g, part), h
-            c = np.linalg.cholesky(hx)
-            return -np.linalg.solve(c.T, np.linalg.solve(c, g)), h
+            return -pd_solve(hx, g), h
         except np.linalg.LinAlgError:
             pass
     if h is None:
