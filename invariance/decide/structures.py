@@ -14,8 +14,11 @@ just-identified in its second-order part (three loadings for three factor
 covariances), so it fits exactly as the correlated three-factor model; a single
 factor given as one factor is the correlated model. These are named, and any other
 pair that fits identically (same df, same chi-square) is named as observed.
-A second-order factor over two first-order factors is not identified without an extra
-constraint: :class:`~invariance.model.Structure` refuses it before anything is fitted.
+A second-order factor over two first-order factors is identified only with an extra
+constraint: its two higher-order loadings are held equal (one shared label, see
+:meth:`~invariance.model.Structure.higher_order_label`). It then has as many free
+parameters as the one factor covariance it replaces and fits exactly as the two
+correlated factors whenever their correlation is non-negative; this is named too.
 
 :func:`group_fit` fits the chosen structure in each group separately, before the
 configural model, and warns by name about any group that does not fit acceptably.
@@ -98,6 +101,18 @@ def equivalences(structures: Mapping[str, Structure]) -> list[dict]:
     out = []
     cor = structures.get("correlated")
     so = structures.get("second_order")
+    if cor is not None and so is not None and len(so.factors) == 2:
+        out.append(
+            {
+                "structures": ["second_order", "correlated"],
+                "reason": (
+                    "a second-order factor over two first-order factors, with its two loadings held "
+                    "equal, has one free parameter for the one factor covariance, so it fits exactly "
+                    "as the two correlated factors (when their correlation is not negative)"
+                ),
+                "source": "known identity (Kline 2016, from memory)",
+            }
+        )
     if cor is not None and so is not None and len(so.factors) == 3:
         out.append(
             {

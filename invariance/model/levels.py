@@ -123,7 +123,7 @@ def build_level(
         # second-order loadings (B entries) and structural paths
         if structure.family == "second_order":
             for f in structure.factors:
-                lab = f"path:{f}<-{structure.general}"
+                lab = structure.higher_order_label(f)
                 add(g, BETA, f_ix[f], f_ix[structure.general], True, lab if shared_load else lab + tag)
         for out, pred in structure.regressions:
             add(g, BETA, f_ix[out], f_ix[pred], True, f"path:{out}<-{pred}{tag}")
