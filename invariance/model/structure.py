@@ -14,8 +14,9 @@ Families
     First-order factors whose covariances are explained by one higher-order factor
     (named by ``general``); the higher-order loadings are regression entries (B).
     Over exactly two first-order factors the two higher-order loadings share one
-    label (held equal), which identifies the model; it then fits exactly as the two
-    correlated factors with a non-negative correlation (same chi-square and df).
+    label (held equal), which identifies the model; at the configural and metric levels
+    it then fits exactly as the two correlated factors with a non-negative correlation
+    (same chi-square and df).
 ``bifactor``
     A general factor (``general``) over all items plus orthogonal specific factors.
 
