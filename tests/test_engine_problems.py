@@ -88,8 +88,18 @@ def test_release_is_one_call_and_changes_df():
 
 
 def test_bad_structures_are_refused():
-    with pytest.raises(inv.SpecificationError, match="not identified"):
-        inv.Structure({"a": ["x1", "x2"], "b": ["x3", "x4"]}, family="second_order", general="g")
+    with pytest.raises(inv.SpecificationError, match="at least two first-order factors"):
+        inv.Structure({"a": ["x1", "x2"]}, family="second_order", general="g")
+    # over two first-order factors the two higher-order loadings are one parameter, so the
+    # model has as many free parameters as the correlated one at configural and metric (counting
+    # identity); from scalar on it has one mean per group fewer, as its first-order factor
+    # intercepts are held at 0 (Chen, Sousa & West 2005; METHODS section 3)
+    two = {"a": ["x1", "x2", "x3"], "b": ["x4", "x5", "x6"]}
+    so = inv.Structure(two, family="second_order", general="g")
+    cor = inv.Structure(two, family="correlated")
+    for level, fewer in (("configural", 0), ("metric", 0), ("scalar", 1), ("strict", 1)):
+        n_so, n_cor = (inv.build_level(s, ["p", "q"], level).n_params for s in (so, cor))
+        assert n_so == n_cor - fewer
     with pytest.raises(inv.SpecificationError, match="unknown factor"):
         inv.Structure({"a": ["x1", "x2"]}, regressions=(("a", "zz"),))
     with pytest.raises(inv.SpecificationError, match="needs the name"):

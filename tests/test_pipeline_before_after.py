@@ -72,11 +72,18 @@ def test_default_id_is_row_number(hs_dir):
     assert "configural" in res.to_dict()["scores"]["statement"]
 
 
-def test_two_factor_second_order_refused(hs_dir):
-    doc = hs_doc(str(hs_dir / "hs.csv"), levels=["configural"], compare={"structures": ["second_order"]})
+def test_two_factor_second_order_named_equivalent(hs_dir):
+    # identity: with its two loadings held equal, the second-order model over two factors fits
+    # exactly as the two correlated factors (same chi-square and df), by school as well
+    doc = hs_doc(str(hs_dir / "hs.csv"), levels=["configural"],
+                 compare={"structures": ["correlated", "second_order"]})
     doc["model"]["factors"] = {"visual": ["x1", "x2", "x3"], "textual": ["x4", "x5", "x6"]}
-    with pytest.raises(SpecificationError, match="compare.structures: .*only two first-order factors is not identified"):
-        invariance.run(doc, quiet=True)
+    data = invariance.run(doc, quiet=True).to_dict()
+    rows = {(r["structure"], r["group"]): r for r in data["structures"]}
+    for g in ("Grant-White", "Pasteur", "all"):
+        assert rows[("second_order", g)]["df"] == rows[("correlated", g)]["df"]
+        assert rows[("second_order", g)]["chi2"] == pytest.approx(rows[("correlated", g)]["chi2"], abs=1e-3)
+    assert any("equivalent" in n for n in data["structure_notes"]["notes"])
 
 
 def test_bad_sections(hs_dir):

@@ -79,10 +79,28 @@ def test_second_order_loadings_against_semopy(one_group):
         assert mine[f] == pytest.approx(ref[f], abs=5e-3)
 
 
-def test_two_factor_second_order_refused():
-    # not identified without a constraint: refused before fitting, with a clear message
-    with pytest.raises(SpecificationError, match="only two first-order factors is not identified"):
-        compare_structures(HS, {"a": ("x1", "x2", "x3"), "b": ("x4", "x5", "x6")}, ["correlated", "second_order"])
+TWO = {"visual": ("x1", "x2", "x3"), "textual": ("x4", "x5", "x6")}
+
+
+def test_two_factor_second_order_equals_correlated():
+    # identity (equal higher-order loadings: one parameter for one covariance; Kline 2016,
+    # from memory): the second-order model over two factors fits exactly as two correlated factors
+    cmp_ = compare_structures(HS, TWO, ["correlated", "second_order"])
+    rows = {r["structure"]: r for r in cmp_.rows}
+    assert rows["second_order"]["df"] == rows["correlated"]["df"] == 8
+    assert rows["second_order"]["chi2"] == pytest.approx(rows["correlated"]["chi2"], abs=1e-4)
+    known = [e for e in cmp_.equivalent if set(e["structures"]) == {"second_order", "correlated"}]
+    assert known and "two first-order factors" in known[0]["reason"]
+    # the two higher-order loadings are one parameter
+    est = cmp_.results[("second_order", "all")].estimates()
+    paths = est[est.parameter == "path"]
+    assert len(paths) == 2 and paths["estimate"].nunique() == 1
+    # independent reference: semopy 2.3 fit of the correlated two-factor model (ML)
+    m = semopy.Model("visual =~ x1 + x2 + x3\ntextual =~ x4 + x5 + x6")
+    m.fit(HS[[f"x{k}" for k in range(1, 7)]])
+    st = semopy.calc_stats(m)
+    assert rows["correlated"]["chi2"] == pytest.approx(float(st["chi2"].iloc[0]), rel=1e-3)
+    assert rows["correlated"]["df"] == int(st["DoF"].iloc[0])
 
 
 def test_build_structure_defaults():

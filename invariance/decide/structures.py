@@ -14,8 +14,11 @@ just-identified in its second-order part (three loadings for three factor
 covariances), so it fits exactly as the correlated three-factor model; a single
 factor given as one factor is the correlated model. These are named, and any other
 pair that fits identically (same df, same chi-square) is named as observed.
-A second-order factor over two first-order factors is not identified without an extra
-constraint: :class:`~invariance.model.Structure` refuses it before anything is fitted.
+A second-order factor over two first-order factors is identified only with an extra
+constraint: its two higher-order loadings are held equal (one shared label, see
+:meth:`~invariance.model.Structure.higher_order_label`). It then has as many free
+parameters as the one factor covariance it replaces and fits exactly as the two
+correlated factors whenever their correlation is non-negative; this is named too.
 
 :func:`group_fit` fits the chosen structure in each group separately, before the
 configural model, and warns by name about any group that does not fit acceptably.
@@ -93,23 +96,32 @@ def build_structure(
     return Structure(factors=factors, family=family, general=gen, residual_covariances=rc)
 
 
+# Second-order structures known to fit exactly as the correlated one, by the number of
+# first-order factors: (reason, source).
+_SECOND_ORDER_IDENTITIES = {
+    2: (
+        "a second-order factor over two first-order factors, with its two loadings held "
+        "equal, has one free parameter for the one factor covariance, so it fits exactly "
+        "as the two correlated factors (when their correlation is not negative)",
+        "known identity (Kline 2016, from memory)",
+    ),
+    3: (
+        "a second-order factor over three first-order factors is just-identified in its "
+        "second-order part (three loadings for three factor covariances), so it fits "
+        "exactly as the correlated three-factor model",
+        "known identity (Rindskopf & Rose 1988, from memory)",
+    ),
+}
+
+
 def equivalences(structures: Mapping[str, Structure]) -> list[dict]:
     """Pairs of requested structures known to be equivalent (same implied moments)."""
     out = []
     cor = structures.get("correlated")
     so = structures.get("second_order")
-    if cor is not None and so is not None and len(so.factors) == 3:
-        out.append(
-            {
-                "structures": ["second_order", "correlated"],
-                "reason": (
-                    "a second-order factor over three first-order factors is just-identified in its "
-                    "second-order part (three loadings for three factor covariances), so it fits "
-                    "exactly as the correlated three-factor model"
-                ),
-                "source": "known identity (Rindskopf & Rose 1988, from memory)",
-            }
-        )
+    if cor is not None and so is not None and len(so.factors) in _SECOND_ORDER_IDENTITIES:
+        reason, source = _SECOND_ORDER_IDENTITIES[len(so.factors)]
+        out.append({"structures": ["second_order", "correlated"], "reason": reason, "source": source})
     single = structures.get("single")
     if cor is not None and single is not None and len(cor.factors) == 1:
         out.append(

@@ -189,6 +189,46 @@ def _comparisons(layouts, theta: np.ndarray, acov: np.ndarray, r: int) -> tuple[
     return vals.reshape(-1), se.reshape(-1)
 
 
+def _comparable(factor: str, inv: dict, *, scalar_ok: bool, min_items: int, notes: list[str]) -> tuple[bool, bool]:
+    """Whether the means and the variances of ``factor`` may be compared across groups,
+    by the number of invariant items it keeps; each refusal is added to ``notes``."""
+    n_s, n_l = len(inv["scalar"]), len(inv["loading"])
+    mean_ok = scalar_ok and n_s >= min_items
+    if scalar_ok and not mean_ok:
+        notes.append(
+            f"means of {factor} not compared: it keeps {n_s} item(s) with equal loading and intercept; "
+            f"at least {min_items} are needed (Byrne, Shavelson & Muthen 1989)"
+        )
+    var_ok = n_l >= min_items
+    if not var_ok:
+        notes.append(f"variances of {factor} not compared: it keeps {n_l} equal loading(s); at least {min_items} are needed")
+    return mean_ok, var_ok
+
+
+def _wald_p(z: float) -> float:
+    """Two-sided normal p-value of ``z`` (nan when ``z`` is not finite)."""
+    return float(2 * _st.norm.sf(abs(z))) if np.isfinite(z) else float("nan")
+
+
+def _mean_difference(factor: str, group: str, ref: str, vals: np.ndarray, se: np.ndarray, k: int, k_std: int,
+                     zq: float) -> "MeanDifference":
+    """Mean difference of one factor and group against ``ref`` (entry ``k``; its
+    standardized version at ``k_std``) with its Wald test and interval."""
+    d, s = vals[k], se[k]
+    z = d / s if s > 0 else np.nan
+    return MeanDifference(factor, group, ref, float(d), float(s), float(z), _wald_p(z),
+                          float(d - zq * s), float(d + zq * s), float(vals[k_std]), float(se[k_std]))
+
+
+def _variance_ratio(factor: str, group: str, ref: str, log_ratio: float, se_log: float, zq: float) -> "VarianceRatio":
+    """Variance ratio of one factor and group against ``ref`` from its log and that log's
+    standard error (delta-method SE of the ratio; interval from the log scale)."""
+    ratio = float(np.exp(log_ratio))
+    z = log_ratio / se_log if se_log > 0 else np.nan
+    return VarianceRatio(factor, group, ref, ratio, float(ratio * se_log), float(z), _wald_p(z),
+                         float(np.exp(log_ratio - zq * se_log)), float(np.exp(log_ratio + zq * se_log)))
+
+
 def compare_latent(fit: FitResult, *, reference: str | None = None, min_items: int = 2, level: float = 0.95) -> LatentComparison:
     """Latent mean differences and variance ratios of a fitted (partial) scalar level.
 
@@ -221,36 +261,13 @@ def compare_latent(fit: FitResult, *, reference: str | None = None, min_items: i
     if not scalar_ok:
         notes.append(f"latent means are compared only once scalar invariance holds; this level is {spec.level or 'unnamed'}")
     for f_i, f in enumerate(spec.factors):
-        n_s, n_l = len(inv[f]["scalar"]), len(inv[f]["loading"])
-        mean_ok = scalar_ok and n_s >= min_items
-        if scalar_ok and not mean_ok:
-            notes.append(
-                f"means of {f} not compared: it keeps {n_s} item(s) with equal loading and intercept; "
-                f"at least {min_items} are needed (Byrne, Shavelson & Muthen 1989)"
-            )
-        var_ok = n_l >= min_items
-        if not var_ok:
-            notes.append(f"variances of {f} not compared: it keeps {n_l} equal loading(s); at least {min_items} are needed")
+        mean_ok, var_ok = _comparable(f, inv[f], scalar_ok=scalar_ok, min_items=min_items, notes=notes)
         for g, gname in enumerate(spec.groups):
             if g == r:
                 continue
             k = g * m + f_i
             if mean_ok:
-                d, s = vals[k], se[k]
-                z = d / s if s > 0 else np.nan
-                means.append(MeanDifference(
-                    f, gname, ref, float(d), float(s), float(z),
-                    float(2 * _st.norm.sf(abs(z))) if np.isfinite(z) else float("nan"),
-                    float(d - zq * s), float(d + zq * s),
-                    float(vals[G * m + k]), float(se[G * m + k]),
-                ))
+                means.append(_mean_difference(f, gname, ref, vals, se, k, G * m + k, zq))
             if var_ok:
-                lr, sl = vals[2 * G * m + k], se[2 * G * m + k]
-                ratio = float(np.exp(lr))
-                z = lr / sl if sl > 0 else np.nan
-                ratios.append(VarianceRatio(
-                    f, gname, ref, ratio, float(ratio * sl), float(z),
-                    float(2 * _st.norm.sf(abs(z))) if np.isfinite(z) else float("nan"),
-                    float(np.exp(lr - zq * sl)), float(np.exp(lr + zq * sl)),
-                ))
+                ratios.append(_variance_ratio(f, gname, ref, vals[2 * G * m + k], se[2 * G * m + k], zq))
     return LatentComparison(spec.level, ref, tuple(means), tuple(ratios), inv, tuple(notes))

@@ -89,6 +89,17 @@ def build_level(
         return build_ordinal_level(structure, groups, level, n_categories, reference=reference,
                                    released=released, fixed_means=fixed_means)
     rank = level_rank(level)
+    groups, ref = _checked_groups(groups, reference)
+    rows = _LevelRows(structure, rank)
+    for g, gname in enumerate(groups):
+        rows.add_group(g, f"|{gname}", is_ref=gname == ref, fixed_means=fixed_means)
+    spec = ModelSpec.from_rows(rows.rows, items=structure.items, factors=structure.factor_names,
+                               groups=groups, level=level, reference=ref)
+    return spec.release_all(released)
+
+
+def _checked_groups(groups: Sequence[str], reference: str | None) -> tuple[tuple[str, ...], str]:
+    """Group names as strings and the reference group, refusing empty, repeated or unknown names."""
     groups = tuple(str(g) for g in groups)
     if not groups:
         raise SpecificationError("At least one group is needed to build a model.")
@@ -99,69 +110,95 @@ def build_level(
         raise SpecificationError(
             f"The reference group {ref!r} is not among the groups ({', '.join(groups)})."
         )
-    items = structure.items
-    factors = structure.factor_names
-    it_ix = {v: k for k, v in enumerate(items)}
-    f_ix = {v: k for k, v in enumerate(factors)}
-    endo = set(structure.endogenous)
-    rows: list[tuple] = []  # (group, matrix, row, col, free, label, value)
+    return groups, ref
 
-    def add(g, mat, r, c, free, label="", value=np.nan):
-        rows.append((g, mat, r, c, free, label if free else "", value if (free or not np.isnan(value)) else 0.0))
 
-    shared_load = rank >= 1
-    shared_int = rank >= 2
-    shared_res = rank >= 3
-    for g, gname in enumerate(groups):
-        is_ref = gname == ref
-        tag = f"|{gname}"
-        # loadings
-        for f, its in structure.measured_by.items():
+class _LevelRows:
+    """The parameter rows of one continuous-item level, collected group by group.
+
+    Each row is ``(group, matrix, row, col, free, label, value)`` as read by
+    :meth:`ModelSpec.from_rows`. A label without a ``|group`` tag is shared by every
+    group (an equality constraint); the level's rank decides which kinds are shared.
+    """
+
+    def __init__(self, structure: Structure, rank: int) -> None:
+        self.structure = structure
+        self.items = structure.items
+        self.factors = structure.factor_names
+        self.it_ix = {v: k for k, v in enumerate(self.items)}
+        self.f_ix = {v: k for k, v in enumerate(self.factors)}
+        self.shared_load = rank >= 1
+        self.shared_int = rank >= 2
+        self.shared_res = rank >= 3
+        self.rank = rank
+        self.rows: list[tuple] = []
+
+    def add(self, g: int, mat: str, r: int, c: int, free: bool, label: str = "", value: float = np.nan) -> None:
+        """One entry: free ones carry a label, fixed ones a value (0 when none is given)."""
+        fixed_value = value if (free or not np.isnan(value)) else 0.0
+        self.rows.append((g, mat, r, c, free, label if free else "", fixed_value))
+
+    def add_group(self, g: int, tag: str, *, is_ref: bool, fixed_means: Sequence[str]) -> None:
+        """Every entry of group ``g`` (``tag`` is ``|name``, appended to group-specific labels)."""
+        self._loadings_and_paths(g, tag)
+        self._factor_variances(g, tag, is_ref=is_ref)
+        self._residuals(g, tag)
+        self._intercepts_and_means(g, tag, is_ref=is_ref, fixed_means=fixed_means)
+
+    def _loadings_and_paths(self, g: int, tag: str) -> None:
+        """Item loadings, second-order loadings (B entries) and structural paths."""
+        st, f_ix = self.structure, self.f_ix
+        for f, its in st.measured_by.items():
             for it in its:
                 lab = f"loading:{it}<-{f}"
-                add(g, LAMBDA, it_ix[it], f_ix[f], True, lab if shared_load else lab + tag)
-        # second-order loadings (B entries) and structural paths
-        if structure.family == "second_order":
-            for f in structure.factors:
-                lab = f"path:{f}<-{structure.general}"
-                add(g, BETA, f_ix[f], f_ix[structure.general], True, lab if shared_load else lab + tag)
-        for out, pred in structure.regressions:
-            add(g, BETA, f_ix[out], f_ix[pred], True, f"path:{out}<-{pred}{tag}")
-        # factor (disturbance) variances
+                self.add(g, LAMBDA, self.it_ix[it], f_ix[f], True, lab if self.shared_load else lab + tag)
+        if st.family == "second_order":
+            for f in st.factors:
+                lab = st.higher_order_label(f)
+                self.add(g, BETA, f_ix[f], f_ix[st.general], True, lab if self.shared_load else lab + tag)
+        for out, pred in st.regressions:
+            self.add(g, BETA, f_ix[out], f_ix[pred], True, f"path:{out}<-{pred}{tag}")
+
+    def _factor_variances(self, g: int, tag: str, *, is_ref: bool) -> None:
+        """Factor (disturbance) variances, and covariances among exogenous factors
+        (correlated / single families)."""
+        f_ix, factors = self.f_ix, self.factors
         for f in factors:
-            if rank == 0 or is_ref:
-                add(g, PSI, f_ix[f], f_ix[f], False, value=1.0)
+            if self.rank == 0 or is_ref:
+                self.add(g, PSI, f_ix[f], f_ix[f], False, value=1.0)
             else:
-                add(g, PSI, f_ix[f], f_ix[f], True, f"variance:{f}{tag}")
-        # factor covariances among exogenous factors (correlated / single families)
-        if structure.family in ("correlated", "single"):
+                self.add(g, PSI, f_ix[f], f_ix[f], True, f"variance:{f}{tag}")
+        if self.structure.family in ("correlated", "single"):
+            endo = set(self.structure.endogenous)
             exo = [f for f in factors if f not in endo]
             for a in range(len(exo)):
                 for b in range(a):
                     i, j = f_ix[exo[a]], f_ix[exo[b]]
                     r, c = max(i, j), min(i, j)
-                    add(g, PSI, r, c, True, f"covariance:{factors[r]}~{factors[c]}{tag}")
-        # residual variances and covariances
+                    self.add(g, PSI, r, c, True, f"covariance:{factors[r]}~{factors[c]}{tag}")
+
+    def _residuals(self, g: int, tag: str) -> None:
+        """Residual variances and covariances (shared at ``strict``)."""
+        items, it_ix = self.items, self.it_ix
         for it in items:
             lab = f"residual:{it}"
-            add(g, THETA, it_ix[it], it_ix[it], True, lab if shared_res else lab + tag)
-        for a, b in structure.residual_covariances:
+            self.add(g, THETA, it_ix[it], it_ix[it], True, lab if self.shared_res else lab + tag)
+        for a, b in self.structure.residual_covariances:
             i, j = it_ix[a], it_ix[b]
             r, c = max(i, j), min(i, j)
             lab = f"residual_cov:{items[r]}~{items[c]}"
-            add(g, THETA, r, c, True, lab if shared_res else lab + tag)
-        # intercepts
-        for it in items:
+            self.add(g, THETA, r, c, True, lab if self.shared_res else lab + tag)
+
+    def _intercepts_and_means(self, g: int, tag: str, *, is_ref: bool, fixed_means: Sequence[str]) -> None:
+        """Item intercepts; factor means, free only at the top of the hierarchy at scalar+."""
+        st = self.structure
+        for it in self.items:
             lab = f"intercept:{it}"
-            add(g, NU, it_ix[it], 0, True, lab if shared_int else lab + tag)
-        # factor means: only the top of the hierarchy gets a free mean at scalar+
-        for f in factors:
-            top = not (structure.family == "second_order" and f in structure.factors)
-            if rank >= 2 and not is_ref and top and f not in fixed_means:
-                add(g, ALPHA, f_ix[f], 0, True, f"mean:{f}{tag}")
-    spec = ModelSpec.from_rows(rows, items=items, factors=factors, groups=groups, level=level, reference=ref)
-    spec = spec.release_all(released)
-    return spec
+            self.add(g, NU, self.it_ix[it], 0, True, lab if self.shared_int else lab + tag)
+        for f in self.factors:
+            top = not (st.family == "second_order" and f in st.factors)
+            if self.rank >= 2 and not is_ref and top and f not in fixed_means:
+                self.add(g, ALPHA, self.f_ix[f], 0, True, f"mean:{f}{tag}")
 
 
 @dataclass(frozen=True)

@@ -164,7 +164,7 @@ def build_ordinal_level(
                 add(g, LAMBDA, it_ix[it], f_ix[f], True, lab if shared else lab + tag)
         if structure.family == "second_order":
             for f in structure.factors:
-                lab = f"path:{f}<-{structure.general}"
+                lab = structure.higher_order_label(f)
                 add(g, BETA, f_ix[f], f_ix[structure.general], True, lab if rank >= 2 else lab + tag)
         for out, pred in structure.regressions:
             add(g, BETA, f_ix[out], f_ix[pred], True, f"path:{out}<-{pred}{tag}")

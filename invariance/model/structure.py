@@ -13,6 +13,10 @@ Families
 ``second_order``
     First-order factors whose covariances are explained by one higher-order factor
     (named by ``general``); the higher-order loadings are regression entries (B).
+    Over exactly two first-order factors the two higher-order loadings share one
+    label (held equal), which identifies the model; at the configural and metric levels
+    it then fits exactly as the two correlated factors with a non-negative correlation
+    (same chi-square and df).
 ``bifactor``
     A general factor (``general``) over all items plus orthogonal specific factors.
 
@@ -112,11 +116,6 @@ class Structure:
                 raise SpecificationError(
                     "A second-order factor needs at least two first-order factors."
                 )
-            if len(factors) == 2:
-                raise SpecificationError(
-                    "A second-order factor over only two first-order factors is not identified "
-                    "without an extra constraint; use the correlated family instead."
-                )
 
     def _check_regressions(self) -> None:
         """Every regression names two different known factors."""
@@ -169,6 +168,17 @@ class Structure:
         if self.family == "second_order":
             outs = list(self.factors) + outs
         return tuple(dict.fromkeys(outs))
+
+    def higher_order_label(self, factor: str) -> str:
+        """Label of the higher-order loading of ``factor`` on the ``general`` factor.
+
+        Over exactly two first-order factors both loadings get one shared label, so
+        they are held equal: that constraint identifies the second-order part.
+        """
+        if len(self.factors) == 2:
+            first, second = self.factors
+            return f"path:{first}={second}<-{self.general}"
+        return f"path:{factor}<-{self.general}"
 
     def with_items(self, order: Sequence[str]) -> "Structure":
         """The same structure with the item order of every factor following ``order``."""

@@ -348,34 +348,81 @@ def score_tests(
     stats = _align(fit, stats)
     cons = constraints(spec, parameters=parameters)
     uspec, copies = _unconstrained(spec, cons)
-    q_r, q_u = spec.n_params, uspec.n_params
-    upar, rpar = uspec.param_index, spec.param_index
-    theta_u = map_theta(spec, fit.theta, uspec)
-    M = np.zeros((q_u, q_r))
-    for k in np.flatnonzero(upar >= 0):
-        if rpar[k] >= 0:
-            M[upar[k], rpar[k]] = 1.0
-    # incomplete cases: the casewise (full-information) likelihood, whose gradient is 0 at the fit
-    objective = FIMLObjective if any(gs.has_missing for gs in stats.groups) else MLObjective
-    _, g, H = objective(uspec, stats).derivatives(theta_u)
-    HM = H @ M
-    Hrr = M.T @ HM
-    g_r = M.T @ g
-    try:
-        Hrr_inv = np.linalg.inv(Hrr)
-    except np.linalg.LinAlgError:
-        Hrr_inv = np.linalg.pinv(Hrr)
-    P = HM @ Hrr_inv                # (q_u, q_r)
-    s_all = g - P @ g_r
-    cu = {key: int(upar[ents[0]]) for key, ents in copies.items()}
+    score = _ProjectedScore.at(fit, stats, uspec)
+    cu = {key: int(uspec.param_index[ents[0]]) for key, ents in copies.items()}
     std = {
         key: _std_factor(fit.matrices[spec.group[ents[0]]], spec.matrix[ents[0]], spec.row[ents[0]], spec.col[ents[0]])
         for key, ents in copies.items()
     }
+    uni, multi = [], []
+    for c_i, c in enumerate(cons):
+        gs = [g_ for g_ in c.testable_groups if (c_i, g_) in cu]
+        uni.extend(_copy_test(score, c, g_, cu[(c_i, g_)], std[(c_i, g_)]) for g_ in gs)
+        free_set = gs if c.fixed else gs[1:]
+        if free_set:
+            multi.append(_set_test(score, c, free_set, [cu[(c_i, g_)] for g_ in free_set],
+                                   [std[(c_i, g_)] for g_ in free_set]))
+    g_r = score.restricted_gradient
+    return ScoreTests(
+        level=spec.level,
+        univariate=tuple(uni),
+        multivariate=tuple(multi),
+        restricted_gradient=float(np.max(np.abs(g_r))) if g_r.size else 0.0,
+    )
 
-    def block(D: list[int]):
-        C = H[np.ix_(D, D)] - P[D] @ HM[D].T
-        s = s_all[D]
+
+@dataclass(frozen=True)
+class _ProjectedScore:
+    """Gradient and information of the unconstrained model at the restricted optimum.
+
+    Attributes
+    ----------
+    H
+        Second derivatives of the unconstrained objective (``q_u x q_u``).
+    HM
+        ``H`` times the map ``M`` from restricted to unconstrained parameters.
+    P
+        ``HM (M' H M)^-1``: projects out the restricted parameters' directions.
+    score
+        The unconstrained gradient with the restricted directions projected out.
+    restricted_gradient
+        ``M' g``: the gradient in the restricted parameters (0 at a converged fit).
+    """
+
+    H: np.ndarray
+    HM: np.ndarray
+    P: np.ndarray
+    score: np.ndarray
+    restricted_gradient: np.ndarray
+
+    @classmethod
+    def at(cls, fit: FitResult, stats: SampleStats, uspec: ModelSpec) -> "_ProjectedScore":
+        """Derivatives at ``fit`` mapped into ``uspec`` (the model with every tested copy free)."""
+        spec = fit.spec
+        upar, rpar = uspec.param_index, spec.param_index
+        theta_u = map_theta(spec, fit.theta, uspec)
+        M = np.zeros((uspec.n_params, spec.n_params))
+        for k in np.flatnonzero(upar >= 0):
+            if rpar[k] >= 0:
+                M[upar[k], rpar[k]] = 1.0
+        # incomplete cases: the casewise (full-information) likelihood, whose gradient is 0 at the fit
+        objective = FIMLObjective if any(gs.has_missing for gs in stats.groups) else MLObjective
+        _, g, H = objective(uspec, stats).derivatives(theta_u)
+        HM = H @ M
+        Hrr = M.T @ HM
+        g_r = M.T @ g
+        try:
+            Hrr_inv = np.linalg.inv(Hrr)
+        except np.linalg.LinAlgError:
+            Hrr_inv = np.linalg.pinv(Hrr)
+        P = HM @ Hrr_inv                # (q_u, q_r)
+        return cls(H=H, HM=HM, P=P, score=g - P @ g_r, restricted_gradient=g_r)
+
+    def block(self, D: list[int]) -> tuple[float, np.ndarray | None]:
+        """Score statistic and expected parameter changes for freeing the copies ``D``
+        (``nan, None`` when releasing them would not be identified)."""
+        C = self.H[np.ix_(D, D)] - self.P[D] @ self.HM[D].T
+        s = self.score[D]
         try:
             w, v = np.linalg.eigh((C + C.T) / 2)
         except np.linalg.LinAlgError:
@@ -386,27 +433,22 @@ def score_tests(
         Cinv = (v / w) @ v.T
         return float(s @ Cinv @ s / 2.0), -(Cinv @ s)
 
-    uni, multi = [], []
-    for c_i, c in enumerate(cons):
-        gs = [g_ for g_ in c.testable_groups if (c_i, g_) in cu]
-        for g_ in gs:
-            lm, epc = block([cu[(c_i, g_)]])
-            e = float(epc[0]) if epc is not None else np.nan
-            pv = float(_st.chi2.sf(lm, 1)) if np.isfinite(lm) else np.nan
-            uni.append(CopyTest(c, g_, lm, pv, e, float(e * std[(c_i, g_)])))
-        free_set = gs if c.fixed else gs[1:]
-        if not free_set:
-            continue
-        lm, epc = block([cu[(c_i, g_)] for g_ in free_set])
-        df = len(free_set)
-        if epc is None:
-            epcs = tuple((g_, np.nan, np.nan) for g_ in free_set)
-        else:
-            epcs = tuple((g_, float(e), float(e) * std[(c_i, g_)]) for g_, e in zip(free_set, epc))
-        multi.append(SetTest(c, lm, df, float(_st.chi2.sf(lm, df)) if np.isfinite(lm) else np.nan, epcs))
-    return ScoreTests(
-        level=spec.level,
-        univariate=tuple(uni),
-        multivariate=tuple(multi),
-        restricted_gradient=float(np.max(np.abs(g_r))) if g_r.size else 0.0,
-    )
+
+def _copy_test(score: _ProjectedScore, c: Constraint, group: str, copy: int, std: float) -> CopyTest:
+    """Univariate test: free the constraint's copy in one group."""
+    lm, epc = score.block([copy])
+    e = float(epc[0]) if epc is not None else np.nan
+    pv = float(_st.chi2.sf(lm, 1)) if np.isfinite(lm) else np.nan
+    return CopyTest(c, group, lm, pv, e, float(e * std))
+
+
+def _set_test(score: _ProjectedScore, c: Constraint, groups: list[str], copies: list[int],
+              stds: list[float]) -> SetTest:
+    """Multivariate test: free the constraint in every group of ``groups`` at once."""
+    lm, epc = score.block(copies)
+    df = len(groups)
+    if epc is None:
+        epcs = tuple((g_, np.nan, np.nan) for g_ in groups)
+    else:
+        epcs = tuple((g_, float(e), float(e) * sd) for g_, e, sd in zip(groups, epc, stds))
+    return SetTest(c, lm, df, float(_st.chi2.sf(lm, df)) if np.isfinite(lm) else np.nan, epcs)

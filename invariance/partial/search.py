@@ -345,48 +345,35 @@ def release_search(
     release_in: str = "all",
     verify: bool = False,
     verify_top: int = 3,
-    executor=None,
-    until: str = "holds",
+    executor=None, until: str = "holds",
 ) -> SearchResult:
     """Release constraints of a fitted level one at a time until it holds.
 
     Parameters
     ----------
-    fit
-        The fitted level (restricted model).
-    stats
-        Its statistics (continuous, incomplete or ordinal).
+    fit, stats
+        The fitted level (restricted model) and its statistics (any item type).
     judge
         ``judge(fit) -> bool``: does this (partially released) level hold? The
         pipeline passes its comparison against the previous accepted level.
-    estimator
-        The :class:`~invariance.estimate.interface.Estimator` that ranks candidates
-        (score tests, or refits for DWLS) and refits; default: the one named by
-        ``fit.estimator`` with default options.
-    builder
-        The :class:`~invariance.model.levels.LevelBuilder` of the fitted level; needed
-        when releases rebuild the model (ordinal items).
+    estimator, builder
+        The :class:`~invariance.estimate.interface.Estimator` that ranks candidates (score
+        tests, or refits for DWLS) and refits (default: ``fit.estimator``'s); the level's
+        :class:`~invariance.model.levels.LevelBuilder`, needed when releases rebuild the model.
     parameters
-        Kinds of constraints to test; by default those the level adds
-        (:func:`level_parameters`).
-    alpha
-        Significance level after the correction.
-    correction
-        ``holm`` (default), ``bonferroni`` or ``none``, over each round's tests.
-    max_releases
-        Largest number of releases.
-    release_in
-        ``all`` (free in every group) or ``groups`` (only the group a univariate test
-        points to).
-    verify
-        Confirm candidates by the estimator's difference test of their refits before
-        releasing (likelihood ratio under ML, scaled under robust ML).
-    verify_top
-        How many of the most significant candidates to refit when verifying.
-    executor
-        Object with a ``map(fn, iterable)`` method for the refits (default: serial).
-    until
-        ``holds`` (default): stop as soon as the level holds; ``clean``: keep releasing
+        Kinds of constraints to test; default: those the level adds (:func:`level_parameters`).
+    alpha, correction
+        Significance level after the correction: ``holm`` (default), ``bonferroni``
+        or ``none``, over each round's tests.
+    max_releases, release_in
+        Largest number of releases; release in ``all`` groups or in the ``groups`` a
+        univariate test points to.
+    verify, verify_top
+        Confirm the ``verify_top`` most significant candidates by the estimator's difference
+        test of their refits before releasing (likelihood ratio under ML, scaled under robust ML).
+    executor, until
+        Object with a ``map(fn, iterable)`` method for the refits (default: serial);
+        ``holds`` (default) stops as soon as the level holds, ``clean`` keeps releasing
         while a constraint is significant.
 
     Returns
@@ -395,49 +382,88 @@ def release_search(
         A candidate whose refit fails is recorded in ``skipped`` and the next one tried.
     """
     _check_options(correction, until, release_in, alpha, max_releases, verify_top)
-    if estimator is None:
-        estimator = estimator_for(fit.estimator)
-    level = fit.level
-    kinds = tuple(parameters) if parameters is not None else level_parameters(level)
-    mapper = map if executor is None else executor.map
+    estimator = estimator_for(fit.estimator) if estimator is None else estimator
+    kinds = tuple(parameters) if parameters is not None else level_parameters(fit.level)
     options = {"parameters": list(kinds), "alpha": alpha, "correction": correction,
                "max_releases": int(max_releases), "release_in": release_in,
                "verify": bool(verify), "verify_top": int(verify_top), "until": until}
-    current = fit
-    holds = initial_holds = bool(judge(current))
-    steps: list[ReleaseStep] = []
-    skipped: list[dict] = []
-    reason = "holds"
-    ref = fit.spec.reference
-    if (until == "clean" or not holds) and not current.converged:
-        reason = "not_converged"
-    while (until == "clean" or not holds) and reason != "not_converged":
-        if len(steps) >= max_releases:
-            reason = "max_releases"
-            break
-        cands = release_tests(estimator, current, stats, kinds, release_in=release_in, builder=builder)
-        if not cands:
-            reason = "no_candidates"
-            break
-        p = np.array([c.pvalue for c in cands])
-        stat = np.array([c.statistic for c in cands])
-        adj = adjust_pvalues(p, correction)
-        is_ref = np.array([c.groups == (ref,) for c in cands])
-        order = np.lexsort((is_ref, -stat, adj))
-        sig = [j for j in order if adj[j] <= alpha]
-        if not sig:
-            reason = "no_significant"
-            break
-        chosen = _choose(estimator, current, stats, cands, sig, adj, verify=verify, verify_top=verify_top,
-                         correction=correction, alpha=alpha, mapper=mapper, skipped=skipped)
-        if isinstance(chosen, str):
-            reason = chosen
-            break
-        rf = chosen[1]
-        holds = bool(judge(rf))
-        steps.append(_step(len(steps) + 1, level, cands[chosen[0]], chosen, current, stats, holds))
-        current = rf
-    if holds and until == "holds":
+    search = _Search(fit=fit, stats=stats, judge=judge, estimator=estimator, builder=builder, kinds=kinds,
+                     options=options, mapper=map if executor is None else executor.map)
+    return search.run()
+
+
+@dataclass
+class _Search:
+    """The state of one release search: the current fit, the steps taken, the skipped refits.
+
+    ``options`` holds the checked options of :func:`release_search` (as recorded in the
+    result); ``mapper`` runs the candidate refits.
+    """
+
+    fit: FitResult
+    stats: object
+    judge: Callable[[FitResult], bool]
+    estimator: Estimator
+    builder: LevelBuilder | None
+    kinds: tuple[str, ...]
+    options: dict
+    mapper: Callable
+    steps: list = field(default_factory=list)
+    skipped: list = field(default_factory=list)
+
+    def run(self) -> SearchResult:
+        """Release one constraint per round until the level holds (or is clean) or a stop reason."""
+        until = self.options["until"]
+        current = self.fit
+        holds = initial_holds = bool(self.judge(current))
         reason = "holds"
-    return SearchResult(level, fit, current, holds, tuple(steps), reason, None, options, initial_holds,
-                        tuple(skipped))
+        if (until == "clean" or not holds) and not current.converged:
+            reason = "not_converged"
+        while (until == "clean" or not holds) and reason != "not_converged":
+            outcome = self._round(current)
+            if isinstance(outcome, str):
+                reason = outcome
+                break
+            cand, chosen = outcome
+            rf = chosen[1]
+            holds = bool(self.judge(rf))
+            self.steps.append(_step(len(self.steps) + 1, self.fit.level, cand, chosen, current, self.stats, holds))
+            current = rf
+        if holds and until == "holds":
+            reason = "holds"
+        return SearchResult(self.fit.level, self.fit, current, holds, tuple(self.steps), reason, None,
+                            self.options, initial_holds, tuple(self.skipped))
+
+    def _round(self, current: FitResult):
+        """One round: test every constraint of ``current`` and refit the chosen release.
+
+        Returns a stop reason (``max_releases``, ``no_candidates``, ``no_significant``
+        or one from :func:`_choose`), or ``(candidate, chosen)``.
+        """
+        opt = self.options
+        if len(self.steps) >= opt["max_releases"]:
+            return "max_releases"
+        cands = release_tests(self.estimator, current, self.stats, self.kinds,
+                              release_in=opt["release_in"], builder=self.builder)
+        if not cands:
+            return "no_candidates"
+        adj, sig = _significant(cands, opt["correction"], opt["alpha"], self.fit.spec.reference)
+        if not sig:
+            return "no_significant"
+        chosen = _choose(self.estimator, current, self.stats, cands, sig, adj, verify=opt["verify"],
+                         verify_top=opt["verify_top"], correction=opt["correction"], alpha=opt["alpha"],
+                         mapper=self.mapper, skipped=self.skipped)
+        if isinstance(chosen, str):
+            return chosen
+        return cands[chosen[0]], chosen
+
+
+def _significant(cands, correction: str, alpha: float, ref: str) -> tuple[np.ndarray, list[int]]:
+    """Adjusted p-values of one round and the significant candidates in release order
+    (smallest adjusted p first, then largest statistic, then releases outside the reference group)."""
+    p = np.array([c.pvalue for c in cands])
+    stat = np.array([c.statistic for c in cands])
+    adj = adjust_pvalues(p, correction)
+    is_ref = np.array([c.groups == (ref,) for c in cands])
+    order = np.lexsort((is_ref, -stat, adj))
+    return adj, [j for j in order if adj[j] <= alpha]

@@ -26,6 +26,7 @@ from dataclasses import dataclass, field
 from typing import Mapping, Sequence
 
 import numpy as np
+import pandas as pd
 from scipy import stats as _st
 
 from ...data.moments import stats_from_arrays
@@ -122,8 +123,6 @@ class PlanResult:
 
     def table(self):
         """Rates of every rule (rows) by condition and step, as a DataFrame."""
-        import pandas as pd
-
         rows = []
         for cond, block in (("invariant", self.false_alarm), ("shifted", self.power)):
             for rule, by in block.items():
@@ -159,35 +158,27 @@ def _cutoffs(frame, steps: Sequence[str]) -> dict:
 def plan(
     population: Population,
     *,
-    sizes,
-    shift: Shift | None = None,
-    replications: int = 200,
-    alpha: float = 0.05,
+    sizes, shift: Shift | None = None,
+    replications: int = 200, alpha: float = 0.05,
     rules: Mapping[str, Rule] | None = None,
     levels: Sequence[str] | None = None,
-    seed: int = 0,
-    scheduler: str | None = None,
-    workers: int = 2,
-    processes: bool = False,
-    quiet: bool = False,
-    chunk: int | None = None,
+    seed: int = 0, scheduler: str | None = None, workers: int = 2,
+    processes: bool = False, quiet: bool = False, chunk: int | None = None,
 ) -> PlanResult:
     """Monte Carlo power, false alarms and empirical cutoffs.
 
     Parameters
     ----------
-    population
-        The invariant population (:class:`Population`).
+    population, shift
+        The invariant population (:class:`Population`) and the planted noninvariance
+        (:class:`Shift`; ``None`` runs the invariant condition only).
     sizes
         One size for every group, a list in group order, or a group -> size mapping.
-    shift
-        The planted noninvariance; ``None`` runs the invariant condition only.
     replications
         Replications per condition.
-    alpha
-        Level of the chi-square difference rule (default rules only).
-    rules
-        Name -> rule; default :func:`invariance.batch.rules.default_rules`.
+    alpha, rules
+        Level of the chi-square difference rule (default rules only); name -> rule,
+        default :func:`invariance.batch.rules.default_rules`.
     levels
         Levels to fit; default configural up to the step of the shift (strict without one).
     seed, scheduler, workers, processes, quiet
@@ -201,7 +192,44 @@ def plan(
         raise SpecificationError(f"The number of replications must be a whole number >= 1; got {replications!r}.")
     n = group_sizes(population, sizes)
     target = STEP_OF.get(shift.parameter) if shift is not None else None
-    shifted = population.shifted(shift) if shift is not None else None
+    levels = _plan_levels(levels, target)
+    rules = default_rules(alpha) if rules is None else dict(rules)
+    exact = population.invariant()
+    conds = [("invariant", population)] + ([("shifted", population.shifted(shift))] if shift is not None else [])
+    R = int(replications)
+    chunk = _chunk_size(chunk, R, workers=workers, scheduler=scheduler)
+    tasks = _tasks(conds, R, chunk, sizes=n, levels=levels, seed=seed)
+    batch = run_batch(tasks, seed=seed, scheduler=scheduler, workers=workers, processes=processes, quiet=quiet,
+                      label="plan")
+    frame, failed = _collect(batch.outcomes)
+    steps = list(levels[1:])
+    return PlanResult(
+        replications=frame,
+        power=_rates(frame, "shifted", rules, [target]) if target in steps else {},
+        false_alarm=_rates(frame, "invariant", rules, steps),
+        cutoffs=_cutoffs(frame, steps),
+        target_step=target,
+        settings={"replications": R, "sizes": dict(zip(population.groups, n)), "alpha": alpha,
+                  "levels": list(levels), "seed": int(seed), "shift": None if shift is None else shift.to_dict(),
+                  "backend": batch.backend, "chunk": chunk, "rules": list(rules),
+                  "population_invariant": exact, "notes": _population_notes(exact, levels)},
+        failed=tuple(failed),
+    )
+
+
+def _tasks(conds, replications: int, chunk: int, *, sizes, levels, seed: int) -> list[Task]:
+    """One batch task per condition and chunk of replication seeds (the same seeds in each condition)."""
+    return [
+        Task(f"{cond}-{start}", replicate_chunk,
+             {"population": pop, "sizes": sizes, "levels": levels,
+              "data_seeds": [task_seed(seed, r) for r in range(start, min(replications, start + chunk))]})
+        for cond, pop in conds
+        for start in range(0, replications, chunk)
+    ]
+
+
+def _plan_levels(levels: Sequence[str] | None, target: str | None) -> tuple[str, ...]:
+    """The levels to fit: as given (checked), or configural up to the shift's step (strict without one)."""
     if levels is None:
         top = target or "strict"
         levels = LEVELS[: LEVELS.index(top) + 1]
@@ -209,33 +237,34 @@ def plan(
     for lv in levels:
         if lv not in LEVELS:
             raise SpecificationError(f"Unknown level {lv!r}; use some of {', '.join(LEVELS)}.")
-    rules = default_rules(alpha) if rules is None else dict(rules)
-    exact = population.invariant()
-    notes = [
+    return levels
+
+
+def _population_notes(exact: Mapping[str, bool], levels: Sequence[str]) -> list[str]:
+    """Warnings for fitted steps whose parameters already differ in the population."""
+    return [
         f"the population's {kind}s differ across groups, so the invariant-condition rates at the "
         f"{STEP_OF[kind]} step are not false alarms: start from a population fitted at that level"
         for kind in STEP_OF
         if not exact[kind] and STEP_OF[kind] in levels
     ]
-    conds = [("invariant", population)] + ([("shifted", shifted)] if shifted is not None else [])
-    R = int(replications)
+
+
+def _chunk_size(chunk: int | None, replications: int, *, workers: int, scheduler: str | None) -> int:
+    """Replications per task: checked, or by default one when serial and about eight
+    tasks per worker and condition otherwise."""
     if chunk is None:
-        chunk = 1 if (workers == 0 and scheduler is None) else max(1, -(-R // (8 * max(int(workers), 1))))
+        serial = workers == 0 and scheduler is None
+        chunk = 1 if serial else max(1, -(-replications // (8 * max(int(workers), 1))))
     if int(chunk) != chunk or chunk < 1:
         raise SpecificationError(f"The chunk size must be a whole number >= 1; got {chunk!r}.")
-    tasks = []
-    for cond, pop in conds:
-        for start in range(0, R, int(chunk)):
-            reps = list(range(start, min(R, start + int(chunk))))
-            tasks.append(Task(f"{cond}-{start}", replicate_chunk,
-                              {"population": pop, "sizes": n, "levels": levels,
-                               "data_seeds": [task_seed(seed, r) for r in reps]}))
-    batch = run_batch(tasks, seed=seed, scheduler=scheduler, workers=workers, processes=processes, quiet=quiet,
-                      label="plan")
-    import pandas as pd
+    return int(chunk)
 
+
+def _collect(outcomes) -> tuple[pd.DataFrame, list[str]]:
+    """One row per replication and step from the batch outcomes, and the failures by name."""
     rows, failed = [], []
-    for o in batch.outcomes:
+    for o in outcomes:
         cond, start = o.name.rsplit("-", 1)
         if not o.ok:
             failed.append(f"{o.name}: {o.error}")
@@ -248,17 +277,4 @@ def plan(
             for st, d in value["steps"].items():
                 rows.append({"condition": cond, "replication": rep, "step": st, **d})
     cols = ["condition", "replication", "step", "dchi2", "ddf", "p", "dcfi", "drmsea", "dsrmr", "converged"]
-    frame = pd.DataFrame(rows, columns=cols)
-    steps = list(levels[1:])
-    return PlanResult(
-        replications=frame,
-        power=_rates(frame, "shifted", rules, [target]) if target in steps else {},
-        false_alarm=_rates(frame, "invariant", rules, steps),
-        cutoffs=_cutoffs(frame, steps),
-        target_step=target,
-        settings={"replications": int(replications), "sizes": dict(zip(population.groups, n)), "alpha": alpha,
-                  "levels": list(levels), "seed": int(seed), "shift": None if shift is None else shift.to_dict(),
-                  "backend": batch.backend, "chunk": int(chunk), "rules": list(rules),
-                  "population_invariant": exact, "notes": notes},
-        failed=tuple(failed),
-    )
+    return pd.DataFrame(rows, columns=cols), failed
