@@ -12,8 +12,12 @@ import signal
 import sys
 import warnings
 
-from .errors import InvarianceError
+from .demo import write_demo
+from .errors import InvarianceError, SpecificationError
 from .escape import terminal_text, visible
+from .pipeline.runner import check, run
+from .spec.starter import starter_pipeline
+from .version import __version__
 
 __all__ = ["main", "build_parser"]
 
@@ -29,8 +33,6 @@ class _Usage(Exception):
 
 def build_parser() -> argparse.ArgumentParser:
     p = _Parser(prog="invariance", description="Measurement invariance testing from one pipeline file.")
-    from . import __version__
-
     p.add_argument("--version", action="version", version=f"invariance {__version__}")
     sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     r = sub.add_parser("run", help="fit the levels of a pipeline, decide, write the outputs")
@@ -60,6 +62,7 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--out", default="invariance-demo", help="folder to write into (default: invariance-demo)")
     d.add_argument("--seed", type=int, default=20261201, help="random seed")
     d.add_argument("--n-per-site", type=int, default=400, help="respondents per site")
+    # Dask and the batch machinery load only when a command needs them (start-up time).
     from .pipeline.batch.commands import add_commands
 
     add_commands(sub)  # batch, plan
@@ -67,10 +70,6 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _cmd_run(args) -> int:
-    from .pipeline.runner import run
-
-    from .errors import SpecificationError
-
     if args.workers < 0:
         raise SpecificationError(f"--workers must be 0 or more; got {args.workers}.")
     if args.workers or args.scheduler:
@@ -84,8 +83,6 @@ def _cmd_run(args) -> int:
 
 
 def _cmd_check(args) -> int:
-    from .pipeline.runner import check
-
     info = check(args.pipeline)
     lines = [
         f"Pipeline {info['pipeline']}: valid. Data {info['data_file']}: {len(info['items'])} items, "
@@ -105,8 +102,6 @@ def _cmd_check(args) -> int:
 
 
 def _cmd_new(args) -> int:
-    from .spec.starter import starter_pipeline
-
     text = starter_pipeline(args.data, group=args.group, out=args.out)
     if args.out:
         print(f"Wrote {args.out}; edit the factors, then run: invariance check {args.out}")
@@ -116,8 +111,6 @@ def _cmd_new(args) -> int:
 
 
 def _cmd_demo(args) -> int:
-    from .demo import write_demo
-
     paths = write_demo(args.out, seed=args.seed, n_per_site=args.n_per_site)
     for p in paths:
         print(f"wrote {p}")

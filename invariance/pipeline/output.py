@@ -18,7 +18,9 @@ from typing import Callable, Sequence
 
 from ..data.read import file_sha256
 from ..decide.verdict import display_rows, where_text
-from ..errors import shorten
+from ..errors import SpecificationError, shorten
+from ..version import __version__
+from .robust_stage import display_note, display_view
 
 __all__ = ["MANIFEST", "check_destination", "level_table", "write_manifest", "write_outputs", "format_table", "to_json"]
 
@@ -147,8 +149,6 @@ def _table_lines(results: dict) -> list[str]:
 
 def format_table(results: dict) -> str:
     """The stepwise table and the verdict as terminal text."""
-    from .robust_stage import display_note, display_view
-
     note = display_note(results)
     results = display_view({**results, "levels": display_rows(results["levels"])})
     groups = ", ".join(f"{g} {n}" for g, n in results["groups"].items())
@@ -207,8 +207,6 @@ def _files_in(folder: pathlib.Path) -> dict[str, pathlib.Path]:
 
 def write_manifest(folder: pathlib.Path) -> pathlib.Path:
     """List every file in ``folder`` with its SHA-256 in :data:`MANIFEST`."""
-    from .. import __version__
-
     files = {rel: file_sha256(p) for rel, p in sorted(_files_in(folder).items()) if rel != MANIFEST}
     doc = {"written_by": MANIFEST_TOOL, "version": __version__, "files": files}
     path = folder / MANIFEST
@@ -251,8 +249,6 @@ def _protected(extra: Sequence[tuple[pathlib.Path, str]]) -> list[tuple[pathlib.
 
 def _probe_writable(out_dir: pathlib.Path) -> None:
     """Make and remove a probe folder where ``out_dir`` will be created (nothing is left)."""
-    from ..errors import SpecificationError
-
     base = out_dir.parent
     while not base.exists():
         base = base.parent
@@ -288,8 +284,6 @@ def check_destination(out_dir: pathlib.Path, *, protected: Sequence[tuple[pathli
     SpecificationError
         One line naming the folder and the fix. Nothing is changed on disk.
     """
-    from ..errors import SpecificationError
-
     out_dir = pathlib.Path(out_dir).resolve()
     fix = "choose a new folder for --out (or output.folder)"
     for folder, what in _protected(protected):
