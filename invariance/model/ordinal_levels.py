@@ -115,6 +115,18 @@ def build_ordinal_level(
     bad = [f for f in fixed_means if f not in factors]
     if bad:
         raise SpecificationError(f"fixed_means names {bad[0]!r}, which is not a factor; use one of {', '.join(factors)}.")
+    rows = _level_rows(structure, groups, ref=ref, rank=rank, K=K, is_released=is_released, fixed_means=fixed_means)
+    p = len(items)
+    moments = len(groups) * (sum(k - 1 if k else 2 for k in K) + p * (p - 1) // 2)
+    return ModelSpec.from_rows(
+        rows, items=items, factors=factors, groups=groups, level=level, reference=ref,
+        released=released, moment_count=moments,
+    )
+
+
+def _level_rows(structure: Structure, groups: tuple[str, ...], *, ref: str, rank: int, K: list[int],
+                is_released: Callable[..., bool], fixed_means: Sequence[str]) -> list[tuple]:
+    """The parameter rows of every group, in the order :meth:`ModelSpec.from_rows` takes."""
     rows: list[tuple] = []
 
     def add(g, mat, r, c, free, label="", value=np.nan):
@@ -125,12 +137,7 @@ def build_ordinal_level(
         _factor_rows(add, structure, where)
         _item_rows(add, structure, K, where)
         _mean_rows(add, structure, where, fixed_means=fixed_means)
-    p = len(items)
-    moments = len(groups) * (sum(k - 1 if k else 2 for k in K) + p * (p - 1) // 2)
-    return ModelSpec.from_rows(
-        rows, items=items, factors=factors, groups=groups, level=level, reference=ref,
-        released=released, moment_count=moments,
-    )
+    return rows
 
 
 def _groups_and_reference(groups: Sequence[str], reference: str | None) -> tuple[tuple[str, ...], str]:
