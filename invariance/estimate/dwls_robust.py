@@ -30,19 +30,19 @@ the statistics, Delta the model Jacobian at the estimates, d the model df):
 
 from __future__ import annotations
 
-import warnings
 
 import numpy as np
 from scipy import stats as _st
 
-from ..errors import ConvergenceWarning, EstimationError, ImproperSolutionWarning
+from ..errors import EstimationError
 from .indices import FitStats, cfi, rmsea, rmsea_interval, tli
 from ..model.spec import ModelSpec
 from ..data.polychoric import _single_thread
 from ..data.ordinal_stats import OrdinalStats
 from .result import FitResult
 from .dwls import DWLSObjective, ordinal_start_values
-from .ml import diagnose, estimation_record
+from .kernels import implied_moments
+from .solution import diagnose, estimation_record, warn_problems
 from .optimize import minimize
 from .starts import DEFAULT_STARTS, run_starts, variance_bounds
 
@@ -167,33 +167,39 @@ def _fit_dwls(spec, stats, *, start, max_iter, variances, starts, seed) -> FitRe
             "check the model structure and the categories of the items."
         )
     theta = out.x
-    t = float(out.fun)
-    df = spec.df
     delta, w, V = robust_pieces(obj, theta)
-    bread = delta.T @ (w[:, None] * delta)
-    problems = []
     matrices = tuple(obj.matrices(g, theta) for g in range(len(spec.groups)))
-    sigmas = []
-    from .kernels import implied_moments
+    moments = [implied_moments(m[:6])[:2] for m in matrices]
+    sigmas = tuple(s_ for s_, _ in moments)
+    mus = tuple(mu_ for _, mu_ in moments)
+    problems, acov = _sandwich(spec, matrices, sigmas, delta, w, V, estimation)
+    fs, robust = _dwls_fit_stats(spec, stats, obj, theta, float(out.fun), delta, w, V)
+    warn_problems(spec, out, problems)
+    return FitResult(
+        spec=spec, estimator="dwls", theta=theta, acov=acov, converged=out.converged,
+        status=out.message, iterations=out.iterations, fit=fs, problems=tuple(problems),
+        matrices=matrices, sigma=sigmas, mu=mus,
+        group_n=tuple(int(f.n) for f in stats.fits),
+        extra={"robust": robust, "estimation": estimation},
+    )
 
-    mus = []
-    for m in matrices:
-        s_, mu_, _, _ = implied_moments(m[:6])
-        sigmas.append(s_)
-        mus.append(mu_)
+
+def _sandwich(spec, matrices, sigmas, delta, w, V, estimation: dict):
+    """Problems of the solution and the robust sandwich covariance (None when singular)."""
+    bread = delta.T @ (w[:, None] * delta)
     problems = estimation["runaway"] + diagnose(spec, [m[:6] for m in matrices], sigmas, bread) + estimation["at_bound"]
     acov = None
     if not any(p.startswith("singular information") for p in problems):
         binv = np.linalg.inv(bread)
         meat = delta.T @ ((w[:, None] * V) * w[None, :]) @ delta
         acov = binv @ meat @ binv
-    U = _projector(delta, w)
-    rob = _scale_shift(t, df, U @ V)
-    t_b, df_b, base = _baseline(stats)
-    N = stats.n_total
-    G = len(spec.groups)
+    return problems, acov
+
+
+def _robust_indices(t: float, df: int, rob: dict, base: dict, t_b: float, df_b: int, N: int, G: int) -> dict:
+    """Robust (population-targeting) and scaled CFI / TLI / RMSEA (module docstring)."""
     ncp = t - rob["trace"]
-    rob_idx = {
+    return {
         "cfi_robust": float(1.0 - max(ncp, 0.0) / max(t_b - df_b, ncp, 0.0)) if max(t_b - df_b, ncp, 0.0) > 0 else 1.0,
         "tli_robust": float(1.0 - (ncp / df) / ((t_b - df_b) / df_b)) if df > 0 else float("nan"),
         "rmsea_robust": float(np.sqrt(G) * np.sqrt(max(ncp, 0.0) / (N * df))) if df > 0 else float("nan"),
@@ -205,6 +211,16 @@ def _fit_dwls(spec, stats, *, start, max_iter, variances, starts, seed) -> FitRe
         "tli_scaled": tli(rob["chi2"], df, base["chi2"], df_b) if df > 0 else float("nan"),
         "rmsea_scaled": rmsea(rob["chi2"], df, N, G) if df > 0 else float("nan"),
     }
+
+
+def _dwls_fit_stats(spec, stats, obj, theta, t: float, delta, w, V) -> tuple[FitStats, dict]:
+    """Fit statistics of the DWLS minimum ``t`` and the robust (adjusted) statistics."""
+    df = spec.df
+    rob = _scale_shift(t, df, _projector(delta, w) @ V)
+    t_b, df_b, base = _baseline(stats)
+    N = stats.n_total
+    G = len(spec.groups)
+    rob_idx = _robust_indices(t, df, rob, base, t_b, df_b, N, G)
     # SRMR over correlation residuals, groups weighted by N_g
     imp = obj.implied(theta)
     sr = 0.0
@@ -221,25 +237,13 @@ def _fit_dwls(spec, stats, *, start, max_iter, variances, starts, seed) -> FitRe
         aic=nan, bic=nan, bic_adjusted=nan, mc=nan, n_params=int(spec.n_params), n=int(N),
         baseline_chi2=float(t_b), baseline_df=int(df_b),
     )
-    if not out.converged:
-        problems.insert(0, f"not converged: {out.message}")
-        warnings.warn(f"{spec.level or 'model'}: {out.message}", ConvergenceWarning, stacklevel=2)
-    for p in problems:
-        if not p.startswith("not converged"):
-            warnings.warn(f"{spec.level or 'model'}: {p}", ImproperSolutionWarning, stacklevel=2)
     robust = {
         "chi2_scaled_shifted": rob["chi2"], "pvalue_scaled_shifted": rob["pvalue"],
         "scale": rob["scale"], "shift": rob["shift"], "chi2_mean_scaled": rob["chi2_mean"],
         "scaling_factor": rob["c"], "pvalue_mean_scaled": rob["pvalue_mean"], "trace_uv": rob["trace"],
         "baseline_chi2_scaled_shifted": base["chi2"], **rob_idx,
     }
-    return FitResult(
-        spec=spec, estimator="dwls", theta=theta, acov=acov, converged=out.converged,
-        status=out.message, iterations=out.iterations, fit=fs, problems=tuple(problems),
-        matrices=matrices, sigma=tuple(sigmas), mu=tuple(mus),
-        group_n=tuple(int(f.n) for f in stats.fits),
-        extra={"robust": robust, "estimation": estimation},
-    )
+    return fs, robust
 
 
 def dwls_difference(restricted: FitResult, free: FitResult, stats: OrdinalStats) -> dict:

@@ -33,8 +33,8 @@ from .kernels import (
     group_matrices,
     implied_moments,
     layout_jacobians,
-    second_derivative_part,
 )
+from .ml_kernels import second_derivative_part
 from .linalg import partition
 
 __all__ = ["FIMLObjective", "independence_loglik", "pattern_m2ll"]

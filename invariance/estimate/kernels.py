@@ -2,9 +2,9 @@
 
 Nothing here knows about labels, pandas or files. A :class:`GroupLayout` is the compiled
 form of one group's entries of a :class:`~invariance.model.ModelSpec`; the functions
-build the group's matrices from a parameter vector, the implied moments, their analytic
-Jacobian, and the ML discrepancy with its gradient and expected information
-(METHODS sections 1 and 2).
+build the group's matrices from a parameter vector, the implied moments and their analytic
+Jacobian, dense or factored (METHODS section 1). The ML discrepancy and its derivatives
+built on them are in :mod:`invariance.estimate.ml_kernels`.
 
 Conventions: ``dS`` arrays have shape (u, p, p) (one symmetric matrix per local
 parameter), ``dm`` arrays shape (u, p).
@@ -27,16 +27,13 @@ __all__ = [
     "implied_moments",
     "moment_jacobian",
     "layout_jacobians",
-    "ml_discrepancy",
-    "ml_derivatives",
-    "ml_hessian",
-    "second_derivative_part",
     "FactoredJacobian",
     "factor_jacobian",
     "gram",
     "factored_gradient",
     "factored_information",
     "factored_moment_hessian",
+    "to_params",
 ]
 
 
@@ -188,160 +185,6 @@ def moment_jacobian(lay: GroupLayout, mats: tuple[np.ndarray, ...], G: np.ndarra
     return dS, dm
 
 
-def ml_discrepancy(sigma: np.ndarray, mu: np.ndarray, S: np.ndarray, mean: np.ndarray, logdet_s: float) -> float:
-    """ML discrepancy F of one group (METHODS section 2); ``inf`` if Sigma is not PD."""
-    try:
-        R = np.linalg.cholesky(sigma)
-    except np.linalg.LinAlgError:
-        return np.inf
-    Rinv = np.linalg.inv(R)
-    W = Rinv.T @ Rinv
-    d = mean - mu
-    logdet = 2.0 * np.log(np.diag(R)).sum()
-    return float(logdet + np.sum(S * W) - logdet_s - S.shape[0] + d @ W @ d)
-
-
-def ml_derivatives(
-    sigma: np.ndarray,
-    mu: np.ndarray,
-    S: np.ndarray,
-    mean: np.ndarray,
-    fj: "FactoredJacobian",
-    *,
-    logdet_s: float = 0.0,
-    information: bool = True,
-) -> tuple[float, np.ndarray, np.ndarray | None]:
-    """Discrepancy, gradient and expected information of one group's ML discrepancy.
-
-    Uses the factored Jacobian (:func:`factor_jacobian`), so no (u, p, p) array is built.
-
-    Returns
-    -------
-    F : float
-        The discrepancy (METHODS section 2) with ``logdet_s`` = log|S|.
-    grad : (u,) array
-        dF/dtheta = tr(Gs S_u) - 2 mu_u' W d, Gs = W - W (S + dd') W.
-    info : (u, u) array or None
-        E[d2F/dtheta dtheta'] = tr(W dS_u W dS_v) + 2 dm_u' W dm_v.
-
-    Raises
-    ------
-    numpy.linalg.LinAlgError
-        When Sigma is not positive definite.
-    """
-    R = np.linalg.cholesky(sigma)
-    Rinv = np.linalg.inv(R)
-    W = Rinv.T @ Rinv
-    d = mean - mu
-    Wd = W @ d
-    WC = W @ S
-    f = 2.0 * np.log(np.diag(R)).sum() + np.trace(WC) - logdet_s - S.shape[0] + d @ Wd
-    Gs = W - (WC + np.outer(Wd, d)) @ W
-    grad = factored_gradient(fj, Gs, Wd)
-    info = factored_information(fj, gram(fj.H, W)) if information else None
-    return float(f), grad, info
-
-
-def ml_hessian(
-    lay: GroupLayout,
-    mats: tuple[np.ndarray, ...],
-    sigma: np.ndarray,
-    mu: np.ndarray,
-    G: np.ndarray,
-    A: np.ndarray,
-    S: np.ndarray,
-    mean: np.ndarray,
-) -> np.ndarray:
-    """Exact (observed) Hessian of one group's ML discrepancy, local parameters.
-
-    With W = Sigma^-1, d = m - mu, C = S + dd', Gs = W - W C W, w = W d::
-
-        F_uv = tr(Gs Sigma_uv) - 2 w' mu_uv - tr(W S_u W S_v) + 2 tr(W S_u W C W S_v)
-               + 2 mu_v' W S_u w + 2 mu_u' W S_v w + 2 mu_u' W mu_v
-
-    The first-derivative terms come from the factored Jacobian
-    (:func:`factored_moment_hessian`); the second-derivative terms from
-    :func:`second_derivative_part`.
-    """
-    R = np.linalg.cholesky(sigma)
-    Rinv = np.linalg.inv(R)
-    W = Rinv.T @ Rinv
-    d = mean - mu
-    w = W @ d
-    Cm = S + np.outer(d, d)
-    Gs = W - W @ Cm @ W
-    fj = factor_jacobian(lay, mats, G, A)
-    kw = np.concatenate([w, fj.H.T @ w])
-    He = factored_moment_hessian(fj, gram(fj.H, W), gram(fj.H, W @ Cm @ W), kw)
-    He += second_derivative_part(lay, mats, G, A, Gs, w)
-    return _to_params(fj, None, He)[1]
-
-
-def second_derivative_part(
-    lay: GroupLayout, mats: tuple[np.ndarray, ...], G: np.ndarray, A: np.ndarray, Gs: np.ndarray, w: np.ndarray
-) -> np.ndarray:
-    """tr(Gs Sigma_uv) - 2 w' mu_uv per pair of free entries (not mapped to parameters).
-
-    Contracted in closed form per pair of matrix entries (Lambda, B, Psi, alpha; Theta
-    and nu enter linearly). Linear in (Gs, w): full-information ML passes the sums over
-    its missingness patterns.
-    """
-    lam, beta, psi, theta, nu, alpha = mats
-    # second-derivative contraction, per entry
-    k = lay.ent_mat.size
-    Ke = np.zeros((k, k))
-    Phi = A @ psi @ A.T
-    GsG = Gs @ G
-    GsLPhi = Gs @ lam @ Phi
-    Aa = A @ alpha
-    Kf = G.T @ Gs @ G
-    M = lam.T @ Gs @ lam
-    v = lam.T @ w
-    AtMA = A.T @ M @ A
-    Z = 2.0 * M @ A @ psi - 2.0 * np.outer(v, alpha)
-    AZA = A.T @ Z @ A.T
-    Atv = A.T @ v
-    iL, jL, _, pL = lay.sel[LAMBDA]
-    eB, fB, _, pB = lay.sel[BETA]
-    cP, dP, _, pP = lay.sel[PSI]
-    cA, _, _, pA = lay.sel[ALPHA]
-    offP = (cP != dP).astype(float)
-    if pL.size:
-        Ke[pL[:, None], pL[None, :]] = 2.0 * Gs[iL[:, None], iL[None, :]] * Phi[jL[:, None], jL[None, :]].T
-        if pP.size:
-            blk = 2.0 * GsG[iL][:, cP] * A[jL][:, dP] + offP[None, :] * 2.0 * GsG[iL][:, dP] * A[jL][:, cP]
-            Ke[pL[:, None], pP[None, :]] = blk
-            Ke[pP[:, None], pL[None, :]] = blk.T
-        if pB.size:
-            blk = 2.0 * (GsG[iL][:, eB] * Phi[fB][:, jL].T + GsLPhi[iL][:, fB] * A[jL][:, eB])
-            blk -= 2.0 * w[iL][:, None] * A[jL][:, eB] * Aa[fB][None, :]
-            Ke[pL[:, None], pB[None, :]] = blk
-            Ke[pB[:, None], pL[None, :]] = blk.T
-        if pA.size:
-            blk = -2.0 * w[iL][:, None] * A[jL][:, cA]
-            Ke[pL[:, None], pA[None, :]] = blk
-            Ke[pA[:, None], pL[None, :]] = blk.T
-    if pB.size:
-        blk = (
-            2.0 * AtMA[eB[:, None], eB[None, :]].T * Phi[fB[:, None], fB[None, :]]
-            + A[fB[:, None], eB[None, :]].T * AZA[eB[:, None], fB[None, :]].T
-            + A[fB[:, None], eB[None, :]] * AZA[eB[:, None], fB[None, :]]
-        )
-        Ke[pB[:, None], pB[None, :]] = blk
-        if pP.size:
-            # rows: Psi entries (c, d); cols: B entries (e, f)
-            blk = 2.0 * A[fB[:, None], cP[None, :]].T * Kf[eB[:, None], dP[None, :]].T
-            blk += offP[:, None] * 2.0 * A[fB[:, None], dP[None, :]].T * Kf[eB[:, None], cP[None, :]].T
-            blk = np.where(offP[:, None] > 0, blk, 2.0 * A[fB[:, None], cP[None, :]].T * Kf[eB[:, None], cP[None, :]].T)
-            Ke[pP[:, None], pB[None, :]] = blk
-            Ke[pB[:, None], pP[None, :]] = blk.T
-        if pA.size:
-            blk = -2.0 * Atv[eB][:, None] * A[fB[:, None], cA[None, :]]
-            Ke[pB[:, None], pA[None, :]] = blk
-            Ke[pA[:, None], pB[None, :]] = blk.T
-    return Ke
-
-
 def layout_jacobians(layouts, theta: np.ndarray) -> list[tuple]:
     """Per group: (matrices, Sigma, mu, dS, dm) at ``theta``, over each group's local parameters."""
     out = []
@@ -435,7 +278,8 @@ def gram(H: np.ndarray, X: np.ndarray) -> np.ndarray:
     return np.concatenate([top, bottom], axis=-2)
 
 
-def _to_params(fj: FactoredJacobian, g: np.ndarray | None, M: np.ndarray | None):
+def to_params(fj: FactoredJacobian, g: np.ndarray | None, M: np.ndarray | None):
+    """Map a gradient ``g`` and a matrix ``M`` over free entries to parameters (P' g, P' M P)."""
     if fj.P is None:
         return g, M
     return (None if g is None else fj.P.T @ g), (None if M is None else fj.P.T @ M @ fj.P)
@@ -446,7 +290,7 @@ def factored_gradient(fj: FactoredJacobian, Gs: np.ndarray, w: np.ndarray) -> np
     Q = gram(fj.H, Gs)
     kw = np.concatenate([w, fj.H.T @ w])
     g = 2.0 * fj.s * Q[fj.ia, fj.ib] - 2.0 * fj.t * kw[fj.ic]
-    return _to_params(fj, g, None)[0]
+    return to_params(fj, g, None)[0]
 
 
 def _wsum(weights: np.ndarray | None, X: np.ndarray) -> np.ndarray:
@@ -518,7 +362,7 @@ def factored_information(fj: FactoredJacobian, QW: np.ndarray, weights: np.ndarr
         mean = _wsum(weights, QW)[c[:, None], c[None, :]]
     s, t = fj.s, fj.t
     info = 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * mean)
-    return _to_params(fj, None, info)[1]
+    return to_params(fj, None, info)[1]
 
 
 def factored_moment_hessian(fj: FactoredJacobian, QW: np.ndarray, QM: np.ndarray, kw: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:

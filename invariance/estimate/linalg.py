@@ -19,7 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.linalg import lapack as _lapack
 
-__all__ = ["ArrowPartition", "partition", "arrow_solve", "arrow_inverse", "arrow_min_eigen"]
+__all__ = ["ArrowPartition", "partition", "pd_solve", "arrow_solve", "arrow_inverse", "arrow_min_eigen"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -54,6 +54,11 @@ def _cho_solve(c: np.ndarray, b: np.ndarray) -> np.ndarray:
     if info != 0:
         raise np.linalg.LinAlgError("invalid Cholesky solve")
     return x
+
+
+def pd_solve(M: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Solve M x = b for a positive-definite M by LAPACK Cholesky; LinAlgError otherwise."""
+    return _cho_solve(_cho_factor(M), b)
 
 
 def _eliminate(H: np.ndarray, part: ArrowPartition, rhs: np.ndarray | None):

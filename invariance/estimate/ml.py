@@ -15,13 +15,13 @@ from __future__ import annotations
 
 import dataclasses
 import functools
-import warnings
 
 import numpy as np
 from scipy import stats as _st
 
 from ..data.moments import SampleStats
-from ..errors import ConvergenceWarning, EstimationError, ImproperSolutionWarning, SpecificationError
+from ..data.ordinal_stats import OrdinalStats
+from ..errors import EstimationError, SpecificationError
 from ..data.mcar import missing_report
 from .indices import cfi as _cfi
 from .indices import compute_fit, information_criteria
@@ -29,11 +29,13 @@ from .indices import tli as _tli
 from ..model.spec import ModelSpec
 from .result import FitResult
 from .kernels import group_matrices, implied_moments
+from .dwls_robust import fit_dwls
 from .fiml import FIMLObjective, independence_loglik
-from .linalg import arrow_inverse, arrow_min_eigen
+from .linalg import arrow_inverse
 from .objective import MLObjective
 from .robust import H1Moments, baseline_trace, robust_indices, sandwich, scaling_trace, score_products
-from .runaway import VARIANCE_CHOICES, describe_bounds, describe_runaway, weak_identification
+from .runaway import VARIANCE_CHOICES, weak_identification
+from .solution import diagnose, estimation_record, observed_information, warn_problems
 from .separate import fit_by_group, shares_nothing
 from .start import start_values
 from .starts import DEFAULT_STARTS, general_factors, run_starts, variance_bounds
@@ -42,61 +44,6 @@ __all__ = ["ESTIMATORS", "fit", "diagnose", "observed_information", "estimation_
 
 #: Estimators accepted by :func:`fit`.
 ESTIMATORS = ("ml", "ml_robust")
-
-
-def observed_information(obj, theta: np.ndarray, h: float = 1e-6) -> np.ndarray:
-    """Observed Hessian of the objective: central differences of the analytic gradient."""
-    q = theta.size
-    H = np.empty((q, q))
-    for j in range(q):
-        step = h * max(1.0, abs(theta[j]))
-        e = np.zeros(q)
-        e[j] = step
-        gp = obj.derivatives(theta + e, information=False)[1]
-        gm = obj.derivatives(theta - e, information=False)[1]
-        H[:, j] = (gp - gm) / (2 * step)
-    return (H + H.T) / 2
-
-
-def diagnose(spec: ModelSpec, matrices, sigmas, info: np.ndarray | None, part=None) -> list[str]:
-    """Name the improper parts of a solution.
-
-    Checks negative residual variances (Heywood cases), non-positive-definite factor
-    (Psi) and implied covariance matrices, and a singular information matrix (naming
-    the parameters in its null space).
-    """
-    problems = []
-    for g, (mats, sigma) in enumerate(zip(matrices, sigmas)):
-        gname = spec.groups[g]
-        theta = mats[3]
-        for i in np.flatnonzero(np.diag(theta) < 0):
-            problems.append(f"negative residual variance of item {spec.items[i]} in group {gname}")
-        psi = mats[2]
-        if psi.size and np.linalg.eigvalsh(psi)[0] < -1e-10:
-            problems.append(f"factor covariance matrix not positive definite in group {gname}")
-        if np.linalg.eigvalsh(sigma)[0] <= 0:
-            problems.append(f"implied covariance matrix not positive definite in group {gname}")
-    singular = False
-    if info is not None and info.size:
-        if part is not None:
-            singular = arrow_min_eigen(info, part) < 1e-10
-        else:
-            d = np.sqrt(np.clip(np.abs(np.diag(info)), 1e-300, None))
-            singular = np.linalg.eigvalsh(info / np.outer(d, d))[0] < 1e-10
-    if singular:
-        d = np.sqrt(np.clip(np.abs(np.diag(info)), 1e-300, None))
-        scaled = info / np.outer(d, d)
-        w, v = np.linalg.eigh(scaled)
-        null = w < 1e-10 * max(w[-1], 1.0)
-        if null.any():
-            comp = np.abs(v[:, null]).max(axis=1)
-            names = [spec.param_labels[j] for j in np.flatnonzero(comp > 0.1)]
-            problems.append(
-                "singular information matrix (model not identified); parameters involved: "
-                + ", ".join(names[:12])
-                + (" ..." if len(names) > 12 else "")
-            )
-    return problems
 
 
 def fit(
@@ -122,22 +69,16 @@ def fit(
     information
         ``"expected"`` (default) or ``"observed"`` information for standard errors.
     start
-        Warm start (e.g. a nested level's estimates); the analytic start and the
-        alternative starts follow when it fails (:mod:`invariance.estimate.starts`).
+        Warm start; the analytic and alternative starts follow when it fails.
     max_iter
         Iteration limit of the scoring runs.
     estimator
-        ``"ml"`` (normal theory, default) or ``"ml_robust"``: sandwich ``acov`` from
-        casewise scores, and in ``extra`` the scaled statistic ``chi2_scaled``, its
-        ``scaling_factor`` and ``pvalue_scaled``, and ``cfi_robust``, ``tli_robust``,
-        ``rmsea_robust``; the normal-theory covariance stays in ``extra["acov_normal"]``.
-        Full-information ML is used automatically when the statistics hold missing
-        values; ``extra["missing"]`` then reports, per group, the cases used, the
-        patterns, the coverage of each item and Little's MCAR test.
+        ``"ml"`` (normal theory, default) or ``"ml_robust"`` (sandwich ``acov``, scaled
+        statistic and robust indices in ``extra``; see the module docstring). Missing
+        values in ``stats`` mean full-information ML, reported in ``extra["missing"]``.
     variances
-        ``"unrestricted"`` (default): a solution with negative variances, or one that
-        runs away, is reported as improper; ``"nonnegative"``: residual and factor
-        variances are estimated within [0, inf) and estimates at 0 are named.
+        ``"unrestricted"`` (default; negative variances or a run-away are reported as
+        improper) or ``"nonnegative"`` (variances estimated within [0, inf)).
     starts
         Alternative starts for bifactor and second-order models (0: the analytic start only).
     seed
@@ -146,35 +87,17 @@ def fit(
     Returns
     -------
     FitResult
-        ``extra["estimation"]`` says what was estimated (bounded or not), the starts
-        tried and the distinct optima found, estimates at a bound and run-away
-        parameters. A model whose groups share no parameter (configural) is fitted
-        group by group; ``extra["groups"]`` then holds the single-group results.
+        ``extra["estimation"]``: what was estimated, the starts and optima, estimates
+        at a bound, run-away parameters. Groups sharing no parameter (configural) are
+        fitted one by one (``extra["groups"]``); ordinal statistics go to
+        :func:`~invariance.estimate.dwls_robust.fit_dwls`.
 
-    Notes
-    -----
-    Ordinal statistics (:class:`~invariance.ordinal.OrdinalStats`) dispatch to the DWLS
-    estimator, :func:`invariance.estimate.dwls_robust.fit_dwls`.
     """
-    from ..data.ordinal_stats import OrdinalStats
-
-    if variances not in VARIANCE_CHOICES:
-        raise SpecificationError(
-            f"The variances option must be one of {', '.join(VARIANCE_CHOICES)}; got {variances!r}."
-        )
+    _check_options(variances=variances, estimator=estimator, information=information,
+                   ordinal=isinstance(stats, OrdinalStats))
     opts = dict(max_iter=max_iter, variances=variances, starts=starts, seed=seed)
     if isinstance(stats, OrdinalStats):
-        from .dwls_robust import fit_dwls
-
         return fit_dwls(spec, stats, start=start, **opts)
-    if estimator not in ESTIMATORS:
-        raise SpecificationError(
-            f"The estimator must be one of {', '.join(ESTIMATORS)}; got {estimator!r}."
-        )
-    if information not in ("expected", "observed"):
-        raise SpecificationError(
-            f"The information for standard errors must be 'expected' or 'observed'; got {information!r}."
-        )
     if tuple(stats.names) != tuple(spec.groups):
         stats = stats.subset(spec.groups)
     if tuple(stats.items) != tuple(spec.items):
@@ -185,6 +108,31 @@ def fit(
         if any(g.missing is not None for g in stats.groups):
             res.extra["missing"] = missing_report(stats)
         return res
+    obj, out, estimation = _estimate(spec, stats, start=start, options=opts)
+    return _finish(spec, stats, obj, out, information=information, estimator=estimator, estimation=estimation)
+
+
+def _check_options(*, variances: str, estimator: str, information: str, ordinal: bool) -> None:
+    """Refuse an unknown ``variances``, ``estimator`` or ``information`` in one line."""
+    if variances not in VARIANCE_CHOICES:
+        raise SpecificationError(
+            f"The variances option must be one of {', '.join(VARIANCE_CHOICES)}; got {variances!r}."
+        )
+    if ordinal:
+        return
+    if estimator not in ESTIMATORS:
+        raise SpecificationError(
+            f"The estimator must be one of {', '.join(ESTIMATORS)}; got {estimator!r}."
+        )
+    if information not in ("expected", "observed"):
+        raise SpecificationError(
+            f"The information for standard errors must be 'expected' or 'observed'; got {information!r}."
+        )
+
+
+def _estimate(spec: ModelSpec, stats: SampleStats, *, start, options: dict):
+    """Run the starts on the (full-information) ML objective of a model whose groups share
+    parameters; returns (objective, optimizer outcome, ``extra["estimation"]``)."""
     full_info = any(g.has_missing for g in stats.groups)
     obj = FIMLObjective(spec, stats) if full_info else MLObjective(spec, stats)
     tol = 1e-12
@@ -192,57 +140,24 @@ def fit(
         # T is a difference of casewise log-likelihoods of size |logL_H1|: allow for their
         # rounding error in the convergence test (it is far below any reported digit)
         tol = max(tol, 2e-14 * abs(2.0 * obj.loglik_h1) / max(1.0, float(spec.df)))
-    lower = variance_bounds(spec) if variances == "nonnegative" else None
-    out, record = run_starts(obj, spec, lambda: start_values(spec, stats), start=start, starts=starts,
-                             seed=seed, lower=lower, max_iter=max_iter, tol=tol)
+    lower = variance_bounds(spec) if options["variances"] == "nonnegative" else None
+    out, record = run_starts(obj, spec, lambda: start_values(spec, stats), start=start, starts=options["starts"],
+                             seed=options["seed"], lower=lower, max_iter=options["max_iter"], tol=tol)
     if not np.isfinite(out.fun):
         raise EstimationError(
             f"The {spec.level or 'model'} model could not be estimated: {out.message}; "
             "check the model structure and the items of each factor."
         )
-    return _finish(spec, stats, obj, out, information=information, estimator=estimator,
-                   estimation=estimation_record(spec, out, record, lower, options=opts))
+    return obj, out, estimation_record(spec, out, record, lower, options=options)
 
 
-def estimation_record(spec: ModelSpec, out, record, lower, *, options: dict) -> dict:
-    """``extra["estimation"]``: what was estimated, with which ``options`` (variances,
-    starts, seed), and what the optimizer found."""
-    general = [spec.factors[c] for c in sorted(general_factors(spec))]
-    runaway = describe_runaway(spec, out.running, out.x, general=general) if out.status == 6 else []
-    notes = []
-    if record.runaway_below is not None and not runaway:
-        notes = [f"in group{'s' if len(spec.groups) > 1 else ''} {', '.join(spec.groups)} another start runs away "
-                   f"to a lower statistic ({record.runaway_below:.2f} against {out.fun:.2f}): the reported solution is "
-                   "the best converged one, not the infimum; estimate within bounds with estimation: "
-                   "{variances: nonnegative} to get the best admissible solution"]
-    at_bound = describe_bounds(spec, out.x, lower) if lower is not None else []
-    if runaway:
-        optimum = "no finite optimum: the estimates run away (reported where they were stopped)"
-    elif lower is not None:
-        optimum = "optimum within bounds (residual and factor variances >= 0)" + (
-            ", with estimates at a bound" if at_bound else "")
-    else:
-        optimum = "unbounded optimum (variances unrestricted)"
-    return {"variances": options["variances"], "optimum": optimum, "starts": record.to_dict(),
-            "at_bound": at_bound, "runaway": runaway, "notes": notes,
-            "options": {k: options[k] for k in ("variances", "starts", "seed")}}
-
-
-def _finish(spec, stats, obj, out, *, information: str, estimator: str, estimation: dict) -> FitResult:
-    """Standard errors, diagnosis, fit statistics and the result of one optimizer outcome."""
-    full_info = isinstance(obj, FIMLObjective)
+def _standard_errors(spec, obj, out, matrices, sigmas, *, information: str, estimation: dict):
+    """Information for standard errors, the problems found and the normal-theory acov."""
     theta = out.x
-    matrices = tuple(group_matrices(lay, theta) for lay in obj.layouts)
-    moments = [implied_moments(m)[:2] for m in matrices]
-    sigmas = tuple(s for s, _ in moments)
-    mus = tuple(mu for _, mu in moments)
-    info = out.info
-    if info is None:
-        info = obj.derivatives(theta)[2]
     if information == "observed":
         info_se = obj.hessian(theta) if hasattr(obj, "hessian") else observed_information(obj, theta)
     else:
-        info_se = info
+        info_se = out.info if out.info is not None else obj.derivatives(theta)[2]
     part = getattr(obj, "partition", None)
     problems = estimation["runaway"] + diagnose(spec, matrices, sigmas, info_se, part) + estimation["at_bound"]
     general = sorted(general_factors(spec))
@@ -257,17 +172,22 @@ def _finish(spec, stats, obj, out, *, information: str, estimator: str, estimati
             acov = 2.0 * (arrow_inverse(info_se, part) if part is not None else np.linalg.inv(info_se))
         except np.linalg.LinAlgError:
             acov = None
-    if not out.converged:
-        problems.insert(0, f"not converged: {out.message}")
-        warnings.warn(f"{spec.level or 'model'}: {out.message}", ConvergenceWarning, stacklevel=3)
-    for p in problems:
-        if not p.startswith("not converged"):
-            warnings.warn(f"{spec.level or 'model'}: {p}", ImproperSolutionWarning, stacklevel=3)
-    for note in estimation["notes"]:
-        warnings.warn(f"{spec.level or 'model'}: {note}", ConvergenceWarning, stacklevel=3)
+    return info_se, problems, acov
+
+
+def _finish(spec, stats, obj, out, *, information: str, estimator: str, estimation: dict) -> FitResult:
+    """Standard errors, diagnosis, fit statistics and the result of one optimizer outcome."""
+    theta = out.x
+    matrices = tuple(group_matrices(lay, theta) for lay in obj.layouts)
+    moments = [implied_moments(m)[:2] for m in matrices]
+    sigmas = tuple(s for s, _ in moments)
+    mus = tuple(mu for _, mu in moments)
+    info_se, problems, acov = _standard_errors(spec, obj, out, matrices, sigmas, information=information,
+                                               estimation=estimation)
+    warn_problems(spec, out, problems, estimation["notes"])
     fs = compute_fit(out.fun, spec.df, spec.n_params, obj.S, obj.mean, sigmas, mus, obj.n)
     extra: dict = {"estimation": estimation}
-    if full_info:
+    if isinstance(obj, FIMLObjective):
         fs = _full_information_fit(fs, obj, spec)
         extra["likelihood"] = "full_information"
     if any(g.missing is not None for g in stats.groups):
@@ -275,20 +195,9 @@ def _finish(spec, stats, obj, out, *, information: str, estimator: str, estimati
     if estimator == "ml_robust":
         acov = _robust(extra, spec, stats, theta, info_se, acov, fs)
     return FitResult(
-        spec=spec,
-        estimator=estimator,
-        theta=theta,
-        acov=acov,
-        converged=out.converged,
-        status=out.message,
-        iterations=out.iterations,
-        fit=fs,
-        problems=tuple(problems),
-        matrices=matrices,
-        sigma=sigmas,
-        mu=mus,
-        group_n=tuple(int(g.n) for g in stats.groups),
-        extra=extra,
+        spec=spec, estimator=estimator, theta=theta, acov=acov, converged=out.converged, status=out.message,
+        iterations=out.iterations, fit=fs, problems=tuple(problems), matrices=matrices, sigma=sigmas, mu=mus,
+        group_n=tuple(int(g.n) for g in stats.groups), extra=extra,
     )
 
 

@@ -24,10 +24,8 @@ from .kernels import (
     group_matrices,
     implied_moments,
     layout_jacobians,
-    ml_derivatives,
-    ml_discrepancy,
-    ml_hessian,
 )
+from .ml_kernels import ml_derivatives, ml_discrepancy, ml_hessian
 
 __all__ = ["MLObjective"]
 
@@ -49,7 +47,23 @@ class MLObjective:
         self.mean = [g.mean for g in stats.groups]
         self.logdet_s = [float(np.linalg.slogdet(s)[1]) for s in self.S]
         #: shared vs group-local parameters: the information matrix is arrow-shaped
-        self.partition = partition([lay.params for lay in self.layouts], self.n_params)
+        #: (one group: a plain dense matrix, no partition)
+        self.partition = (partition([lay.params for lay in self.layouts], self.n_params)
+                          if len(self.layouts) > 1 else None)
+        self._point: tuple[bytes, list] | None = None
+
+    def _at(self, theta: np.ndarray) -> list[tuple]:
+        """Per group (mats, Sigma, mu, G, A, factored Jacobian) at ``theta``; the last
+        point is kept, so the derivatives and the Hessian at one point share it."""
+        key = theta.tobytes()
+        if self._point is None or self._point[0] != key:
+            parts = []
+            for lay in self.layouts:
+                mats = group_matrices(lay, theta)
+                sigma, mu, G, A = implied_moments(mats)
+                parts.append((mats, sigma, mu, G, A, factor_jacobian(lay, mats, G, A)))
+            self._point = (key, parts)
+        return self._point[1]
 
     def moments(self, theta: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
         """Implied (Sigma, mu) of every group."""
@@ -62,8 +76,7 @@ class MLObjective:
     def group_values(self, theta: np.ndarray) -> np.ndarray:
         """F_g of every group."""
         f = np.empty(len(self.layouts))
-        for g, lay in enumerate(self.layouts):
-            sigma, mu, _, _ = implied_moments(group_matrices(lay, theta))
+        for g, (_, sigma, mu, _, _, _) in enumerate(self._at(theta)):
             f[g] = ml_discrepancy(sigma, mu, self.S[g], self.mean[g], self.logdet_s[g])
         return f
 
@@ -82,10 +95,7 @@ class MLObjective:
         grad = np.zeros(q)
         info = np.zeros((q, q)) if information else None
         total = 0.0
-        for g, lay in enumerate(self.layouts):
-            mats = group_matrices(lay, theta)
-            sigma, mu, G, A = implied_moments(mats)
-            fj = factor_jacobian(lay, mats, G, A)
+        for g, (lay, (mats, sigma, mu, G, A, fj)) in enumerate(zip(self.layouts, self._at(theta))):
             f, gg, hh = ml_derivatives(
                 sigma, mu, self.S[g], self.mean[g], fj, logdet_s=self.logdet_s[g], information=information
             )
@@ -100,10 +110,8 @@ class MLObjective:
         """Exact (observed) Hessian of T, analytic."""
         q = self.n_params
         H = np.zeros((q, q))
-        for g, lay in enumerate(self.layouts):
-            mats = group_matrices(lay, theta)
-            sigma, mu, G, A = implied_moments(mats)
-            hh = ml_hessian(lay, mats, sigma, mu, G, A, self.S[g], self.mean[g])
+        for g, (lay, (mats, sigma, mu, G, A, fj)) in enumerate(zip(self.layouts, self._at(theta))):
+            hh = ml_hessian(lay, mats, sigma, mu, G, A, self.S[g], self.mean[g], fj=fj)
             u = lay.params
             H[np.ix_(u, u)] += self.n[g] * hh
         return H

@@ -28,7 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize as _sopt
 
-from .linalg import arrow_solve
+from .linalg import arrow_solve, pd_solve
 
 __all__ = ["STATUS", "RUNAWAY_WINDOW", "Outcome", "minimize", "running_away"]
 
@@ -80,14 +80,12 @@ def _solve(info: np.ndarray, grad: np.ndarray, part=None) -> np.ndarray:
     growing ridge when info is (near) singular or indefinite."""
     scale = max(np.abs(np.diag(info)).max(), 1.0)
     ridge = 0.0
-    eye = np.eye(info.shape[0])
     for _ in range(8):
         try:
-            M = info + ridge * scale * eye if ridge else info
+            M = info + ridge * scale * np.eye(info.shape[0]) if ridge else info
             if part is not None:
                 return -arrow_solve(M, grad, part)
-            c = np.linalg.cholesky(M)
-            return -np.linalg.solve(c.T, np.linalg.solve(c, grad))
+            return -pd_solve(M, grad)
         except np.linalg.LinAlgError:
             ridge = 1e-8 if not ridge else ridge * 100
     return -np.linalg.lstsq(info, grad, rcond=None)[0]
@@ -113,10 +111,13 @@ def running_away(path: list[np.ndarray]) -> np.ndarray:
     return np.flatnonzero(same_way & (late >= early) & moved)
 
 
-def _direction(obj, x, f, g, h, part, newton_ok: bool, free: np.ndarray | None) -> np.ndarray:
+def _direction(obj, x, f, g, h, part, newton_ok: bool, free: np.ndarray | None) -> tuple[np.ndarray, np.ndarray | None]:
     """Newton step (exact Hessian) when allowed and positive definite, else the scoring
-    step. With ``free`` given (bounded problems) the free parameters take that step and
-    the others a diagonally scaled gradient step (Bertsekas 1982)."""
+    step; and the information (``h``, computed here when it was skipped). With ``free``
+    given (bounded problems) the free parameters take that step and the others a
+    diagonally scaled gradient step (Bertsekas 1982)."""
+    if h is None and (not newton_ok or free is not None):
+        h = obj.derivatives(x)[2]
     if free is not None:
         step = -g / np.maximum(np.abs(np.diag(h)), 1e-12)
         if free.any():
@@ -124,21 +125,21 @@ def _direction(obj, x, f, g, h, part, newton_ok: bool, free: np.ndarray | None) 
             try:
                 if not newton_ok:
                     raise np.linalg.LinAlgError
-                c = np.linalg.cholesky(obj.hessian(x)[sub])
-                step[free] = -np.linalg.solve(c.T, np.linalg.solve(c, g[free]))
+                step[free] = -pd_solve(obj.hessian(x)[sub], g[free])
             except np.linalg.LinAlgError:
                 step[free] = _solve(h[sub], g[free])
-        return step
+        return step, h
     if newton_ok:
         try:
             hx = obj.hessian(x)
             if part is not None:
-                return -arrow_solve(hx, g, part)
-            c = np.linalg.cholesky(hx)
-            return -np.linalg.solve(c.T, np.linalg.solve(c, g))
+                return -arrow_solve(hx, g, part), h
+            return -pd_solve(hx, g), h
         except np.linalg.LinAlgError:
             pass
-    return _solve(h, g, part)
+    if h is None:
+        h = obj.derivatives(x)[2]
+    return _solve(h, g, part), h
 
 
 def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float, lower: np.ndarray | None = None):
@@ -160,7 +161,7 @@ def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float, lower: np.ndarray
         if lower is not None:
             # epsilon-active set: near the bound and pushed towards it
             free = ~((x <= lower + 1e-3) & (g > 0))
-        step = _direction(obj, x, f, g, h, part, newton and decrement < 1.0, free)
+        step, h = _direction(obj, x, f, g, h, part, newton and decrement < 1.0, free)
         full = step if lower is None else np.maximum(x + step, lower) - x  # projected full step
         decrement = -float(g @ step)
         if abs(float(g @ full)) < tol * max(1.0, abs(f)) and np.max(np.abs(full)) < 1e-5:
@@ -186,7 +187,8 @@ def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float, lower: np.ndarray
                 run = np.flatnonzero(np.abs(x) > bound / 10)
             return x, f, g, h, 6, it, run
         try:
-            f, g, h = obj.derivatives(x)
+            # a Newton step at x needs no information (computed there only if it fails)
+            f, g, h = obj.derivatives(x, information=not (newton and decrement < 1.0 and lower is None))
         except np.linalg.LinAlgError:
             return x, np.inf, None, None, 2, it, none
     return x, f, g, h, 1, max_iter, none

@@ -42,6 +42,8 @@ from ..data.moments import GroupStats, SampleStats
 from ..errors import DataError, EstimationError
 from ..model.spec import ModelSpec
 from .kernels import compile_spec, group_matrices, implied_moments, moment_jacobian
+from .objective import MLObjective
+from .optimize import minimize
 
 __all__ = [
     "saturated_scores",
@@ -398,9 +400,6 @@ def scaled_difference(t0: float, df0: int, c0: float, t1: float, df1: int, c1: f
 
 def _nested_point(restricted, free, stats: SampleStats) -> np.ndarray:
     """Parameters of the free model reproducing the restricted model's implied moments."""
-    from .objective import MLObjective
-    from .optimize import minimize
-
     target = SampleStats(
         stats.items,
         tuple(GroupStats(g.name, g.n, mu, sigma) for g, sigma, mu in zip(stats.groups, restricted.sigma, restricted.mu)),
