@@ -88,9 +88,28 @@ def check_data(
     -------
     CheckedData
     """
-    import pandas as pd
-
     items = tuple(str(i) for i in items)
+    _check_columns(frame, items, group)
+    warnings: list[str] = []
+    out, present = _numeric_items(frame, items, group, warnings)
+    out, groups = _select_groups(out, present, group=group, groups=groups, reference=reference)
+    rows, complete, missing = _count_groups(
+        out, items, group, groups, complete_cases_needed=complete_cases_needed, warnings=warnings
+    )
+    return CheckedData(
+        frame=out,
+        items=items,
+        group=group,
+        groups=tuple(groups),
+        rows=rows,
+        complete=complete,
+        missing=missing,
+        warnings=tuple(warnings),
+    )
+
+
+def _check_columns(frame, items: tuple[str, ...], group: str) -> None:
+    """Refuse a missing group or item column, and a group column that is also an item."""
     cols = list(frame.columns)
     for col in (group,) + items:
         if col not in cols:
@@ -102,7 +121,16 @@ def check_data(
             )
     if group in items:
         raise DataError(f"Column {group!r} is both the group column and an item; use another group column.")
-    warnings: list[str] = []
+
+
+def _numeric_items(frame, items: tuple[str, ...], group: str, warnings: list[str]):
+    """The group labels and the items as finite floats, rows without a group left out.
+
+    Appends to ``warnings`` (rows without a group, far-out values that look like missing
+    codes); returns the new frame and the group labels present, sorted.
+    """
+    import pandas as pd
+
     keys = frame[group]
     no_group = int(keys.isna().sum())
     if no_group:
@@ -125,6 +153,11 @@ def check_data(
         if far:
             warnings.append(_far_out_note(col, out[col].to_numpy(), far))
     present = sorted(set(labels), key=_sort_key)
+    return out, present
+
+
+def _select_groups(out, present: list[str], *, group: str, groups, reference):
+    """The groups to analyse (at least two) with the reference among them, and their rows."""
     if groups is None:
         groups = present
     else:
@@ -145,6 +178,13 @@ def check_data(
         raise DataError(
             f"Reference group {str(reference)!r} is not in {where}; choose one of {', '.join(groups)}."
         )
+    return out, groups
+
+
+def _count_groups(out, items: tuple[str, ...], group: str, groups, *, complete_cases_needed: bool,
+                  warnings: list[str]):
+    """Rows, complete rows and missing counts per group; refuse empty or constant items and
+    groups with no more usable rows than items, and warn about small groups."""
     p = len(items)
     rows, complete, missing = {}, {}, {}
     for g in groups:
@@ -152,18 +192,7 @@ def check_data(
         rows[g] = int(block.shape[0])
         obs = ~np.isnan(block)
         missing[g] = {it: int((~obs[:, j]).sum()) for j, it in enumerate(items)}
-        for j, it in enumerate(items):
-            vals = block[obs[:, j], j]
-            if vals.size == 0:
-                raise DataError(
-                    f"Item {it!r} is entirely missing in group {g!r}; drop the item or the group, "
-                    "or check the missing codes."
-                )
-            if np.ptp(vals) == 0:
-                raise DataError(
-                    f"Item {it!r} is constant ({_group_label(float(vals[0]))}) in group {g!r}; "
-                    "drop the item or the group."
-                )
+        _check_item_values(block, obs, items, g)
         n_ok = int(obs.all(axis=1).sum())
         complete[g] = n_ok
         n_use = n_ok if complete_cases_needed else int(obs.any(axis=1).sum())
@@ -178,16 +207,23 @@ def check_data(
                 f"group {g} has {n_use} {what}; under about {SMALL_GROUP} per group "
                 "(common practice) every test here is weak"
             )
-    return CheckedData(
-        frame=out,
-        items=items,
-        group=group,
-        groups=tuple(groups),
-        rows=rows,
-        complete=complete,
-        missing=missing,
-        warnings=tuple(warnings),
-    )
+    return rows, complete, missing
+
+
+def _check_item_values(block: np.ndarray, obs: np.ndarray, items: tuple[str, ...], g: str) -> None:
+    """Refuse an item entirely missing or constant within group ``g``."""
+    for j, it in enumerate(items):
+        vals = block[obs[:, j], j]
+        if vals.size == 0:
+            raise DataError(
+                f"Item {it!r} is entirely missing in group {g!r}; drop the item or the group, "
+                "or check the missing codes."
+            )
+        if np.ptp(vals) == 0:
+            raise DataError(
+                f"Item {it!r} is constant ({_group_label(float(vals[0]))}) in group {g!r}; "
+                "drop the item or the group."
+            )
 
 
 #: Largest magnitude accepted in an item (beyond it, squares and products lose all precision).

@@ -108,36 +108,13 @@ def read_table(
         a delimited file whose first line shows another separator than its format's,
         is refused.
     """
-    import pandas as pd
-
     path = pathlib.Path(path)
-    if path.is_dir():
-        raise DataError(
-            f"Data path {shorten(str(path))} is a folder, not a file; set data.path to the data file inside it."
-        )
-    if not path.is_file():
-        raise DataError(f"Data file {shorten(str(path))} does not exist; check data.path (relative to the pipeline file).")
+    _check_path(path)
     fmt = format or guess_format(path)
     if sheet is not None and fmt != "excel":
         raise SpecificationError(f"data.sheet applies to Excel workbooks only, and {path.name!r} is read as {fmt}; remove data.sheet.")
     try:
-        if fmt in ("csv", "tsv"):
-            frame = _read_delimited(path, fmt, text_columns)
-        elif fmt == "stata":
-            frame = pd.read_stata(path, convert_categoricals=False)
-        elif fmt == "spss":
-            try:
-                import pyreadstat  # noqa: F401
-            except ImportError:
-                raise DataError(
-                    "Reading SPSS files needs the optional extra 'spss'; install it with "
-                    "pip install 'invariance[spss]' or save the data as CSV."
-                ) from None
-            frame = pd.read_spss(path, convert_categoricals=False)
-        elif fmt == "excel":
-            frame = _read_excel(path, sheet, text_columns)
-        else:
-            raise SpecificationError(f"Unknown data format {fmt!r}; use one of {', '.join(FORMATS)}.")
+        frame = _read_format(path, fmt, sheet=sheet, text_columns=text_columns)
     except InvarianceErrorTypes:
         raise
     except Exception as exc:  # parser errors of every reader
@@ -149,6 +126,38 @@ def read_table(
         raise DataError(f"Data file {shorten(path.name)} has no rows or no columns; check the file.")
     frame.columns = [str(c).strip() for c in frame.columns]
     return frame
+
+
+def _check_path(path: pathlib.Path) -> None:
+    """Refuse a data path that is a folder or does not exist."""
+    if path.is_dir():
+        raise DataError(
+            f"Data path {shorten(str(path))} is a folder, not a file; set data.path to the data file inside it."
+        )
+    if not path.is_file():
+        raise DataError(f"Data file {shorten(str(path))} does not exist; check data.path (relative to the pipeline file).")
+
+
+def _read_format(path: pathlib.Path, fmt: str, *, sheet: str | int | None, text_columns: Sequence[str]):
+    """The file read by the reader of ``fmt``; an unknown format is refused."""
+    import pandas as pd
+
+    if fmt in ("csv", "tsv"):
+        return _read_delimited(path, fmt, text_columns)
+    if fmt == "stata":
+        return pd.read_stata(path, convert_categoricals=False)
+    if fmt == "spss":
+        try:
+            import pyreadstat  # noqa: F401
+        except ImportError:
+            raise DataError(
+                "Reading SPSS files needs the optional extra 'spss'; install it with "
+                "pip install 'invariance[spss]' or save the data as CSV."
+            ) from None
+        return pd.read_spss(path, convert_categoricals=False)
+    if fmt == "excel":
+        return _read_excel(path, sheet, text_columns)
+    raise SpecificationError(f"Unknown data format {fmt!r}; use one of {', '.join(FORMATS)}.")
 
 
 def _header(path: pathlib.Path, sep: str) -> list[str]:

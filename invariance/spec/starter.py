@@ -43,6 +43,25 @@ def starter_pipeline(data: str | pathlib.Path, *, group: str, out: str | pathlib
     """
     data = pathlib.Path(data)
     frame = read_table(data, text_columns=(group,))
+    items = _item_columns(frame, data, group)
+    if out is not None:
+        out = pathlib.Path(out)
+        if out.exists():
+            raise SpecificationError(f"{out} already exists; choose another file name or delete it first.")
+        rel = os.path.relpath(data.resolve(), out.resolve().parent)
+    else:
+        rel = str(data)
+    codes = sorted({v for c in items for v in far_out_values(frame[c].to_numpy(dtype=float))})
+    codes = [int(v) if float(v).is_integer() else v for v in codes]
+    text = _starter_text(_starter_body(data, group=group, rel=rel, items=items, codes=codes), codes)
+    if out is not None:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        out.write_text(text, encoding="utf-8")
+    return text
+
+
+def _item_columns(frame, data: pathlib.Path, group: str) -> list[str]:
+    """Numeric columns other than the group column and identifier-like ones (at least three)."""
     if group not in frame.columns:
         raise DataError(
             f"Group column {group!r} is not in {data.name}; the columns are {', '.join(map(str, frame.columns[:12]))}"
@@ -56,16 +75,12 @@ def starter_pipeline(data: str | pathlib.Path, *, group: str, out: str | pathlib
         raise DataError(
             f"{data.name} has {len(items)} numeric item columns besides {group!r}; a factor model needs at least three."
         )
-    if out is not None:
-        out = pathlib.Path(out)
-        if out.exists():
-            raise SpecificationError(f"{out} already exists; choose another file name or delete it first.")
-        rel = os.path.relpath(data.resolve(), out.resolve().parent)
-    else:
-        rel = str(data)
-    codes = sorted({v for c in items for v in far_out_values(frame[c].to_numpy(dtype=float))})
-    codes = [int(v) if float(v).is_integer() else v for v in codes]
-    body = {
+    return items
+
+
+def _starter_body(data: pathlib.Path, *, group: str, rel: str, items: list[str], codes: list) -> dict:
+    """The starter pipeline document: one factor over every item, the default decision rule."""
+    return {
         "title": f"{data.stem} by {group}",
         "data": {"path": rel, "group": group, "missing": codes},
         "model": {"factors": {"factor1": items}},
@@ -75,7 +90,11 @@ def starter_pipeline(data: str | pathlib.Path, *, group: str, out: str | pathlib
         "output": {"folder": f"results/{data.stem}_by_{group}"},
         "seed": None,
     }
-    text = (
+
+
+def _starter_text(body: dict, codes: list) -> str:
+    """The document as YAML under a comment header on what to edit."""
+    return (
         "# Starter pipeline written by `invariance new`. Edit model.factors (factor -> items);\n"
         "# add model.general for a general factor over all items (bifactor model).\n"
         "# data.missing lists codes meaning 'missing' (or give column -> codes).\n"
@@ -83,7 +102,3 @@ def starter_pipeline(data: str | pathlib.Path, *, group: str, out: str | pathlib
            "# (missing-value codes, as it looks); delete any that is a real answer.\n" if codes else "")
         + yaml.safe_dump(body, sort_keys=False, default_flow_style=None, width=100)
     )
-    if out is not None:
-        out.parent.mkdir(parents=True, exist_ok=True)
-        out.write_text(text, encoding="utf-8")
-    return text
