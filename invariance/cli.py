@@ -12,12 +12,16 @@ import signal
 import sys
 import warnings
 
+import traceback
+
 from .demo import write_demo
 from .errors import InvarianceError, SpecificationError
 from .escape import terminal_text, visible
 from .pipeline.runner import check, run
 from .spec.starter import starter_pipeline
 from .version import __version__
+from .pipeline.batch.commands import add_commands
+from .pipeline.batch.executor import DaskExecutor
 
 __all__ = ["main", "build_parser"]
 
@@ -62,8 +66,6 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--out", default="invariance-demo", help="folder to write into (default: invariance-demo)")
     d.add_argument("--seed", type=int, default=20261201, help="random seed")
     d.add_argument("--n-per-site", type=int, default=400, help="respondents per site")
-    # Dask and the batch machinery load only when a command needs them (start-up time).
-    from .pipeline.batch.commands import add_commands
 
     add_commands(sub)  # batch, plan
     return p
@@ -73,7 +75,6 @@ def _cmd_run(args) -> int:
     if args.workers < 0:
         raise SpecificationError(f"--workers must be 0 or more; got {args.workers}.")
     if args.workers or args.scheduler:
-        from .pipeline.batch.executor import DaskExecutor
 
         with DaskExecutor(scheduler=args.scheduler, workers=max(args.workers, 1)) as ex:
             run(args.pipeline, out=args.out, quiet=args.quiet, crosscheck=args.second_opinion, executor=ex)
@@ -154,7 +155,6 @@ def main(argv: list[str] | None = None) -> int:
               "(an earlier one is kept): run again to finish", file=sys.stderr)
         return 128 + int(signum)
     except Exception as exc:  # internal error: keep the traceback for a bug report
-        import traceback
 
         traceback.print_exc()
         print(f"internal error: {type(exc).__name__}: {exc}; please report it", file=sys.stderr)

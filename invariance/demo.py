@@ -23,6 +23,7 @@ from __future__ import annotations
 import pathlib
 
 import numpy as np
+import pandas as pd
 
 __all__ = ["ITEMS", "SITES", "OCCUPATIONS", "PLANTED", "simulate", "write_demo", "pipeline_text"]
 
@@ -67,7 +68,6 @@ def simulate(*, seed: int = 20261201, n_per_site: int = 400, missing_rate: float
     pandas.DataFrame
         Columns ``respondent``, ``site``, ``occupation``, ``so01`` ... ``so12``.
     """
-    import pandas as pd
 
     rng = np.random.default_rng(seed)
     n = n_per_site * len(SITES)

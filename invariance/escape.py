@@ -18,6 +18,7 @@ from __future__ import annotations
 import pathlib
 import re
 from typing import Any
+from pandas.api.types import is_bool_dtype, is_numeric_dtype
 
 __all__ = ["visible", "terminal_text", "csv_cell", "csv_safe_frame", "write_csv"]
 
@@ -62,7 +63,6 @@ def _is_number(text: str) -> bool:
 
 def csv_safe_frame(frame):
     """A copy of a DataFrame whose text cells and column names pass :func:`csv_cell`."""
-    from pandas.api.types import is_bool_dtype, is_numeric_dtype
 
     out = frame.copy()
     for k in range(out.shape[1]):

@@ -12,6 +12,8 @@ from typing import Sequence
 
 import numpy as np
 
+import pandas as pd
+
 from ..errors import DataError, shorten
 
 __all__ = ["CheckedData", "check_data", "far_out_values", "MAX_MAGNITUDE", "SMALL_GROUP"]
@@ -129,7 +131,6 @@ def _numeric_items(frame, items: tuple[str, ...], group: str, warnings: list[str
     Appends to ``warnings`` (rows without a group, far-out values that look like missing
     codes); returns the new frame and the group labels present, sorted.
     """
-    import pandas as pd
 
     keys = frame[group]
     no_group = int(keys.isna().sum())

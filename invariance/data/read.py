@@ -16,6 +16,8 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
+import pandas as pd
+
 from ..errors import DataError, SpecificationError, shorten
 
 __all__ = ["FORMATS", "NA_TEXTS", "read_table", "apply_missing", "file_sha256", "guess_format"]
@@ -62,7 +64,6 @@ _SEPARATORS = {",": "comma", ";": "semicolon", "\t": "tab", "|": "vertical bar"}
 
 def _read_excel(path: pathlib.Path, sheet: str | int | None, text_columns: Sequence[str] = ()):
     """One sheet of an Excel workbook (the first when ``sheet`` is None)."""
-    import pandas as pd
 
     with pd.ExcelFile(path, engine="openpyxl") as book:
         names = [str(n) for n in book.sheet_names]
@@ -140,7 +141,6 @@ def _check_path(path: pathlib.Path) -> None:
 
 def _read_format(path: pathlib.Path, fmt: str, *, sheet: str | int | None, text_columns: Sequence[str]):
     """The file read by the reader of ``fmt``; an unknown format is refused."""
-    import pandas as pd
 
     if fmt in ("csv", "tsv"):
         return _read_delimited(path, fmt, text_columns)
@@ -148,7 +148,7 @@ def _read_format(path: pathlib.Path, fmt: str, *, sheet: str | int | None, text_
         return pd.read_stata(path, convert_categoricals=False)
     if fmt == "spss":
         try:
-            import pyreadstat  # noqa: F401
+            import pyreadstat  # noqa: F401  (the optional `spss` extra)
         except ImportError:
             raise DataError(
                 "Reading SPSS files needs the optional extra 'spss'; install it with "
@@ -185,7 +185,6 @@ def _refuse_other_separator(path: pathlib.Path, fmt: str, sep: str, header: list
 
 
 def _read_delimited(path: pathlib.Path, fmt: str, text_columns: Sequence[str]):
-    import pandas as pd
 
     sep = "," if fmt == "csv" else "\t"
     header = _header(path, sep)

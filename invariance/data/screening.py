@@ -45,6 +45,8 @@ from typing import Mapping, Sequence
 import numpy as np
 from scipy import stats as _st
 
+import pandas as pd
+
 from ..errors import DataError, SpecificationError
 from .screening_advice import recommend
 
@@ -432,7 +434,6 @@ def _item_bounds(
 
 def screening_table(result: dict):
     """One row per group and item from the output of :func:`screen` (a DataFrame)."""
-    import pandas as pd
 
     rows = []
     for g in result["groups"]:

@@ -35,6 +35,8 @@ from typing import Callable, Mapping, Sequence
 
 import numpy as np
 
+import pandas as pd
+
 from ..data.moments import SampleStats, sample_stats
 from ..errors import EstimationError, InvarianceWarning, SpecificationError
 from ..estimate.ml import fit
@@ -208,7 +210,6 @@ class StructureComparison:
 
     def table(self):
         """The rows as a DataFrame (without the problem lists)."""
-        import pandas as pd
 
         return pd.DataFrame([{k: v for k, v in r.items() if k != "problems"} for r in self.rows])
 

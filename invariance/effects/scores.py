@@ -36,6 +36,8 @@ from typing import Sequence
 
 import numpy as np
 
+import pandas as pd
+
 from ..errors import DataError, EstimationError, SpecificationError
 from ..estimate.result import FitResult
 
@@ -323,7 +325,6 @@ def _score_groups(
     result: FitResult, X: np.ndarray, keys: np.ndarray, ids: np.ndarray, id_col: str, *, method: str, incomplete: bool
 ):
     """Score every group's cases; returns the table (data row order), determinacies and validities."""
-    import pandas as pd
 
     spec = result.spec
     factors = list(spec.factors)

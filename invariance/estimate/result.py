@@ -8,6 +8,8 @@ from functools import cached_property
 import numpy as np
 from scipy import stats as _st
 
+import pandas as pd
+
 from .indices import FitStats
 from ..model.spec import ALPHA, NU, ModelSpec
 
@@ -131,7 +133,6 @@ class FitResult:
         Columns: group, parameter, variable, other, label, free, estimate, se, z, pvalue, std
         (completely standardized value).
         """
-        import pandas as pd
 
         spec = self.spec
         lhs, rhs = spec.entry_names()

@@ -22,6 +22,8 @@ from typing import Iterable, Sequence
 
 import numpy as np
 
+import pandas as pd
+
 from ..errors import SpecificationError
 
 __all__ = ["ModelSpec", "Release", "MATRICES", "PARAMETER_KINDS", "LAMBDA", "BETA", "PSI", "THETA", "NU", "ALPHA", "TAU"]
@@ -305,7 +307,6 @@ class ModelSpec:
 
     def table(self):
         """The entry table as a pandas DataFrame (for reading, not for computing)."""
-        import pandas as pd
 
         lhs, rhs = self.entry_names()
         return pd.DataFrame(

@@ -5,6 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+import pandas as pd
 
 __all__ = ["AlignmentResult", "ParameterAgreement"]
 
@@ -90,7 +91,6 @@ class AlignmentResult:
 
     def table(self):
         """Aligned means and variances as a pandas DataFrame (factor, group, ...)."""
-        import pandas as pd
 
         rows = [
             {
@@ -108,7 +108,6 @@ class AlignmentResult:
 
     def parameter_table(self):
         """One row per factor, item parameter and group: aligned value, SE, in the invariant set."""
-        import pandas as pd
 
         rows = [
             {

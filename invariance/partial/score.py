@@ -27,6 +27,8 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy import stats as _st
 
+import pandas as pd
+
 from ..data.moments import SampleStats
 from ..errors import SpecificationError
 from ..estimate.fiml import FIMLObjective
@@ -179,7 +181,6 @@ class ScoreTests:
 
     def frame(self, which: str = "univariate"):
         """The tests as a pandas DataFrame (``which``: univariate or multivariate)."""
-        import pandas as pd
 
         if which not in ("univariate", "multivariate"):
             raise SpecificationError(f"'which' must be 'univariate' or 'multivariate'; got {which!r}.")

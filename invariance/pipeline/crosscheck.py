@@ -13,6 +13,8 @@ from __future__ import annotations
 import warnings
 from typing import Mapping
 
+import pandas as pd
+
 from ..errors import InvarianceWarning
 from ..estimate.ml import fit as ml_fit
 from ..model.levels import build_level
@@ -70,8 +72,7 @@ def _verdict(rel: float, theirs: float, ours: float, their_df: int, our_df: int)
 
 def stage_crosscheck(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Per group: this package's single-group configural chi-square against semopy's."""
-    import pandas as pd
-    import semopy
+    import semopy  # 2 s to import: only with --second-opinion
 
     stats = state.stats
     desc = semopy_description(spec.structure)

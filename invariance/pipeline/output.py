@@ -16,6 +16,9 @@ import shutil
 import tempfile
 from typing import Callable, Sequence
 
+import pandas as pd
+import secrets
+
 from ..data.read import file_sha256
 from ..decide.verdict import display_rows, where_text
 from ..errors import SpecificationError, shorten
@@ -52,7 +55,6 @@ def level_table(results: dict):
     """The stepwise level table as a DataFrame: one row per level, and for a level with
     releases made at it the fully constrained row (``partial`` false) before the partial
     one (:func:`invariance.decide.verdict.display_rows`)."""
-    import pandas as pd
 
     rows = []
     for lv in display_rows(results["levels"]):
@@ -303,7 +305,6 @@ def check_destination(out_dir: pathlib.Path, *, protected: Sequence[tuple[pathli
 
 def _new_folder(parent: pathlib.Path, name: str) -> pathlib.Path:
     """A fresh hidden folder (mode from the umask, unlike ``tempfile.mkdtemp``'s 0700)."""
-    import secrets
 
     for _ in range(100):
         path = parent / f".{name}.{secrets.token_hex(4)}.partial"

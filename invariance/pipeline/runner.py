@@ -23,6 +23,7 @@ from .crosscheck import stage_crosscheck
 from .output import check_destination, format_table, level_table, to_json, write_outputs
 from .stages import STAGES, stage_data, stage_levels, stage_stats, with_stage
 from .state import RunState
+from .. import report
 
 __all__ = ["RunResult", "Interrupted", "run", "check", "default_out_dir"]
 
@@ -251,7 +252,6 @@ def _run(pipeline, *, out, quiet: bool, crosscheck: bool, write: bool | None, ex
     results = json.loads(to_json(results))
     estimates = _estimates(state.fits)
     if out_dir is not None:
-        from ..report import write_reports  # lazy: the report layer loads matplotlib
 
         context = _context(spec, results, quiet)
 
@@ -262,7 +262,7 @@ def _run(pipeline, *, out, quiet: bool, crosscheck: bool, write: bool | None, ex
             (folder / "pipeline.yaml").write_text(spec.text, encoding="utf-8")
             if state.scores_table is not None:
                 write_csv(state.scores_table, folder / "scores.csv")
-            write_reports(folder, results, estimates, context)
+            report.write_reports(folder, results, estimates, context)
 
         out_dir = write_outputs(out_dir, [files], protected=protected)
     if not quiet:

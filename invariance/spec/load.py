@@ -19,6 +19,8 @@ from typing import Any, Mapping
 
 import yaml
 
+import jsonschema
+
 from ..decide.compare import DecisionRule, rule_from_section
 from ..data.read import guess_format
 from ..errors import SpecificationError, shorten
@@ -167,7 +169,6 @@ def _path_text(path) -> str:
 
 def validate_document(doc: Mapping) -> None:
     """Validate a pipeline document against the schema; raise one clear error."""
-    import jsonschema
 
     check_finite_numbers(doc)
     validator = jsonschema.Draft202012Validator(schema())

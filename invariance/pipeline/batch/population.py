@@ -13,6 +13,8 @@ from typing import Mapping, Sequence
 
 import numpy as np
 
+import pandas as pd
+
 from ...data.simulate import draw_group
 from ...errors import SpecificationError
 from ...estimate.kernels import implied_moments
@@ -89,7 +91,6 @@ class Population:
         other and estimate (and ``level`` when several levels are stacked: ``level``
         picks one, default the highest level present).
         """
-        import pandas as pd
 
         frame = pd.read_csv(table, keep_default_na=False, na_values=[""]) if not isinstance(table, pd.DataFrame) else table
         need = {"group", "parameter", "variable", "other", "estimate"}

@@ -11,7 +11,10 @@ import itertools
 from pathlib import Path
 from typing import Any, Mapping, Sequence
 
+import yaml
+
 from ...errors import SpecificationError
+from ..runner import run as run_pipeline
 from .runner import highest_level
 
 __all__ = ["pipeline_task", "summarize_results", "pipeline_variants", "parse_vary"]
@@ -37,15 +40,7 @@ def pipeline_task(*, pipeline, out: str | Path, seed: int = 0) -> dict:
     Calls ``invariance.run(pipeline, out=out, quiet=True)``; the folder gets the same
     files as a single run. Returns :func:`summarize_results` of the result plus ``out``.
     """
-    import invariance
-
-    runner = getattr(invariance, "run", None)
-    if runner is None:
-        raise SpecificationError(
-            "Pipeline tasks need invariance.run (the pipeline runner), which this installation lacks; "
-            "update the package."
-        )
-    result = runner(pipeline, out=str(out), quiet=True)
+    result = run_pipeline(pipeline, out=str(out), quiet=True)
     summary = summarize_results(result.to_dict())
     summary["out"] = str(out)
     return summary
@@ -80,7 +75,6 @@ def pipeline_variants(path: str | Path, vary: Mapping[str, Sequence[str]]) -> li
     unless they are varied too. Returns ``(name, pipeline dict)`` pairs; names join the
     file stem and the values.
     """
-    import yaml
 
     path = Path(path)
     if not path.is_file():
