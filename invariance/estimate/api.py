@@ -18,7 +18,6 @@ from ..errors import SpecificationError
 from ..model.levels import LevelBuilder
 from ..model.spec import Release
 from ..model.structure import Structure
-from .dwls import ordinal_start_values, start_from
 from .interface import INCOMPLETE, Estimator, estimator_for
 from .result import FitResult
 
@@ -126,10 +125,8 @@ def fit_levels(
     prev = None
     for lv in (builder.levels if levels is None else levels):
         spec = builder.build(lv, released)
-        start = None
-        if prev is not None and builder.n_categories is not None:
-            # ordinal levels start from the previous level's estimates (by label)
-            start = start_from(prev.spec.param_labels, prev.theta, spec, ordinal_start_values(spec, stats))
+        # each level starts from the previous level's estimates (by label)
+        start = est.warm_start(prev, spec, stats) if prev is not None and prev.converged else None
         fits[lv] = prev = est.fit(spec, stats, start=start)
     return fits
 

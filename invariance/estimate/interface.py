@@ -36,11 +36,13 @@ from ..data.moments import sample_stats
 from ..data.ordinal_stats import ordinal_stats
 from ..decide.compare import level_delta
 from ..errors import EstimationError, InvarianceWarning, SpecificationError
+from .dwls import ordinal_start_values, start_from
 from .dwls_robust import dwls_difference, fit_dwls
 from .ml import fit as ml_fit
 from ..model.spec import ModelSpec
 from .result import FitResult
 from .robust import H1Moments, robust_difference
+from .start import start_values
 
 __all__ = [
     "ESTIMATOR_NAMES",
@@ -104,6 +106,8 @@ class Estimator(Protocol):
 
     def fit(self, spec: ModelSpec, stats, *, start: np.ndarray | None = None) -> FitResult: ...
 
+    def warm_start(self, previous: FitResult, spec: ModelSpec, stats) -> np.ndarray: ...
+
     def difference(self, restricted: FitResult, free: FitResult, stats) -> Difference: ...
 
     def level_row(self, level: str, res: FitResult) -> dict: ...
@@ -151,6 +155,10 @@ class MaximumLikelihood:
 
     def fit(self, spec, stats, *, start=None) -> FitResult:
         return ml_fit(spec, stats, start=start, estimator=self.name, information=self.information, **dict(self.options))
+
+    def warm_start(self, previous: FitResult, spec: ModelSpec, stats) -> np.ndarray:
+        """Starting values for ``spec`` from a related fit's estimates, by label (the rest analytic)."""
+        return start_from(previous.spec.param_labels, previous.theta, spec, start_values(spec, stats))
 
     def difference(self, restricted, free, stats) -> Difference:
         dt = max(float(restricted.fit.chi2 - free.fit.chi2), 0.0)
@@ -260,6 +268,10 @@ class DiagonallyWeighted:
 
     def fit(self, spec, stats, *, start=None) -> FitResult:
         return fit_dwls(spec, stats, start=start, **dict(self.options))
+
+    def warm_start(self, previous: FitResult, spec: ModelSpec, stats) -> np.ndarray:
+        """Starting values for ``spec`` from a related fit's estimates, by label (the rest analytic)."""
+        return start_from(previous.spec.param_labels, previous.theta, spec, ordinal_start_values(spec, stats))
 
     def difference(self, restricted, free, stats) -> Difference:
         d = dwls_difference(restricted, free, stats)

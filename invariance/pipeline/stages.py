@@ -170,7 +170,11 @@ def _fit_level(spec: PipelineSpec, state: RunState, level: str, carried: tuple, 
     est = state.estimator
     model = state.models[level] if not carried else state.builder.build(level, spec.released + carried)
     kept = reuse_fit(state.extra.get("prefit", {}), level, model)
-    res, caught = kept if kept is not None else quiet_fit(est, model, state.stats)
+    # a nested level starts from the accepted level's estimates; the fit falls back to the
+    # analytic and alternative starts when that start fails
+    base = None if accepted is None else accepted[2]
+    start = est.warm_start(base, model, state.stats) if base is not None and base.converged else None
+    res, caught = kept if kept is not None else quiet_fit(est, model, state.stats, start=start)
     notes.extend(n if n.startswith(f"{level}:") else f"{level}: {n}" for n in caught)
     if accepted is None:
         row = est.level_row(level, res)
