@@ -24,6 +24,8 @@ __all__ = [
     "srmr",
     "information_criteria",
     "mcdonald_centrality",
+    "fit_from_totals",
+    "compute_fit",
 ]
 
 
@@ -138,34 +140,40 @@ class FitStats:
         return {k: (None if isinstance(v, float) and not np.isfinite(v) else v) for k, v in d.items()}
 
 
-def compute_fit(t: float, df: int, q: int, covs, means, sigmas, mus, ns) -> FitStats:
-    """All fit statistics from the minimized ML statistic and the implied moments."""
-    ns = np.asarray(ns, dtype=float)
-    n = int(ns.sum())
-    G = len(covs)
-    p = covs[0].shape[0]
-    t_b, df_b = baseline_statistic(covs, ns)
-    ll_sat = float(sum(-0.5 * ng * (p * np.log(2 * np.pi) + np.linalg.slogdet(S)[1] + p) for S, ng in zip(covs, ns)))
-    loglik = ll_sat - 0.5 * t
+def fit_from_totals(*, t: float, df: int, q: int, n: int, n_groups: int, t_b: float, df_b: int,
+                    loglik: float, loglik_saturated: float, srmr_value: float) -> FitStats:
+    """Every fit statistic from the totals of a model: the statistic ``t`` on ``df``,
+    ``q`` free parameters, ``n`` cases in ``n_groups`` groups, the baseline ``t_b`` on
+    ``df_b``, the log-likelihoods and the (N-weighted) SRMR."""
     aic, bic, bic_adjusted = information_criteria(loglik, q, n)
-    pval = float(stats.chi2.sf(t, df)) if df > 0 else float("nan")
     return FitStats(
         chi2=float(t),
         df=int(df),
-        pvalue=pval,
+        pvalue=float(stats.chi2.sf(t, df)) if df > 0 else float("nan"),
         cfi=cfi(t, df, t_b, df_b),
         tli=tli(t, df, t_b, df_b),
-        rmsea=rmsea(t, df, n, G),
-        rmsea_ci90=rmsea_interval(t, df, n, G),
-        srmr=srmr(covs, means, sigmas, mus, ns),
+        rmsea=rmsea(t, df, n, n_groups),
+        rmsea_ci90=rmsea_interval(t, df, n, n_groups),
+        srmr=float(srmr_value),
         loglik=float(loglik),
-        loglik_saturated=ll_sat,
+        loglik_saturated=float(loglik_saturated),
         aic=aic,
         bic=bic,
         bic_adjusted=bic_adjusted,
         mc=mcdonald_centrality(t, df, n),
         n_params=int(q),
-        n=n,
-        baseline_chi2=t_b,
-        baseline_df=df_b,
+        n=int(n),
+        baseline_chi2=float(t_b),
+        baseline_df=int(df_b),
     )
+
+
+def compute_fit(t: float, df: int, q: int, covs, means, sigmas, mus, ns) -> FitStats:
+    """All fit statistics from the minimized ML statistic and the implied moments."""
+    ns = np.asarray(ns, dtype=float)
+    p = covs[0].shape[0]
+    t_b, df_b = baseline_statistic(covs, ns)
+    ll_sat = float(sum(-0.5 * ng * (p * np.log(2 * np.pi) + np.linalg.slogdet(S)[1] + p) for S, ng in zip(covs, ns)))
+    return fit_from_totals(t=t, df=df, q=q, n=int(ns.sum()), n_groups=len(covs), t_b=t_b, df_b=df_b,
+                           loglik=ll_sat - 0.5 * t, loglik_saturated=ll_sat,
+                           srmr_value=srmr(covs, means, sigmas, mus, ns))

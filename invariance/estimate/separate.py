@@ -19,7 +19,7 @@ from scipy import stats as _st
 
 from ..data.moments import SampleStats
 from ..model.spec import ModelSpec
-from .indices import FitStats, cfi, information_criteria, mcdonald_centrality, rmsea, rmsea_interval, tli
+from .indices import FitStats, fit_from_totals
 from .result import FitResult
 from .robust import robust_indices
 
@@ -70,22 +70,12 @@ def fit_by_group(spec: ModelSpec, stats: SampleStats, fitter: Callable, *, start
 
 def combine_stats(parts: list[FitStats], n_groups: int) -> FitStats:
     """Fit statistics of independent groups: sums, and the indices from the sums."""
-    t = sum(f.chi2 for f in parts)
-    df = sum(f.df for f in parts)
-    q = sum(f.n_params for f in parts)
     n = sum(f.n for f in parts)
-    t_b = sum(f.baseline_chi2 for f in parts)
-    df_b = sum(f.baseline_df for f in parts)
-    loglik = sum(f.loglik for f in parts)
-    aic, bic, bic_adjusted = information_criteria(loglik, q, n)
-    return FitStats(
-        chi2=float(t), df=int(df), pvalue=float(_st.chi2.sf(t, df)) if df > 0 else float("nan"),
-        cfi=cfi(t, df, t_b, df_b), tli=tli(t, df, t_b, df_b), rmsea=rmsea(t, df, n, n_groups),
-        rmsea_ci90=rmsea_interval(t, df, n, n_groups),
-        srmr=float(sum(f.n * f.srmr for f in parts) / n),  # N-weighted, as in indices.srmr
-        loglik=float(loglik), loglik_saturated=float(sum(f.loglik_saturated for f in parts)),
-        aic=aic, bic=bic, bic_adjusted=bic_adjusted, mc=mcdonald_centrality(t, df, n), n_params=int(q), n=int(n),
-        baseline_chi2=float(t_b), baseline_df=int(df_b),
+    return fit_from_totals(
+        t=sum(f.chi2 for f in parts), df=sum(f.df for f in parts), q=sum(f.n_params for f in parts), n=n,
+        n_groups=n_groups, t_b=sum(f.baseline_chi2 for f in parts), df_b=sum(f.baseline_df for f in parts),
+        loglik=sum(f.loglik for f in parts), loglik_saturated=sum(f.loglik_saturated for f in parts),
+        srmr_value=sum(f.n * f.srmr for f in parts) / n,  # N-weighted, as in indices.srmr
     )
 
 
