@@ -17,7 +17,7 @@ import pandas as pd
 from ..errors import SpecificationError, shorten
 from ..progress import Progress
 from ..escape import terminal_text, write_csv
-from ..spec.load import PipelineSpec, load_pipeline, thaw
+from ..spec.load import PipelineSpec, freeze, load_pipeline, thaw
 from ..version import __version__
 from .crosscheck import stage_crosscheck
 from .output import check_destination, format_table, level_table, to_json, write_outputs
@@ -26,14 +26,6 @@ from .state import RunState
 from .. import report
 
 __all__ = ["RunResult", "Interrupted", "run", "check", "default_out_dir"]
-
-
-def _freeze(obj):
-    if isinstance(obj, dict):
-        return MappingProxyType({k: _freeze(v) for k, v in obj.items()})
-    if isinstance(obj, list):
-        return tuple(_freeze(v) for v in obj)
-    return obj
 
 
 @dataclass(frozen=True, eq=False)
@@ -274,7 +266,7 @@ def _run(pipeline, *, out, quiet: bool, crosscheck: bool, write: bool | None, ex
                 shown = out_dir
             print(f"\nOutputs written to {shown}")
     return RunResult(
-        results=_freeze(results),
+        results=freeze(results),
         estimates=estimates,
         fits=state.fits,
         spec=spec,

@@ -33,7 +33,7 @@ from .checks import check_finite_numbers, check_meaning
 from .document import MAX_DEPTH, MAX_NODES, parse_yaml, plain_document  # re-exported: imports of spec.load keep working
 from .options import PartialSettings, check_alignment_section, partial_settings, structural_settings
 
-__all__ = ["PipelineSpec", "load_pipeline", "parse_yaml", "plain_document", "schema", "validate_document", "thaw"]
+__all__ = ["PipelineSpec", "freeze", "load_pipeline", "parse_yaml", "plain_document", "schema", "validate_document", "thaw"]
 
 SCHEMA_PATH = pathlib.Path(__file__).with_name("schema.json")
 
@@ -44,11 +44,12 @@ def schema() -> dict:
     return json.loads(SCHEMA_PATH.read_text(encoding="utf-8"))
 
 
-def _freeze(obj):
+def freeze(obj):
+    """Read-only mappings and tuples from a plain document (the inverse of :func:`thaw`)."""
     if isinstance(obj, Mapping):
-        return MappingProxyType({k: _freeze(v) for k, v in obj.items()})
+        return MappingProxyType({k: freeze(v) for k, v in obj.items()})
     if isinstance(obj, (list, tuple)):
-        return tuple(_freeze(v) for v in obj)
+        return tuple(freeze(v) for v in obj)
     return obj
 
 
@@ -423,7 +424,7 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
     groups = data.get("groups")
     ref = data.get("reference")
     return PipelineSpec(
-        document=_freeze(doc),
+        document=freeze(doc),
         text=text,
         source=source,
         base_dir=base_dir,
