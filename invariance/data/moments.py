@@ -311,5 +311,9 @@ def sample_stats(
     keys = frame[group]
     if groups is None:
         groups = list(dict.fromkeys(keys.dropna().tolist()))
-    arrays = [frame.loc[keys == g, items].to_numpy(dtype=float) for g in groups]
+    # One conversion to arrays, then boolean rows per group: pandas indexing per group
+    # costs more than the statistics themselves on small data.
+    values = frame[items].to_numpy(dtype=float)
+    key_values = keys.to_numpy()
+    arrays = [values[key_values == g] for g in groups]
     return stats_from_arrays(arrays, [str(g) for g in groups], items, missing=missing)

@@ -39,7 +39,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Mapping, Sequence
 
-from scipy import stats as _st
+from scipy import special as _sp
 
 from ..errors import SpecificationError
 
@@ -257,7 +257,7 @@ def level_delta(restricted: Mapping, free: Mapping) -> dict:
     """
     dchi = float(restricted["chi2"]) - float(free["chi2"])
     ddf = int(restricted["df"]) - int(free["df"])
-    p = float(_st.chi2.sf(max(dchi, 0.0), ddf)) if ddf > 0 else None
+    p = float(_sp.chdtrc(ddf, max(dchi, 0.0))) if ddf > 0 else None
 
     def diff(k):
         a, b = restricted.get(k), free.get(k)

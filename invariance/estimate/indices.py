@@ -12,7 +12,7 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass
 
 import numpy as np
-from scipy import special, stats
+from scipy import special
 
 __all__ = [
     "FitStats",
@@ -149,7 +149,7 @@ def fit_from_totals(*, t: float, df: int, q: int, n: int, n_groups: int, t_b: fl
     return FitStats(
         chi2=float(t),
         df=int(df),
-        pvalue=float(stats.chi2.sf(t, df)) if df > 0 else float("nan"),
+        pvalue=float(special.chdtrc(df, t)) if df > 0 else float("nan"),
         cfi=cfi(t, df, t_b, df_b),
         tli=tli(t, df, t_b, df_b),
         rmsea=rmsea(t, df, n, n_groups),

@@ -30,7 +30,7 @@ from dataclasses import dataclass, field
 from typing import Any, Mapping, Protocol, Sequence, runtime_checkable
 
 import numpy as np
-from scipy import stats as _st
+from scipy import special as _sp
 
 from ..data.moments import sample_stats
 from ..data.ordinal_stats import ordinal_stats
@@ -163,7 +163,7 @@ class MaximumLikelihood:
     def difference(self, restricted, free, stats) -> Difference:
         dt = max(float(restricted.fit.chi2 - free.fit.chi2), 0.0)
         ddf = int(restricted.spec.df - free.spec.df)
-        p = float(_st.chi2.sf(dt, ddf)) if ddf > 0 else float("nan")
+        p = float(_sp.chdtrc(ddf, dt)) if ddf > 0 else float("nan")
         return Difference(dt, ddf, p, "likelihood_ratio", dt)
 
     def level_row(self, level: str, res: FitResult) -> dict:

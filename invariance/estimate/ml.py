@@ -17,7 +17,7 @@ import dataclasses
 import functools
 
 import numpy as np
-from scipy import stats as _st
+from scipy import special as _sp
 
 from ..data.moments import SampleStats
 from ..data.ordinal_stats import OrdinalStats
@@ -232,7 +232,7 @@ def _robust(extra: dict, spec: ModelSpec, stats: SampleStats, theta, info_se, ac
     extra.update(
         chi2_scaled=float(t_s),
         scaling_factor=float(c),
-        pvalue_scaled=float(_st.chi2.sf(t_s, df)) if df > 0 else float("nan"),
+        pvalue_scaled=float(_sp.chdtrc(df, t_s)) if df > 0 else float("nan"),
         baseline_chi2_scaled=float(fs.baseline_chi2 / c_b),
         baseline_scaling_factor=float(c_b),
         **robust_indices(fs.chi2, df, c, fs.baseline_chi2, fs.baseline_df, c_b, fs.n, len(spec.groups)),

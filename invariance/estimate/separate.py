@@ -15,7 +15,7 @@ import dataclasses
 from typing import Callable
 
 import numpy as np
-from scipy import stats as _st
+from scipy import special as _sp
 
 from ..data.moments import SampleStats
 from ..model.spec import ModelSpec
@@ -102,7 +102,7 @@ def _robust_extra(parts: dict, fs: FitStats, n_groups: int) -> dict:
     t_s = fs.chi2 / c if fs.df > 0 else float("nan")
     return dict(
         chi2_scaled=float(t_s), scaling_factor=float(c),
-        pvalue_scaled=float(_st.chi2.sf(t_s, fs.df)) if fs.df > 0 else float("nan"),
+        pvalue_scaled=float(_sp.chdtrc(fs.df, t_s)) if fs.df > 0 else float("nan"),
         baseline_chi2_scaled=float(fs.baseline_chi2 / c_b), baseline_scaling_factor=float(c_b),
         **robust_indices(fs.chi2, fs.df, c, fs.baseline_chi2, fs.baseline_df, c_b, fs.n, n_groups),
     )

@@ -25,7 +25,7 @@ from __future__ import annotations
 from dataclasses import dataclass, replace
 
 import numpy as np
-from scipy import stats as _st
+from scipy import special as _sp
 
 import pandas as pd
 
@@ -439,7 +439,7 @@ def _copy_test(score: _ProjectedScore, c: Constraint, group: str, copy: int, std
     """Univariate test: free the constraint's copy in one group."""
     lm, epc = score.block([copy])
     e = float(epc[0]) if epc is not None else np.nan
-    pv = float(_st.chi2.sf(lm, 1)) if np.isfinite(lm) else np.nan
+    pv = float(_sp.chdtrc(1, lm)) if np.isfinite(lm) else np.nan
     return CopyTest(c, group, lm, pv, e, float(e * std))
 
 
@@ -452,4 +452,4 @@ def _set_test(score: _ProjectedScore, c: Constraint, groups: list[str], copies: 
         epcs = tuple((g_, np.nan, np.nan) for g_ in groups)
     else:
         epcs = tuple((g_, float(e), float(e) * sd) for g_, e, sd in zip(groups, epc, stds))
-    return SetTest(c, lm, df, float(_st.chi2.sf(lm, df)) if np.isfinite(lm) else np.nan, epcs)
+    return SetTest(c, lm, df, float(_sp.chdtrc(df, lm)) if np.isfinite(lm) else np.nan, epcs)
