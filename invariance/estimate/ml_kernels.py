@@ -90,12 +90,12 @@ def ml_hessian(
     """
     d = mean - mu
     w = W @ d
-    Cm = S + np.outer(d, d)
-    Gs = W - W @ Cm @ W
+    M = W @ (S + np.outer(d, d)) @ W
+    Gs = W - M
     if fj is None:
         fj = factor_jacobian(lay, mats, G, A)
     kw = np.concatenate([w, fj.H.T @ w])
-    He = factored_moment_hessian(fj, gram(fj.H, W), gram(fj.H, W @ Cm @ W), kw)
+    He = factored_moment_hessian(fj, gram(fj.H, W), gram(fj.H, M), kw)
     He += second_derivative_part(lay, mats, G, A, Gs, w)
     return to_params(fj, None, He)[1]
 
@@ -113,22 +113,23 @@ def second_derivative_part(
     # second-derivative contraction, per entry
     k = lay.ent_mat.size
     Ke = np.zeros((k, k))
-    Phi = A @ psi @ A.T
-    GsG = Gs @ G
-    GsLPhi = Gs @ lam @ Phi
-    Aa = A @ alpha
-    Kf = G.T @ Gs @ G
-    M = lam.T @ Gs @ lam
-    v = lam.T @ w
-    AtMA = A.T @ M @ A
-    Z = 2.0 * M @ A @ psi - 2.0 * np.outer(v, alpha)
-    AZA = A.T @ Z @ A.T
-    Atv = A.T @ v
     iL, jL, _, pL = lay.sel[LAMBDA]
     eB, fB, _, pB = lay.sel[BETA]
     cP, dP, _, pP = lay.sel[PSI]
     cA, _, _, pA = lay.sel[ALPHA]
     offP = (cP != dP).astype(float)
+    Phi = A @ psi @ A.T
+    GsG = Gs @ G
+    if pB.size:  # the products only paths (B) need
+        GsLPhi = Gs @ lam @ Phi
+        Aa = A @ alpha
+        Kf = G.T @ Gs @ G
+        M = lam.T @ Gs @ lam
+        v = lam.T @ w
+        AtMA = A.T @ M @ A
+        Z = 2.0 * M @ A @ psi - 2.0 * np.outer(v, alpha)
+        AZA = A.T @ Z @ A.T
+        Atv = A.T @ v
     if pL.size:
         Ke[pL[:, None], pL[None, :]] = 2.0 * Gs[iL[:, None], iL[None, :]] * Phi[jL[:, None], jL[None, :]].T
         if pP.size:
