@@ -51,6 +51,8 @@ class MLObjective:
         self.partition = (partition([lay.params for lay in self.layouts], self.n_params)
                           if len(self.layouts) > 1 else None)
         self._point: tuple[bytes, list] | None = None
+        #: one group owning every parameter in order: its arrays are the totals (no scatter)
+        self._whole = len(self.layouts) == 1 and np.array_equal(self.layouts[0].params, np.arange(self.n_params))
 
     def _at(self, theta: np.ndarray) -> list[list]:
         """Per group [mats, Sigma, mu, G, A, W, log|Sigma|, factored Jacobian] at ``theta``
@@ -104,6 +106,11 @@ class MLObjective:
         return layout_jacobians(self.layouts, theta)
 
     def derivatives(self, theta: np.ndarray, *, information: bool = True):
+        if self._whole:
+            _, _, mu, _, _, W, logdet, fj = self._jacobians(theta)[0]
+            f, gg, hh = ml_derivatives(W, logdet, mu, self.S[0], self.mean[0], fj, logdet_s=self.logdet_s[0],
+                                       information=information)
+            return self.n[0] * f, self.n[0] * gg, None if hh is None else self.n[0] * hh
         q = self.n_params
         grad = np.zeros(q)
         info = np.zeros((q, q)) if information else None
@@ -122,9 +129,11 @@ class MLObjective:
     def hessian(self, theta: np.ndarray) -> np.ndarray:
         """Exact (observed) Hessian of T, analytic."""
         q = self.n_params
-        H = np.zeros((q, q))
+        H = None if self._whole else np.zeros((q, q))
         for g, (lay, (mats, _, mu, G, A, W, _, fj)) in enumerate(zip(self.layouts, self._jacobians(theta))):
             hh = ml_hessian(lay, mats, W, mu, G, A, self.S[g], self.mean[g], fj=fj)
+            if H is None:
+                return self.n[g] * hh
             u = lay.params
             H[np.ix_(u, u)] += self.n[g] * hh
         return H
