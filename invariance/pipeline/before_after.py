@@ -29,7 +29,7 @@ from ..data.ordinal_stats import OrdinalStats
 from ..errors import DataError, EstimationError, InvarianceWarning, SpecificationError
 from ..model.levels import build_level
 from ..effects.scores import factor_scores
-from ..data.screening import screen
+from ..data.screening import screen_groups
 from ..decide.structures import compare_structures, group_fit
 from ..spec.load import PipelineSpec, thaw
 from .state import RunState, StageOutput
@@ -85,11 +85,9 @@ def stage_screening(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Screen the items of every group (before any model is fitted)."""
     checked = state.checked
     opts = _section(spec, "screening")
-    out = screen(
-        checked.frame,
+    out = screen_groups(
+        list(zip(checked.groups, checked.arrays())),
         list(checked.items),
-        checked.group,
-        groups=list(checked.groups),
         scales={f: list(v) for f, v in spec.structure.factors.items()},
         bounds={k: tuple(v) for k, v in (opts.get("bounds") or {}).items()},
         rules=opts.get("rules"),
