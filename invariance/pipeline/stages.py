@@ -73,7 +73,7 @@ def stage_data(spec: PipelineSpec, state: RunState) -> StageOutput:
 def stage_stats(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Per-group statistics, as the run's estimator needs them."""
     checked = state.checked
-    stats = state.estimator.statistics(checked.frame, checked.items, checked.group, groups=checked.groups)
+    stats = state.estimator.group_statistics(checked.arrays(), checked.groups, checked.items)
     state = state.update(stats=stats)
     out = {"groups": {g.name: int(g.n) for g in stats.groups}, "n_total": int(stats.n_total)}
     if spec.ordinal is None:
