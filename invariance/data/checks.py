@@ -8,8 +8,9 @@ preventing it (small groups, rows without a group) come back as warning strings.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 from types import MappingProxyType
-from typing import Mapping, Sequence
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 
@@ -31,7 +32,8 @@ class CheckedData:
     ----------
     frame
         Item columns as floats (NaN = missing) plus the group column as strings, rows
-        without a group removed.
+        without a group (or of a group not analysed) removed; the data's row labels kept.
+        Built from ``blocks`` on first use (the pipeline's stages read the blocks).
     items, group, groups
         Item columns in model order, the grouping column, the group names in order.
     rows
@@ -44,11 +46,13 @@ class CheckedData:
         Group -> read-only (rows, items) float array of that group's item values, rows in
         data order (the rows of ``frame`` of that group): later stages take the per-group
         arrays from here instead of indexing the frame again.
+    row_index, row_group
+        The row labels of the rows kept, in data order, and the position in ``groups``
+        of each one's group.
     warnings
         Warnings about the data (small groups, rows without a group).
     """
 
-    frame: object
     items: tuple[str, ...]
     group: str
     groups: tuple[str, ...]
@@ -56,11 +60,23 @@ class CheckedData:
     complete: dict
     missing: dict
     blocks: Mapping[str, np.ndarray]
+    row_index: Any
+    row_group: np.ndarray
     warnings: tuple[str, ...] = field(default=())
 
     def arrays(self) -> list[np.ndarray]:
         """The item values of every group, in group order (see ``blocks``)."""
         return [self.blocks[g] for g in self.groups]
+
+    @cached_property
+    def frame(self):
+        """The checked data as a DataFrame (see the class attributes)."""
+        values = np.empty((self.row_group.size, len(self.items)))
+        for k, g in enumerate(self.groups):
+            values[self.row_group == k] = self.blocks[g]
+        out = pd.DataFrame(values, index=self.row_index, columns=list(self.items))
+        out.insert(0, self.group, np.asarray(self.groups, dtype=object)[self.row_group])
+        return out
 
 
 def _group_label(value) -> str:
@@ -116,10 +132,7 @@ def check_data(
         blocks, items, complete_cases_needed=complete_cases_needed, warnings=warnings
     )
     keep = member >= 0
-    out = pd.DataFrame(values[keep], index=index[keep], columns=list(items))
-    out.insert(0, group, labels.values[keep])
     return CheckedData(
-        frame=out,
         items=items,
         group=group,
         groups=tuple(groups),
@@ -127,6 +140,8 @@ def check_data(
         complete=complete,
         missing=missing,
         blocks=MappingProxyType(blocks),
+        row_index=index[keep],
+        row_group=member[keep],
         warnings=tuple(warnings),
     )
 
@@ -280,11 +295,6 @@ class _Labels:
 
     uniques: tuple[str, ...]
     codes: np.ndarray
-
-    @property
-    def values(self) -> np.ndarray:
-        """The label of every row (object array of str)."""
-        return np.asarray(self.uniques, dtype=object)[self.codes]
 
     def member(self, groups: Sequence[str]) -> np.ndarray:
         """Row -> position of its label in ``groups`` (-1 for a group not analysed)."""

@@ -119,10 +119,9 @@ def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
         return {}
     rule = _section(spec, "compare").get("group_fit") or _section(spec, "decision").get("configural_fit") or {}
     fitter = _fitter(spec)
+    # the configural model's own single-group fits, when it could be fitted: no second
+    # fit of any group
     per_group = _configural_prefit(spec, state, fitter)
-    if per_group is not None:
-        # the configural model's own single-group fits: no second fit of any group
-        fitter = lambda model, stats: per_group[stats.names[0]]  # noqa: E731
     gf = group_fit(
         state["stats"],
         spec.structure,
@@ -130,6 +129,7 @@ def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
         rmsea_max=float(rule.get("rmsea", 0.10)),
         warn=False,
         fitter=fitter,
+        fits=per_group,
     )
     state["group_fit"] = gf
     state.setdefault("warnings", []).extend(gf.messages)
