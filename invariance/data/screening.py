@@ -40,6 +40,7 @@ Rules of the recommendation (defaults, all keyword options of :func:`screen`)
 
 from __future__ import annotations
 
+import math
 from typing import Mapping, Sequence
 
 import numpy as np
@@ -54,6 +55,7 @@ __all__ = [
     "item_moments",
     "bound_shares",
     "category_counts",
+    "distinct_counts",
     "item_total_correlations",
     "mardia",
     "recommend",
@@ -130,6 +132,14 @@ def bound_shares(x: np.ndarray, low: np.ndarray, high: np.ndarray) -> tuple[np.n
     floor = (obs & (np.abs(x - low) <= tol)).sum(axis=0) / n
     ceil = (obs & (np.abs(x - high) <= tol)).sum(axis=0) / n
     return floor, ceil
+
+
+def distinct_counts(x: np.ndarray) -> np.ndarray:
+    """Number of distinct observed values in every column of ``x`` (NaN = missing); the
+    same as ``np.unique`` of each column's observed values, in one sort."""
+    s = np.sort(np.asarray(x, dtype=float), axis=0)  # NaN sorts last
+    ok = ~np.isnan(s)
+    return ok[:1].sum(axis=0) + (ok[1:] & (s[1:] != s[:-1])).sum(axis=0)
 
 
 def category_counts(v: np.ndarray, categories: np.ndarray) -> np.ndarray:
@@ -250,7 +260,7 @@ def mardia(x: np.ndarray, *, block: int = 2048) -> dict[str, float]:
 
 def _num(v) -> float | None:
     v = float(v)
-    return v if np.isfinite(v) else None
+    return v if math.isfinite(v) else None
 
 
 def _screen_group(
@@ -271,10 +281,10 @@ def _screen_group(
         r = item_total_correlations(x[:, cols])
         for i, v in zip(its, r):
             itc[i][scale] = _num(v)
+    distinct = distinct_counts(x)
     recs = []
     for j, it in enumerate(items):
         col = x[:, j]
-        distinct = np.unique(col[~np.isnan(col)])
         rec = {
             "item": it,
             "n": int(mom["n"][j]),
@@ -285,7 +295,7 @@ def _screen_group(
             "kurtosis": _num(mom["kurtosis"][j]),
             "floor": _num(floor[j]) if mom["n"][j] else None,
             "ceiling": _num(ceil[j]) if mom["n"][j] else None,
-            "n_categories": int(distinct.size),
+            "n_categories": int(distinct[j]),
             "categories": None,
             "absent_categories": [],
             "item_total": itc[it],
@@ -401,11 +411,10 @@ def _screen(parts: list[tuple[str, np.ndarray]], items: list[str], rule: dict, s
     pooled = np.concatenate([x for _, x in parts], axis=0)
     low, high = _item_bounds(pooled, items, bounds)
     cats: dict[int, np.ndarray] = {}
-    for j in range(len(items)):
+    k = distinct_counts(pooled)
+    for j in np.flatnonzero((k > 0) & (k <= rule["few_categories_max"])):
         col = pooled[:, j]
-        u = np.unique(col[~np.isnan(col)])
-        if 0 < u.size <= rule["few_categories_max"]:
-            cats[j] = u
+        cats[int(j)] = np.unique(col[~np.isnan(col)])
     recs = [_screen_group(name, x, items, low, high, cats, scales) for name, x in parts]
     return {
         "groups": recs,
