@@ -154,9 +154,10 @@ def weak_identification(spec: ModelSpec, info: np.ndarray, part, matrices, *, ge
             continue
         H = info[np.ix_(idx, idx)]
         d = np.sqrt(np.clip(np.abs(np.diag(H)), 1e-300, None))
-        w, v = np.linalg.eigh(H / np.outer(d, d))
-        if not (1e-10 <= w[0] < NEAR_SINGULAR):
-            continue
+        scaled = H / np.outer(d, d)
+        if not (1e-10 <= np.linalg.eigvalsh(scaled)[0] < NEAR_SINGULAR):
+            continue  # the eigenvectors are needed only for a nearly singular block
+        w, v = np.linalg.eigh(scaled)
         involved = [labels[idx[k]] for k in np.argsort(-np.abs(v[:, 0])) if abs(v[k, 0]) > 0.2]
         lam = matrices[g][0]
         gcol = spec.factors.index(general) if general in spec.factors else None
