@@ -290,14 +290,8 @@ def sample_stats(
 
     Parameters
     ----------
-    frame
-        The data, one row per case.
-    items
-        Item columns, in model order.
-    group
-        Grouping column; ``None`` for a single group called ``"all"``.
-    groups
-        Group order (default: order of first appearance).
+    frame, items, group, groups
+        The data and how to split it, as in :func:`group_arrays`.
     missing
         ``"listwise"`` (default) or ``"fiml"``; see :func:`stats_from_arrays`.
     """
