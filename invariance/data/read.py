@@ -197,7 +197,7 @@ def _read_delimited(path: pathlib.Path, fmt: str, text_columns: Sequence[str]):
     frame = pd.read_csv(path, sep=sep, keep_default_na=False, na_values=list(NA_TEXTS))
     if list(frame.columns) != list(header):  # names pandas made up: per-column rules as given
         return pd.read_csv(path, sep=sep, keep_default_na=False, na_values=na)
-    text = [c for c in frame.columns if na[c] == [""] and frame[c].isna().any()]
+    text = [c for c in frame.columns if na[c] == [""] and frame[c].count() < frame.shape[0]]
     if text:
         again = pd.read_csv(path, sep=sep, keep_default_na=False, usecols=text, na_values={c: [""] for c in text})
         for c in text:
