@@ -9,6 +9,7 @@ means makes the change in SRMR respond to intercept differences at the scalar st
 
 from __future__ import annotations
 
+import functools
 from dataclasses import asdict, dataclass
 
 import numpy as np
@@ -34,10 +35,12 @@ def baseline_statistic(covs, ns) -> tuple[float, int]:
 
     Returns ``(T_B, df_B)`` with df_B = G p(p-1)/2.
     """
-    t = 0.0
+    return _baseline(covs, ns, [np.linalg.slogdet(S)[1] for S in covs])
+
+
+def _baseline(covs, ns, logdets) -> tuple[float, int]:
     p = covs[0].shape[0]
-    for S, n in zip(covs, ns):
-        t += n * (np.sum(np.log(np.diag(S))) - np.linalg.slogdet(S)[1])
+    t = sum(n * (np.sum(np.log(np.diag(S))) - ld) for S, n, ld in zip(covs, ns, logdets))
     return float(t), len(covs) * p * (p - 1) // 2
 
 
@@ -89,13 +92,21 @@ def srmr(covs, means, sigmas, mus, ns, *, include_means: bool = True) -> float:
     for S, m, sig, mu, n in zip(covs, means, sigmas, mus, ns):
         sd = np.sqrt(np.diag(S))
         r = (S - sig) / np.outer(sd, sd)
-        iu = np.tril_indices(S.shape[0])
-        res = r[iu]
+        res = r[_lower(S.shape[0])]
         if include_means:
             res = np.concatenate([res, (m - mu) / sd])
         total += n * np.sqrt(np.mean(res**2))
         nsum += n
     return float(total / nsum)
+
+
+@functools.lru_cache(maxsize=32)
+def _lower(p: int) -> tuple[np.ndarray, np.ndarray]:
+    """Row and column indices of the lower triangle (diagonal included) of a p x p matrix."""
+    rows, cols = np.tril_indices(p)
+    rows.setflags(write=False)
+    cols.setflags(write=False)
+    return rows, cols
 
 
 def information_criteria(loglik: float, q: int, n: int) -> tuple[float, float, float]:
@@ -172,8 +183,9 @@ def compute_fit(t: float, df: int, q: int, covs, means, sigmas, mus, ns) -> FitS
     """All fit statistics from the minimized ML statistic and the implied moments."""
     ns = np.asarray(ns, dtype=float)
     p = covs[0].shape[0]
-    t_b, df_b = baseline_statistic(covs, ns)
-    ll_sat = float(sum(-0.5 * ng * (p * np.log(2 * np.pi) + np.linalg.slogdet(S)[1] + p) for S, ng in zip(covs, ns)))
+    logdets = [np.linalg.slogdet(S)[1] for S in covs]
+    t_b, df_b = _baseline(covs, ns, logdets)
+    ll_sat = float(sum(-0.5 * ng * (p * np.log(2 * np.pi) + ld + p) for ld, ng in zip(logdets, ns)))
     return fit_from_totals(t=t, df=df, q=q, n=int(ns.sum()), n_groups=len(covs), t_b=t_b, df_b=df_b,
                            loglik=ll_sat - 0.5 * t, loglik_saturated=ll_sat,
                            srmr_value=srmr(covs, means, sigmas, mus, ns))
