@@ -316,8 +316,8 @@ def _labels(keys, group: str) -> _Labels:
     """Group labels as text without surrounding spaces; labels that differ only by spaces
     are refused (they would split one group in two)."""
     if keys.dtype == object:
-        # mixed Python objects (1, 1.0, True hash alike): label every row
-        raw, codes = pd.factorize(keys.map(_group_label))[::-1]
+        # mixed Python objects (1, 1.0 and True hash alike): label every row, then factorize
+        codes, raw = pd.factorize(keys.map(_group_label))
     else:
         codes, raw = pd.factorize(keys)
         raw = [_group_label(v) for v in raw]
