@@ -17,6 +17,7 @@ from dataclasses import dataclass
 from typing import Sequence
 
 import numpy as np
+import pandas as pd
 
 from ..errors import ConvergenceWarning, DataError
 from .em import em_saturated, missing_patterns
@@ -323,11 +324,13 @@ def group_arrays(
         raise DataError(f"Column {absent[0]!r} is not in the data; check the spelling or the data file.")
     # One conversion to arrays, then boolean rows per group: pandas indexing per group
     # costs more than the statistics themselves on small data.
-    values = frame[items].to_numpy(dtype=float)
+    if frame.columns.is_unique:  # column by column: no intermediate frame of the items
+        values = np.column_stack([frame[c].to_numpy(dtype=float) for c in items]) if items else np.empty((len(frame), 0))
+    else:
+        values = frame[items].to_numpy(dtype=float)
     if group is None:
         return [values], ["all"]
-    keys = frame[group]
-    if groups is None:
-        groups = list(dict.fromkeys(keys.dropna().tolist()))
-    key_values = keys.to_numpy()
+    key_values = frame[group].to_numpy()
+    if groups is None:  # order of first appearance, missing keys left out
+        groups = [k for k in pd.unique(key_values) if not pd.isna(k)]
     return [values[key_values == g] for g in groups], [str(g) for g in groups]
