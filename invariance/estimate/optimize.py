@@ -5,7 +5,8 @@ Fisher scoring (the expected information) is robust far from the optimum but con
 only linearly when the model misfits; once the Newton decrement is small, objectives that
 offer an exact ``hessian(theta)`` switch to Newton steps (below :data:`NEWTON_BELOW`),
 which converge quadratically. A point reached by a full Newton step is judged converged
-with that step's Hessian (:func:`_settled`, a tenfold margin) before a new one is computed.
+with that step's Hessian (:func:`_reuse`, a tenfold margin) before a new one is computed,
+and a step that small is taken with it (a chord step).
 
 One front door, :func:`minimize`, serves every objective (see
 :mod:`invariance.estimate.objective`). Stop reasons come from the fixed table
@@ -48,6 +49,10 @@ STATUS = {
 #: Newton steps (exact Hessian) replace scoring steps once the scoring decrement
 #: g' I^-1 g (in chi-square units) falls below this.
 NEWTON_BELOW = 10.0
+
+#: After a full Newton step, the next step reuses its Hessian when the decrement this
+#: gives is below this fraction of the objective (the quadratic phase).
+CHORD_BELOW = 1e-6
 
 #: Iterations over which a run-away trend is judged.
 RUNAWAY_WINDOW = 16
@@ -159,15 +164,21 @@ def _small(g: np.ndarray, step: np.ndarray, f: float, tol: float, margin: float 
     return abs(float(g @ step)) < margin * tol * max(1.0, abs(f)) and float(np.max(np.abs(step))) < margin * 1e-5
 
 
-def _settled(hx: np.ndarray, g: np.ndarray, part, f: float, tol: float) -> bool:
-    """Converged at a point reached by a full Newton step, judged with that step's Hessian
-    ``hx`` instead of a new one: near the optimum the Hessian changes by O(step), so the
-    Newton step at the new point is estimated to a few digits, and the test keeps a
-    tenfold margin. (Quadratic convergence: the step just taken settles it.)"""
+def _reuse(hx: np.ndarray, g: np.ndarray, part, f: float, tol: float) -> tuple[bool, np.ndarray | None]:
+    """At a point reached by a full Newton step, the step of that step's Hessian ``hx``
+    instead of a new one: ``(True, None)`` when it shows convergence (with a tenfold
+    margin: near the optimum the Hessian changes by O(step), so the Newton step is
+    estimated to a few digits); ``(False, step)`` when its decrement is already below
+    :data:`CHORD_BELOW` of the objective, so that the step can be taken as it is (a chord
+    step: near the optimum it shrinks the error by about the size of the last step);
+    ``(False, None)`` when a new Hessian is needed."""
     try:
-        return _small(g, _newton(hx, g, part), f, tol, margin=0.1)
+        step = _newton(hx, g, part)
     except np.linalg.LinAlgError:
-        return False
+        return False, None
+    if _small(g, step, f, tol, margin=0.1):
+        return True, None
+    return False, (step if -float(g @ step) < CHORD_BELOW * max(1.0, abs(f)) else None)
 
 
 def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float, lower: np.ndarray | None = None):
@@ -190,9 +201,11 @@ def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float, lower: np.ndarray
         if lower is not None:
             # epsilon-active set: near the bound and pushed towards it
             free = ~((x <= lower + 1e-3) & (g > 0))
-        if hx is not None and _settled(hx, g, part, f, tol):
+        done, step = _reuse(hx, g, part, f, tol) if hx is not None else (False, None)
+        if done:
             return x, f, g, h, 0, it - 1, none
-        step, h, hx = _direction(obj, x, f, g, h, part, newton and decrement < NEWTON_BELOW, free)
+        if step is None:
+            step, h, hx = _direction(obj, x, f, g, h, part, newton and decrement < NEWTON_BELOW, free)
         full = step if lower is None else np.maximum(x + step, lower) - x  # projected full step
         decrement = -float(g @ step)
         if _small(g, full, f, tol):
