@@ -48,8 +48,8 @@ RUNAWAY_WINDOW = 16
 #: The second opinion on a suspected run-away: legs of scoring iterations, how many, and
 #: the share of the earlier legs' Newton decrement the later legs must keep to confirm it.
 PROBE_LEG = 2
-PROBE_LEGS = 4
-PROBE_KEEP = 0.9
+PROBE_LEGS = 3
+PROBE_KEEP = 0.95
 
 
 @dataclass(frozen=True)
@@ -258,18 +258,20 @@ def minimize(
     return Outcome(x, f, g, h, status, total)
 
 
-def _keeps_running(points: list[np.ndarray], decrements: list[float], flagged: tuple[int, ...]) -> bool:
+def _keeps_running(points: list[np.ndarray], decrements: list[float], flagged: tuple[int, ...],
+                   fun: float) -> bool:
     """Do the probe legs (end points ``points``, Newton decrements g' I^-1 g at the ends of
-    the legs) confirm a run-away of some parameter in ``flagged``?
+    the legs) confirm a run-away of some parameter in ``flagged`` (objective ``fun``)?
 
     Yes when such a parameter moved the same way at every leg, farther in all than
-    rounding noise (1e-3 of its size plus one), while the decrement did not shrink (its
-    mean over the later half of the legs at least :data:`PROBE_KEEP` times the earlier
-    half's). Towards a finite optimum, however flat the valley, the decrement shrinks
+    rounding noise (1e-3 of its size plus one), while the decrement stayed above noise
+    (1e-6 of the objective, at least 1e-6) and did not shrink (its mean over the later
+    half of the legs at least :data:`PROBE_KEEP` times the earlier half's). Towards a finite optimum, however flat the valley, the decrement shrinks
     to zero; on a run-away the objective keeps promising a decrease that steps cut back
     at the edge of the admissible region never deliver. Convergence at a linear rate r
-    shrinks the decrement by about r^8 between the halves, so only r > 0.987 is read as
-    running on: a rate at which 200 more iterations would not have converged either.
+    shrinks the decrement by about r^6 between the halves of three legs of two
+    iterations, so only r > 0.99 is read as running on: a rate at which hundreds more
+    iterations would not have converged either.
     """
     X = np.asarray(points)[:, list(flagged)]
     d = np.diff(X, axis=0)
@@ -277,7 +279,8 @@ def _keeps_running(points: list[np.ndarray], decrements: list[float], flagged: t
     moved = np.abs(X[-1] - X[0]) > 1e-3 * (1.0 + np.abs(X[0]))
     dec = np.asarray(decrements)
     half = dec.size // 2
-    return bool(np.any(same_way & moved)) and bool(dec[half:].mean() >= PROBE_KEEP * dec[:half].mean())
+    promising = dec.min() > 1e-6 * max(1.0, abs(fun)) and dec[half:].mean() >= PROBE_KEEP * dec[:half].mean()
+    return bool(np.any(same_way & moved) and promising)
 
 
 def _second_opinion(obj, first: Outcome, start: np.ndarray, spent: int, *, max_iter: int, tol: float,
@@ -306,7 +309,7 @@ def _second_opinion(obj, first: Outcome, start: np.ndarray, spent: int, *, max_i
             h2 = obj.derivatives(x2)[2]
         points.append(x2)
         decrements.append(-float(g2 @ _solve(h2, g2, part)))
-    if _keeps_running(points, decrements, first.running):
+    if _keeps_running(points, decrements, first.running, first.fun):
         return confirmed(total)
     x2, f2, g2, h2, st2, it2, _ = _scoring(obj, points[-1], max_iter=max_iter, tol=tol, lower=lower)
     total += it2
