@@ -45,10 +45,9 @@ STATUS = {
 
 #: Iterations over which a run-away trend is judged.
 RUNAWAY_WINDOW = 16
-#: The second opinion on a suspected run-away: legs of scoring iterations, how many, and
-#: the share of the earlier legs' Newton decrement the later legs must keep to confirm it.
-PROBE_LEG = 2
-PROBE_LEGS = 3
+#: The second opinion on a suspected run-away: scoring iterations it takes, and the
+#: share of the earlier iterates' Newton decrement the later ones must keep to confirm it.
+PROBE_STEPS = 3
 PROBE_KEEP = 0.95
 
 
@@ -258,20 +257,31 @@ def minimize(
     return Outcome(x, f, g, h, status, total)
 
 
+def _decrement(obj, x: np.ndarray, g: np.ndarray | None, h: np.ndarray | None, lower: np.ndarray | None) -> float:
+    """Newton decrement g' I^-1 g at ``x`` over the parameters free to move (those at a
+    lower bound and pushed towards it excluded); derivatives computed when not given."""
+    if g is None or h is None:
+        _, g, h = obj.derivatives(x)
+    if lower is None:
+        return -float(g @ _solve(h, g, getattr(obj, "partition", None)))
+    free = ~((x <= lower + 1e-3) & (g > 0))
+    return -float(g[free] @ _solve(h[np.ix_(free, free)], g[free])) if free.any() else 0.0
+
+
 def _keeps_running(points: list[np.ndarray], decrements: list[float], flagged: tuple[int, ...],
                    fun: float) -> bool:
-    """Do the probe legs (end points ``points``, Newton decrements g' I^-1 g at the ends of
-    the legs) confirm a run-away of some parameter in ``flagged`` (objective ``fun``)?
+    """Do the probe's iterates ``points`` and their Newton decrements confirm a run-away of
+    some parameter in ``flagged`` (objective ``fun``)?
 
-    Yes when such a parameter moved the same way at every leg, farther in all than
+    Yes when such a parameter moved the same way at every step, farther in all than
     rounding noise (1e-3 of its size plus one), while the decrement stayed above noise
     (1e-6 of the objective, at least 1e-6) and did not shrink (its mean over the later
-    half of the legs at least :data:`PROBE_KEEP` times the earlier half's). Towards a finite optimum, however flat the valley, the decrement shrinks
-    to zero; on a run-away the objective keeps promising a decrease that steps cut back
-    at the edge of the admissible region never deliver. Convergence at a linear rate r
-    shrinks the decrement by about r^6 between the halves of three legs of two
-    iterations, so only r > 0.99 is read as running on: a rate at which hundreds more
-    iterations would not have converged either.
+    half of the iterates at least :data:`PROBE_KEEP` times the earlier half's). Towards
+    a finite optimum, however flat the valley, the decrement shrinks to zero; on a
+    run-away the objective keeps promising a decrease that steps cut back at the edge
+    of the admissible region never deliver. Convergence at a linear rate r shrinks the
+    decrement by about r^4 between the halves of four iterates, so only r > 0.987 is
+    read as running on: a rate at which hundreds more iterations would not converge.
     """
     X = np.asarray(points)[:, list(flagged)]
     d = np.diff(X, axis=0)
@@ -287,28 +297,29 @@ def _second_opinion(obj, first: Outcome, start: np.ndarray, spent: int, *, max_i
                     lower: np.ndarray | None) -> Outcome:
     """Confirm or dismiss the suspected run-away ``first`` by scoring from ``start``.
 
-    Scoring runs :data:`PROBE_LEGS` legs of :data:`PROBE_LEG` iterations. If it converges,
-    the alarm was false (status 4). If a flagged parameter keeps running while the Newton
-    decrement does not shrink (:func:`_keeps_running`), the run-away is confirmed at
-    once; so it is when a leg fails or scoring flags a run-away again. Only a mixed
-    picture (neither converging nor running on) earns a full scoring run, which must
-    converge to dismiss the alarm. A confirmed run-away reports ``first`` (status 6).
-    ``spent`` counts the iterations so far.
+    Scoring takes :data:`PROBE_STEPS` single iterations. If it converges, the alarm was
+    false (status 4). If a flagged parameter keeps running while the Newton decrement
+    does not shrink (:func:`_keeps_running`), the run-away is confirmed at once; so it
+    is when a step fails or scoring flags a run-away again. Only a mixed picture
+    (neither converging nor running on) earns a full scoring run, which must converge
+    to dismiss the alarm. A confirmed run-away reports ``first`` (status 6). ``spent``
+    counts the iterations so far.
     """
     confirmed = lambda n: Outcome(first.x, first.fun, first.grad, first.info, 6, n, first.running)
-    part = getattr(obj, "partition", None)
-    points, decrements, total = [np.asarray(start, dtype=float)], [], spent
-    for _ in range(PROBE_LEGS):
-        x2, f2, g2, h2, st2, it2, _ = _scoring(obj, points[-1], max_iter=PROBE_LEG, tol=tol, lower=lower)
+    points, total = [np.asarray(start, dtype=float)], spent
+    try:
+        decrements = [_decrement(obj, points[0], None, None, lower)]
+    except np.linalg.LinAlgError:
+        return confirmed(total)
+    for _ in range(PROBE_STEPS):
+        x2, f2, g2, h2, st2, it2, _ = _scoring(obj, points[-1], max_iter=1, tol=tol, lower=lower)
         total += it2
         if st2 == 0:
             return Outcome(x2, f2, g2, h2, 4, total)
         if st2 != 1:
             return confirmed(total)
-        if h2 is None:
-            h2 = obj.derivatives(x2)[2]
         points.append(x2)
-        decrements.append(-float(g2 @ _solve(h2, g2, part)))
+        decrements.append(_decrement(obj, x2, g2, h2, lower))
     if _keeps_running(points, decrements, first.running, first.fun):
         return confirmed(total)
     x2, f2, g2, h2, st2, it2, _ = _scoring(obj, points[-1], max_iter=max_iter, tol=tol, lower=lower)
