@@ -34,10 +34,12 @@ def baseline_statistic(covs, ns) -> tuple[float, int]:
 
     Returns ``(T_B, df_B)`` with df_B = G p(p-1)/2.
     """
-    t = 0.0
+    return _baseline(covs, ns, [np.linalg.slogdet(S)[1] for S in covs])
+
+
+def _baseline(covs, ns, logdets) -> tuple[float, int]:
     p = covs[0].shape[0]
-    for S, n in zip(covs, ns):
-        t += n * (np.sum(np.log(np.diag(S))) - np.linalg.slogdet(S)[1])
+    t = sum(n * (np.sum(np.log(np.diag(S))) - ld) for S, n, ld in zip(covs, ns, logdets))
     return float(t), len(covs) * p * (p - 1) // 2
 
 
@@ -172,8 +174,9 @@ def compute_fit(t: float, df: int, q: int, covs, means, sigmas, mus, ns) -> FitS
     """All fit statistics from the minimized ML statistic and the implied moments."""
     ns = np.asarray(ns, dtype=float)
     p = covs[0].shape[0]
-    t_b, df_b = baseline_statistic(covs, ns)
-    ll_sat = float(sum(-0.5 * ng * (p * np.log(2 * np.pi) + np.linalg.slogdet(S)[1] + p) for S, ng in zip(covs, ns)))
+    logdets = [np.linalg.slogdet(S)[1] for S in covs]
+    t_b, df_b = _baseline(covs, ns, logdets)
+    ll_sat = float(sum(-0.5 * ng * (p * np.log(2 * np.pi) + ld + p) for ld, ng in zip(logdets, ns)))
     return fit_from_totals(t=t, df=df, q=q, n=int(ns.sum()), n_groups=len(covs), t_b=t_b, df_b=df_b,
                            loglik=ll_sat - 0.5 * t, loglik_saturated=ll_sat,
                            srmr_value=srmr(covs, means, sigmas, mus, ns))

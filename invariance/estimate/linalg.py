@@ -19,7 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.linalg import lapack as _lapack
 
-__all__ = ["ArrowPartition", "partition", "pd_solve", "arrow_solve", "arrow_inverse", "arrow_min_eigen"]
+__all__ = ["ArrowPartition", "partition", "pd_solve", "pd_inverse_logdet", "arrow_solve", "arrow_inverse", "arrow_min_eigen", "all_above"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -59,6 +59,26 @@ def _cho_solve(c: np.ndarray, b: np.ndarray) -> np.ndarray:
 def pd_solve(M: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Solve M x = b for a positive-definite M by LAPACK Cholesky; LinAlgError otherwise."""
     return _cho_solve(_cho_factor(M), b)
+
+
+def all_above(M: np.ndarray, level: float) -> bool:
+    """Are all eigenvalues of the symmetric ``M`` above ``level``? (One Cholesky of
+    M - level I instead of an eigendecomposition: a check, not a measurement.)"""
+    shifted = M - level * np.eye(M.shape[0]) if level else M
+    _, info = _lapack.dpotrf(shifted, lower=1, clean=0)
+    return info == 0
+
+
+def pd_inverse_logdet(M: np.ndarray) -> tuple[np.ndarray, float]:
+    """Inverse and log-determinant of a positive-definite M (LAPACK potrf and potri, one
+    factorization); LinAlgError when M is not positive definite."""
+    c = _cho_factor(M)
+    logdet = 2.0 * float(np.log(np.diagonal(c)).sum())
+    inv, info = _lapack.dpotri(c, lower=1)
+    if info != 0:
+        raise np.linalg.LinAlgError("matrix not positive definite")
+    # potri fills the lower triangle; the upper one is the zeros of the cleaned factor
+    return inv + inv.T - np.diag(np.diagonal(inv)), logdet
 
 
 def _eliminate(H: np.ndarray, part: ArrowPartition, rhs: np.ndarray | None):

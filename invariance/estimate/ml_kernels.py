@@ -21,21 +21,16 @@ from .kernels import (
 __all__ = ["ml_discrepancy", "ml_derivatives", "ml_hessian", "second_derivative_part"]
 
 
-def ml_discrepancy(sigma: np.ndarray, mu: np.ndarray, S: np.ndarray, mean: np.ndarray, logdet_s: float) -> float:
-    """ML discrepancy F of one group (METHODS section 2); ``inf`` if Sigma is not PD."""
-    try:
-        R = np.linalg.cholesky(sigma)
-    except np.linalg.LinAlgError:
-        return np.inf
-    Rinv = np.linalg.inv(R)
-    W = Rinv.T @ Rinv
+def ml_discrepancy(W: np.ndarray, logdet: float, mu: np.ndarray, S: np.ndarray, mean: np.ndarray, logdet_s: float) -> float:
+    """ML discrepancy F of one group (METHODS section 2) from W = Sigma^-1 and log|Sigma|
+    (:func:`~invariance.estimate.linalg.pd_inverse_logdet`)."""
     d = mean - mu
-    logdet = 2.0 * np.log(np.diag(R)).sum()
     return float(logdet + np.sum(S * W) - logdet_s - S.shape[0] + d @ W @ d)
 
 
 def ml_derivatives(
-    sigma: np.ndarray,
+    W: np.ndarray,
+    logdet: float,
     mu: np.ndarray,
     S: np.ndarray,
     mean: np.ndarray,
@@ -46,7 +41,9 @@ def ml_derivatives(
 ) -> tuple[float, np.ndarray, np.ndarray | None]:
     """Discrepancy, gradient and expected information of one group's ML discrepancy.
 
-    Uses the factored Jacobian (:func:`factor_jacobian`), so no (u, p, p) array is built.
+    ``W`` = Sigma^-1 and ``logdet`` = log|Sigma| (one factorization per point, shared
+    with the value and the Hessian); the factored Jacobian (:func:`factor_jacobian`)
+    means no (u, p, p) array is built.
 
     Returns
     -------
@@ -56,19 +53,11 @@ def ml_derivatives(
         dF/dtheta = tr(Gs S_u) - 2 mu_u' W d, Gs = W - W (S + dd') W.
     info : (u, u) array or None
         E[d2F/dtheta dtheta'] = tr(W dS_u W dS_v) + 2 dm_u' W dm_v.
-
-    Raises
-    ------
-    numpy.linalg.LinAlgError
-        When Sigma is not positive definite.
     """
-    R = np.linalg.cholesky(sigma)
-    Rinv = np.linalg.inv(R)
-    W = Rinv.T @ Rinv
     d = mean - mu
     Wd = W @ d
     WC = W @ S
-    f = 2.0 * np.log(np.diag(R)).sum() + np.trace(WC) - logdet_s - S.shape[0] + d @ Wd
+    f = logdet + np.trace(WC) - logdet_s - S.shape[0] + d @ Wd
     Gs = W - (WC + np.outer(Wd, d)) @ W
     grad = factored_gradient(fj, Gs, Wd)
     info = factored_information(fj, gram(fj.H, W)) if information else None
@@ -78,7 +67,7 @@ def ml_derivatives(
 def ml_hessian(
     lay: GroupLayout,
     mats: tuple[np.ndarray, ...],
-    sigma: np.ndarray,
+    W: np.ndarray,
     mu: np.ndarray,
     G: np.ndarray,
     A: np.ndarray,
@@ -88,7 +77,7 @@ def ml_hessian(
     fj: FactoredJacobian | None = None,
 ) -> np.ndarray:
     """Exact (observed) Hessian of one group's ML discrepancy, local parameters
-    (``fj``: the factored Jacobian at this point, when already computed).
+    (``W`` = Sigma^-1; ``fj``: the factored Jacobian at this point, when already computed).
 
     With W = Sigma^-1, d = m - mu, C = S + dd', Gs = W - W C W, w = W d::
 
@@ -99,17 +88,14 @@ def ml_hessian(
     (:func:`factored_moment_hessian`); the second-derivative terms from
     :func:`second_derivative_part`.
     """
-    R = np.linalg.cholesky(sigma)
-    Rinv = np.linalg.inv(R)
-    W = Rinv.T @ Rinv
     d = mean - mu
     w = W @ d
-    Cm = S + np.outer(d, d)
-    Gs = W - W @ Cm @ W
+    M = W @ (S + np.outer(d, d)) @ W
+    Gs = W - M
     if fj is None:
         fj = factor_jacobian(lay, mats, G, A)
     kw = np.concatenate([w, fj.H.T @ w])
-    He = factored_moment_hessian(fj, gram(fj.H, W), gram(fj.H, W @ Cm @ W), kw)
+    He = factored_moment_hessian(fj, gram(fj.H, W), gram(fj.H, M), kw)
     He += second_derivative_part(lay, mats, G, A, Gs, w)
     return to_params(fj, None, He)[1]
 
@@ -127,22 +113,23 @@ def second_derivative_part(
     # second-derivative contraction, per entry
     k = lay.ent_mat.size
     Ke = np.zeros((k, k))
-    Phi = A @ psi @ A.T
-    GsG = Gs @ G
-    GsLPhi = Gs @ lam @ Phi
-    Aa = A @ alpha
-    Kf = G.T @ Gs @ G
-    M = lam.T @ Gs @ lam
-    v = lam.T @ w
-    AtMA = A.T @ M @ A
-    Z = 2.0 * M @ A @ psi - 2.0 * np.outer(v, alpha)
-    AZA = A.T @ Z @ A.T
-    Atv = A.T @ v
     iL, jL, _, pL = lay.sel[LAMBDA]
     eB, fB, _, pB = lay.sel[BETA]
     cP, dP, _, pP = lay.sel[PSI]
     cA, _, _, pA = lay.sel[ALPHA]
     offP = (cP != dP).astype(float)
+    Phi = A @ psi @ A.T
+    GsG = Gs @ G
+    if pB.size:  # the products only paths (B) need
+        GsLPhi = Gs @ lam @ Phi
+        Aa = A @ alpha
+        Kf = G.T @ Gs @ G
+        M = lam.T @ Gs @ lam
+        v = lam.T @ w
+        AtMA = A.T @ M @ A
+        Z = 2.0 * M @ A @ psi - 2.0 * np.outer(v, alpha)
+        AZA = A.T @ Z @ A.T
+        Atv = A.T @ v
     if pL.size:
         Ke[pL[:, None], pL[None, :]] = 2.0 * Gs[iL[:, None], iL[None, :]] * Phi[jL[:, None], jL[None, :]].T
         if pP.size:

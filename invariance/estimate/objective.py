@@ -17,7 +17,7 @@ import numpy as np
 
 from ..data.moments import SampleStats
 from ..model.spec import ModelSpec
-from .linalg import partition
+from .linalg import partition, pd_inverse_logdet
 from .kernels import (
     compile_spec,
     factor_jacobian,
@@ -51,19 +51,34 @@ class MLObjective:
         self.partition = (partition([lay.params for lay in self.layouts], self.n_params)
                           if len(self.layouts) > 1 else None)
         self._point: tuple[bytes, list] | None = None
+        #: one group owning every parameter in order: its arrays are the totals (no scatter)
+        self._whole = len(self.layouts) == 1 and np.array_equal(self.layouts[0].params, np.arange(self.n_params))
 
-    def _at(self, theta: np.ndarray) -> list[tuple]:
-        """Per group (mats, Sigma, mu, G, A, factored Jacobian) at ``theta``; the last
-        point is kept, so the derivatives and the Hessian at one point share it."""
+    def _at(self, theta: np.ndarray) -> list[list]:
+        """Per group [mats, Sigma, mu, G, A, W, log|Sigma|, factored Jacobian] at ``theta``
+        (raises LinAlgError when a Sigma is not positive definite). The last point is
+        kept, so the value, the derivatives and the Hessian at one point share one
+        factorization; the Jacobian is built on first use (a rejected trial point of the
+        line search needs none)."""
         key = theta.tobytes()
         if self._point is None or self._point[0] != key:
             parts = []
             for lay in self.layouts:
                 mats = group_matrices(lay, theta)
                 sigma, mu, G, A = implied_moments(mats)
-                parts.append((mats, sigma, mu, G, A, factor_jacobian(lay, mats, G, A)))
+                W, logdet = pd_inverse_logdet(sigma)
+                parts.append([mats, sigma, mu, G, A, W, logdet, None])
             self._point = (key, parts)
         return self._point[1]
+
+    def _jacobians(self, theta: np.ndarray) -> list[list]:
+        """:meth:`_at` with the factored Jacobian of every group filled in."""
+        parts = self._at(theta)
+        for lay, part in zip(self.layouts, parts):
+            if part[7] is None:
+                mats, _, _, G, A = part[:5]
+                part[7] = factor_jacobian(lay, mats, G, A)
+        return parts
 
     def moments(self, theta: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
         """Implied (Sigma, mu) of every group."""
@@ -74,10 +89,10 @@ class MLObjective:
         return out
 
     def group_values(self, theta: np.ndarray) -> np.ndarray:
-        """F_g of every group."""
+        """F_g of every group (LinAlgError when a Sigma is not positive definite)."""
         f = np.empty(len(self.layouts))
-        for g, (_, sigma, mu, _, _, _) in enumerate(self._at(theta)):
-            f[g] = ml_discrepancy(sigma, mu, self.S[g], self.mean[g], self.logdet_s[g])
+        for g, (_, _, mu, _, _, W, logdet, _) in enumerate(self._at(theta)):
+            f[g] = ml_discrepancy(W, logdet, mu, self.S[g], self.mean[g], self.logdet_s[g])
         return f
 
     def value(self, theta: np.ndarray) -> float:
@@ -91,13 +106,18 @@ class MLObjective:
         return layout_jacobians(self.layouts, theta)
 
     def derivatives(self, theta: np.ndarray, *, information: bool = True):
+        if self._whole:
+            _, _, mu, _, _, W, logdet, fj = self._jacobians(theta)[0]
+            f, gg, hh = ml_derivatives(W, logdet, mu, self.S[0], self.mean[0], fj, logdet_s=self.logdet_s[0],
+                                       information=information)
+            return self.n[0] * f, self.n[0] * gg, None if hh is None else self.n[0] * hh
         q = self.n_params
         grad = np.zeros(q)
         info = np.zeros((q, q)) if information else None
         total = 0.0
-        for g, (lay, (mats, sigma, mu, G, A, fj)) in enumerate(zip(self.layouts, self._at(theta))):
+        for g, (lay, (_, _, mu, _, _, W, logdet, fj)) in enumerate(zip(self.layouts, self._jacobians(theta))):
             f, gg, hh = ml_derivatives(
-                sigma, mu, self.S[g], self.mean[g], fj, logdet_s=self.logdet_s[g], information=information
+                W, logdet, mu, self.S[g], self.mean[g], fj, logdet_s=self.logdet_s[g], information=information
             )
             u = lay.params
             total += self.n[g] * f
@@ -109,9 +129,11 @@ class MLObjective:
     def hessian(self, theta: np.ndarray) -> np.ndarray:
         """Exact (observed) Hessian of T, analytic."""
         q = self.n_params
-        H = np.zeros((q, q))
-        for g, (lay, (mats, sigma, mu, G, A, fj)) in enumerate(zip(self.layouts, self._at(theta))):
-            hh = ml_hessian(lay, mats, sigma, mu, G, A, self.S[g], self.mean[g], fj=fj)
+        H = None if self._whole else np.zeros((q, q))
+        for g, (lay, (mats, _, mu, G, A, W, _, fj)) in enumerate(zip(self.layouts, self._jacobians(theta))):
+            hh = ml_hessian(lay, mats, W, mu, G, A, self.S[g], self.mean[g], fj=fj)
+            if H is None:
+                return self.n[g] * hh
             u = lay.params
             H[np.ix_(u, u)] += self.n[g] * hh
         return H

@@ -43,6 +43,10 @@ STATUS = {
     6: "estimates diverge (the model is empirically under-identified or its optimum lies on a boundary)",
 }
 
+#: Newton steps (exact Hessian) replace scoring steps once the scoring decrement
+#: g' I^-1 g (in chi-square units) falls below this.
+NEWTON_BELOW = 10.0
+
 #: Iterations over which a run-away trend is judged.
 RUNAWAY_WINDOW = 16
 #: The second opinion on a suspected run-away: iterates judged together, the share of the
@@ -117,11 +121,12 @@ def running_away(path: list[np.ndarray]) -> np.ndarray:
     return np.flatnonzero(same_way & (late >= early) & moved)
 
 
-def _direction(obj, x, f, g, h, part, newton_ok: bool, free: np.ndarray | None) -> tuple[np.ndarray, np.ndarray | None]:
+def _direction(obj, x, f, g, h, part, newton_ok: bool, free: np.ndarray | None):
     """Newton step (exact Hessian) when allowed and positive definite, else the scoring
-    step; and the information (``h``, computed here when it was skipped). With ``free``
-    given (bounded problems) the free parameters take that step and the others a
-    diagonally scaled gradient step (Bertsekas 1982)."""
+    step; the information (``h``, computed here when it was skipped); and the Hessian when
+    the step is a Newton step (else ``None``). With ``free`` given (bounded problems) the
+    free parameters take that step and the others a diagonally scaled gradient step
+    (Bertsekas 1982)."""
     if h is None and (not newton_ok or free is not None):
         h = obj.derivatives(x)[2]
     if free is not None:
@@ -134,18 +139,39 @@ def _direction(obj, x, f, g, h, part, newton_ok: bool, free: np.ndarray | None) 
                 step[free] = -pd_solve(obj.hessian(x)[sub], g[free])
             except np.linalg.LinAlgError:
                 step[free] = _solve(h[sub], g[free])
-        return step, h
+        return step, h, None
     if newton_ok:
         try:
             hx = obj.hessian(x)
-            if part is not None:
-                return -arrow_solve(hx, g, part), h
-            return -pd_solve(hx, g), h
+            return _newton(hx, g, part), h, hx
         except np.linalg.LinAlgError:
             pass
     if h is None:
         h = obj.derivatives(x)[2]
-    return _solve(h, g, part), h
+    return _solve(h, g, part), h, None
+
+
+def _newton(hx: np.ndarray, g: np.ndarray, part) -> np.ndarray:
+    """Newton step -hx^-1 g (arrow-structured when ``part`` is given); raises
+    ``LinAlgError`` when ``hx`` is not positive definite."""
+    return -arrow_solve(hx, g, part) if part is not None else -pd_solve(hx, g)
+
+
+def _small(g: np.ndarray, step: np.ndarray, f: float, tol: float, margin: float = 1.0) -> bool:
+    """The convergence test: the decrement g'step is below ``tol`` relative to the
+    objective and no parameter moves by 1e-5 (both scaled by ``margin``)."""
+    return abs(float(g @ step)) < margin * tol * max(1.0, abs(f)) and float(np.max(np.abs(step))) < margin * 1e-5
+
+
+def _settled(hx: np.ndarray, g: np.ndarray, part, f: float, tol: float) -> bool:
+    """Converged at a point reached by a full Newton step, judged with that step's Hessian
+    ``hx`` instead of a new one: near the optimum the Hessian changes by O(step), so the
+    Newton step at the new point is estimated to a few digits, and the test keeps a
+    tenfold margin. (Quadratic convergence: the step just taken settles it.)"""
+    try:
+        return _small(g, _newton(hx, g, part), f, tol, margin=0.1)
+    except np.linalg.LinAlgError:
+        return False
 
 
 def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float, lower: np.ndarray | None = None):
@@ -162,15 +188,18 @@ def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float, lower: np.ndarray
     part = getattr(obj, "partition", None)
     decrement = np.inf
     path = [x]
+    hx = None  # the Hessian of the last step when it was a full Newton step
     for it in range(1, max_iter + 1):
         free = None
         if lower is not None:
             # epsilon-active set: near the bound and pushed towards it
             free = ~((x <= lower + 1e-3) & (g > 0))
-        step, h = _direction(obj, x, f, g, h, part, newton and decrement < 1.0, free)
+        if hx is not None and _settled(hx, g, part, f, tol):
+            return x, f, g, h, 0, it - 1, none
+        step, h, hx = _direction(obj, x, f, g, h, part, newton and decrement < NEWTON_BELOW, free)
         full = step if lower is None else np.maximum(x + step, lower) - x  # projected full step
         decrement = -float(g @ step)
-        if abs(float(g @ full)) < tol * max(1.0, abs(f)) and np.max(np.abs(full)) < 1e-5:
+        if _small(g, full, f, tol):
             return x, f, g, h, 0, it - 1, none
         t = 1.0
         for _ in range(30):
@@ -181,6 +210,8 @@ def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float, lower: np.ndarray
             t *= 0.5
         else:
             return x, f, g, h, 2, it, none
+        if t < 1.0:
+            hx = None
         x = xn
         path.append(x)
         run = running_away(path)
@@ -194,7 +225,7 @@ def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float, lower: np.ndarray
             return x, f, g, h, 6, it, run
         try:
             # a Newton step at x needs no information (computed there only if it fails)
-            f, g, h = obj.derivatives(x, information=not (newton and decrement < 1.0 and lower is None))
+            f, g, h = obj.derivatives(x, information=not (newton and decrement < NEWTON_BELOW and lower is None))
         except np.linalg.LinAlgError:
             return x, np.inf, None, None, 2, it, none
     return x, f, g, h, 1, max_iter, none

@@ -11,6 +11,7 @@ from typing import Sequence
 import numpy as np
 
 from ..model.spec import LAMBDA, PSI, THETA, ModelSpec
+from .linalg import all_above
 
 __all__ = ["VARIANCE_CHOICES", "describe_runaway", "describe_bounds", "weak_identification"]
 
@@ -154,9 +155,12 @@ def weak_identification(spec: ModelSpec, info: np.ndarray, part, matrices, *, ge
             continue
         H = info[np.ix_(idx, idx)]
         d = np.sqrt(np.clip(np.abs(np.diag(H)), 1e-300, None))
-        w, v = np.linalg.eigh(H / np.outer(d, d))
-        if not (1e-10 <= w[0] < NEAR_SINGULAR):
-            continue
+        scaled = H / np.outer(d, d)
+        if all_above(scaled, NEAR_SINGULAR):
+            continue  # the eigenvectors are needed only for a nearly singular block
+        w, v = np.linalg.eigh(scaled)
+        if w[0] < 1e-10:
+            continue  # singular: named by the diagnosis of the solution
         involved = [labels[idx[k]] for k in np.argsort(-np.abs(v[:, 0])) if abs(v[k, 0]) > 0.2]
         lam = matrices[g][0]
         gcol = spec.factors.index(general) if general in spec.factors else None

@@ -10,7 +10,7 @@ import numpy as np
 
 from ..errors import ConvergenceWarning, ImproperSolutionWarning
 from ..model.spec import ModelSpec
-from .linalg import arrow_min_eigen
+from .linalg import all_above, arrow_min_eigen
 from .runaway import describe_bounds, describe_runaway
 from .starts import general_factors
 
@@ -45,9 +45,9 @@ def diagnose(spec: ModelSpec, matrices, sigmas, info: np.ndarray | None, part=No
         for i in np.flatnonzero(np.diag(theta) < 0):
             problems.append(f"negative residual variance of item {spec.items[i]} in group {gname}")
         psi = mats[2]
-        if psi.size and np.linalg.eigvalsh(psi)[0] < -1e-10:
+        if psi.size and not all_above(psi, -1e-10):
             problems.append(f"factor covariance matrix not positive definite in group {gname}")
-        if np.linalg.eigvalsh(sigma)[0] <= 0:
+        if not all_above(sigma, 0.0):
             problems.append(f"implied covariance matrix not positive definite in group {gname}")
     singular = False
     if info is not None and info.size:
@@ -55,7 +55,7 @@ def diagnose(spec: ModelSpec, matrices, sigmas, info: np.ndarray | None, part=No
             singular = arrow_min_eigen(info, part) < 1e-10
         else:
             d = np.sqrt(np.clip(np.abs(np.diag(info)), 1e-300, None))
-            singular = np.linalg.eigvalsh(info / np.outer(d, d))[0] < 1e-10
+            singular = not all_above(info / np.outer(d, d), 1e-10)
     if singular:
         d = np.sqrt(np.clip(np.abs(np.diag(info)), 1e-300, None))
         scaled = info / np.outer(d, d)

@@ -54,34 +54,37 @@ def _group_starts(spec: ModelSpec, g: int, S: np.ndarray, mean: np.ndarray) -> n
         block = Rs[np.ix_(its, its)] - np.outer(lg[its], lg[its])
         std_load[its, f] = np.sqrt(np.clip(_mean_offdiag(block), 0.02, 0.9))
     std_load *= sign[:, None]
-    out = np.full(idx.size, np.nan)
-    for k, (mat, r, c) in enumerate(zip(mats, rows, cols)):
-        if mat == LAMBDA:
-            out[k] = std_load[r, c] * sd[r]
-        elif mat == THETA:
-            if r == c:
-                h2 = np.sum(std_load[r] ** 2)
-                out[k] = S[r, r] * max(1.0 - h2, 0.2)
-            else:
-                out[k] = 0.0
-        elif mat == NU:
-            out[k] = mean[r]
-        elif mat == PSI:
-            if r == c:
-                out[k] = 1.0
-            else:
-                a, b = load_items.get(int(r), []), load_items.get(int(c), [])
-                if a and b:
-                    sa = (Rs[np.ix_(a, b)]).mean()
-                    la, lb = std_load[a, r].mean(), std_load[b, c].mean()
-                    est = sa / max(abs(la * lb), 1e-3)
-                    out[k] = float(np.clip(est, -0.8, 0.8))
-                else:
-                    out[k] = 0.0
-        elif mat == BETA:
-            out[k] = 0.5 if len(load_items.get(int(r), [])) else 0.0
-        elif mat == ALPHA:
-            out[k] = 0.0
+    return _entry_starts(mats, rows, cols, std_load, sd, S, mean, Rs, load_items)
+
+
+def _entry_starts(mats, rows, cols, std_load, sd, S, mean, Rs, load_items) -> np.ndarray:
+    """Start of every entry of a group from its standardized loadings (nan where not
+    applicable): loadings rescaled by the item SD, residual variances from the
+    communalities (at least 20% of the item variance), intercepts at the item means,
+    factor variances 1, factor covariances from the cross-block correlations, paths 0.5
+    into factors with items, factor means 0."""
+    out = np.full(mats.size, np.nan)
+    diag = rows == cols
+    sel = mats == LAMBDA
+    out[sel] = std_load[rows[sel], cols[sel]] * sd[rows[sel]]
+    sel = (mats == THETA) & diag
+    h2 = np.sum(std_load**2, axis=1)
+    out[sel] = np.diag(S)[rows[sel]] * np.maximum(1.0 - h2[rows[sel]], 0.2)
+    out[(mats == THETA) & ~diag] = 0.0
+    sel = mats == NU
+    out[sel] = mean[rows[sel]]
+    out[(mats == PSI) & diag] = 1.0
+    out[mats == ALPHA] = 0.0
+    for k in np.flatnonzero(mats == BETA):
+        out[k] = 0.5 if load_items.get(int(rows[k])) else 0.0
+    for k in np.flatnonzero((mats == PSI) & ~diag):
+        r, c = int(rows[k]), int(cols[k])
+        a, b = load_items.get(r, []), load_items.get(c, [])
+        out[k] = 0.0
+        if a and b:
+            sa = (Rs[np.ix_(a, b)]).mean()
+            la, lb = std_load[a, r].mean(), std_load[b, c].mean()
+            out[k] = float(np.clip(sa / max(abs(la * lb), 1e-3), -0.8, 0.8))
     return out
 
 
@@ -100,11 +103,10 @@ def pool_starts(spec: ModelSpec, group_starts) -> np.ndarray:
         idx = spec.group_entries(g)
         given = spec.value[idx]
         st = np.where(np.isfinite(given), given, st)
-        for k, v in zip(idx, st):
-            j = param[k]
-            if j >= 0 and np.isfinite(v):
-                total[j] += v
-                count[j] += 1
+        j = param[idx]
+        ok = (j >= 0) & np.isfinite(st)
+        total += np.bincount(j[ok], weights=st[ok], minlength=spec.n_params)
+        count += np.bincount(j[ok], minlength=spec.n_params)
     return np.where(count > 0, total / np.maximum(count, 1), 0.0)
 
 

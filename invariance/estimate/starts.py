@@ -13,6 +13,7 @@ many distinct optima were found.
 
 from __future__ import annotations
 
+import weakref
 from dataclasses import dataclass
 from typing import Callable
 
@@ -60,8 +61,15 @@ class StartRecord:
                 "runaway_below": self.runaway_below}
 
 
-def general_factors(spec: ModelSpec) -> set[int]:
+#: general factors per spec (a spec is immutable: its arrays are read-only)
+_GENERAL: "weakref.WeakKeyDictionary[ModelSpec, frozenset[int]]" = weakref.WeakKeyDictionary()
+
+
+def general_factors(spec: ModelSpec) -> frozenset[int]:
     """Factors loading on every item of a group while other factors exist (bifactor)."""
+    found = _GENERAL.get(spec)
+    if found is not None:
+        return found
     out = set()
     lam = spec.matrix == LAMBDA
     p = len(spec.items)
@@ -71,7 +79,8 @@ def general_factors(spec: ModelSpec) -> set[int]:
         uniq = np.unique(cols)
         if uniq.size > 1:
             out.update(int(c) for c in uniq if np.sum(cols == c) == p)
-    return out
+    found = _GENERAL[spec] = frozenset(out)
+    return found
 
 
 def multimodal(spec: ModelSpec) -> bool:

@@ -131,15 +131,18 @@ class ModelSpec:
         object.__setattr__(self, "free", np.asarray(self.free, dtype=bool))
         object.__setattr__(self, "value", np.asarray(self.value, dtype=float))
         object.__setattr__(self, "label", np.asarray(self.label, dtype=object))
-        labels: dict[str, int] = {}
         param = np.full(self.group.size, -1, dtype=np.int64)
-        for k in np.flatnonzero(self.free):
-            lab = self.label[k]
-            if not lab:
-                raise SpecificationError("Every free entry needs a label.")
-            param[k] = labels.setdefault(lab, len(labels))
+        free_labels = self.label[self.free]
+        if not all(free_labels):
+            raise SpecificationError("Every free entry needs a label.")
+        # parameters numbered in order of first appearance of their labels
+        uniq, first, inverse = np.unique(free_labels.astype(str), return_index=True, return_inverse=True)
+        order = np.argsort(first, kind="stable")
+        rank = np.empty(order.size, dtype=np.int64)
+        rank[order] = np.arange(order.size)
+        param[self.free] = rank[inverse.ravel()]
         object.__setattr__(self, "_param", param)
-        object.__setattr__(self, "_labels", tuple(labels))
+        object.__setattr__(self, "_labels", tuple(str(x) for x in uniq[order]))
         for arr in (self.group, self.matrix, self.row, self.col, self.free, self.label, self.value, param):
             arr.setflags(write=False)
 

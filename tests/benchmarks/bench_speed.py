@@ -1,7 +1,9 @@
 """Speed benchmark of issue 12 (a script, not a test): ratios measured side by side in one run.
 
 All times are CPU seconds (time.process_time) with one BLAS thread (threadpoolctl),
-medians over --repeat runs, measured in this one process after one warm-up call. The
+medians over --repeat runs, measured in this one process after one warm-up call (the
+Holzinger & Swineford contenders in interleaved rounds, so that load from other jobs
+hits them alike). The
 issue's targets are printed beside the measured ratios.
 
 1. Holzinger & Swineford (1939, data shipped with semopy) configural model by school:
@@ -56,6 +58,23 @@ def cpu(fn, repeat: int, *, fresh: bool = True):
         out = fn()
         times.append(time.process_time() - t)
     return statistics.median(times), out
+
+
+def cpu_interleaved(fns: dict, repeat: int) -> dict:
+    """Median CPU time and last value of each of ``fns`` (name -> callable), measured in
+    interleaved rounds (one call of each per round, after one warm-up round), so that a
+    change in the machine's load during the run hits every contender alike."""
+    for fn in fns.values():
+        fn()
+    times: dict = {k: [] for k in fns}
+    out: dict = {}
+    for _ in range(repeat):
+        for k, fn in fns.items():
+            CACHE.clear()
+            t = time.process_time()
+            out[k] = fn()
+            times[k].append(time.process_time() - t)
+    return {k: (statistics.median(times[k]), out[k]) for k in fns}
 
 
 def pipeline(frame: pd.DataFrame, name: str, model: dict, levels, **data) -> dict:
@@ -113,9 +132,8 @@ def bench_holzinger(repeat: int) -> None:
     def whole():
         return run_inprocess(doc)["levels"][0]["chi2"]
 
-    t_s, c_s = cpu(semopy_fits, repeat)
-    t_e, c_e = cpu(estimation, repeat)
-    t_w, c_w = cpu(whole, repeat)
+    got = cpu_interleaved({"semopy": semopy_fits, "estimation": estimation, "whole": whole}, repeat)
+    (t_s, c_s), (t_e, c_e), (t_w, c_w) = got["semopy"], got["estimation"], got["whole"]
     print("1. Holzinger & Swineford configural model by school (2 groups, 9 items)")
     print(f"   semopy, two per-school ML fits      {t_s * 1e3:9.1f} ms   chi2 {c_s:.3f}")
     print(f"   ours, estimation call               {t_e * 1e3:9.1f} ms   chi2 {c_e:.3f}")
