@@ -275,7 +275,15 @@ def minimize(
     # watched scoring polish (:func:`_second_opinion`) either converge (a false alarm) or
     # confirm the run-away, in which case the first stopping point (closer to the data's
     # scale) is what is reported.
-    res = _sopt.minimize(fun, x, jac=True, method="L-BFGS-B", bounds=bounds,
+    trail = [x]
+
+    def same_run(intermediate_result) -> None:
+        # the quasi-Newton probe follows the flagged parameters off as well: stop it
+        trail.append(np.array(intermediate_result.x))
+        if np.intersect1d(running_away(trail), first.running).size:
+            raise StopIteration
+
+    res = _sopt.minimize(fun, x, jac=True, method="L-BFGS-B", bounds=bounds, callback=same_run if first else None,
                          options={"maxiter": 300 if first else 20000, "ftol": 1e-15, "gtol": 1e-9})
     if first is not None:
         return _second_opinion(obj, first, res.x, it + int(res.nit), max_iter=max_iter, tol=tol, lower=lower)
