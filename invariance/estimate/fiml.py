@@ -104,7 +104,9 @@ class FIMLObjective:
         self.mean = [g.mean for g in stats.groups]
         self.loglik_h1 = float(sum(d.loglik_h1 for d in self.data))
         #: shared vs group-local parameters: the information matrix is arrow-shaped
-        self.partition = partition([lay.params for lay in self.layouts], self.n_params)
+        #: (one group: a plain dense matrix, no partition)
+        self.partition = (partition([lay.params for lay in self.layouts], self.n_params)
+                          if len(self.layouts) > 1 else None)
         self._last: tuple | None = None
 
     # -- the last point ----------------------------------------------------------------
