@@ -140,6 +140,12 @@ def test_factor_scores_table_one_row_per_case_used(tmp_path):
     back = pd.read_csv(path)
     assert len(back) == len(fs.table) and list(back.columns) == list(fs.table.columns)
     assert np.allclose(back.alpha, fs.table.alpha)
+    # a case id that a spreadsheet would run as a formula is written as text (the escaping
+    # of every CSV the tool writes; OWASP "CSV injection" guidance: prefix a quote)
+    d.loc[0, "case"] = "=1+2"
+    risky = factor_scores(res, d, group="site", method="bartlett", id="case")
+    risky.to_csv(path)
+    assert pd.read_csv(path, dtype={"case": str}).case.iloc[0] == "'=1+2"
 
 
 def test_partial_model_statement_and_errors():

@@ -39,6 +39,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DataError, EstimationError, SpecificationError
+from ..escape import write_csv
 from ..estimate.result import FitResult
 
 __all__ = ["SCORE_METHODS", "score_weights", "score_cases", "determinacy", "FactorScores", "factor_scores"]
@@ -200,8 +201,10 @@ class FactorScores:
     notes: tuple[str, ...] = field(default_factory=tuple)
 
     def to_csv(self, path) -> None:
-        """Write the per-case scores (id, group, factors) to a CSV file."""
-        self.table.to_csv(path, index=False)
+        """Write the per-case scores (id, group, factors) to a CSV file (text cells such
+        as case ids and group names made safe for spreadsheets, as every CSV the tool
+        writes)."""
+        write_csv(self.table, path)
 
     def to_dict(self) -> dict:
         """Plain-type summary for results.json (without the per-case scores)."""

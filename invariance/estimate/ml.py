@@ -103,13 +103,19 @@ def fit(
     if tuple(stats.items) != tuple(spec.items):
         stats = stats.reorder_items(spec.items)
     if shares_nothing(spec):
-        one = functools.partial(fit, information=information, estimator=estimator, **opts)
-        res = fit_by_group(spec, stats, one, start=start)
-        if any(g.missing is not None for g in stats.groups):
-            res.extra["missing"] = missing_report(stats)
-        return res
+        return _fit_separately(spec, stats, start, information=information, estimator=estimator, opts=opts)
     obj, out, estimation = _estimate(spec, stats, start=start, options=opts)
     return _finish(spec, stats, obj, out, information=information, estimator=estimator, estimation=estimation)
+
+
+def _fit_separately(spec: ModelSpec, stats: SampleStats, start, *, information: str, estimator: str,
+                    opts: dict) -> FitResult:
+    """A model whose groups share nothing, as one fit per group (:func:`fit_by_group`)."""
+    one = functools.partial(fit, information=information, estimator=estimator, **opts)
+    res = fit_by_group(spec, stats, one, start=start)
+    if any(g.missing is not None for g in stats.groups):
+        res.extra["missing"] = missing_report(stats)
+    return res
 
 
 def _check_options(*, variances: str, estimator: str, information: str, ordinal: bool) -> None:

@@ -100,6 +100,12 @@ def ml_hessian(
     return to_params(fj, None, He)[1]
 
 
+def _put(Ke: np.ndarray, rows: np.ndarray, cols: np.ndarray, blk: np.ndarray) -> None:
+    """Write a block and its transpose into the symmetric ``Ke``."""
+    Ke[rows[:, None], cols[None, :]] = blk
+    Ke[cols[:, None], rows[None, :]] = blk.T
+
+
 def second_derivative_part(
     lay: GroupLayout, mats: tuple[np.ndarray, ...], G: np.ndarray, A: np.ndarray, Gs: np.ndarray, w: np.ndarray
 ) -> np.ndarray:
@@ -109,58 +115,52 @@ def second_derivative_part(
     and nu enter linearly). Linear in (Gs, w): full-information ML passes the sums over
     its missingness patterns.
     """
-    lam, beta, psi, theta, nu, alpha = mats
-    # second-derivative contraction, per entry
+    lam, psi = mats[0], mats[2]
     k = lay.ent_mat.size
     Ke = np.zeros((k, k))
     iL, jL, _, pL = lay.sel[LAMBDA]
-    eB, fB, _, pB = lay.sel[BETA]
     cP, dP, _, pP = lay.sel[PSI]
     cA, _, _, pA = lay.sel[ALPHA]
     offP = (cP != dP).astype(float)
     Phi = A @ psi @ A.T
     GsG = Gs @ G
-    if pB.size:  # the products only paths (B) need
-        GsLPhi = Gs @ lam @ Phi
-        Aa = A @ alpha
-        Kf = G.T @ Gs @ G
-        M = lam.T @ Gs @ lam
-        v = lam.T @ w
-        AtMA = A.T @ M @ A
-        Z = 2.0 * M @ A @ psi - 2.0 * np.outer(v, alpha)
-        AZA = A.T @ Z @ A.T
-        Atv = A.T @ v
     if pL.size:
         Ke[pL[:, None], pL[None, :]] = 2.0 * Gs[iL[:, None], iL[None, :]] * Phi[jL[:, None], jL[None, :]].T
         if pP.size:
-            blk = 2.0 * GsG[iL][:, cP] * A[jL][:, dP] + offP[None, :] * 2.0 * GsG[iL][:, dP] * A[jL][:, cP]
-            Ke[pL[:, None], pP[None, :]] = blk
-            Ke[pP[:, None], pL[None, :]] = blk.T
-        if pB.size:
-            blk = 2.0 * (GsG[iL][:, eB] * Phi[fB][:, jL].T + GsLPhi[iL][:, fB] * A[jL][:, eB])
-            blk -= 2.0 * w[iL][:, None] * A[jL][:, eB] * Aa[fB][None, :]
-            Ke[pL[:, None], pB[None, :]] = blk
-            Ke[pB[:, None], pL[None, :]] = blk.T
+            _put(Ke, pL, pP, 2.0 * GsG[iL][:, cP] * A[jL][:, dP] + offP[None, :] * 2.0 * GsG[iL][:, dP] * A[jL][:, cP])
         if pA.size:
-            blk = -2.0 * w[iL][:, None] * A[jL][:, cA]
-            Ke[pL[:, None], pA[None, :]] = blk
-            Ke[pA[:, None], pL[None, :]] = blk.T
-    if pB.size:
-        blk = (
-            2.0 * AtMA[eB[:, None], eB[None, :]].T * Phi[fB[:, None], fB[None, :]]
-            + A[fB[:, None], eB[None, :]].T * AZA[eB[:, None], fB[None, :]].T
-            + A[fB[:, None], eB[None, :]] * AZA[eB[:, None], fB[None, :]]
-        )
-        Ke[pB[:, None], pB[None, :]] = blk
-        if pP.size:
-            # rows: Psi entries (c, d); cols: B entries (e, f)
-            blk = 2.0 * A[fB[:, None], cP[None, :]].T * Kf[eB[:, None], dP[None, :]].T
-            blk += offP[:, None] * 2.0 * A[fB[:, None], dP[None, :]].T * Kf[eB[:, None], cP[None, :]].T
-            blk = np.where(offP[:, None] > 0, blk, 2.0 * A[fB[:, None], cP[None, :]].T * Kf[eB[:, None], cP[None, :]].T)
-            Ke[pP[:, None], pB[None, :]] = blk
-            Ke[pB[:, None], pP[None, :]] = blk.T
-        if pA.size:
-            blk = -2.0 * Atv[eB][:, None] * A[fB[:, None], cA[None, :]]
-            Ke[pB[:, None], pA[None, :]] = blk
-            Ke[pA[:, None], pB[None, :]] = blk.T
+            _put(Ke, pL, pA, -2.0 * w[iL][:, None] * A[jL][:, cA])
+    if lay.sel[BETA][3].size:
+        _path_part(Ke, lay, mats, G, A, Gs, w, Phi, GsG)
     return Ke
+
+
+def _path_part(Ke, lay: GroupLayout, mats, G, A, Gs, w, Phi, GsG) -> None:
+    """The blocks of :func:`second_derivative_part` that involve paths (B entries)."""
+    lam, psi, alpha = mats[0], mats[2], mats[5]
+    iL, jL, _, pL = lay.sel[LAMBDA]
+    eB, fB, _, pB = lay.sel[BETA]
+    cP, dP, _, pP = lay.sel[PSI]
+    cA, _, _, pA = lay.sel[ALPHA]
+    offP = (cP != dP).astype(float)
+    M = lam.T @ Gs @ lam
+    v = lam.T @ w
+    if pL.size:
+        blk = 2.0 * (GsG[iL][:, eB] * Phi[fB][:, jL].T + (Gs @ lam @ Phi)[iL][:, fB] * A[jL][:, eB])
+        blk -= 2.0 * w[iL][:, None] * A[jL][:, eB] * (A @ alpha)[fB][None, :]
+        _put(Ke, pL, pB, blk)
+    AZA = A.T @ (2.0 * M @ A @ psi - 2.0 * np.outer(v, alpha)) @ A.T
+    Ke[pB[:, None], pB[None, :]] = (
+        2.0 * (A.T @ M @ A)[eB[:, None], eB[None, :]].T * Phi[fB[:, None], fB[None, :]]
+        + A[fB[:, None], eB[None, :]].T * AZA[eB[:, None], fB[None, :]].T
+        + A[fB[:, None], eB[None, :]] * AZA[eB[:, None], fB[None, :]]
+    )
+    if pP.size:
+        # rows: Psi entries (c, d); cols: B entries (e, f)
+        Kf = G.T @ Gs @ G
+        blk = 2.0 * A[fB[:, None], cP[None, :]].T * Kf[eB[:, None], dP[None, :]].T
+        blk += offP[:, None] * 2.0 * A[fB[:, None], dP[None, :]].T * Kf[eB[:, None], cP[None, :]].T
+        blk = np.where(offP[:, None] > 0, blk, 2.0 * A[fB[:, None], cP[None, :]].T * Kf[eB[:, None], cP[None, :]].T)
+        _put(Ke, pP, pB, blk)
+    if pA.size:
+        _put(Ke, pB, pA, -2.0 * (A.T @ v)[eB][:, None] * A[fB[:, None], cA[None, :]])

@@ -3,7 +3,9 @@ quasi-Newton fallback.
 
 Fisher scoring (the expected information) is robust far from the optimum but converges
 only linearly when the model misfits; once the Newton decrement is small, objectives that
-offer an exact ``hessian(theta)`` switch to Newton steps, which converge quadratically.
+offer an exact ``hessian(theta)`` switch to Newton steps (below :data:`NEWTON_BELOW`),
+which converge quadratically. A point reached by a full Newton step is judged converged
+with that step's Hessian (:func:`_settled`, a tenfold margin) before a new one is computed.
 
 One front door, :func:`minimize`, serves every objective (see
 :mod:`invariance.estimate.objective`). Stop reasons come from the fixed table

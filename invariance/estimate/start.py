@@ -31,10 +31,13 @@ def _group_starts(spec: ModelSpec, g: int, S: np.ndarray, mean: np.ndarray) -> n
     idx = spec.group_entries(g)
     mats, rows, cols = spec.matrix[idx], spec.row[idx], spec.col[idx]
     lam_sel = mats == LAMBDA
-    # sign of each item: its loading on the first principal component
-    w, v = np.linalg.eigh(R)
-    pc = v[:, -1] * np.sign(v[:, -1].sum() or 1.0)
-    sign = np.where(pc < 0, -1.0, 1.0)
+    # sign of each item: its loading on the first principal component (all positive
+    # when no correlation is negative: Perron-Frobenius)
+    sign = np.ones(p)
+    if np.any(R < 0):
+        w, v = np.linalg.eigh(R)
+        pc = v[:, -1] * np.sign(v[:, -1].sum() or 1.0)
+        sign = np.where(pc < 0, -1.0, 1.0)
     Rs = R * np.outer(sign, sign)
     # factor -> items that load on it
     load_items: dict[int, list[int]] = {}

@@ -29,7 +29,7 @@ import numpy as np
 
 from ..errors import SpecificationError
 from .ordinal_levels import ORDINAL_LEVELS, build_ordinal_level
-from .spec import ALPHA, BETA, LAMBDA, NU, PSI, THETA, ModelSpec, Release
+from .spec import ALPHA, BETA, LAMBDA, NU, PSI, THETA, ModelSpec, Release, level_position
 from .structure import Structure
 
 __all__ = ["LEVELS", "LevelBuilder", "build_level", "level_rank"]
@@ -39,12 +39,7 @@ LEVELS = ("configural", "metric", "scalar", "strict")
 
 def level_rank(level: str) -> int:
     """Position of a measurement level in :data:`LEVELS`."""
-    try:
-        return LEVELS.index(level)
-    except ValueError:
-        raise SpecificationError(
-            f"Unknown invariance level {level!r}; use one of {', '.join(LEVELS)}."
-        ) from None
+    return level_position(level, LEVELS)
 
 
 def build_level(

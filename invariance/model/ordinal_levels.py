@@ -44,7 +44,7 @@ from typing import Callable, Iterable, Sequence
 import numpy as np
 
 from ..errors import SpecificationError
-from .spec import ALPHA, BETA, LAMBDA, NU, PSI, TAU, THETA, ModelSpec, Release
+from .spec import ALPHA, BETA, LAMBDA, NU, PSI, TAU, THETA, ModelSpec, Release, level_position
 from .structure import Structure
 
 __all__ = ["ORDINAL_LEVELS", "ORDINAL_RELEASES", "build_ordinal_level", "ordinal_level_rank"]
@@ -55,12 +55,7 @@ ORDINAL_RELEASES = ("threshold", "loading", "intercept", "residual")
 
 def ordinal_level_rank(level: str) -> int:
     """Position of a level in :data:`ORDINAL_LEVELS`."""
-    try:
-        return ORDINAL_LEVELS.index(level)
-    except ValueError:
-        raise SpecificationError(
-            f"Unknown ordinal invariance level {level!r}; use one of {', '.join(ORDINAL_LEVELS)}."
-        ) from None
+    return level_position(level, ORDINAL_LEVELS, kind="ordinal")
 
 
 def build_ordinal_level(

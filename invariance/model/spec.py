@@ -26,7 +26,7 @@ import pandas as pd
 
 from ..errors import SpecificationError
 
-__all__ = ["ModelSpec", "Release", "MATRICES", "PARAMETER_KINDS", "LAMBDA", "BETA", "PSI", "THETA", "NU", "ALPHA", "TAU"]
+__all__ = ["ModelSpec", "Release", "level_position", "MATRICES", "PARAMETER_KINDS", "LAMBDA", "BETA", "PSI", "THETA", "NU", "ALPHA", "TAU"]
 
 #: Matrix codes in the entry table.
 LAMBDA, BETA, PSI, THETA, NU, ALPHA = range(6)
@@ -47,6 +47,18 @@ PARAMETER_KINDS = (
     "mean",         # alpha[f]: factor mean or intercept
     "threshold",    # tau[i, k]: threshold k of an ordered item
 )
+
+
+def level_position(level: str, levels: Sequence[str], *, kind: str = "") -> int:
+    """Position of ``level`` in the ordered ``levels``; one line naming the choices when
+    it is unknown (``kind``: a word before "invariance level", e.g. "ordinal")."""
+    try:
+        return tuple(levels).index(level)
+    except ValueError:
+        words = f"{kind} invariance level" if kind else "invariance level"
+        raise SpecificationError(
+            f"Unknown {words} {level!r}; use one of {', '.join(levels)}."
+        ) from None
 
 
 @dataclass(frozen=True)
