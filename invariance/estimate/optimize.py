@@ -264,29 +264,12 @@ def minimize(
         return Outcome(x, np.inf, np.full_like(x, np.nan), None, 3, 0)
     first = Outcome(x, f, g, h, 6, it, tuple(int(j) for j in run)) if status == 6 else None
 
-    def fun(z):
-        try:
-            v, gr, _ = obj.derivatives(z, information=False)
-        except np.linalg.LinAlgError:
-            return 1e20, np.zeros_like(z)
-        return v, gr
-
-    bounds = None if lower is None else [(lo if np.isfinite(lo) else None, None) for lo in lower]
     # A suspected run-away gets a second opinion: a slow, steady approach to a finite
     # optimum in a flat valley looks the same for a while. A short L-BFGS-B probe and a
     # watched scoring polish (:func:`_second_opinion`) either converge (a false alarm) or
     # confirm the run-away, in which case the first stopping point (closer to the data's
     # scale) is what is reported.
-    trail = [x]
-
-    def same_run(intermediate_result) -> None:
-        # the quasi-Newton probe follows the flagged parameters off as well: stop it
-        trail.append(np.array(intermediate_result.x))
-        if np.intersect1d(running_away(trail), first.running).size:
-            raise StopIteration
-
-    res = _sopt.minimize(fun, x, jac=True, method="L-BFGS-B", bounds=bounds, callback=same_run if first else None,
-                         options={"maxiter": 300 if first else 20000, "ftol": 1e-15, "gtol": 1e-9})
+    res = _quasi_newton(obj, x, lower, first)
     if first is not None:
         return _second_opinion(obj, first, res.x, it + int(res.nit), max_iter=max_iter, tol=tol, lower=lower)
     x2, f2, g2, h2, st2, it2, run2 = _scoring(obj, res.x, max_iter=max_iter, tol=tol, lower=lower)
@@ -298,6 +281,30 @@ def minimize(
     if f2 is not None and np.isfinite(f2) and g2 is not None:
         return Outcome(x2, f2, g2, h2, 5 if status != 1 else 1, total)
     return Outcome(x, f, g, h, status, total)
+
+
+def _quasi_newton(obj, x: np.ndarray, lower: np.ndarray | None, first: Outcome | None) -> _sopt.OptimizeResult:
+    """L-BFGS-B from ``x`` with the analytic gradient (scipy's result). As the second
+    opinion on the suspected run-away ``first`` it takes at most 300 iterations and stops
+    once :func:`running_away` fires on its own iterates for a flagged parameter."""
+
+    def fun(z):
+        try:
+            v, gr, _ = obj.derivatives(z, information=False)
+        except np.linalg.LinAlgError:
+            return 1e20, np.zeros_like(z)
+        return v, gr
+
+    trail = [x]
+
+    def same_run(intermediate_result) -> None:
+        trail.append(np.array(intermediate_result.x))
+        if np.intersect1d(running_away(trail), first.running).size:
+            raise StopIteration
+
+    bounds = None if lower is None else [(lo if np.isfinite(lo) else None, None) for lo in lower]
+    return _sopt.minimize(fun, x, jac=True, method="L-BFGS-B", bounds=bounds, callback=same_run if first else None,
+                          options={"maxiter": 300 if first else 20000, "ftol": 1e-15, "gtol": 1e-9})
 
 
 def _decrement(obj, x: np.ndarray, g: np.ndarray, h: np.ndarray, lower: np.ndarray | None) -> float:
