@@ -212,6 +212,20 @@ def test_patterns_bookkeeping():
         assert np.array_equal(~np.isnan(X[rows]), np.repeat(pat.observed[k][None], rows.size, 0))
 
 
+def test_pattern_moments_equal_numpy_per_pattern(hs):
+    X = _delete(hs, 0.15, 3, empty_rows=2)[ITEMS].to_numpy(dtype=float)
+    pm = pattern_moments(X)
+    pat = missing_patterns(X)
+    ref = [(o, X[rows][:, o]) for o, rows in zip(pat.observed, pat.rows) if o.any()]
+    assert pm.observed.shape[0] == len(ref) and pm.n == X.shape[0] - 2
+    for k, (o, xo) in enumerate(ref):
+        assert np.array_equal(pm.observed[k], o) and pm.counts[k] == xo.shape[0]
+        # numpy mean and covariance (divisor n) of each pattern's observed block
+        assert np.allclose(pm.means[k][o], xo.mean(axis=0), rtol=1e-12, atol=1e-12)
+        assert np.allclose(pm.covs[k][np.ix_(o, o)], np.atleast_2d(np.cov(xo.T, ddof=0)), rtol=1e-10, atol=1e-12)
+        assert not pm.means[k][~o].any() and not pm.covs[k][~o].any() and not pm.covs[k][:, ~o].any()
+
+
 def test_pattern_terms_through_always_observed_items_equal_each_block(hs):
     # values missing on x2, x5, x8 only: the other six items are observed in every
     # pattern, so the blocks go through their Schur complement (interleaved item order)

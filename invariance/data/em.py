@@ -148,18 +148,22 @@ class _Blocks:
 
 
 def _pattern_moments(x: np.ndarray) -> PatternMoments:
+    """Pattern statistics from the cases sorted by pattern: means by segment sums, then
+    the centred cross products of each contiguous segment (missing entries zero)."""
     pat = missing_patterns(x)
-    keep = [k for k in range(pat.n_patterns) if pat.observed[k].any()]
-    K, p = len(keep), x.shape[1]
-    means, covs = np.zeros((K, p)), np.zeros((K, p, p))
-    for j, k in enumerate(keep):
-        o = pat.observed[k]
-        xo = x[np.ix_(pat.rows[k], o)]
-        m = xo.mean(axis=0)
-        e = xo - m
-        means[j, o] = m
-        covs[j][np.ix_(o, o)] = e.T @ e / xo.shape[0]
-    return PatternMoments(pat.observed[keep], pat.counts[keep].astype(float), means, covs)
+    order = np.argsort(pat.case_pattern, kind="stable")
+    bounds = np.r_[0, np.cumsum(pat.counts)]
+    observed = ~np.isnan(x[order])
+    xs = np.where(observed, x[order], 0.0)
+    counts = pat.counts.astype(float)
+    means = np.add.reduceat(xs, bounds[:-1], axis=0) / counts[:, None]
+    e = (xs - means[pat.case_pattern[order]]) * observed
+    covs = np.empty((pat.n_patterns, x.shape[1], x.shape[1]))
+    for k in range(pat.n_patterns):
+        seg = e[bounds[k]:bounds[k + 1]]
+        covs[k] = seg.T @ seg / counts[k]
+    keep = pat.observed.any(axis=1)
+    return PatternMoments(pat.observed[keep], counts[keep], means[keep], covs[keep])
 
 
 class ContentCache:
