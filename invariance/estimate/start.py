@@ -43,29 +43,34 @@ def _group_starts(spec: ModelSpec, g: int, S: np.ndarray, mean: np.ndarray) -> n
     load_items: dict[int, list[int]] = {}
     for r, c in zip(rows[lam_sel], cols[lam_sel]):
         load_items.setdefault(int(c), []).append(int(r))
+    member = np.zeros((p, len(spec.factors)))
+    for f, its in load_items.items():
+        member[its, f] = 1.0
     # a factor is "general" when it loads on every item and other factors exist
-    std_load = np.zeros((p, len(spec.factors)))
     general = [f for f, its in load_items.items() if len(its) == p and len(load_items) > 1]
     lg = np.zeros(p)
     for f in general:
         lg = np.sqrt(np.clip(_mean_offdiag(Rs), 0.02, 0.9))
+    # other factors: each item's mean correlation with the other items of the factor,
+    # after the general factor's part (0.5 for a factor of one item)
+    rest = Rs - np.outer(lg, lg)
+    np.fill_diagonal(rest, 0.0)
+    size = member.sum(axis=0)
+    mean_r = np.where(size > 1, (rest @ member) / np.maximum(size - 1, 1), 0.5)
+    std_load = member * np.sqrt(np.clip(mean_r, 0.02, 0.9))
+    for f in general:
         std_load[:, f] = lg
-    for f, its in load_items.items():
-        if f in general:
-            continue
-        its = np.array(its)
-        block = Rs[np.ix_(its, its)] - np.outer(lg[its], lg[its])
-        std_load[its, f] = np.sqrt(np.clip(_mean_offdiag(block), 0.02, 0.9))
     std_load *= sign[:, None]
-    return _entry_starts(mats, rows, cols, std_load, sd, S, mean, Rs, load_items)
+    return _entry_starts(mats, rows, cols, std_load, sd, S, mean, Rs, member)
 
 
-def _entry_starts(mats, rows, cols, std_load, sd, S, mean, Rs, load_items) -> np.ndarray:
+def _entry_starts(mats, rows, cols, std_load, sd, S, mean, Rs, member) -> np.ndarray:
     """Start of every entry of a group from its standardized loadings (nan where not
     applicable): loadings rescaled by the item SD, residual variances from the
     communalities (at least 20% of the item variance), intercepts at the item means,
-    factor variances 1, factor covariances from the cross-block correlations, paths 0.5
-    into factors with items, factor means 0."""
+    factor variances 1, factor covariances from the cross-block correlations (``member``:
+    items x factors, 1 where an item loads), paths 0.5 into factors with items, factor
+    means 0."""
     out = np.full(mats.size, np.nan)
     diag = rows == cols
     sel = mats == LAMBDA
@@ -78,16 +83,18 @@ def _entry_starts(mats, rows, cols, std_load, sd, S, mean, Rs, load_items) -> np
     out[sel] = mean[rows[sel]]
     out[(mats == PSI) & diag] = 1.0
     out[mats == ALPHA] = 0.0
-    for k in np.flatnonzero(mats == BETA):
-        out[k] = 0.5 if load_items.get(int(rows[k])) else 0.0
-    for k in np.flatnonzero((mats == PSI) & ~diag):
-        r, c = int(rows[k]), int(cols[k])
-        a, b = load_items.get(r, []), load_items.get(c, [])
-        out[k] = 0.0
-        if a and b:
-            sa = (Rs[np.ix_(a, b)]).mean()
-            la, lb = std_load[a, r].mean(), std_load[b, c].mean()
-            out[k] = float(np.clip(sa / max(abs(la * lb), 1e-3), -0.8, 0.8))
+    size = member.sum(axis=0)
+    sel = mats == BETA
+    out[sel] = np.where(size[rows[sel]] > 0, 0.5, 0.0)
+    sel = (mats == PSI) & ~diag
+    if sel.any():
+        # mean cross-block correlation over the product of the blocks' mean loadings
+        pairs = np.outer(size, size)
+        cross = (member.T @ Rs @ member) / np.maximum(pairs, 1)
+        mean_load = (member * std_load).sum(axis=0) / np.maximum(size, 1)
+        r, c = rows[sel], cols[sel]
+        est = cross[r, c] / np.maximum(np.abs(mean_load[r] * mean_load[c]), 1e-3)
+        out[sel] = np.where(pairs[r, c] > 0, np.clip(est, -0.8, 0.8), 0.0)
     return out
 
 
