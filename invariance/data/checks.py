@@ -8,7 +8,9 @@ preventing it (small groups, rows without a group) come back as warning strings.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Sequence
+from functools import cached_property
+from types import MappingProxyType
+from typing import Any, Mapping, Sequence
 
 import numpy as np
 
@@ -16,7 +18,7 @@ import pandas as pd
 
 from ..errors import DataError, shorten
 
-__all__ = ["CheckedData", "check_data", "far_out_values", "MAX_MAGNITUDE", "SMALL_GROUP"]
+__all__ = ["CheckedData", "check_data", "far_out_columns", "far_out_values", "MAX_MAGNITUDE", "SMALL_GROUP"]
 
 #: Groups smaller than this make the tests weak (common practice: about 200 per group).
 SMALL_GROUP = 200
@@ -30,7 +32,8 @@ class CheckedData:
     ----------
     frame
         Item columns as floats (NaN = missing) plus the group column as strings, rows
-        without a group removed.
+        without a group (or of a group not analysed) removed; the data's row labels kept.
+        Built from ``blocks`` on first use (the pipeline's stages read the blocks).
     items, group, groups
         Item columns in model order, the grouping column, the group names in order.
     rows
@@ -39,18 +42,40 @@ class CheckedData:
         Group -> rows with every item observed (the rows complete-case fitting uses).
     missing
         Group -> item -> number of missing values.
+    blocks
+        Group -> read-only (rows, items) float array of that group's item values, rows in
+        data order (the rows of ``frame`` of that group): later stages take the per-group
+        arrays from here instead of indexing the frame again.
+    row_index, row_group
+        The row labels of the rows kept, in data order, and the position in ``groups``
+        of each one's group.
     warnings
         Warnings about the data (small groups, rows without a group).
     """
 
-    frame: object
     items: tuple[str, ...]
     group: str
     groups: tuple[str, ...]
     rows: dict
     complete: dict
     missing: dict
+    blocks: Mapping[str, np.ndarray]
+    row_index: Any
+    row_group: np.ndarray
     warnings: tuple[str, ...] = field(default=())
+
+    def arrays(self) -> list[np.ndarray]:
+        """The item values of every group, in group order (see ``blocks``)."""
+        return [self.blocks[g] for g in self.groups]
+
+    @cached_property
+    def frame(self):
+        """The checked data as a DataFrame (see the class attributes)."""
+        values = np.empty((self.row_group.size, len(self.items)))
+        values[np.argsort(self.row_group, kind="stable")] = np.concatenate(self.arrays())
+        out = pd.DataFrame(values, index=self.row_index, columns=list(self.items))
+        out.insert(0, self.group, np.asarray(self.groups, dtype=object)[self.row_group])
+        return out
 
 
 def _group_label(value) -> str:
@@ -93,21 +118,42 @@ def check_data(
     items = tuple(str(i) for i in items)
     _check_columns(frame, items, group)
     warnings: list[str] = []
-    out, present = _numeric_items(frame, items, group, warnings)
-    out, groups = _select_groups(out, present, group=group, groups=groups, reference=reference)
+    index, labels, values = _numeric_items(frame, items, group, warnings)
+    present = sorted(set(labels.uniques), key=_sort_key)
+    groups = _select_groups(present, group=group, groups=groups, reference=reference)
+    member = labels.member(groups)
+    blocks = dict(zip(groups, _split_rows(values, member, len(groups))))
     rows, complete, missing = _count_groups(
-        out, items, group, groups, complete_cases_needed=complete_cases_needed, warnings=warnings
+        blocks, items, complete_cases_needed=complete_cases_needed, warnings=warnings
     )
+    keep = member >= 0
     return CheckedData(
-        frame=out,
         items=items,
         group=group,
         groups=tuple(groups),
         rows=rows,
         complete=complete,
         missing=missing,
+        blocks=MappingProxyType(blocks),
+        row_index=index[keep],
+        row_group=member[keep],
         warnings=tuple(warnings),
     )
+
+
+def _split_rows(values: np.ndarray, member: np.ndarray, n_groups: int) -> list[np.ndarray]:
+    """The rows of ``values`` of each group ``k < n_groups`` (``member``: row -> group, -1
+    for none), in data order, as read-only arrays; one stable sort, so the cost does not
+    grow with the number of groups times the rows."""
+    order = np.argsort(member, kind="stable")
+    counts = np.bincount(member + 1, minlength=n_groups + 1)
+    bounds = np.cumsum(counts)
+    out = []
+    for k in range(n_groups):
+        block = values[order[bounds[k]:bounds[k + 1]]]
+        block.flags.writeable = False
+        out.append(block)
+    return out
 
 
 def _check_columns(frame, items: tuple[str, ...], group: str) -> None:
@@ -126,39 +172,57 @@ def _check_columns(frame, items: tuple[str, ...], group: str) -> None:
 
 
 def _numeric_items(frame, items: tuple[str, ...], group: str, warnings: list[str]):
-    """The group labels and the items as finite floats, rows without a group left out.
+    """The rows with a group: their index, their group labels and their items as one
+    (rows, items) array of finite floats.
 
     Appends to ``warnings`` (rows without a group, far-out values that look like missing
-    codes); returns the new frame and the group labels present, sorted.
+    codes); returns ``(index, labels, values)`` (labels: :class:`_Labels`).
     """
-
     keys = frame[group]
-    no_group = int(keys.isna().sum())
+    has = keys.notna().to_numpy()
+    no_group = int(has.size - has.sum())
     if no_group:
         warnings.append(f"{no_group} rows have no value in group column {group!r} and were left out")
-    frame = frame.loc[keys.notna()]
+        frame = frame.loc[has]
     labels = _labels(frame[group], group)
-    out = pd.DataFrame({group: labels.to_numpy()}, index=frame.index)
-    for col in items:
-        raw = frame[col]
-        num = pd.to_numeric(raw, errors="coerce")
-        bad = raw.notna() & num.isna()
-        if bad.any():
-            example = raw[bad].iloc[0]
-            raise DataError(
-                f"Item {shorten(col)} holds non-numeric values such as {shorten(str(example))}; recode them or "
-                f"list them under data.missing."
-            )
-        out[col] = _finite(num.astype(float), col)
-        far = far_out_values(out[col].to_numpy())
+    values = _item_array(frame, items)
+    for j, far in enumerate(far_out_columns(values)):
         if far:
-            warnings.append(_far_out_note(col, out[col].to_numpy(), far))
-    present = sorted(set(labels), key=_sort_key)
-    return out, present
+            warnings.append(_far_out_note(items[j], values[:, j], far))
+    return frame.index, labels, values
 
 
-def _select_groups(out, present: list[str], *, group: str, groups, reference):
-    """The groups to analyse (at least two) with the reference among them, and their rows."""
+def _item_array(frame, items: tuple[str, ...]) -> np.ndarray:
+    """The items as one (rows, items) float array (NaN = missing), checked item by item
+    in model order: text that is not a number, and values that are not finite or too large,
+    are refused."""
+    sub = frame[list(items)]
+    if sub.shape[1] == len(items) and all(dt.kind in "biuf" for dt in sub.dtypes):
+        # numbers already (numpy or nullable dtypes): one conversion, nothing to parse
+        return _finite(sub.to_numpy(dtype=float, na_value=np.nan), frame.index, items)
+    values = np.empty((frame.shape[0], len(items)))
+    for j, col in enumerate(items):
+        values[:, j] = _finite(_item_values(frame[col], col)[:, None], frame.index, (col,))[:, 0]
+    return values
+
+
+def _item_values(raw, col: str) -> np.ndarray:
+    """An item column as floats (NaN = missing); refuses text that is not a number."""
+    if raw.dtype.kind in "biuf":
+        return raw.to_numpy(dtype=float, na_value=np.nan)
+    num = pd.to_numeric(raw, errors="coerce")
+    bad = raw.notna() & num.isna()
+    if bad.any():
+        example = raw[bad].iloc[0]
+        raise DataError(
+            f"Item {shorten(col)} holds non-numeric values such as {shorten(str(example))}; recode them or "
+            f"list them under data.missing."
+        )
+    return num.astype(float).to_numpy()
+
+
+def _select_groups(present: list[str], *, group: str, groups, reference) -> list[str]:
+    """The groups to analyse (at least two) with the reference among them."""
     if groups is None:
         groups = present
     else:
@@ -168,7 +232,6 @@ def _select_groups(out, present: list[str], *, group: str, groups, reference):
                 raise DataError(
                     f"Group {g!r} is not in column {group!r}; the groups there are {', '.join(present)}."
                 )
-        out = out.loc[out[group].isin(groups)]
     if len(groups) < 2:
         raise DataError(
             f"Column {group!r} has {len(groups)} group(s) ({', '.join(groups) or 'none'}); invariance "
@@ -179,20 +242,19 @@ def _select_groups(out, present: list[str], *, group: str, groups, reference):
         raise DataError(
             f"Reference group {str(reference)!r} is not in {where}; choose one of {', '.join(groups)}."
         )
-    return out, groups
+    return groups
 
 
-def _count_groups(out, items: tuple[str, ...], group: str, groups, *, complete_cases_needed: bool,
+def _count_groups(blocks: Mapping[str, np.ndarray], items: tuple[str, ...], *, complete_cases_needed: bool,
                   warnings: list[str]):
     """Rows, complete rows and missing counts per group; refuse empty or constant items and
     groups with no more usable rows than items, and warn about small groups."""
     p = len(items)
     rows, complete, missing = {}, {}, {}
-    for g in groups:
-        block = out.loc[out[group] == g, list(items)].to_numpy(dtype=float)
+    for g, block in blocks.items():
         rows[g] = int(block.shape[0])
         obs = ~np.isnan(block)
-        missing[g] = {it: int((~obs[:, j]).sum()) for j, it in enumerate(items)}
+        missing[g] = dict(zip(items, (block.shape[0] - obs.sum(axis=0)).tolist()))
         _check_item_values(block, obs, items, g)
         n_ok = int(obs.all(axis=1).sum())
         complete[g] = n_ok
@@ -212,54 +274,80 @@ def _count_groups(out, items: tuple[str, ...], group: str, groups, *, complete_c
 
 
 def _check_item_values(block: np.ndarray, obs: np.ndarray, items: tuple[str, ...], g: str) -> None:
-    """Refuse an item entirely missing or constant within group ``g``."""
-    for j, it in enumerate(items):
-        vals = block[obs[:, j], j]
-        if vals.size == 0:
-            raise DataError(
-                f"Item {it!r} is entirely missing in group {g!r}; drop the item or the group, "
-                "or check the missing codes."
-            )
-        if np.ptp(vals) == 0:
-            raise DataError(
-                f"Item {it!r} is constant ({_group_label(float(vals[0]))}) in group {g!r}; "
-                "drop the item or the group."
-            )
+    """Refuse an item entirely missing or constant within group ``g`` (the first such item)."""
+    seen = obs.any(axis=0)
+    low = np.where(obs, block, np.inf).min(axis=0)
+    high = np.where(obs, block, -np.inf).max(axis=0)
+    wrong = np.flatnonzero(~seen | (high == low))
+    if wrong.size == 0:
+        return
+    j = int(wrong[0])
+    it = items[j]
+    if not seen[j]:
+        raise DataError(
+            f"Item {it!r} is entirely missing in group {g!r}; drop the item or the group, "
+            "or check the missing codes."
+        )
+    raise DataError(
+        f"Item {it!r} is constant ({_group_label(float(low[j]))}) in group {g!r}; "
+        "drop the item or the group."
+    )
 
 
 #: Largest magnitude accepted in an item (beyond it, squares and products lose all precision).
 MAX_MAGNITUDE = 1e9
 
 
-def _labels(keys, group: str):
+@dataclass(frozen=True, eq=False)
+class _Labels:
+    """Group labels of the rows: ``uniques`` (in order of first appearance) and ``codes``
+    (row -> position in ``uniques``)."""
+
+    uniques: tuple[str, ...]
+    codes: np.ndarray
+
+    def member(self, groups: Sequence[str]) -> np.ndarray:
+        """Row -> position of its label in ``groups`` (-1 for a group not analysed)."""
+        where = {g: k for k, g in enumerate(groups)}
+        return np.array([where.get(u, -1) for u in self.uniques], dtype=int)[self.codes]
+
+
+def _labels(keys, group: str) -> _Labels:
     """Group labels as text without surrounding spaces; labels that differ only by spaces
     are refused (they would split one group in two)."""
-    labels = keys.map(_group_label)
-    stripped = labels.str.strip()
+    if keys.dtype == object:
+        # mixed Python objects (1, 1.0 and True hash alike): label every row, then factorize
+        codes, raw = pd.factorize(keys.map(_group_label))
+    else:
+        codes, raw = pd.factorize(keys)
+        raw = [_group_label(v) for v in raw]
+    raw = [str(v) for v in raw]
     spaced = {}
-    for raw in dict.fromkeys(labels):
-        spaced.setdefault(" ".join(raw.split()), []).append(raw)
+    for text in dict.fromkeys(raw):
+        spaced.setdefault(" ".join(text.split()), []).append(text)
     clash = next((v for v in spaced.values() if len(v) > 1), None)
     if clash:
         raise DataError(
             f"Group labels {shorten(clash[0])} and {shorten(clash[1])} in column {shorten(group)} differ only by "
             "spaces; correct the data so each group is spelled one way."
         )
-    return stripped
+    stripped = [text.strip() for text in raw]
+    return _Labels(tuple(stripped), np.asarray(codes, dtype=int))
 
 
-def _finite(values, col: str):
-    """``values`` when every observed value is finite and of a sane magnitude."""
-    arr = values.to_numpy()
+def _finite(values: np.ndarray, index, items: Sequence[str]) -> np.ndarray:
+    """``values`` (rows labelled by ``index``, one column per item) when every observed
+    value is finite and of a sane magnitude; else the first offending item is named."""
     with np.errstate(invalid="ignore"):
-        bad = ~np.isnan(arr) & ~(np.abs(arr) <= MAX_MAGNITUDE)
+        bad = ~np.isnan(values) & ~(np.abs(values) <= MAX_MAGNITUDE)
     if bad.any():
-        k = int(np.flatnonzero(bad)[0])
-        row = values.index[k]
+        j = int(np.flatnonzero(bad.any(axis=0))[0])
+        k = int(np.flatnonzero(bad[:, j])[0])
+        row = index[k]
         where = f"data row {row + 1}" if isinstance(row, (int, np.integer)) else f"row {shorten(row)}"
         raise DataError(
-            f"Item {shorten(col)} holds {float(arr[k])!r} ({where}); item values must be finite and within "
-            f"+-{MAX_MAGNITUDE:g}: correct it, or list it under data.missing if it is a missing-value code."
+            f"Item {shorten(items[j])} holds {float(values[k, j])!r} ({where}); item values must be finite and "
+            f"within +-{MAX_MAGNITUDE:g}: correct it, or list it under data.missing if it is a missing-value code."
         )
     return values
 
@@ -272,12 +360,34 @@ def far_out_values(values: np.ndarray) -> list[float]:
     1977 "far out" fences; the interquartile range taken as at least 1) and its distance
     to the nearest other value is at least the range of the other values.
     """
-    obs = values[~np.isnan(values)]
-    if obs.size < 10:
-        return []
-    q1, q3 = np.percentile(obs, [25, 75])
-    iqr = max(q3 - q1, 1.0)
-    cand = np.unique(obs[((obs < q1 - 3 * iqr) | (obs > q3 + 3 * iqr)) & (obs == np.round(obs))])
+    return far_out_columns(np.asarray(values, dtype=float).reshape(-1, 1))[0]
+
+
+def far_out_columns(values: np.ndarray) -> list[list[float]]:
+    """:func:`far_out_values` of every column of a (rows, items) array (NaN = missing):
+    the quartiles of all columns in one call; only a column with a value beyond its
+    fences is looked at further."""
+    n_obs = (~np.isnan(values)).sum(axis=0)
+    out: list[list[float]] = [[] for _ in range(values.shape[1])]
+    cols = np.flatnonzero(n_obs >= 10)
+    if cols.size == 0:
+        return out
+    x = values[:, cols]
+    pct = np.nanpercentile if n_obs[cols].min() < values.shape[0] else np.percentile
+    q1, q3 = pct(x, [25, 75], axis=0)
+    iqr = np.maximum(q3 - q1, 1.0)
+    with np.errstate(invalid="ignore"):
+        beyond = ((x < q1 - 3 * iqr) | (x > q3 + 3 * iqr)) & (x == np.round(x))
+    for k in np.flatnonzero(beyond.any(axis=0)):
+        col = x[:, k]
+        obs = col[~np.isnan(col)]
+        out[int(cols[k])] = _far_out(obs, beyond[:, k][~np.isnan(col)])
+    return out
+
+
+def _far_out(obs: np.ndarray, beyond: np.ndarray) -> list[float]:
+    """The far-out values among the candidates ``obs[beyond]`` (see :func:`far_out_values`)."""
+    cand = np.unique(obs[beyond])
     rest = obs[~np.isin(obs, cand)]
     if cand.size == 0 or rest.size == 0:
         return []

@@ -21,7 +21,7 @@ import numpy as np
 from ..errors import ConvergenceWarning, DataError
 from .em import em_saturated, missing_patterns
 
-__all__ = ["GroupStats", "MissingInfo", "SampleStats", "sample_stats", "stats_from_arrays"]
+__all__ = ["GroupStats", "MissingInfo", "SampleStats", "group_arrays", "sample_stats", "stats_from_arrays"]
 
 MISSING_METHODS = ("listwise", "fiml")
 
@@ -290,6 +290,24 @@ def sample_stats(
 
     Parameters
     ----------
+    frame, items, group, groups
+        The data and how to split it, as in :func:`group_arrays`.
+    missing
+        ``"listwise"`` (default) or ``"fiml"``; see :func:`stats_from_arrays`.
+    """
+    _check_method(missing)
+    arrays, names = group_arrays(frame, items, group, groups=groups)
+    return stats_from_arrays(arrays, names, items, missing=missing)
+
+
+def group_arrays(
+    frame, items: Sequence[str], group: str | None = None, *, groups: Sequence[str] | None = None
+) -> tuple[list[np.ndarray], list[str]]:
+    """The item values of every group as (n_g, p) float arrays (NaN = missing), and the
+    group names.
+
+    Parameters
+    ----------
     frame
         The data, one row per case.
     items
@@ -298,22 +316,18 @@ def sample_stats(
         Grouping column; ``None`` for a single group called ``"all"``.
     groups
         Group order (default: order of first appearance).
-    missing
-        ``"listwise"`` (default) or ``"fiml"``; see :func:`stats_from_arrays`.
     """
     items = [str(i) for i in items]
-    _check_method(missing)
     absent = [c for c in items + ([group] if group else []) if c not in frame.columns]
     if absent:
         raise DataError(f"Column {absent[0]!r} is not in the data; check the spelling or the data file.")
-    if group is None:
-        return stats_from_arrays([frame[items].to_numpy(dtype=float)], ["all"], items, missing=missing)
-    keys = frame[group]
-    if groups is None:
-        groups = list(dict.fromkeys(keys.dropna().tolist()))
     # One conversion to arrays, then boolean rows per group: pandas indexing per group
     # costs more than the statistics themselves on small data.
     values = frame[items].to_numpy(dtype=float)
+    if group is None:
+        return [values], ["all"]
+    keys = frame[group]
+    if groups is None:
+        groups = list(dict.fromkeys(keys.dropna().tolist()))
     key_values = keys.to_numpy()
-    arrays = [values[key_values == g] for g in groups]
-    return stats_from_arrays(arrays, [str(g) for g in groups], items, missing=missing)
+    return [values[key_values == g] for g in groups], [str(g) for g in groups]

@@ -15,6 +15,7 @@ import warnings
 
 from ..errors import DataError, ImproperSolutionWarning
 from .categories import CategoryMap, category_maps, encode
+from .moments import group_arrays
 from .polychoric import PolychoricFit, polychoric
 from .polyserial import mixed_statistics
 
@@ -212,15 +213,5 @@ def ordinal_stats(
 ) -> OrdinalStats:
     """Ordinal statistics from a pandas DataFrame (``group`` names the grouping column;
     ``continuous`` names items that are not ordered)."""
-    items = [str(i) for i in items]
-    missing = [c for c in items + ([group] if group else []) if c not in frame.columns]
-    if missing:
-        raise DataError(f"Column {missing[0]!r} is not in the data; check the spelling or the data file.")
-    if group is None:
-        return ordinal_stats_from_arrays([frame[items].to_numpy(dtype=float)], ["all"], items, merge=merge,
-                                         continuous=continuous)
-    keys = frame[group]
-    if groups is None:
-        groups = list(dict.fromkeys(keys.dropna().tolist()))
-    arrays = [frame.loc[keys == g, items].to_numpy(dtype=float) for g in groups]
-    return ordinal_stats_from_arrays(arrays, [str(g) for g in groups], items, merge=merge, continuous=continuous)
+    arrays, names = group_arrays(frame, items, group, groups=groups)
+    return ordinal_stats_from_arrays(arrays, names, items, merge=merge, continuous=continuous)

@@ -402,6 +402,7 @@ def group_fit(
     rmsea_max: float = 0.10,
     warn: bool = True,
     fitter: Callable | None = None,
+    fits: Mapping[str, FitResult] | None = None,
 ) -> GroupFit:
     """Fit ``structure`` in every group separately and judge each fit.
 
@@ -409,7 +410,9 @@ def group_fit(
     at least ``cfi_min`` and RMSEA at most ``rmsea_max`` (defaults .90 and .10, common
     practice). Each failing group gets an :class:`~invariance.errors.InvarianceWarning`
     naming it, unless ``warn`` is false. ``fitter`` is the estimation function
-    ``(ModelSpec, SampleStats) -> FitResult`` (default ML).
+    ``(ModelSpec, SampleStats) -> FitResult`` (default ML). ``fits`` (group -> the
+    single-group fit of ``structure`` already made, such as the configural model's own
+    group fits) are judged as they are: nothing is built or fitted again.
     """
     for name, v in (("cfi_min", cfi_min), ("rmsea_max", rmsea_max)):
         if not (isinstance(v, (int, float)) and 0 <= v <= 1):
@@ -417,7 +420,8 @@ def group_fit(
     stats = _stats_for(data, structure.items, group)
     rows, results, messages = [], {}, []
     for g in stats.names:
-        res, probs = _quiet_fit(structure, stats.subset([g]), fitter)
+        res, probs = (fits[g], list(fits[g].problems)) if fits is not None else _quiet_fit(
+            structure, stats.subset([g]), fitter)
         results[g] = res
         row = _row(structure.family, g, res, probs)
         for c in CRITERIA:

@@ -8,6 +8,7 @@ method             job
 =================  ===========================================================================
 ``statistics``     per-group statistics from a DataFrame (sufficient statistics, casewise
                    patterns for full information, or thresholds and polychorics)
+``group_statistics`` the same from one item array per group (the pipeline's checked data)
 ``fit``            estimate one model (:class:`~invariance.estimate.result.FitResult`)
 ``difference``     the difference test between two nested fits (:class:`Difference`)
 ``score_tests``    whether release candidates are ranked by score tests (else by refits,
@@ -32,8 +33,8 @@ from typing import Any, Mapping, Protocol, Sequence, runtime_checkable
 import numpy as np
 from scipy import special as _sp
 
-from ..data.moments import sample_stats
-from ..data.ordinal_stats import ordinal_stats
+from ..data.moments import group_arrays, stats_from_arrays
+from ..data.ordinal_stats import ordinal_stats_from_arrays
 from ..decide.compare import level_delta
 from ..errors import EstimationError, InvarianceWarning, SpecificationError
 from .dwls import ordinal_start_values, start_from
@@ -104,6 +105,8 @@ class Estimator(Protocol):
 
     def statistics(self, frame, items: Sequence[str], group: str | None, *, groups=None): ...
 
+    def group_statistics(self, arrays: Sequence[np.ndarray], names: Sequence[str], items: Sequence[str]): ...
+
     def fit(self, spec: ModelSpec, stats, *, start: np.ndarray | None = None) -> FitResult: ...
 
     def warm_start(self, previous: FitResult, spec: ModelSpec, stats) -> np.ndarray: ...
@@ -149,9 +152,14 @@ class MaximumLikelihood:
 
     def statistics(self, frame, items, group, *, groups=None):
         """Per-group sufficient statistics (casewise patterns under full information)."""
-        cols = frame[list(items)]
-        method = "fiml" if self.incomplete == "full_information" and bool(cols.isna().to_numpy().any()) else "listwise"
-        return sample_stats(frame, items, group, groups=groups, missing=method)
+        arrays, names = group_arrays(frame, items, group, groups=groups)
+        return self.group_statistics(arrays, names, items)
+
+    def group_statistics(self, arrays, names, items):
+        """:meth:`statistics` from one (n_g, p) item array per group (NaN = missing)."""
+        incomplete = any(np.isnan(x).any() for x in arrays)
+        method = "fiml" if self.incomplete == "full_information" and incomplete else "listwise"
+        return stats_from_arrays(arrays, names, items, missing=method)
 
     def fit(self, spec, stats, *, start=None) -> FitResult:
         return ml_fit(spec, stats, start=start, estimator=self.name, information=self.information, **dict(self.options))
@@ -262,9 +270,14 @@ class DiagonallyWeighted:
 
     def statistics(self, frame, items, group, *, groups=None):
         """Thresholds, polychoric (and polyserial) correlations and their ACOV, complete cases."""
+        arrays, names = group_arrays(frame, items, group, groups=groups)
+        return self.group_statistics(arrays, names, items)
+
+    def group_statistics(self, arrays, names, items):
+        """:meth:`statistics` from one (n_g, p) item array per group (NaN = missing)."""
         merge = None if self.merge is None else {k: [list(b) for b in v] for k, v in self.merge}
         continuous = [] if self.ordinal is None else [i for i in items if i not in self.ordinal]
-        return ordinal_stats(frame, list(items), group, groups=groups, merge=merge, continuous=continuous)
+        return ordinal_stats_from_arrays(arrays, names, list(items), merge=merge, continuous=continuous)
 
     def fit(self, spec, stats, *, start=None) -> FitResult:
         return fit_dwls(spec, stats, start=start, **dict(self.options))

@@ -47,7 +47,7 @@ STATUS = {
 
 #: Newton steps (exact Hessian) replace scoring steps once the scoring decrement
 #: g' I^-1 g (in chi-square units) falls below this.
-NEWTON_BELOW = 30.0
+NEWTON_BELOW = 10.0
 
 #: Iterations over which a run-away trend is judged.
 RUNAWAY_WINDOW = 16

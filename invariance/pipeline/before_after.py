@@ -29,7 +29,7 @@ from ..data.ordinal_stats import OrdinalStats
 from ..errors import DataError, EstimationError, InvarianceWarning, SpecificationError
 from ..model.levels import build_level
 from ..effects.scores import factor_scores
-from ..data.screening import screen
+from ..data.screening import screen_groups
 from ..decide.structures import compare_structures, group_fit
 from ..spec.load import PipelineSpec, thaw
 from .state import RunState, StageOutput
@@ -85,11 +85,9 @@ def stage_screening(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Screen the items of every group (before any model is fitted)."""
     checked = state.checked
     opts = _section(spec, "screening")
-    out = screen(
-        checked.frame,
+    out = screen_groups(
+        list(zip(checked.groups, checked.arrays())),
         list(checked.items),
-        checked.group,
-        groups=list(checked.groups),
         scales={f: list(v) for f, v in spec.structure.factors.items()},
         bounds={k: tuple(v) for k, v in (opts.get("bounds") or {}).items()},
         rules=opts.get("rules"),
@@ -121,10 +119,9 @@ def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
         return {}
     rule = _section(spec, "compare").get("group_fit") or _section(spec, "decision").get("configural_fit") or {}
     fitter = _fitter(spec)
+    # the configural model's own single-group fits, when it could be fitted: no second
+    # fit of any group
     per_group = _configural_prefit(spec, state, fitter)
-    if per_group is not None:
-        # the configural model's own single-group fits: no second fit of any group
-        fitter = lambda model, stats: per_group[stats.names[0]]  # noqa: E731
     gf = group_fit(
         state["stats"],
         spec.structure,
@@ -132,6 +129,7 @@ def stage_group_fit(spec: PipelineSpec, state: dict) -> dict:
         rmsea_max=float(rule.get("rmsea", 0.10)),
         warn=False,
         fitter=fitter,
+        fits=per_group,
     )
     state["group_fit"] = gf
     state.setdefault("warnings", []).extend(gf.messages)

@@ -33,9 +33,7 @@ __all__ = ["display_view", "display_note", "cases_used_text", "missing_section"]
 
 def cases_used_text(spec, checked) -> str:
     """How rows with a missing item were used, as it really happened."""
-    frame = checked.frame[list(checked.items)]
-    incomplete = frame.isna().to_numpy()
-    some = int(incomplete.any(axis=1).sum())
+    some = sum(int(np.isnan(x).any(axis=1).sum()) for x in checked.arrays())
     if not some:
         return "complete cases (no missing item values)"
     if spec.incomplete == "full_information":
@@ -48,8 +46,9 @@ def missing_section(stats, checked, incomplete: str) -> dict:
     """Per group: method, cases used and dropped, patterns, coverage, Little's test."""
     by = missing_report(stats)
     for g in checked.groups:
-        block = checked.frame.loc[checked.frame[checked.group] == g, list(checked.items)].to_numpy(dtype=float)
-        block = block[~np.isnan(block).all(axis=1)]
+        block = checked.blocks[g]
+        nan = np.isnan(block)
+        block = block[~nan.all(axis=1)] if nan.any() else block
         entry = by.setdefault(g, {})
         if "little" not in entry and np.isnan(block).any():
             # information about the data, whatever the handling (Little 1988)

@@ -37,7 +37,7 @@ __all__ = ["STAGES", "Stage", "stage_data", "stage_stats", "stage_levels", "stag
 def stage_data(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Read the data, apply missing codes and run the checks (nothing is fitted)."""
     raw = read_table(spec.data_path, format=spec.data_format, sheet=spec.data_sheet, text_columns=(spec.group,))
-    frame = apply_missing(raw, spec.missing)
+    frame = apply_missing(raw, spec.missing) if spec.missing else raw  # nothing to replace: no copy
     checked = check_data(
         frame,
         items=spec.structure.items,
@@ -73,7 +73,7 @@ def stage_data(spec: PipelineSpec, state: RunState) -> StageOutput:
 def stage_stats(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Per-group statistics, as the run's estimator needs them."""
     checked = state.checked
-    stats = state.estimator.statistics(checked.frame, checked.items, checked.group, groups=checked.groups)
+    stats = state.estimator.group_statistics(checked.arrays(), checked.groups, checked.items)
     state = state.update(stats=stats)
     out = {"groups": {g.name: int(g.n) for g in stats.groups}, "n_total": int(stats.n_total)}
     if spec.ordinal is None:

@@ -13,7 +13,7 @@ import copy
 import json
 import pathlib
 from dataclasses import dataclass
-from functools import lru_cache
+from functools import cached_property, lru_cache
 from types import MappingProxyType
 from typing import Any, Mapping
 
@@ -71,7 +71,10 @@ class PipelineSpec:
     document
         The validated document, deeply frozen (read-only mappings and tuples).
     text
-        The pipeline as run (the file text, or YAML written from a dict).
+        The pipeline as run: the file text, or YAML written from a dict (written on
+        first use, from the validated document).
+    file_text
+        The pipeline file's text (``None`` for a dict).
     source
         The pipeline file (``None`` for a dict).
     base_dir
@@ -113,7 +116,7 @@ class PipelineSpec:
     """
 
     document: Mapping[str, Any]
-    text: str
+    file_text: str | None
     source: pathlib.Path | None
     base_dir: pathlib.Path
     data_path: pathlib.Path
@@ -140,6 +143,13 @@ class PipelineSpec:
     partial: PartialSettings = PartialSettings()
     structural: tuple[str, ...] = ()
 
+    @cached_property
+    def text(self) -> str:
+        """The pipeline as run (see the class attributes)."""
+        if self.file_text is not None:
+            return self.file_text
+        return yaml.safe_dump(thaw(self.document), sort_keys=False, allow_unicode=True)
+
     def make_estimator(self) -> Estimator:
         """The run's :class:`~invariance.estimate.interface.Estimator` with its typed options."""
         return estimator_for(self.estimator, incomplete=self.incomplete, scaled_difference=self.scaled_difference,
@@ -163,6 +173,12 @@ class PipelineSpec:
         return thaw(self.document)
 
 
+@lru_cache(maxsize=1)
+def _validator() -> jsonschema.Draft202012Validator:
+    """The schema's validator (built once; it keeps no state between documents)."""
+    return jsonschema.Draft202012Validator(schema())
+
+
 def _path_text(path) -> str:
     parts = [str(p) for p in path]
     return ".".join(parts) if parts else "(top level)"
@@ -172,8 +188,7 @@ def validate_document(doc: Mapping) -> None:
     """Validate a pipeline document against the schema; raise one clear error."""
 
     check_finite_numbers(doc)
-    validator = jsonschema.Draft202012Validator(schema())
-    errors = sorted(validator.iter_errors(doc), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
+    errors = sorted(_validator().iter_errors(doc), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
     if not errors:
         check_meaning(doc)
         return
@@ -406,8 +421,9 @@ def _sheet(data: Mapping, base_dir: pathlib.Path) -> str | int | None:
     return sheet
 
 
-def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir: pathlib.Path) -> PipelineSpec:
-    """Validate a document and build the :class:`PipelineSpec`."""
+def build_spec(doc: Mapping, *, text: str | None, source: pathlib.Path | None, base_dir: pathlib.Path) -> PipelineSpec:
+    """Validate a document and build the :class:`PipelineSpec` (``text``: the file's text,
+    ``None`` for a dict)."""
     validate_document(doc)
     doc = copy.deepcopy(dict(doc))
     data, model = doc["data"], doc["model"]
@@ -425,7 +441,7 @@ def build_spec(doc: Mapping, *, text: str, source: pathlib.Path | None, base_dir
     ref = data.get("reference")
     return PipelineSpec(
         document=freeze(doc),
-        text=text,
+        file_text=text,
         source=source,
         base_dir=base_dir,
         data_path=(base_dir / data["path"]).resolve(),
@@ -473,9 +489,8 @@ def load_pipeline(pipeline, *, base_dir: str | pathlib.Path | None = None) -> Pi
         return pipeline
     if isinstance(pipeline, Mapping):
         doc = plain_document(pipeline)
-        text = yaml.safe_dump(doc, sort_keys=False, allow_unicode=True)
         base = pathlib.Path(base_dir) if base_dir is not None else pathlib.Path.cwd()
-        return build_spec(doc, text=text, source=None, base_dir=base.resolve())
+        return build_spec(doc, text=None, source=None, base_dir=base.resolve())
     if isinstance(pipeline, (str, pathlib.Path)):
         path = pathlib.Path(pipeline)
         if path.is_dir():
