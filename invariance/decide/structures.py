@@ -393,6 +393,23 @@ class GroupFit:
         }
 
 
+def _fit_reasons(res: FitResult | None, row: Mapping, cfi_min: float, rmsea_max: float) -> list[str]:
+    """Why one group's fit is not acceptable (empty when it is)."""
+    if res is None:
+        return ["the model could not be estimated"]
+    reasons = []
+    if not res.converged:
+        reasons.append("the solution did not converge")
+    improper = [p for p in res.problems if not p.startswith("not converged")]
+    if improper:
+        reasons.append("the solution is improper (" + "; ".join(improper) + ")")
+    if row["cfi"] is not None and row["cfi"] < cfi_min:
+        reasons.append(f"CFI {row['cfi']:.3f} < {cfi_min:.2f}")
+    if row["rmsea"] is not None and row["rmsea"] > rmsea_max:
+        reasons.append(f"RMSEA {row['rmsea']:.3f} > {rmsea_max:.2f}")
+    return reasons
+
+
 def group_fit(
     data,
     structure: Structure,
@@ -426,19 +443,7 @@ def group_fit(
         row = _row(structure.family, g, res, probs)
         for c in CRITERIA:
             row.pop(f"best_{c}")
-        reasons = []
-        if res is None:
-            reasons.append("the model could not be estimated")
-        else:
-            if not res.converged:
-                reasons.append("the solution did not converge")
-            improper = [p for p in res.problems if not p.startswith("not converged")]
-            if improper:
-                reasons.append("the solution is improper (" + "; ".join(improper) + ")")
-            if row["cfi"] is not None and row["cfi"] < cfi_min:
-                reasons.append(f"CFI {row['cfi']:.3f} < {cfi_min:.2f}")
-            if row["rmsea"] is not None and row["rmsea"] > rmsea_max:
-                reasons.append(f"RMSEA {row['rmsea']:.3f} > {rmsea_max:.2f}")
+        reasons = _fit_reasons(res, row, cfi_min, rmsea_max)
         row["acceptable"] = not reasons
         row["reasons"] = reasons
         rows.append(row)

@@ -10,16 +10,13 @@ exist, releases that name real parameters).
 from __future__ import annotations
 
 import copy
-import json
 import pathlib
 from dataclasses import dataclass
-from functools import cached_property, lru_cache
+from functools import cached_property
 from types import MappingProxyType
 from typing import Any, Mapping
 
 import yaml
-
-import jsonschema
 
 from ..decide.compare import DecisionRule, rule_from_section
 from ..data.read import guess_format
@@ -29,19 +26,11 @@ from ..model.levels import LEVELS, build_level
 from ..model.spec import Release
 from ..model.structure import Structure
 from ..model.ordinal_levels import ORDINAL_LEVELS, build_ordinal_level
-from .checks import check_finite_numbers, check_meaning
 from .document import MAX_DEPTH, MAX_NODES, parse_yaml, plain_document  # re-exported: imports of spec.load keep working
 from .options import PartialSettings, check_alignment_section, partial_settings, structural_settings
+from .validate import schema, validate_document  # re-exported: imports of spec.load keep working
 
 __all__ = ["PipelineSpec", "freeze", "load_pipeline", "parse_yaml", "plain_document", "schema", "validate_document", "thaw"]
-
-SCHEMA_PATH = pathlib.Path(__file__).with_name("schema.json")
-
-
-@lru_cache(maxsize=1)
-def schema() -> dict:
-    """The pipeline JSON Schema (read once)."""
-    return json.loads(SCHEMA_PATH.read_text(encoding="utf-8"))
 
 
 def freeze(obj):
@@ -171,74 +160,6 @@ class PipelineSpec:
     def to_dict(self) -> dict:
         """The validated document as plain dicts and lists."""
         return thaw(self.document)
-
-
-@lru_cache(maxsize=1)
-def _validator() -> jsonschema.Draft202012Validator:
-    """The schema's validator (built once; it keeps no state between documents)."""
-    return jsonschema.Draft202012Validator(schema())
-
-
-def _path_text(path) -> str:
-    parts = [str(p) for p in path]
-    return ".".join(parts) if parts else "(top level)"
-
-
-def validate_document(doc: Mapping) -> None:
-    """Validate a pipeline document against the schema; raise one clear error."""
-
-    check_finite_numbers(doc)
-    errors = sorted(_validator().iter_errors(doc), key=lambda e: (len(e.absolute_path), list(map(str, e.absolute_path))))
-    if not errors:
-        check_meaning(doc)
-        return
-    err = errors[0]
-    # unknown keys come first: they are the most common mistake
-    for e in errors:
-        if e.validator == "additionalProperties":
-            err = e
-            break
-    while err.context:
-        flat = list(_descendants(err))
-        unknown = [c for c in flat if c.validator == "additionalProperties"]
-        if unknown:
-            err = unknown[0]
-            break
-        # prefer the branch whose type matched: drop bare type/enum mismatches
-        matched = [c for c in err.context if c.validator not in ("type", "enum")]
-        err = matched[0] if matched else jsonschema.exceptions.best_match(err.context)
-        if not err.context:
-            break
-    where = _path_text(err.absolute_path)
-    if err.validator == "additionalProperties":
-        allowed = sorted(err.schema.get("properties", {}))
-        extra = sorted(set(err.instance) - set(allowed))
-        sect = "the pipeline" if not err.absolute_path else f"section {where!r}"
-        raise SpecificationError(
-            f"Unknown key {shorten(extra[0])} in {sect}; allowed keys: {', '.join(allowed)}."
-        )
-    if err.validator == "required":
-        sect = "the pipeline" if not err.absolute_path else f"section {where!r}"
-        missing = err.message.split("'")[1] if "'" in err.message else err.message
-        raise SpecificationError(f"Required key {missing!r} is missing from {sect}; add it.")
-    raise SpecificationError(
-        f"Invalid value for {shorten(where, 120)[1:-1]}: {_short_message(err)}; fix it (see the pipeline reference in README.md)."
-    )
-
-
-def _short_message(err) -> str:
-    """The schema message with the offending value quoted short (it may be huge)."""
-    message = err.message
-    whole = repr(err.instance)
-    if len(whole) > 80 and whole in message:
-        message = message.replace(whole, shorten(err.instance))
-    return message if len(message) <= 300 else message[:240] + "..." + message[-40:]
-
-
-def _descendants(err):
-    for c in err.context or ():
-        yield c
-        yield from _descendants(c)
 
 
 def _levels(levels, *, ordinal: bool = False) -> tuple[str, ...]:
