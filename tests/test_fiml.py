@@ -15,6 +15,7 @@ from scipy import stats as sst
 
 from invariance import DataError, Structure, build_level, fit, sample_stats
 from invariance.data import em_saturated, missing_patterns, stats_from_arrays
+from invariance.data.em import pattern_moments, pattern_terms
 from invariance.estimate import FIMLObjective, MLObjective
 from invariance.estimate.start import start_values
 
@@ -209,6 +210,46 @@ def test_patterns_bookkeeping():
     assert pat.observed[0].all()  # most-observed pattern first
     for k, rows in enumerate(pat.rows):
         assert np.array_equal(~np.isnan(X[rows]), np.repeat(pat.observed[k][None], rows.size, 0))
+
+
+def test_pattern_moments_equal_numpy_per_pattern(hs):
+    X = _delete(hs, 0.15, 3, empty_rows=2)[ITEMS].to_numpy(dtype=float)
+    pm = pattern_moments(X)
+    pat = missing_patterns(X)
+    ref = [(o, X[rows][:, o]) for o, rows in zip(pat.observed, pat.rows) if o.any()]
+    assert pm.observed.shape[0] == len(ref) and pm.n == X.shape[0] - 2
+    for k, (o, xo) in enumerate(ref):
+        assert np.array_equal(pm.observed[k], o) and pm.counts[k] == xo.shape[0]
+        # numpy mean and covariance (divisor n) of each pattern's observed block
+        assert np.allclose(pm.means[k][o], xo.mean(axis=0), rtol=1e-12, atol=1e-12)
+        assert np.allclose(pm.covs[k][np.ix_(o, o)], np.atleast_2d(np.cov(xo.T, ddof=0)), rtol=1e-10, atol=1e-12)
+        assert not pm.means[k][~o].any() and not pm.covs[k][~o].any() and not pm.covs[k][:, ~o].any()
+
+
+def test_pattern_terms_through_always_observed_items_equal_each_block(hs):
+    # values missing on x2, x5, x8 only: the other six items are observed in every
+    # pattern, so the blocks go through their Schur complement (interleaved item order)
+    rng = np.random.default_rng(5)
+    X = hs[ITEMS].to_numpy(dtype=float, copy=True)
+    for j in (1, 4, 7):
+        X[rng.random(X.shape[0]) < 0.25, j] = np.nan
+    pm = pattern_moments(X)
+    assert pm.blocks.schur and pm.observed.shape[0] == 8
+    mean = np.nanmean(X, axis=0)
+    cov = np.cov(np.where(np.isnan(X), mean, X).T) + 0.1 * np.eye(9)
+    W, logdet, _ = pattern_terms(pm, mean, cov)
+    for k, o in enumerate(pm.observed):
+        block = cov[np.ix_(o, o)]
+        # numpy.linalg inv and slogdet of each observed block: the direct computation
+        assert np.allclose(W[k][np.ix_(o, o)], np.linalg.inv(block), rtol=1e-10, atol=1e-12)
+        assert np.all(W[k][~o] == 0) and np.all(W[k][:, ~o] == 0)
+        assert logdet[k] == pytest.approx(np.linalg.slogdet(block)[1], rel=1e-12)
+    # a covariance whose x2 block is not positive definite fails like the direct blocks
+    bad = cov.copy()
+    bad[1, 1] = 0.01 * bad[1, 1]
+    assert any(np.linalg.eigvalsh(bad[np.ix_(o, o)])[0] <= 0 for o in pm.observed)
+    with pytest.raises(np.linalg.LinAlgError):
+        pattern_terms(pm, mean, bad)
 
 
 @pytest.mark.parametrize("level", ["configural", "scalar"])

@@ -12,6 +12,7 @@ from __future__ import annotations
 import hashlib
 from collections import OrderedDict
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -110,25 +111,59 @@ class PatternMoments:
     def n(self) -> float:
         return float(self.counts.sum())
 
+    @cached_property
+    def blocks(self) -> "_Blocks":
+        """Index arrays and masks of :func:`pattern_terms` (computed once)."""
+        return _Blocks.of(self.observed)
+
     def reorder(self, ix) -> "PatternMoments":
         """The same statistics with items in the order ``ix`` (new item i = old ix[i])."""
         ix = np.asarray(ix)
         return PatternMoments(self.observed[:, ix], self.counts, self.means[:, ix], self.covs[:, ix][:, :, ix])
 
 
+@dataclass(frozen=True, eq=False)
+class _Blocks:
+    """The split of :func:`pattern_terms`: ``order`` lists the items every pattern
+    observes (``n_always`` of them, set A) before the others (set R); ``back`` undoes
+    that order; ``oo`` and ``oo_rest`` mask the padded blocks over all items and over R
+    (in ``order``). ``schur`` says whether the split pays (A and R both nonempty,
+    several patterns)."""
+
+    order: np.ndarray
+    back: np.ndarray
+    n_always: int
+    oo: np.ndarray
+    oo_rest: np.ndarray
+    schur: bool
+
+    @classmethod
+    def of(cls, observed: np.ndarray) -> "_Blocks":
+        every = observed.all(axis=0)
+        order = np.concatenate([np.flatnonzero(every), np.flatnonzero(~every)])
+        na = int(every.sum())
+        o = observed[:, order[na:]]
+        return cls(order, np.argsort(order), na, observed[:, :, None] & observed[:, None, :],
+                   o[:, :, None] & o[:, None, :], bool(0 < na < every.size and observed.shape[0] > 1))
+
+
 def _pattern_moments(x: np.ndarray) -> PatternMoments:
+    """Pattern statistics from the cases sorted by pattern: means by segment sums, then
+    the centred cross products of each contiguous segment (missing entries zero)."""
     pat = missing_patterns(x)
-    keep = [k for k in range(pat.n_patterns) if pat.observed[k].any()]
-    K, p = len(keep), x.shape[1]
-    means, covs = np.zeros((K, p)), np.zeros((K, p, p))
-    for j, k in enumerate(keep):
-        o = pat.observed[k]
-        xo = x[np.ix_(pat.rows[k], o)]
-        m = xo.mean(axis=0)
-        e = xo - m
-        means[j, o] = m
-        covs[j][np.ix_(o, o)] = e.T @ e / xo.shape[0]
-    return PatternMoments(pat.observed[keep], pat.counts[keep].astype(float), means, covs)
+    order = np.argsort(pat.case_pattern, kind="stable")
+    bounds = np.r_[0, np.cumsum(pat.counts)]
+    observed = ~np.isnan(x[order])
+    xs = np.where(observed, x[order], 0.0)
+    counts = pat.counts.astype(float)
+    means = np.add.reduceat(xs, bounds[:-1], axis=0) / counts[:, None]
+    e = (xs - means[pat.case_pattern[order]]) * observed
+    covs = np.empty((pat.n_patterns, x.shape[1], x.shape[1]))
+    for k in range(pat.n_patterns):
+        seg = e[bounds[k]:bounds[k + 1]]
+        covs[k] = seg.T @ seg / counts[k]
+    keep = pat.observed.any(axis=1)
+    return PatternMoments(pat.observed[keep], counts[keep], means[keep], covs[keep])
 
 
 class ContentCache:
@@ -183,9 +218,13 @@ def pattern_moments(x: np.ndarray) -> PatternMoments:
 def pattern_terms(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray):
     """Batched inverse, log-determinant and mean residual of every pattern's block.
 
-    Each Sigma_oo is padded to p x p with the identity on the unobserved items, so one
-    stacked Cholesky factorization covers all patterns; the inverse is zeroed outside
-    the observed block.
+    Items every pattern observes (set A) are factored once: with the Schur complement
+    Z = Sigma_RR - Sigma_RA Sigma_AA^-1 Sigma_AR of the other items R, each pattern's
+    block needs only the inverse of Z restricted to its observed items of R
+    (:func:`_schur_terms`; the block inverse, e.g. Harville 1997, section 8.5). Without
+    such a split each Sigma_oo is padded to p x p with the identity on the unobserved
+    items, so one stacked Cholesky factorization covers all patterns; the inverse is
+    zeroed outside the observed block.
 
     Returns
     -------
@@ -201,13 +240,45 @@ def pattern_terms(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray):
     numpy.linalg.LinAlgError
         When a block is not positive definite.
     """
-    oo = pm.observed[:, :, None] & pm.observed[:, None, :]
-    pad = np.where(oo, cov[None], np.eye(cov.shape[0])[None])
+    d = (pm.means - mean[None]) * pm.observed
+    b = pm.blocks
+    if b.schur:
+        W, logdet = _schur_terms(b, cov)
+        return W, logdet, d
+    pad = np.where(b.oo, cov[None], np.eye(cov.shape[0])[None])
     R = np.linalg.cholesky(pad)
     logdet = 2.0 * np.log(np.diagonal(R, axis1=1, axis2=2)).sum(axis=1)
-    W = np.linalg.inv(pad) * oo
-    d = (pm.means - mean[None]) * pm.observed
+    W = np.linalg.inv(pad) * b.oo
     return W, logdet, d
+
+
+def _schur_terms(b: _Blocks, cov: np.ndarray):
+    """(W, logdet) of :func:`pattern_terms` through the items every pattern observes.
+
+    With A the items every pattern observes, R the others, P = Sigma_AA^-1,
+    G = P Sigma_AR, Z = Sigma_RR - Sigma_RA G and Y_k the padded inverse of Z over
+    pattern k's observed items of R: W_k = [[P + G Y_k G', -G Y_k], [-Y_k G', Y_k]] and
+    log|Sigma_oo| = log|Sigma_AA| + log|Z_oo|. Sigma_oo is positive definite exactly
+    when Sigma_AA and Z_oo are, so the same blocks fail as in the direct computation.
+    """
+    na = b.n_always
+    c = cov[b.order[:, None], b.order]
+    saa, sar = c[:na, :na], c[:na, na:]
+    la = np.linalg.cholesky(saa)
+    P = np.linalg.inv(saa)
+    G = P @ sar
+    Z = c[na:, na:] - sar.T @ G
+    pad = np.where(b.oo_rest, ((Z + Z.T) / 2)[None], np.eye(Z.shape[0])[None])
+    lz = np.linalg.cholesky(pad)
+    Y = np.linalg.inv(pad) * b.oo_rest
+    logdet = 2.0 * (np.log(np.diag(la)).sum() + np.log(np.diagonal(lz, axis1=1, axis2=2)).sum(axis=1))
+    YG = Y @ G.T                                                     # (K, |R|, |A|)
+    W = np.empty(b.oo.shape)
+    W[:, :na, :na] = P + G @ YG
+    W[:, na:, :na] = -YG
+    W[:, :na, na:] = -YG.transpose(0, 2, 1)
+    W[:, na:, na:] = Y
+    return W[:, b.back[:, None], b.back], logdet
 
 
 def pattern_loglik_moments(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray) -> float:

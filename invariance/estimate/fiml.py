@@ -52,15 +52,6 @@ class _GroupData:
             loglik_h1 = em_saturated(x).loglik
         self.loglik_h1 = float(loglik_h1)
         self.n = self.pm.n
-        self._last: tuple | None = None
-
-    def terms(self, sigma: np.ndarray, mu: np.ndarray):
-        """:func:`pattern_m2ll` with parts, remembered for the last moments (the optimizer
-        asks for the value, the derivatives and the Hessian at the same point)."""
-        key = sigma.tobytes() + mu.tobytes()
-        if self._last is None or self._last[0] != key:
-            self._last = (key, pattern_m2ll(self.pm, sigma, mu, parts=True))
-        return self._last[1]
 
 
 def pattern_m2ll(pm: PatternMoments, sigma: np.ndarray, mu: np.ndarray, *, parts: bool = False):
@@ -113,17 +104,45 @@ class FIMLObjective:
         self.mean = [g.mean for g in stats.groups]
         self.loglik_h1 = float(sum(d.loglik_h1 for d in self.data))
         #: shared vs group-local parameters: the information matrix is arrow-shaped
-        self.partition = partition([lay.params for lay in self.layouts], self.n_params)
+        #: (one group: a plain dense matrix, no partition)
+        self.partition = (partition([lay.params for lay in self.layouts], self.n_params)
+                          if len(self.layouts) > 1 else None)
+        self._last: tuple | None = None
+
+    # -- the last point ----------------------------------------------------------------
+    def _at(self, theta: np.ndarray) -> list[list]:
+        """Per group [mats, G, A, value, W, d, C, factored Jacobian, K'WK] at ``theta``
+        (:func:`pattern_m2ll` with parts; raises LinAlgError when a pattern's block is
+        not positive definite). The last point is kept, so the value, the derivatives
+        and the Hessian at one point share one batched factorization; the Jacobian and
+        the Gram matrices are built on first use (a rejected trial point of the line
+        search needs neither)."""
+        key = theta.tobytes()
+        if self._last is not None and self._last[0] == key:
+            return self._last[1]
+        parts = []
+        for lay, d in zip(self.layouts, self.data):
+            mats = group_matrices(lay, theta)
+            sigma, mu, G, A = implied_moments(mats)
+            parts.append([mats, G, A, *pattern_m2ll(d.pm, sigma, mu, parts=True), None, None])
+        self._last = (key, parts)
+        return parts
+
+    def _jacobians(self, theta: np.ndarray) -> list[list]:
+        """:meth:`_at` with the factored Jacobian and K'WK of every group filled in."""
+        parts = self._at(theta)
+        for lay, part in zip(self.layouts, parts):
+            if part[7] is None:
+                mats, G, A = part[:3]
+                part[7] = factor_jacobian(lay, mats, G, A)
+                part[8] = gram(part[7].H, part[4])
+        return parts
 
     # -- likelihood -----------------------------------------------------------------
     def loglik(self, theta: np.ndarray) -> float:
         """Casewise log-likelihood of the model at ``theta`` (``-inf`` if not admissible)."""
         try:
-            total = 0.0
-            for lay, d in zip(self.layouts, self.data):
-                sigma, mu, _, _ = implied_moments(group_matrices(lay, theta))
-                total += d.terms(sigma, mu)[0]
-            return -0.5 * total
+            return -0.5 * sum(part[3] for part in self._at(theta))
         except np.linalg.LinAlgError:
             return -np.inf
 
@@ -139,20 +158,12 @@ class FIMLObjective:
         """Per group: (matrices, Sigma, mu, dS, dm) at ``theta`` (local parameters)."""
         return layout_jacobians(self.layouts, theta)
 
-    def _group(self, lay, d: _GroupData, theta: np.ndarray):
-        """Per group: value, factored Jacobian, and the pattern terms (W, d, C)."""
-        mats = group_matrices(lay, theta)
-        sigma, mu, G, A = implied_moments(mats)
-        val, W, e, C = d.terms(sigma, mu)
-        return mats, G, A, factor_jacobian(lay, mats, G, A), val, W, e, C
-
     def derivatives(self, theta: np.ndarray, *, information: bool = True):
         q = self.n_params
         grad = np.zeros(q)
         info = np.zeros((q, q)) if information else None
         total = 2.0 * self.loglik_h1
-        for lay, d in zip(self.layouts, self.data):
-            _, _, _, fj, val, W, e, C = self._group(lay, d, theta)
+        for lay, d, (_, _, _, val, W, e, C, fj, QW) in zip(self.layouts, self.data, self._jacobians(theta)):
             total += val
             n = d.pm.counts
             WC = W @ C
@@ -161,7 +172,7 @@ class FIMLObjective:
             u = lay.params
             grad[u] += factored_gradient(fj, Gs, w)
             if information:
-                info[np.ix_(u, u)] += factored_information(fj, gram(fj.H, W), n)
+                info[np.ix_(u, u)] += factored_information(fj, QW, n)
         if not np.isfinite(total):
             raise np.linalg.LinAlgError("implied covariance not positive definite")
         return float(total), grad, info
@@ -177,13 +188,12 @@ class FIMLObjective:
         """
         q = self.n_params
         H = np.zeros((q, q))
-        for lay, d in zip(self.layouts, self.data):
-            mats, G, A, fj, _, W, e, C = self._group(lay, d, theta)
+        for lay, d, (mats, G, A, _, W, e, C, fj, QW) in zip(self.layouts, self.data, self._jacobians(theta)):
             n = d.pm.counts
             M = W @ C @ W
             we = np.einsum("kij,kj->ki", W, e)
             kw = np.concatenate([we, we @ fj.H], axis=1)
-            He = factored_moment_hessian(fj, gram(fj.H, W), gram(fj.H, M), kw, n)
+            He = factored_moment_hessian(fj, QW, gram(fj.H, M), kw, n)
             Gs = np.tensordot(n, W - M, axes=1)
             He += second_derivative_part(lay, mats, G, A, Gs, n @ we)
             hh = He if fj.P is None else fj.P.T @ He @ fj.P

@@ -56,6 +56,12 @@ CHORD_BELOW = 1e-6
 
 #: Iterations over which a run-away trend is judged.
 RUNAWAY_WINDOW = 16
+#: The second opinion on a suspected run-away: iterates judged together, the share of the
+#: earlier half's Newton decrement the later half must keep, and the largest share of the
+#: promised decrease the steps may deliver, to confirm it.
+PROBE_WINDOW = 5
+PROBE_KEEP = 0.95
+PROBE_DELIVER = 0.2
 
 
 @dataclass(frozen=True)
@@ -271,6 +277,30 @@ def minimize(
         return Outcome(x, np.inf, np.full_like(x, np.nan), None, 3, 0)
     first = Outcome(x, f, g, h, 6, it, tuple(int(j) for j in run)) if status == 6 else None
 
+    # A suspected run-away gets a second opinion: a slow, steady approach to a finite
+    # optimum in a flat valley looks the same for a while. A short L-BFGS-B probe and a
+    # watched scoring polish (:func:`_second_opinion`) either converge (a false alarm) or
+    # confirm the run-away, in which case the first stopping point (closer to the data's
+    # scale) is what is reported.
+    res = _quasi_newton(obj, x, lower, first)
+    if first is not None:
+        return _second_opinion(obj, first, res.x, it + int(res.nit), max_iter=max_iter, tol=tol, lower=lower)
+    x2, f2, g2, h2, st2, it2, run2 = _scoring(obj, res.x, max_iter=max_iter, tol=tol, lower=lower)
+    total = it + int(res.nit) + it2
+    if st2 == 0:
+        return Outcome(x2, f2, g2, h2, 4, total)
+    if st2 == 6:
+        return Outcome(x2, f2, g2, h2, 6, total, tuple(int(j) for j in run2))
+    if f2 is not None and np.isfinite(f2) and g2 is not None:
+        return Outcome(x2, f2, g2, h2, 5 if status != 1 else 1, total)
+    return Outcome(x, f, g, h, status, total)
+
+
+def _quasi_newton(obj, x: np.ndarray, lower: np.ndarray | None, first: Outcome | None) -> _sopt.OptimizeResult:
+    """L-BFGS-B from ``x`` with the analytic gradient (scipy's result). As the second
+    opinion on the suspected run-away ``first`` it takes at most 300 iterations and stops
+    once :func:`running_away` fires on its own iterates for a flagged parameter."""
+
     def fun(z):
         try:
             v, gr, _ = obj.derivatives(z, information=False)
@@ -278,21 +308,104 @@ def minimize(
             return 1e20, np.zeros_like(z)
         return v, gr
 
+    trail = [x]
+
+    def same_run(intermediate_result) -> None:
+        trail.append(np.array(intermediate_result.x))
+        if np.intersect1d(running_away(trail), first.running).size:
+            raise StopIteration
+
     bounds = None if lower is None else [(lo if np.isfinite(lo) else None, None) for lo in lower]
-    # A suspected run-away gets a second opinion: a slow, steady approach to a finite
-    # optimum in a flat valley looks the same for a while. A short L-BFGS-B probe and a
-    # scoring polish either converge (a false alarm) or run away again, in which case the
-    # first stopping point (closer to the data's scale) is what is reported.
-    res = _sopt.minimize(fun, x, jac=True, method="L-BFGS-B", bounds=bounds,
-                         options={"maxiter": 300 if first else 20000, "ftol": 1e-15, "gtol": 1e-9})
-    x2, f2, g2, h2, st2, it2, run2 = _scoring(obj, res.x, max_iter=max_iter, tol=tol, lower=lower)
-    total = it + int(res.nit) + it2
+    return _sopt.minimize(fun, x, jac=True, method="L-BFGS-B", bounds=bounds, callback=same_run if first else None,
+                          options={"maxiter": 300 if first else 20000, "ftol": 1e-15, "gtol": 1e-9})
+
+
+def _decrement(obj, x: np.ndarray, g: np.ndarray, h: np.ndarray, lower: np.ndarray | None) -> float:
+    """Newton decrement g' I^-1 g at ``x`` (gradient ``g``, information ``h``) over the
+    parameters free to move (those at a lower bound and pushed towards it excluded)."""
+    if lower is None:
+        return -float(g @ _solve(h, g, getattr(obj, "partition", None)))
+    free = ~((x <= lower + 1e-3) & (g > 0))
+    return -float(g[free] @ _solve(h[np.ix_(free, free)], g[free])) if free.any() else 0.0
+
+
+def _keeps_running(points: list[np.ndarray], funs: list[float], decrements: list[float],
+                   flagged: tuple[int, ...]) -> bool:
+    """Do the iterates ``points``, their objective values and Newton decrements
+    lambda = g' I^-1 g confirm a run-away of some parameter in ``flagged``?
+
+    Yes when such a parameter moved the same way at every step, farther in all than
+    rounding noise (1e-3 of its size plus one), while the steps delivered less than
+    :data:`PROBE_DELIVER` of the decrease lambda / 2 the quadratic model promised and
+    lambda did not shrink (its mean over the later half of the iterates at least
+    :data:`PROBE_KEEP` times the earlier half's) and stayed above noise (1e-6 of the
+    objective, at least 1e-6). In a valley towards a finite optimum, however flat,
+    steps deliver about what the model promises, and lambda shrinks to zero at the end;
+    on a run-away the objective keeps promising a decrease that steps cut back at the
+    edge of the admissible region never deliver.
+    """
+    X = np.asarray(points)[:, list(flagged)]
+    d = np.diff(X, axis=0)
+    same_way = np.all(d > 0, axis=0) | np.all(d < 0, axis=0)
+    moved = np.abs(X[-1] - X[0]) > 1e-3 * (1.0 + np.abs(X[0]))
+    lam = np.asarray(decrements)
+    half = lam.size // 2
+    short = np.all(-np.diff(funs) < PROBE_DELIVER * lam[:-1] / 2)
+    steady = lam[half:].mean() >= PROBE_KEEP * lam[:half].mean() and lam.min() > 1e-6 * max(1.0, abs(funs[-1]))
+    return bool(np.any(same_way & moved) and short and steady)
+
+
+class _Confirmed(Exception):
+    """Ends the second opinion's scoring run: the run-away is confirmed."""
+
+
+class _Watch:
+    """The objective as the second opinion's scoring run sees it: every call goes to
+    ``obj``; each iterate at which derivatives are taken is kept with its Newton
+    decrement, and :class:`_Confirmed` is raised as soon as the last
+    :data:`PROBE_WINDOW` iterates confirm the run-away of ``first`` (:func:`_keeps_running`).
+    """
+
+    def __init__(self, obj, first: Outcome, lower: np.ndarray | None) -> None:
+        self.obj, self.first, self.lower = obj, first, lower
+        self.points: list[np.ndarray] = []
+        self.funs: list[float] = []
+        self.decrements: list[float] = []
+
+    def __getattr__(self, name: str):
+        return getattr(self.obj, name)
+
+    def derivatives(self, x: np.ndarray, *, information: bool = True):
+        f, g, h = self.obj.derivatives(x, information=True)
+        if not self.points or not np.array_equal(self.points[-1], x):
+            self.points.append(np.array(x, dtype=float))
+            self.funs.append(float(f))
+            self.decrements.append(_decrement(self.obj, x, g, h, self.lower))
+            w = PROBE_WINDOW
+            if len(self.points) >= w and _keeps_running(self.points[-w:], self.funs[-w:], self.decrements[-w:],
+                                                        self.first.running):
+                raise _Confirmed
+        return f, g, h if information else None
+
+
+def _second_opinion(obj, first: Outcome, start: np.ndarray, spent: int, *, max_iter: int, tol: float,
+                    lower: np.ndarray | None) -> Outcome:
+    """Confirm or dismiss the suspected run-away ``first`` by scoring from ``start``.
+
+    The scoring run converges: the alarm was false (status 4). It stops as soon as
+    :data:`PROBE_WINDOW` iterates show a flagged parameter running on by steps that
+    deliver a small share of the promised decrease while the Newton decrement holds
+    (:class:`_Watch`, :func:`_keeps_running`); otherwise it runs to its end, and any end
+    but convergence confirms the run-away, as a scoring run flagging it again would.
+    A confirmed run-away reports ``first`` (status 6). ``spent`` counts the iterations
+    so far.
+    """
+    watch = _Watch(obj, first, lower)
+    try:
+        x2, f2, g2, h2, st2, it2, _ = _scoring(watch, start, max_iter=max_iter, tol=tol, lower=lower)
+    except _Confirmed:
+        st2, it2 = 6, len(watch.points) - 1
+    total = spent + it2
     if st2 == 0:
         return Outcome(x2, f2, g2, h2, 4, total)
-    if first is not None:
-        return Outcome(first.x, first.fun, first.grad, first.info, 6, total, first.running)
-    if st2 == 6:
-        return Outcome(x2, f2, g2, h2, 6, total, tuple(int(j) for j in run2))
-    if f2 is not None and np.isfinite(f2) and g2 is not None:
-        return Outcome(x2, f2, g2, h2, 5 if status != 1 else 1, total)
-    return Outcome(x, f, g, h, status, total)
+    return Outcome(first.x, first.fun, first.grad, first.info, 6, total, first.running)

@@ -2,8 +2,8 @@
 
 All times are CPU seconds (time.process_time) with one BLAS thread (threadpoolctl),
 medians over --repeat runs, measured in this one process after one warm-up call (the
-Holzinger & Swineford contenders in interleaved rounds, so that load from other jobs
-hits them alike). The
+Holzinger & Swineford contenders, and the full-information and complete-case runs, in
+interleaved rounds, so that load from other jobs hits them alike). The
 issue's targets are printed beside the measured ratios.
 
 1. Holzinger & Swineford (1939, data shipped with semopy) configural model by school:
@@ -213,8 +213,8 @@ def bench_fiml_case(label: str, items, factors: dict, data: pd.DataFrame, repeat
     doc_fi = pipeline(data, "fiml", model, ["configural"], incomplete="full_information")
     complete = data.dropna()
     doc_cc = pipeline(complete, "complete", model, ["configural"], incomplete="listwise")
-    t_fi, r_fi = cpu(lambda: run_inprocess(doc_fi), repeat)
-    t_cc, r_cc = cpu(lambda: run_inprocess(doc_cc), repeat)
+    got = cpu_interleaved({"fi": lambda: run_inprocess(doc_fi), "cc": lambda: run_inprocess(doc_cc)}, repeat)
+    (t_fi, r_fi), (t_cc, r_cc) = got["fi"], got["cc"]
     lv_fi, lv_cc = r_fi["levels"][0], r_cc["levels"][0]
     print(f"2. Full-information ML, configural bifactor: {label}")
     print(f"   ours, whole run, full information   {t_fi * 1e3:9.1f} ms   chi2 {lv_fi['chi2']:.3f}  "
