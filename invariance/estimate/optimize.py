@@ -21,7 +21,11 @@ A run-away solution (a parameter heading off without bound, e.g. a residual vari
 going to minus infinity while a loading grows) is caught within tens of iterations by
 :func:`running_away`: the same parameters move the same way at every one of the last
 :data:`RUNAWAY_WINDOW` iterations by steps that do not shrink. Their indices are kept in
-``Outcome.running``.
+``Outcome.running``. A suspected run-away gets a second opinion before it is declared
+(:func:`_second_opinion`): an L-BFGS-B probe, then a watched scoring polish that stops
+once a flagged parameter keeps running while the steps deliver far less than the
+decrease the Newton decrement promises; a slow approach to a finite optimum in a flat
+valley delivers it, and converges.
 """
 
 from __future__ import annotations
