@@ -314,18 +314,44 @@ def _vech_index(n: int) -> np.ndarray:
     return v
 
 
+@functools.lru_cache(maxsize=64)
+def _tril(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Row and column indices of the lower triangle of an n x n matrix (read-only)."""
+    r, c = np.tril_indices(n)
+    r.setflags(write=False)
+    c.setflags(write=False)
+    return r, c
+
+
 class _PairSums:
     """Weighted sums over a stack of Gram matrices of entrywise products of gathered blocks:
     sum_k w_k X_k[i, j'] Y_k[l, m'] for index vectors i, j, l, m.
 
     One matrix: gathered directly. A stack (missingness patterns) with a small basis:
     through the moment tensor T = sum_k w_k X_k (x) Y_k, one matrix product (fast BLAS),
-    then gathered; otherwise gathered per pattern and summed.
+    then gathered; otherwise gathered per pattern and summed. Within one instance (one
+    kernel call) the lower triangles, tensors and gather positions are computed once.
     """
 
     def __init__(self, weights: np.ndarray | None) -> None:
         self.w = weights
         self._tensors: dict = {}
+        self._lower: dict = {}
+        self._where: dict = {}
+
+    def _triangle(self, X: np.ndarray) -> np.ndarray:
+        low = self._lower.get(id(X))
+        if low is None:
+            r, c = _tril(X.shape[1])
+            low = self._lower[id(X)] = X[:, r, c]
+        return low
+
+    def _positions(self, n: int, i: np.ndarray, j: np.ndarray) -> np.ndarray:
+        key = (id(i), id(j))
+        pos = self._where.get(key)
+        if pos is None:
+            pos = self._where[key] = _vech_index(n)[i[:, None], j[None, :]]
+        return pos
 
     def __call__(self, X: np.ndarray, Y: np.ndarray, i, j, l, m) -> np.ndarray:
         K, n = X.shape[0], X.shape[1]
@@ -337,10 +363,8 @@ class _PairSums:
             key = (id(X), id(Y))
             T = self._tensors.get(key)
             if T is None:
-                r, c = np.tril_indices(n)
-                T = self._tensors[key] = (X[:, r, c].T * w) @ Y[:, r, c]
-            v = _vech_index(n)
-            return T[v[i[:, None], j[None, :]], v[l[:, None], m[None, :]]]
+                T = self._tensors[key] = (self._triangle(X).T * w) @ self._triangle(Y)
+            return T[self._positions(n, i, j), self._positions(n, l, m)]
         return np.tensordot(w, X[:, i][:, :, j] * Y[:, l][:, :, m], axes=1)
 
 
