@@ -150,6 +150,12 @@ class FIMLObjective:
         ll = self.loglik(theta)
         return float(-2.0 * ll + 2.0 * self.loglik_h1) if np.isfinite(ll) else np.inf
 
+    def implied(self, theta: np.ndarray) -> tuple[tuple, tuple, tuple]:
+        """(matrices, Sigma, mu) of every group at ``theta``."""
+        matrices = tuple(group_matrices(lay, theta) for lay in self.layouts)
+        moments = [implied_moments(m)[:2] for m in matrices]
+        return matrices, tuple(s for s, _ in moments), tuple(mu for _, mu in moments)
+
     def moments(self, theta: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
         """Implied (Sigma, mu) of every group."""
         return [implied_moments(group_matrices(lay, theta))[:2] for lay in self.layouts]

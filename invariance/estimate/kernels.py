@@ -70,10 +70,9 @@ def compile_spec(spec: ModelSpec) -> tuple[GroupLayout, ...]:
         theta = np.zeros((p, p)); nu = np.zeros(p); alpha = np.zeros(m)
         base = (lam, beta, psi, theta, nu, alpha)
         fixed = idx[~spec.free[idx]]
-        for k in fixed:
-            mat, r, c, v = spec.matrix[k], spec.row[k], spec.col[k], spec.value[k]
-            if mat > ALPHA:  # thresholds (ordinal models) are handled by their own kernels
-                continue
+        for mat in range(6):  # thresholds (ordinal models) are handled by their own kernels
+            k = fixed[spec.matrix[fixed] == mat]
+            r, c, v = spec.row[k], spec.col[k], spec.value[k]
             if mat in (NU, ALPHA):
                 base[mat][r] = v
             else:

@@ -28,7 +28,6 @@ from .indices import compute_fit, information_criteria
 from .indices import tli as _tli
 from ..model.spec import ModelSpec
 from .result import FitResult
-from .kernels import group_matrices, implied_moments
 from .dwls_robust import fit_dwls
 from .fiml import FIMLObjective, independence_loglik
 from .linalg import arrow_inverse
@@ -184,10 +183,7 @@ def _standard_errors(spec, obj, out, matrices, sigmas, *, information: str, esti
 def _finish(spec, stats, obj, out, *, information: str, estimator: str, estimation: dict) -> FitResult:
     """Standard errors, diagnosis, fit statistics and the result of one optimizer outcome."""
     theta = out.x
-    matrices = tuple(group_matrices(lay, theta) for lay in obj.layouts)
-    moments = [implied_moments(m)[:2] for m in matrices]
-    sigmas = tuple(s for s, _ in moments)
-    mus = tuple(mu for _, mu in moments)
+    matrices, sigmas, mus = obj.implied(theta)
     info_se, problems, acov = _standard_errors(spec, obj, out, matrices, sigmas, information=information,
                                                estimation=estimation)
     warn_problems(spec, out, problems, estimation["notes"])

@@ -80,6 +80,13 @@ class MLObjective:
                 part[7] = factor_jacobian(lay, mats, G, A)
         return parts
 
+    def implied(self, theta: np.ndarray) -> tuple[tuple, tuple, tuple]:
+        """(matrices, Sigma, mu) of every group at ``theta``: copies of the kept point's
+        (a result may outlive the objective's cache)."""
+        parts = self._at(theta)
+        return (tuple(tuple(m.copy() for m in p[0]) for p in parts), tuple(p[1].copy() for p in parts),
+                tuple(p[2].copy() for p in parts))
+
     def moments(self, theta: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
         """Implied (Sigma, mu) of every group."""
         out = []

@@ -10,7 +10,7 @@ from typing import Sequence
 
 import numpy as np
 
-from ..model.spec import LAMBDA, PSI, THETA, ModelSpec
+from ..model.spec import LAMBDA, ModelSpec
 from .linalg import all_above
 
 __all__ = ["VARIANCE_CHOICES", "describe_runaway", "describe_bounds", "weak_identification"]
