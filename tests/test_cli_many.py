@@ -44,7 +44,11 @@ def test_batch_command_matches_single_runs(hs_dir):
         single = hs_dir / f"single_{name}"
         res = invariance.run(path, out=single, quiet=True)
         batch_res, single_res = _levels(out / name / "results.json"), _levels(single / "results.json")
-        assert batch_res == single_res
+        # same decisions; the same statistics up to rounding (a worker process may run BLAS
+        # on another number of threads, which changes the last digits of a sum)
+        assert batch_res[0] == single_res[0]
+        assert [lv[:2] for lv in batch_res[1]] == [lv[:2] for lv in single_res[1]]
+        assert [lv[2] for lv in batch_res[1]] == pytest.approx([lv[2] for lv in single_res[1]], rel=1e-9)
         assert table[table.task == name].iloc[0]["highest_level"] == (res.supported_level or "none")
         assert {p.name for p in (out / name).iterdir()} == {p.name for p in single.iterdir()}
     # Holzinger & Swineford by school: configural chi-square 115.851 on 48 df (METHODS section 12)
