@@ -9,11 +9,12 @@ means makes the change in SRMR respond to intercept differences at the scalar st
 
 from __future__ import annotations
 
-import functools
 from dataclasses import asdict, dataclass
 
 import numpy as np
 from scipy import special
+
+from .linalg import lower_triangle
 
 __all__ = [
     "FitStats",
@@ -92,21 +93,12 @@ def srmr(covs, means, sigmas, mus, ns, *, include_means: bool = True) -> float:
     for S, m, sig, mu, n in zip(covs, means, sigmas, mus, ns):
         sd = np.sqrt(np.diag(S))
         r = (S - sig) / np.outer(sd, sd)
-        res = r[_lower(S.shape[0])]
+        res = r[lower_triangle(S.shape[0])]
         if include_means:
             res = np.concatenate([res, (m - mu) / sd])
         total += n * np.sqrt(np.mean(res**2))
         nsum += n
     return float(total / nsum)
-
-
-@functools.lru_cache(maxsize=32)
-def _lower(p: int) -> tuple[np.ndarray, np.ndarray]:
-    """Row and column indices of the lower triangle (diagonal included) of a p x p matrix."""
-    rows, cols = np.tril_indices(p)
-    rows.setflags(write=False)
-    cols.setflags(write=False)
-    return rows, cols
 
 
 def information_criteria(loglik: float, q: int, n: int) -> tuple[float, float, float]:

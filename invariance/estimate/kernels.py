@@ -19,6 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..model.spec import ALPHA, BETA, LAMBDA, NU, PSI, THETA, ModelSpec
+from .linalg import lower_triangle
 
 __all__ = [
     "GroupLayout",
@@ -307,19 +308,10 @@ _TENSOR_LIMIT = 3_000_000
 def _vech_index(n: int) -> np.ndarray:
     """(n, n) position of entry (i, j) in the lower-triangle vector (symmetric)."""
     v = np.zeros((n, n), dtype=np.int64)
-    r, c = np.tril_indices(n)
+    r, c = lower_triangle(n)
     v[r, c] = np.arange(r.size)
     v[c, r] = np.arange(r.size)
     return v
-
-
-@functools.lru_cache(maxsize=64)
-def _tril(n: int) -> tuple[np.ndarray, np.ndarray]:
-    """Row and column indices of the lower triangle of an n x n matrix (read-only)."""
-    r, c = np.tril_indices(n)
-    r.setflags(write=False)
-    c.setflags(write=False)
-    return r, c
 
 
 class _PairSums:
@@ -341,7 +333,7 @@ class _PairSums:
     def _triangle(self, X: np.ndarray) -> np.ndarray:
         low = self._lower.get(id(X))
         if low is None:
-            r, c = _tril(X.shape[1])
+            r, c = lower_triangle(X.shape[1])
             low = self._lower[id(X)] = X[:, r, c]
         return low
 

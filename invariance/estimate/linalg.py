@@ -14,12 +14,13 @@ on the shared block) instead of cubic in the total parameter count.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
 from scipy.linalg import lapack as _lapack
 
-__all__ = ["ArrowPartition", "partition", "pd_solve", "pd_inverse_logdet", "arrow_solve", "arrow_inverse", "arrow_min_eigen", "all_above"]
+__all__ = ["ArrowPartition", "partition", "pd_solve", "pd_inverse_logdet", "arrow_solve", "arrow_inverse", "arrow_min_eigen", "all_above", "lower_triangle"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -59,6 +60,16 @@ def _cho_solve(c: np.ndarray, b: np.ndarray) -> np.ndarray:
 def pd_solve(M: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Solve M x = b for a positive-definite M by LAPACK Cholesky; LinAlgError otherwise."""
     return _cho_solve(_cho_factor(M), b)
+
+
+@functools.lru_cache(maxsize=64)
+def lower_triangle(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Row and column indices of the lower triangle (diagonal included) of an n x n
+    matrix, in ``numpy.tril_indices`` order; cached and read-only."""
+    rows, cols = np.tril_indices(n)
+    rows.setflags(write=False)
+    cols.setflags(write=False)
+    return rows, cols
 
 
 def all_above(M: np.ndarray, level: float) -> bool:

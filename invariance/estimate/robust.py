@@ -42,6 +42,7 @@ from ..data.moments import GroupStats, SampleStats
 from ..errors import DataError, EstimationError
 from ..model.spec import ModelSpec
 from .kernels import compile_spec, group_matrices, implied_moments, moment_jacobian
+from .linalg import lower_triangle
 from .objective import MLObjective
 from .optimize import minimize
 
@@ -64,10 +65,6 @@ __all__ = [
 ]
 
 
-def _vech(p: int) -> tuple[np.ndarray, np.ndarray]:
-    return np.tril_indices(p)
-
-
 def saturated_scores(x: np.ndarray, pat: Patterns, mean: np.ndarray, cov: np.ndarray) -> np.ndarray:
     """Casewise scores d l_i / d (mu, vech Sigma) of the normal log-likelihood.
 
@@ -78,7 +75,7 @@ def saturated_scores(x: np.ndarray, pat: Patterns, mean: np.ndarray, cov: np.nda
     (n, p + p(p+1)/2) array
     """
     n, p = x.shape
-    r, c = _vech(p)
+    r, c = lower_triangle(p)
     coef = np.where(r == c, 1.0, 2.0)
     Z = np.zeros((n, p + r.size))
     for k, rows in enumerate(pat.rows):
@@ -106,7 +103,7 @@ def saturated_information(pat: Patterns, mean: np.ndarray, cov: np.ndarray) -> n
     f = 1/2 on diagonal entries (Magnus & Neudecker: 1/2 D'(W kron W) D).
     """
     p = cov.shape[0]
-    r, c = _vech(p)
+    r, c = lower_triangle(p)
     f = np.where(r == c, 0.5, 1.0)
     ff = np.outer(f, f)
     A = np.zeros((p + r.size, p + r.size))
@@ -145,7 +142,7 @@ def saturated_observed_information(pm: PatternMoments, mean: np.ndarray, cov: np
     (p + p(p+1)/2, p + p(p+1)/2) array
     """
     p = cov.shape[0]
-    r, c = _vech(p)
+    r, c = lower_triangle(p)
     f = np.where(r == c, 0.5, 1.0)
     ff = np.outer(f, f)
     W, _, d = pattern_terms(pm, mean, cov)
@@ -168,7 +165,7 @@ def vech_permutation(ix: np.ndarray) -> np.ndarray:
     """
     ix = np.asarray(ix)
     p = ix.size
-    r, c = _vech(p)
+    r, c = lower_triangle(p)
     pos = np.full((p, p), -1)
     pos[r, c] = np.arange(r.size)
     a, b = ix[r], ix[c]
@@ -179,7 +176,7 @@ def vech_permutation(ix: np.ndarray) -> np.ndarray:
 def vech_jacobian(dS: np.ndarray, dm: np.ndarray) -> np.ndarray:
     """Delta = d (mu, vech Sigma) / d theta from the kernels' (u, p, p) and (u, p) arrays."""
     p = dm.shape[1]
-    r, c = _vech(p)
+    r, c = lower_triangle(p)
     return np.concatenate([dm, dS[:, r, c]], axis=1).T
 
 
@@ -295,7 +292,7 @@ def baseline_trace(h1: H1Moments) -> float:
     q = 0
     for x, V, Gam in zip(h1.x, h1.V, h1.gamma):
         p = x.shape[1]
-        r, c = _vech(p)
+        r, c = lower_triangle(p)
         D = np.zeros((p + r.size, 2 * p))
         D[np.arange(p), np.arange(p)] = 1.0
         D[p + np.flatnonzero(r == c), p + np.arange(p)] = 1.0
