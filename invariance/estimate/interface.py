@@ -128,8 +128,19 @@ def quiet_fit(estimator: Estimator, spec: ModelSpec, stats, *, start=None) -> tu
     return res, [str(w.message) for w in caught if issubclass(w.category, InvarianceWarning)]
 
 
+class _FromFrame:
+    """``statistics`` of an estimator from a data frame: the frame split into one item
+    array per group (:func:`~invariance.data.moments.group_arrays`), then the estimator's
+    own ``group_statistics``."""
+
+    def statistics(self, frame, items, group, *, groups=None):
+        """Per-group statistics of ``frame`` (see the estimator's ``group_statistics``)."""
+        arrays, names = group_arrays(frame, items, group, groups=groups)
+        return self.group_statistics(arrays, names, items)
+
+
 @dataclass(frozen=True)
-class MaximumLikelihood:
+class MaximumLikelihood(_FromFrame):
     """Normal-theory ML; full-information ML when the statistics hold incomplete cases.
 
     Attributes
@@ -150,13 +161,9 @@ class MaximumLikelihood:
     name: str = field(default="ml", init=False)
     score_tests: bool = field(default=True, init=False)
 
-    def statistics(self, frame, items, group, *, groups=None):
-        """Per-group sufficient statistics (casewise patterns under full information)."""
-        arrays, names = group_arrays(frame, items, group, groups=groups)
-        return self.group_statistics(arrays, names, items)
-
     def group_statistics(self, arrays, names, items):
-        """:meth:`statistics` from one (n_g, p) item array per group (NaN = missing)."""
+        """Per-group sufficient statistics (casewise patterns under full information) from
+        one (n_g, p) item array per group (NaN = missing)."""
         incomplete = any(np.isnan(x).any() for x in arrays)
         method = "fiml" if self.incomplete == "full_information" and incomplete else "listwise"
         return stats_from_arrays(arrays, names, items, missing=method)
@@ -248,7 +255,7 @@ class RobustML(MaximumLikelihood):
 
 
 @dataclass(frozen=True)
-class DiagonallyWeighted:
+class DiagonallyWeighted(_FromFrame):
     """DWLS for ordered-categorical and mixed items, with robust statistics.
 
     Attributes
@@ -268,13 +275,9 @@ class DiagonallyWeighted:
     name: str = field(default="dwls", init=False)
     score_tests: bool = field(default=False, init=False)
 
-    def statistics(self, frame, items, group, *, groups=None):
-        """Thresholds, polychoric (and polyserial) correlations and their ACOV, complete cases."""
-        arrays, names = group_arrays(frame, items, group, groups=groups)
-        return self.group_statistics(arrays, names, items)
-
     def group_statistics(self, arrays, names, items):
-        """:meth:`statistics` from one (n_g, p) item array per group (NaN = missing)."""
+        """Thresholds, polychoric (and polyserial) correlations and their ACOV, complete
+        cases, from one (n_g, p) item array per group (NaN = missing)."""
         merge = None if self.merge is None else {k: [list(b) for b in v] for k, v in self.merge}
         continuous = [] if self.ordinal is None else [i for i in items if i not in self.ordinal]
         return ordinal_stats_from_arrays(arrays, names, list(items), merge=merge, continuous=continuous)
