@@ -158,7 +158,8 @@ class FIMLObjective:
 
     def moments(self, theta: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
         """Implied (Sigma, mu) of every group."""
-        return [implied_moments(group_matrices(lay, theta))[:2] for lay in self.layouts]
+        _, sigmas, mus = self.implied(theta)
+        return list(zip(sigmas, mus))
 
     def jacobians(self, theta: np.ndarray):
         """Per group: (matrices, Sigma, mu, dS, dm) at ``theta`` (local parameters)."""

@@ -89,11 +89,8 @@ class MLObjective:
 
     def moments(self, theta: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
         """Implied (Sigma, mu) of every group."""
-        out = []
-        for lay in self.layouts:
-            sigma, mu, _, _ = implied_moments(group_matrices(lay, theta))
-            out.append((sigma, mu))
-        return out
+        _, sigmas, mus = self.implied(theta)
+        return list(zip(sigmas, mus))
 
     def group_values(self, theta: np.ndarray) -> np.ndarray:
         """F_g of every group (LinAlgError when a Sigma is not positive definite)."""
@@ -113,21 +110,18 @@ class MLObjective:
         return layout_jacobians(self.layouts, theta)
 
     def derivatives(self, theta: np.ndarray, *, information: bool = True):
-        if self._whole:
-            _, _, mu, _, _, W, logdet, fj = self._jacobians(theta)[0]
-            f, gg, hh = ml_derivatives(W, logdet, mu, self.S[0], self.mean[0], fj, logdet_s=self.logdet_s[0],
-                                       information=information)
-            return self.n[0] * f, self.n[0] * gg, None if hh is None else self.n[0] * hh
         q = self.n_params
-        grad = np.zeros(q)
-        info = np.zeros((q, q)) if information else None
+        grad = None if self._whole else np.zeros(q)
+        info = np.zeros((q, q)) if information and not self._whole else None
         total = 0.0
         for g, (lay, (_, _, mu, _, _, W, logdet, fj)) in enumerate(zip(self.layouts, self._jacobians(theta))):
             f, gg, hh = ml_derivatives(
                 W, logdet, mu, self.S[g], self.mean[g], fj, logdet_s=self.logdet_s[g], information=information
             )
-            u = lay.params
             total += self.n[g] * f
+            if grad is None:  # one group owning every parameter: its terms are the totals
+                return total, self.n[g] * gg, None if hh is None else self.n[g] * hh
+            u = lay.params
             grad[u] += self.n[g] * gg
             if information:
                 info[np.ix_(u, u)] += self.n[g] * hh
