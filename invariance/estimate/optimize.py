@@ -124,12 +124,24 @@ def running_away(path: list[np.ndarray]) -> np.ndarray:
         return np.empty(0, dtype=np.int64)
     X = np.asarray(path[-(RUNAWAY_WINDOW + 1):])
     d = np.diff(X, axis=0)
-    same_way = np.all(d > 0, axis=0) | np.all(d < 0, axis=0)
     half = RUNAWAY_WINDOW // 2
     early = np.abs(d[:half]).sum(axis=0)
     late = np.abs(d[half:]).sum(axis=0)
-    moved = np.abs(X[-1] - X[0]) > 1e-3 * (1.0 + np.abs(X[0]))
-    return np.flatnonzero(same_way & (late >= early) & moved)
+    return np.flatnonzero(_one_way(X) & (late >= early))
+
+
+def _one_way(X: np.ndarray) -> np.ndarray:
+    """Per column of the iterates ``X`` (rows in order): moved the same way at every step,
+    and farther in all than rounding noise (1e-3 of its size plus one)."""
+    d = np.diff(X, axis=0)
+    same_way = np.all(d > 0, axis=0) | np.all(d < 0, axis=0)
+    return same_way & (np.abs(X[-1] - X[0]) > 1e-3 * (1.0 + np.abs(X[0])))
+
+
+def _free(x: np.ndarray, g: np.ndarray, lower: np.ndarray) -> np.ndarray:
+    """Parameters free to move: all but those near their lower bound (epsilon-active set)
+    whose gradient pushes them towards it."""
+    return ~((x <= lower + 1e-3) & (g > 0))
 
 
 def _direction(obj, x, f, g, h, part, newton_ok: bool, free: np.ndarray | None):
@@ -209,8 +221,7 @@ def _scoring(obj, x: np.ndarray, *, max_iter: int, tol: float, lower: np.ndarray
     for it in range(1, max_iter + 1):
         free = None
         if lower is not None:
-            # epsilon-active set: near the bound and pushed towards it
-            free = ~((x <= lower + 1e-3) & (g > 0))
+            free = _free(x, g, lower)
         done, step = _reuse(hx, g, part, f, tol) if hx is not None else (False, None)
         if done:
             return x, f, g, h, 0, it - 1, none
@@ -329,7 +340,7 @@ def _decrement(obj, x: np.ndarray, g: np.ndarray, h: np.ndarray, lower: np.ndarr
     parameters free to move (those at a lower bound and pushed towards it excluded)."""
     if lower is None:
         return -float(g @ _solve(h, g, getattr(obj, "partition", None)))
-    free = ~((x <= lower + 1e-3) & (g > 0))
+    free = _free(x, g, lower)
     return -float(g[free] @ _solve(h[np.ix_(free, free)], g[free])) if free.any() else 0.0
 
 
@@ -349,14 +360,11 @@ def _keeps_running(points: list[np.ndarray], funs: list[float], decrements: list
     edge of the admissible region never deliver.
     """
     X = np.asarray(points)[:, list(flagged)]
-    d = np.diff(X, axis=0)
-    same_way = np.all(d > 0, axis=0) | np.all(d < 0, axis=0)
-    moved = np.abs(X[-1] - X[0]) > 1e-3 * (1.0 + np.abs(X[0]))
     lam = np.asarray(decrements)
     half = lam.size // 2
     short = np.all(-np.diff(funs) < PROBE_DELIVER * lam[:-1] / 2)
     steady = lam[half:].mean() >= PROBE_KEEP * lam[:half].mean() and lam.min() > 1e-6 * max(1.0, abs(funs[-1]))
-    return bool(np.any(same_way & moved) and short and steady)
+    return bool(np.any(_one_way(X)) and short and steady)
 
 
 class _Confirmed(Exception):
