@@ -24,7 +24,6 @@ from ..data.em import PatternMoments, em_saturated, pattern_moments, pattern_ter
 from ..data.moments import SampleStats
 from ..model.spec import ModelSpec
 from .kernels import (
-    compile_spec,
     factor_jacobian,
     factored_gradient,
     factored_information,
@@ -32,10 +31,9 @@ from .kernels import (
     gram,
     group_matrices,
     implied_moments,
-    layout_jacobians,
 )
 from .ml_kernels import second_derivative_part
-from .linalg import partition
+from .objective import GroupObjective
 
 __all__ = ["FIMLObjective", "independence_loglik", "pattern_m2ll"]
 
@@ -68,7 +66,7 @@ def pattern_m2ll(pm: PatternMoments, sigma: np.ndarray, mu: np.ndarray, *, parts
     return (val, W, d, C) if parts else val
 
 
-class FIMLObjective:
+class FIMLObjective(GroupObjective):
     """Full-information ML over missingness patterns, one term per group and pattern.
 
     Same interface as :class:`~invariance.estimate.objective.MLObjective`: ``value``
@@ -89,10 +87,7 @@ class FIMLObjective:
     """
 
     def __init__(self, spec: ModelSpec, stats: SampleStats) -> None:
-        self.spec = spec
-        self.stats = stats
-        self.layouts = compile_spec(spec)
-        self.n_params = spec.n_params
+        self._setup(spec, stats)
         self.data = []
         for g in stats.groups:
             h1 = None
@@ -103,40 +98,20 @@ class FIMLObjective:
         self.S = [g.cov for g in stats.groups]
         self.mean = [g.mean for g in stats.groups]
         self.loglik_h1 = float(sum(d.loglik_h1 for d in self.data))
-        #: shared vs group-local parameters: the information matrix is arrow-shaped
-        #: (one group: a plain dense matrix, no partition)
-        self.partition = (partition([lay.params for lay in self.layouts], self.n_params)
-                          if len(self.layouts) > 1 else None)
-        self._last: tuple | None = None
 
-    # -- the last point ----------------------------------------------------------------
-    def _at(self, theta: np.ndarray) -> list[list]:
-        """Per group [mats, G, A, value, W, d, C, factored Jacobian, K'WK] at ``theta``
-        (:func:`pattern_m2ll` with parts; raises LinAlgError when a pattern's block is
-        not positive definite). The last point is kept, so the value, the derivatives
-        and the Hessian at one point share one batched factorization; the Jacobian and
-        the Gram matrices are built on first use (a rejected trial point of the line
-        search needs neither)."""
-        key = theta.tobytes()
-        if self._last is not None and self._last[0] == key:
-            return self._last[1]
-        parts = []
-        for lay, d in zip(self.layouts, self.data):
-            mats = group_matrices(lay, theta)
-            sigma, mu, G, A = implied_moments(mats)
-            parts.append([mats, G, A, *pattern_m2ll(d.pm, sigma, mu, parts=True), None, None])
-        self._last = (key, parts)
-        return parts
+    # -- the kept point (:class:`~invariance.estimate.objective.GroupObjective`) --------
+    def _parts(self, g: int, lay, theta: np.ndarray) -> list:
+        """[mats, G, A, value, W, d, C, factored Jacobian, K'WK] of group ``g``
+        (:func:`pattern_m2ll` with parts, all patterns in one batched factorization;
+        the Jacobian and the Gram matrices on first use)."""
+        mats = group_matrices(lay, theta)
+        sigma, mu, G, A = implied_moments(mats)
+        return [mats, G, A, *pattern_m2ll(self.data[g].pm, sigma, mu, parts=True), None, None]
 
-    def _jacobians(self, theta: np.ndarray) -> list[list]:
-        """:meth:`_at` with the factored Jacobian and K'WK of every group filled in."""
-        parts = self._at(theta)
-        for lay, part in zip(self.layouts, parts):
-            if part[7] is None:
-                mats, G, A = part[:3]
-                part[7] = factor_jacobian(lay, mats, G, A)
-                part[8] = gram(part[7].H, part[4])
-        return parts
+    def _complete(self, lay, part: list) -> None:
+        if part[7] is None:
+            part[7] = factor_jacobian(lay, part[0], part[1], part[2])
+            part[8] = gram(part[7].H, part[4])
 
     # -- likelihood -----------------------------------------------------------------
     def loglik(self, theta: np.ndarray) -> float:
@@ -155,15 +130,6 @@ class FIMLObjective:
         matrices = tuple(group_matrices(lay, theta) for lay in self.layouts)
         moments = [implied_moments(m)[:2] for m in matrices]
         return matrices, tuple(s for s, _ in moments), tuple(mu for _, mu in moments)
-
-    def moments(self, theta: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
-        """Implied (Sigma, mu) of every group."""
-        _, sigmas, mus = self.implied(theta)
-        return list(zip(sigmas, mus))
-
-    def jacobians(self, theta: np.ndarray):
-        """Per group: (matrices, Sigma, mu, dS, dm) at ``theta`` (local parameters)."""
-        return layout_jacobians(self.layouts, theta)
 
     def derivatives(self, theta: np.ndarray, *, information: bool = True):
         q = self.n_params

@@ -27,10 +27,54 @@ from .kernels import (
 )
 from .ml_kernels import ml_derivatives, ml_discrepancy, ml_hessian
 
-__all__ = ["MLObjective"]
+__all__ = ["GroupObjective", "MLObjective"]
 
 
-class MLObjective:
+class GroupObjective:
+    """What the multi-group objectives share: the compiled layout of every group, the
+    arrow partition of shared and group-local parameters (one group: none, a dense
+    matrix), and the kept last point.
+
+    The value, the derivatives and the Hessian at one point share one set of per-group
+    parts (:meth:`_at`, built by the subclass's ``_parts``); the parts only derivatives
+    need are filled on first use (:meth:`_jacobians`, the subclass's ``_complete``), so
+    a rejected trial point of the line search costs only its value.
+    """
+
+    def _setup(self, spec: ModelSpec, stats: SampleStats) -> None:
+        self.spec = spec
+        self.stats = stats
+        self.layouts = compile_spec(spec)
+        self.n_params = spec.n_params
+        self.partition = (partition([lay.params for lay in self.layouts], self.n_params)
+                          if len(self.layouts) > 1 else None)
+        self._kept: tuple[bytes, list] | None = None
+
+    def _at(self, theta: np.ndarray) -> list[list]:
+        """The parts of every group at ``theta`` (LinAlgError when not admissible)."""
+        key = theta.tobytes()
+        if self._kept is None or self._kept[0] != key:
+            self._kept = (key, [self._parts(g, lay, theta) for g, lay in enumerate(self.layouts)])
+        return self._kept[1]
+
+    def _jacobians(self, theta: np.ndarray) -> list[list]:
+        """:meth:`_at` with the parts derivatives need filled in."""
+        parts = self._at(theta)
+        for lay, part in zip(self.layouts, parts):
+            self._complete(lay, part)
+        return parts
+
+    def moments(self, theta: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
+        """Implied (Sigma, mu) of every group."""
+        _, sigmas, mus = self.implied(theta)
+        return list(zip(sigmas, mus))
+
+    def jacobians(self, theta: np.ndarray):
+        """Per group: (matrices, Sigma, mu, dS, dm) at ``theta`` (local parameters)."""
+        return layout_jacobians(self.layouts, theta)
+
+
+class MLObjective(GroupObjective):
     """Normal-theory ML from per-group sufficient statistics.
 
     The value is the test statistic T = sum_g N_g F_g (METHODS section 2); the
@@ -38,47 +82,24 @@ class MLObjective:
     """
 
     def __init__(self, spec: ModelSpec, stats: SampleStats) -> None:
-        self.spec = spec
-        self.stats = stats
-        self.layouts = compile_spec(spec)
-        self.n_params = spec.n_params
+        self._setup(spec, stats)
         self.n = np.array([g.n for g in stats.groups], dtype=float)
         self.S = [g.cov for g in stats.groups]
         self.mean = [g.mean for g in stats.groups]
         self.logdet_s = [float(np.linalg.slogdet(s)[1]) for s in self.S]
-        #: shared vs group-local parameters: the information matrix is arrow-shaped
-        #: (one group: a plain dense matrix, no partition)
-        self.partition = (partition([lay.params for lay in self.layouts], self.n_params)
-                          if len(self.layouts) > 1 else None)
-        self._point: tuple[bytes, list] | None = None
         #: one group owning every parameter in order: its arrays are the totals (no scatter)
         self._whole = len(self.layouts) == 1 and np.array_equal(self.layouts[0].params, np.arange(self.n_params))
 
-    def _at(self, theta: np.ndarray) -> list[list]:
-        """Per group [mats, Sigma, mu, G, A, W, log|Sigma|, factored Jacobian] at ``theta``
-        (raises LinAlgError when a Sigma is not positive definite). The last point is
-        kept, so the value, the derivatives and the Hessian at one point share one
-        factorization; the Jacobian is built on first use (a rejected trial point of the
-        line search needs none)."""
-        key = theta.tobytes()
-        if self._point is None or self._point[0] != key:
-            parts = []
-            for lay in self.layouts:
-                mats = group_matrices(lay, theta)
-                sigma, mu, G, A = implied_moments(mats)
-                W, logdet = pd_inverse_logdet(sigma)
-                parts.append([mats, sigma, mu, G, A, W, logdet, None])
-            self._point = (key, parts)
-        return self._point[1]
+    def _parts(self, g: int, lay, theta: np.ndarray) -> list:
+        """[mats, Sigma, mu, G, A, W, log|Sigma|, factored Jacobian (on first use)]."""
+        mats = group_matrices(lay, theta)
+        sigma, mu, G, A = implied_moments(mats)
+        W, logdet = pd_inverse_logdet(sigma)
+        return [mats, sigma, mu, G, A, W, logdet, None]
 
-    def _jacobians(self, theta: np.ndarray) -> list[list]:
-        """:meth:`_at` with the factored Jacobian of every group filled in."""
-        parts = self._at(theta)
-        for lay, part in zip(self.layouts, parts):
-            if part[7] is None:
-                mats, _, _, G, A = part[:5]
-                part[7] = factor_jacobian(lay, mats, G, A)
-        return parts
+    def _complete(self, lay, part: list) -> None:
+        if part[7] is None:
+            part[7] = factor_jacobian(lay, part[0], part[3], part[4])
 
     def implied(self, theta: np.ndarray) -> tuple[tuple, tuple, tuple]:
         """(matrices, Sigma, mu) of every group at ``theta``: copies of the kept point's
@@ -86,11 +107,6 @@ class MLObjective:
         parts = self._at(theta)
         return (tuple(tuple(m.copy() for m in p[0]) for p in parts), tuple(p[1].copy() for p in parts),
                 tuple(p[2].copy() for p in parts))
-
-    def moments(self, theta: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
-        """Implied (Sigma, mu) of every group."""
-        _, sigmas, mus = self.implied(theta)
-        return list(zip(sigmas, mus))
 
     def group_values(self, theta: np.ndarray) -> np.ndarray:
         """F_g of every group (LinAlgError when a Sigma is not positive definite)."""
@@ -104,10 +120,6 @@ class MLObjective:
             return float(self.n @ self.group_values(theta))
         except np.linalg.LinAlgError:
             return np.inf
-
-    def jacobians(self, theta: np.ndarray):
-        """Per group: (matrices, Sigma, mu, dS, dm) at ``theta`` (local parameters)."""
-        return layout_jacobians(self.layouts, theta)
 
     def derivatives(self, theta: np.ndarray, *, information: bool = True):
         q = self.n_params
