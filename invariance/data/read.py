@@ -235,10 +235,11 @@ def apply_missing(frame, missing: Sequence[float] | Mapping[str, Sequence[float]
     Returns
     -------
     pandas.DataFrame
-        A copy with the codes replaced.
+        A copy with the codes replaced; ``frame`` itself when there are no codes
+        (nothing to replace, so no copy of the data).
     """
     if not missing:
-        return frame.copy()
+        return frame
     out = frame.copy()
     if isinstance(missing, Mapping):
         for col, codes in missing.items():

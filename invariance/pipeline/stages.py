@@ -37,7 +37,7 @@ __all__ = ["STAGES", "Stage", "stage_data", "stage_stats", "stage_levels", "stag
 def stage_data(spec: PipelineSpec, state: RunState) -> StageOutput:
     """Read the data, apply missing codes and run the checks (nothing is fitted)."""
     raw = read_table(spec.data_path, format=spec.data_format, sheet=spec.data_sheet, text_columns=(spec.group,))
-    frame = apply_missing(raw, spec.missing) if spec.missing else raw  # nothing to replace: no copy
+    frame = apply_missing(raw, spec.missing)
     checked = check_data(
         frame,
         items=spec.structure.items,
