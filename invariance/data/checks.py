@@ -17,6 +17,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DataError, shorten
+from .moments import split_rows
 
 __all__ = ["CheckedData", "check_data", "far_out_columns", "far_out_values", "MAX_MAGNITUDE", "SMALL_GROUP"]
 
@@ -122,7 +123,9 @@ def check_data(
     present = sorted(set(labels.uniques), key=_sort_key)
     groups = _select_groups(present, group=group, groups=groups, reference=reference)
     member = labels.member(groups)
-    blocks = dict(zip(groups, _split_rows(values, member, len(groups))))
+    blocks = dict(zip(groups, split_rows(values, member, len(groups))))
+    for block in blocks.values():
+        block.flags.writeable = False
     rows, complete, missing = _count_groups(
         blocks, items, complete_cases_needed=complete_cases_needed, warnings=warnings
     )
@@ -139,21 +142,6 @@ def check_data(
         row_group=member[keep],
         warnings=tuple(warnings),
     )
-
-
-def _split_rows(values: np.ndarray, member: np.ndarray, n_groups: int) -> list[np.ndarray]:
-    """The rows of ``values`` of each group ``k < n_groups`` (``member``: row -> group, -1
-    for none), in data order, as read-only arrays; one stable sort, so the cost does not
-    grow with the number of groups times the rows."""
-    order = np.argsort(member, kind="stable")
-    counts = np.bincount(member + 1, minlength=n_groups + 1)
-    bounds = np.cumsum(counts)
-    out = []
-    for k in range(n_groups):
-        block = values[order[bounds[k]:bounds[k + 1]]]
-        block.flags.writeable = False
-        out.append(block)
-    return out
 
 
 def _check_columns(frame, items: tuple[str, ...], group: str) -> None:
