@@ -49,6 +49,7 @@ from scipy import special as _sp
 import pandas as pd
 
 from ..errors import DataError, SpecificationError
+from .moments import group_arrays
 from .screening_advice import recommend
 
 __all__ = [
@@ -438,18 +439,15 @@ def _screening_rules(rules: Mapping[str, float] | None) -> dict[str, float]:
 def _group_parts(
     frame, items: list[str], group: str | None, groups: Sequence[str] | None
 ) -> list[tuple[str, np.ndarray]]:
-    """(group name, item array) per group, in the given order or that of first appearance."""
+    """(group name, item array) per group, in the given order or that of first appearance
+    (:func:`~invariance.data.moments.group_arrays`)."""
     try:
-        X = frame[items].to_numpy(dtype=float)
+        arrays, names = group_arrays(frame, items, group, groups=groups)
     except (TypeError, ValueError):
         raise DataError(
             "An item column holds values that are not numbers; recode it or declare its missing codes."
         ) from None
-    if group is None:
-        return [("all", X)]
-    keys = frame[group]
-    order = list(dict.fromkeys(keys.dropna().tolist())) if groups is None else list(groups)
-    parts = [(str(g), X[(keys == g).to_numpy()]) for g in order]
+    parts = list(zip(names, arrays))
     empty = [name for name, x in parts if x.shape[0] == 0]
     if empty:
         raise DataError(f"Group {empty[0]!r} has no cases in column {group!r}; check the group names.")
