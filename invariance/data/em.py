@@ -153,8 +153,9 @@ def _pattern_moments(x: np.ndarray) -> PatternMoments:
     pat = missing_patterns(x)
     order = np.argsort(pat.case_pattern, kind="stable")
     bounds = np.r_[0, np.cumsum(pat.counts)]
-    observed = ~np.isnan(x[order])
-    xs = np.where(observed, x[order], 0.0)
+    xo = x[order]
+    observed = ~np.isnan(xo)
+    xs = np.where(observed, xo, 0.0)
     counts = pat.counts.astype(float)
     means = np.add.reduceat(xs, bounds[:-1], axis=0) / counts[:, None]
     e = (xs - means[pat.case_pattern[order]]) * observed

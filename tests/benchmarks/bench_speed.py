@@ -49,28 +49,22 @@ def cpu(fn, repeat: int, *, fresh: bool = True):
 
     ``fresh`` empties the statistics cache before every call, so cached work is counted.
     """
-    fn()
-    times, out = [], None
-    for _ in range(repeat):
-        if fresh:
-            CACHE.clear()
-        t = time.process_time()
-        out = fn()
-        times.append(time.process_time() - t)
-    return statistics.median(times), out
+    return cpu_interleaved({"fn": fn}, repeat, fresh=fresh)["fn"]
 
 
-def cpu_interleaved(fns: dict, repeat: int) -> dict:
+def cpu_interleaved(fns: dict, repeat: int, *, fresh: bool = True) -> dict:
     """Median CPU time and last value of each of ``fns`` (name -> callable), measured in
     interleaved rounds (one call of each per round, after one warm-up round), so that a
-    change in the machine's load during the run hits every contender alike."""
+    change in the machine's load during the run hits every contender alike; ``fresh`` as
+    in :func:`cpu`."""
     for fn in fns.values():
         fn()
     times: dict = {k: [] for k in fns}
     out: dict = {}
     for _ in range(repeat):
         for k, fn in fns.items():
-            CACHE.clear()
+            if fresh:
+                CACHE.clear()
             t = time.process_time()
             out[k] = fn()
             times[k].append(time.process_time() - t)
