@@ -106,9 +106,10 @@ def item_moments(x: np.ndarray) -> dict[str, np.ndarray]:
     xz = np.where(obs, x, 0.0)
     mean = xz.sum(axis=0) / nn
     dev = np.where(obs, x - mean, 0.0)
-    m2 = (dev**2).sum(axis=0) / nn
-    m3 = (dev**3).sum(axis=0) / nn
-    m4 = (dev**4).sum(axis=0) / nn
+    sq = dev * dev  # products, not powers: ** 3 and ** 4 go through libm pow (50x slower)
+    m2 = sq.sum(axis=0) / nn
+    m3 = (sq * dev).sum(axis=0) / nn
+    m4 = (sq * sq).sum(axis=0) / nn
     with np.errstate(divide="ignore", invalid="ignore"):
         sd = np.where(n > 1, np.sqrt(m2 * nn / np.maximum(nn - 1, 1)), np.nan)
         skew = np.where(m2 > 0, m3 / m2**1.5, np.nan)
