@@ -164,6 +164,7 @@ def test_far_out_columns_skip_only_columns_that_cannot_hold_far_values():
             np.where(rng.random(n) < 0.05, 9.0, rng.integers(0, 4, n)),  # 0-3 scale with 9
             rng.integers(1, 6, n) + np.where(rng.random(n) < 0.03, 95.0, 0.0),  # 1-5 with 96-100
             np.round(rng.normal(0, 5, n)),                     # wide whole numbers
+            np.where(rng.random(n) < 0.05, 5.0, rng.choice([0.0, 1.0, 2.0], n, p=[0.1, 0.8, 0.1])),  # range 5 by a code
         ]
         x = np.column_stack(cols)
         x[rng.random(x.shape) < 0.15] = np.nan
