@@ -1,20 +1,30 @@
-"""Missingness patterns and the saturated (H1) normal model by EM: pure array functions.
+"""The saturated (H1) normal model of incomplete data by EM: pure array functions.
 
 The saturated model of incomplete multivariate normal data has free means and a free
 covariance matrix; its ML estimates under MAR come from the EM algorithm (Dempster,
 Laird & Rubin 1977; the normal-data form in Little & Rubin 2002, chapter 11). The
 maximized log-likelihood is the reference logL_H1 of the full-information test statistic
-T = -2 (logL_model - logL_H1) (METHODS section 6).
+T = -2 (logL_model - logL_H1) (METHODS section 6). The pattern statistics it works on
+come from :mod:`invariance.data.patterns` (re-exported here).
 """
 
 from __future__ import annotations
 
-import hashlib
-from collections import OrderedDict
 from dataclasses import dataclass
-from functools import cached_property
 
 import numpy as np
+
+from .patterns import (
+    CACHE,
+    ContentCache,
+    PatternMoments,
+    Patterns,
+    missing_patterns,
+    pattern_loglik,
+    pattern_loglik_moments,
+    pattern_moments,
+    pattern_terms,
+)
 
 __all__ = [
     "Patterns",
@@ -31,276 +41,6 @@ __all__ = [
 ]
 
 _LOG2PI = float(np.log(2 * np.pi))
-
-
-@dataclass(frozen=True, eq=False)
-class Patterns:
-    """Missingness patterns of an (n, p) array.
-
-    Attributes
-    ----------
-    observed
-        (K, p) boolean, True where the pattern observes the item; patterns are sorted
-        by decreasing number of observed items, then by first appearance.
-    case_pattern
-        (n,) pattern index of every case.
-    counts
-        (K,) cases per pattern.
-    rows
-        Per pattern, the row indices of its cases.
-    """
-
-    observed: np.ndarray
-    case_pattern: np.ndarray
-    counts: np.ndarray
-    rows: tuple[np.ndarray, ...]
-
-    @property
-    def n_patterns(self) -> int:
-        return int(self.observed.shape[0])
-
-
-def missing_patterns(x: np.ndarray) -> Patterns:
-    """Group the rows of ``x`` (NaN = missing) by their pattern of observed items."""
-    x = np.asarray(x, dtype=float)
-    obs = ~np.isnan(x)
-    if obs.shape[1] <= 62:
-        # one integer code per row: unique on a 1-d array is far cheaper than on rows
-        codes = obs.astype(np.int64) @ (np.int64(1) << np.arange(obs.shape[1], dtype=np.int64))
-        _, first, inv = np.unique(codes, return_index=True, return_inverse=True)
-        uniq = obs[first]
-    else:
-        uniq, first, inv = np.unique(obs, axis=0, return_index=True, return_inverse=True)
-    inv = np.asarray(inv).reshape(-1)
-    order = np.lexsort((first, -uniq.sum(axis=1)))
-    rank = np.empty_like(order)
-    rank[order] = np.arange(order.size)
-    case = rank[inv]
-    observed = uniq[order]
-    counts = np.bincount(case, minlength=order.size)
-    rows = tuple(np.flatnonzero(case == k) for k in range(order.size))
-    return Patterns(observed, case, counts, rows)
-
-
-@dataclass(frozen=True, eq=False)
-class PatternMoments:
-    """Sufficient statistics of incomplete data, one block per missingness pattern.
-
-    Arrays are padded to all ``p`` items: entries of items a pattern does not observe
-    are 0, so every pattern is one slice of a stack and the patterns are processed in
-    one batched call (METHODS section 14).
-
-    Attributes
-    ----------
-    observed
-        (K, p) boolean: the items each pattern observes (patterns with none dropped).
-    counts
-        (K,) cases per pattern, as floats.
-    means
-        (K, p) pattern means over the observed items.
-    covs
-        (K, p, p) pattern covariances (divisor n_k) over the observed items.
-    """
-
-    observed: np.ndarray
-    counts: np.ndarray
-    means: np.ndarray
-    covs: np.ndarray
-
-    @property
-    def n(self) -> float:
-        return float(self.counts.sum())
-
-    @cached_property
-    def blocks(self) -> "_Blocks":
-        """Index arrays and masks of :func:`pattern_terms` (computed once)."""
-        return _Blocks.of(self.observed)
-
-    def reorder(self, ix) -> "PatternMoments":
-        """The same statistics with items in the order ``ix`` (new item i = old ix[i])."""
-        ix = np.asarray(ix)
-        return PatternMoments(self.observed[:, ix], self.counts, self.means[:, ix], self.covs[:, ix][:, :, ix])
-
-
-@dataclass(frozen=True, eq=False)
-class _Blocks:
-    """The split of :func:`pattern_terms`: ``order`` lists the items every pattern
-    observes (``n_always`` of them, set A) before the others (set R); ``back`` undoes
-    that order; ``oo`` and ``oo_rest`` mask the padded blocks over all items and over R
-    (in ``order``). ``schur`` says whether the split pays (A and R both nonempty,
-    several patterns)."""
-
-    order: np.ndarray
-    back: np.ndarray
-    n_always: int
-    oo: np.ndarray
-    oo_rest: np.ndarray
-    schur: bool
-
-    @classmethod
-    def of(cls, observed: np.ndarray) -> "_Blocks":
-        every = observed.all(axis=0)
-        order = np.concatenate([np.flatnonzero(every), np.flatnonzero(~every)])
-        na = int(every.sum())
-        o = observed[:, order[na:]]
-        return cls(order, np.argsort(order), na, observed[:, :, None] & observed[:, None, :],
-                   o[:, :, None] & o[:, None, :], bool(0 < na < every.size and observed.shape[0] > 1))
-
-
-def _pattern_moments(x: np.ndarray) -> PatternMoments:
-    """Pattern statistics from the cases sorted by pattern: means by segment sums, then
-    the centred cross products of each contiguous segment (missing entries zero)."""
-    pat = missing_patterns(x)
-    order = np.argsort(pat.case_pattern, kind="stable")
-    bounds = np.r_[0, np.cumsum(pat.counts)]
-    xo = x[order]
-    observed = ~np.isnan(xo)
-    xs = np.where(observed, xo, 0.0)
-    counts = pat.counts.astype(float)
-    means = np.add.reduceat(xs, bounds[:-1], axis=0) / counts[:, None]
-    e = (xs - means[pat.case_pattern[order]]) * observed
-    covs = np.empty((pat.n_patterns, x.shape[1], x.shape[1]))
-    for k in range(pat.n_patterns):
-        seg = e[bounds[k]:bounds[k + 1]]
-        covs[k] = seg.T @ seg / counts[k]
-    keep = pat.observed.any(axis=1)
-    return PatternMoments(pat.observed[keep], counts[keep], means[keep], covs[keep])
-
-
-class ContentCache:
-    """Results of pure functions of a data array, keyed by the array's content.
-
-    The key does not depend on the order of the columns: a result is computed once in
-    a canonical column order and handed out reordered (``result.reorder(ix)``), so
-    statistics whose items were reordered (levels, refits, the MCAR test) still hit.
-    Holds at most ``size`` results (oldest dropped first).
-    """
-
-    def __init__(self, size: int = 512) -> None:
-        self.size = size
-        self._store: "OrderedDict[tuple, object]" = OrderedDict()
-
-    @staticmethod
-    def key(x: np.ndarray) -> tuple[tuple, np.ndarray]:
-        """(content key, canonical column order) of ``x``."""
-        x = np.asarray(x, dtype=float)
-        cols = [hashlib.blake2b(np.ascontiguousarray(x[:, j]).tobytes(), digest_size=16).digest() for j in range(x.shape[1])]
-        order = np.array(sorted(range(x.shape[1]), key=cols.__getitem__), dtype=np.int64)
-        return (x.shape, b"".join(cols[j] for j in order)), order
-
-    def get(self, kind: str, x: np.ndarray, compute):
-        """``compute(x)`` through the cache; ``compute`` must return an object with ``reorder``."""
-        x = np.asarray(x, dtype=float)
-        key, order = self.key(x)
-        full = (kind, key)
-        hit = self._store.get(full)
-        if hit is None:
-            hit = compute(x[:, order])
-            self._store[full] = hit
-            if len(self._store) > self.size:
-                self._store.popitem(last=False)
-        else:
-            self._store.move_to_end(full)
-        return hit.reorder(np.argsort(order))
-
-    def clear(self) -> None:
-        self._store.clear()
-
-
-#: the one cache of per-group statistics computed from raw data (patterns, EM, H1 information)
-CACHE = ContentCache()
-
-
-def pattern_moments(x: np.ndarray) -> PatternMoments:
-    """Per-pattern counts, means and covariances of ``x`` (NaN = missing), cached by content."""
-    return CACHE.get("patterns", x, _pattern_moments)
-
-
-def pattern_terms(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray):
-    """Batched inverse, log-determinant and mean residual of every pattern's block.
-
-    Items every pattern observes (set A) are factored once: with the Schur complement
-    Z = Sigma_RR - Sigma_RA Sigma_AA^-1 Sigma_AR of the other items R, each pattern's
-    block needs only the inverse of Z restricted to its observed items of R
-    (:func:`_schur_terms`; the block inverse, e.g. Harville 1997, section 8.5). Without
-    such a split each Sigma_oo is padded to p x p with the identity on the unobserved
-    items, so one stacked Cholesky factorization covers all patterns; the inverse is
-    zeroed outside the observed block.
-
-    Returns
-    -------
-    W : (K, p, p)
-        Sigma_oo^-1, zero outside the observed block.
-    logdet : (K,)
-        log|Sigma_oo|.
-    d : (K, p)
-        m_k - mu_o, zero on unobserved items.
-
-    Raises
-    ------
-    numpy.linalg.LinAlgError
-        When a block is not positive definite.
-    """
-    d = (pm.means - mean[None]) * pm.observed
-    b = pm.blocks
-    if b.schur:
-        W, logdet = _schur_terms(b, cov)
-        return W, logdet, d
-    pad = np.where(b.oo, cov[None], np.eye(cov.shape[0])[None])
-    R = np.linalg.cholesky(pad)
-    logdet = 2.0 * np.log(np.diagonal(R, axis1=1, axis2=2)).sum(axis=1)
-    W = np.linalg.inv(pad) * b.oo
-    return W, logdet, d
-
-
-def _schur_terms(b: _Blocks, cov: np.ndarray):
-    """(W, logdet) of :func:`pattern_terms` through the items every pattern observes.
-
-    With A the items every pattern observes, R the others, P = Sigma_AA^-1,
-    G = P Sigma_AR, Z = Sigma_RR - Sigma_RA G and Y_k the padded inverse of Z over
-    pattern k's observed items of R: W_k = [[P + G Y_k G', -G Y_k], [-Y_k G', Y_k]] and
-    log|Sigma_oo| = log|Sigma_AA| + log|Z_oo|. Sigma_oo is positive definite exactly
-    when Sigma_AA and Z_oo are, so the same blocks fail as in the direct computation.
-    """
-    na = b.n_always
-    c = cov[b.order[:, None], b.order]
-    saa, sar = c[:na, :na], c[:na, na:]
-    la = np.linalg.cholesky(saa)
-    P = np.linalg.inv(saa)
-    G = P @ sar
-    Z = c[na:, na:] - sar.T @ G
-    pad = np.where(b.oo_rest, ((Z + Z.T) / 2)[None], np.eye(Z.shape[0])[None])
-    lz = np.linalg.cholesky(pad)
-    Y = np.linalg.inv(pad) * b.oo_rest
-    logdet = 2.0 * (np.log(np.diag(la)).sum() + np.log(np.diagonal(lz, axis1=1, axis2=2)).sum(axis=1))
-    YG = Y @ G.T                                                     # (K, |R|, |A|)
-    W = np.empty(b.oo.shape)
-    W[:, :na, :na] = P + G @ YG
-    W[:, na:, :na] = -YG
-    W[:, :na, na:] = -YG.transpose(0, 2, 1)
-    W[:, na:, na:] = Y
-    return W[:, b.back[:, None], b.back], logdet
-
-
-def pattern_loglik_moments(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray) -> float:
-    """Normal log-likelihood of incomplete data from its pattern statistics.
-
-    sum_k -n_k/2 [p_k log 2pi + log|Sigma_oo| + tr(Sigma_oo^-1 (S_k + d_k d_k'))].
-    """
-    W, logdet, d = pattern_terms(pm, mean, cov)
-    quad = np.einsum("kij,kij->k", W, pm.covs) + np.einsum("ki,kij,kj->k", d, W, d)
-    pk = pm.observed.sum(axis=1)
-    return float(-0.5 * pm.counts @ (pk * _LOG2PI + logdet + quad))
-
-
-def pattern_loglik(x: np.ndarray, pat: Patterns | None, mean: np.ndarray, cov: np.ndarray) -> float:
-    """Normal log-likelihood of incomplete data: every case on its observed items.
-
-    ``pat`` is accepted for compatibility and not needed: the pattern statistics of
-    ``x`` come from the cache.
-    """
-    return pattern_loglik_moments(pattern_moments(x), mean, cov)
-
 
 @dataclass(frozen=True, eq=False)
 class EMResult:
