@@ -17,9 +17,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats as _st
+from scipy import special as _sp
 
-from .em import em_saturated, pattern_moments, pattern_terms
+from .em import pattern_moments, pattern_terms, saturated_with_patterns
 
 __all__ = ["LittleTest", "little_mcar", "missing_report"]
 
@@ -66,15 +66,18 @@ def little_mcar(
         p-value is nan.
     """
     x = np.asarray(x, dtype=float)
-    x = x[(~np.isnan(x)).any(axis=1)]
-    pm = pattern_moments(x)
+    seen = (~np.isnan(x)).any(axis=1)
+    if not seen.all():
+        x = x[seen]
     if mean is None or cov is None:
-        em = em_saturated(x)
+        em, pm = saturated_with_patterns(x)
         mean, cov = em.mean, em.cov
+    else:
+        pm = pattern_moments(x)
     W, _, d = pattern_terms(pm, mean, cov)
     d2 = float(pm.counts @ np.einsum("ki,kij,kj->k", d, W, d))
     df = int(pm.observed.sum()) - x.shape[1]
-    pval = float(_st.chi2.sf(d2, df)) if df > 0 else float("nan")
+    pval = float(_sp.chdtrc(df, d2)) if df > 0 else float("nan")  # = scipy.stats.chi2.sf
     return LittleTest(float(d2), int(df), pval, int(pm.counts.size), int(x.shape[0]))
 
 

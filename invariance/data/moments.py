@@ -20,7 +20,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ConvergenceWarning, DataError
-from .em import em_saturated, missing_patterns
+from .em import saturated_with_patterns
 
 __all__ = ["GroupStats", "MissingInfo", "SampleStats", "group_arrays", "sample_stats", "split_rows", "stats_from_arrays"]
 
@@ -224,9 +224,8 @@ def _full_information(name: str, x: np.ndarray, items: Sequence[str]) -> GroupSt
     const = np.flatnonzero(sd <= 1e-12 * np.maximum(1.0, np.abs(np.nanmean(xu, axis=0))))
     if const.size:
         raise DataError(f"Item {items[const[0]]!r} is constant in group {name!r}; drop the item or the group.")
-    pat = missing_patterns(xu)
     try:
-        em = em_saturated(xu, patterns=pat)
+        em, pat = saturated_with_patterns(xu)
     except (np.linalg.LinAlgError, FloatingPointError, ValueError):
         i, j = np.unravel_index(np.argmin(pair + np.diag(np.full(p, np.inf))), pair.shape)
         raise DataError(
@@ -248,7 +247,7 @@ def _full_information(name: str, x: np.ndarray, items: Sequence[str]) -> GroupSt
             f"combination of others, or too few cases observe some pairs); drop the redundant item."
         )
     info = MissingInfo(
-        "fiml", int(x.shape[0]), int((~keep).sum()), pat.observed, pat.counts, count / n,
+        "fiml", int(x.shape[0]), int((~keep).sum()), pat.observed, pat.counts.astype(np.int64), count / n,
         em.loglik, em.iterations, em.converged,
     )
     return GroupStats(name, int(n), em.mean, em.cov, xu, info)

@@ -21,6 +21,7 @@ __all__ = [
     "missing_patterns",
     "PatternMoments",
     "pattern_moments",
+    "pattern_moments_by_key",
     "pattern_terms",
     "pattern_loglik",
     "pattern_loglik_moments",
@@ -60,6 +61,12 @@ class Patterns:
 
 def missing_patterns(x: np.ndarray) -> Patterns:
     """Group the rows of ``x`` (NaN = missing) by their pattern of observed items."""
+    return _sorted_patterns(x)[0]
+
+
+def _sorted_patterns(x: np.ndarray) -> tuple[Patterns, np.ndarray]:
+    """:func:`missing_patterns` and the rows sorted by pattern (stable: data order within
+    a pattern), the concatenation of ``rows``."""
     x = np.asarray(x, dtype=float)
     obs = ~np.isnan(x)
     if obs.shape[1] <= 62:
@@ -74,10 +81,10 @@ def missing_patterns(x: np.ndarray) -> Patterns:
     rank = np.empty_like(order)
     rank[order] = np.arange(order.size)
     case = rank[inv]
-    observed = uniq[order]
     counts = np.bincount(case, minlength=order.size)
-    rows = tuple(np.flatnonzero(case == k) for k in range(order.size))
-    return Patterns(observed, case, counts, rows)
+    sort = np.argsort(case, kind="stable")
+    rows = tuple(np.split(sort, np.cumsum(counts)[:-1]))
+    return Patterns(uniq[order], case, counts, rows), sort
 
 
 @dataclass(frozen=True, eq=False)
@@ -148,19 +155,19 @@ class _Blocks:
 def _pattern_moments(x: np.ndarray) -> PatternMoments:
     """Pattern statistics from the cases sorted by pattern: means by segment sums, then
     the centred cross products of each contiguous segment (missing entries zero)."""
-    pat = missing_patterns(x)
-    order = np.argsort(pat.case_pattern, kind="stable")
+    pat, order = _sorted_patterns(x)
     bounds = np.r_[0, np.cumsum(pat.counts)]
     xo = x[order]
     observed = ~np.isnan(xo)
     xs = np.where(observed, xo, 0.0)
     counts = pat.counts.astype(float)
     means = np.add.reduceat(xs, bounds[:-1], axis=0) / counts[:, None]
-    e = (xs - means[pat.case_pattern[order]]) * observed
+    e = (xs - np.repeat(means, pat.counts, axis=0)) * observed
     covs = np.empty((pat.n_patterns, x.shape[1], x.shape[1]))
     for k in range(pat.n_patterns):
         seg = e[bounds[k]:bounds[k + 1]]
-        covs[k] = seg.T @ seg / counts[k]
+        np.matmul(seg.T, seg, out=covs[k])
+    covs /= counts[:, None, None]
     keep = pat.observed.any(axis=1)
     return PatternMoments(pat.observed[keep], counts[keep], means[keep], covs[keep])
 
@@ -180,16 +187,19 @@ class ContentCache:
 
     @staticmethod
     def key(x: np.ndarray) -> tuple[tuple, np.ndarray]:
-        """(content key, canonical column order) of ``x``."""
+        """(content key, canonical column order) of ``x``: one SHA-256 digest per column
+        (the hardware-accelerated hash of :mod:`hashlib`), the columns ordered by digest."""
         x = np.asarray(x, dtype=float)
-        cols = [hashlib.blake2b(np.ascontiguousarray(x[:, j]).tobytes(), digest_size=16).digest() for j in range(x.shape[1])]
+        xt = np.ascontiguousarray(x.T)
+        cols = [hashlib.sha256(col).digest() for col in xt]
         order = np.array(sorted(range(x.shape[1]), key=cols.__getitem__), dtype=np.int64)
         return (x.shape, b"".join(cols[j] for j in order)), order
 
-    def get(self, kind: str, x: np.ndarray, compute):
-        """``compute(x)`` through the cache; ``compute`` must return an object with ``reorder``."""
+    def get(self, kind: str, x: np.ndarray, compute, *, key: tuple[tuple, np.ndarray] | None = None):
+        """``compute(x)`` through the cache; ``compute`` must return an object with ``reorder``.
+        ``key`` is :meth:`key` of ``x`` when the caller has it already (no second hashing)."""
         x = np.asarray(x, dtype=float)
-        key, order = self.key(x)
+        key, order = self.key(x) if key is None else key
         full = (kind, key)
         hit = self._store.get(full)
         if hit is None:
@@ -212,6 +222,11 @@ CACHE = ContentCache()
 def pattern_moments(x: np.ndarray) -> PatternMoments:
     """Per-pattern counts, means and covariances of ``x`` (NaN = missing), cached by content."""
     return CACHE.get("patterns", x, _pattern_moments)
+
+
+def pattern_moments_by_key(x: np.ndarray, key: tuple[tuple, np.ndarray]) -> PatternMoments:
+    """:func:`pattern_moments` of ``x`` whose :meth:`ContentCache.key` the caller holds."""
+    return CACHE.get("patterns", x, _pattern_moments, key=key)
 
 
 def pattern_terms(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray):
