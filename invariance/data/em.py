@@ -86,6 +86,8 @@ class _Factored:
     mean_a: np.ndarray
     cov_a: np.ndarray
     sd_a: np.ndarray
+    eye: np.ndarray
+    n: float
 
     @classmethod
     def of(cls, pm: PatternMoments) -> "_Factored":
@@ -107,7 +109,7 @@ class _Factored:
         o = obs[:, a:]
         ll_const = -0.5 * (tot * a * (_LOG2PI + 1.0) + tot * logdet_a + float(n @ o.sum(axis=1)) * _LOG2PI)
         return cls(order, a, n, aug[:, :q, :q], aug[:, :q, q:], aug[:, q:, q:], o[:, :, None] & o[:, None, :],
-                   np.linalg.inv(szz), ll_const, mean_a, cov_a, np.sqrt(np.diag(cov_a)))
+                   np.linalg.inv(szz), ll_const, mean_a, cov_a, np.sqrt(np.diag(cov_a)), np.eye(p - a), tot)
 
     def regression(self, mean: np.ndarray, cov: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(beta, Z) of (mean, cov) given in the items' own order."""
@@ -133,27 +135,27 @@ class _Factored:
         the observed items) and its conditional covariance Z - F_k Z (Little & Rubin 2002,
         section 11.2); with E_k = sum e e' and D_k = sum z e' the M-step regression gives
         beta+ = beta + Szz^-1 D, D = sum_k D_k F_k', and
-        n Z+ = sum_k [F_k E_k F_k' + n_k (Z - F_k Z)] - D' Szz^-1 D.
+        n Z+ = sum_k [F_k E_k F_k' + n_k (Z - F_k Z)] - D' Szz^-1 D. Every sum over patterns
+        is taken before multiplying by Z, so F_k is never formed.
 
         Raises
         ------
         numpy.linalg.LinAlgError
             When Z over some pattern's observed items is not positive definite.
         """
-        eye = np.eye(z.shape[0])
-        pad = np.where(self.oo, z, eye)
+        pad = np.where(self.oo, z, self.eye)
         chol = np.linalg.cholesky(pad)
         y = np.linalg.inv(pad) * self.oo
-        f = z @ y
         dze = self.tzy - self.tzz @ beta                                    # sum z e'
         eee = self.tyy - beta.T @ self.tzy - dze.transpose(0, 2, 1) @ beta  # sum e e'
+        ye = y @ eee
         logdet = 2.0 * np.log(np.diagonal(chol, axis1=1, axis2=2)).sum(axis=1)
-        ll = self.ll_const - 0.5 * (self.counts @ logdet + np.vdot(y, eee))
-        ft = f.transpose(0, 2, 1)
-        d = (dze @ ft).sum(axis=0)
+        ll = self.ll_const - 0.5 * (self.counts @ logdet + np.trace(ye, axis1=1, axis2=2).sum())
+        # F_k = Z Y_k: sum_k D_k F_k' = (sum_k D_k Y_k) Z, sum_k F_k E_k F_k' = Z (sum_k Y_k E_k Y_k) Z
+        d = (dze @ y).sum(axis=0) @ z
         sd = self.szz_inv @ d
-        n = self.counts.sum()
-        z1 = ((f @ eee @ ft).sum(axis=0) + n * z - (self.counts @ f.reshape(f.shape[0], -1)).reshape(z.shape) @ z - d.T @ sd) / n
+        ny = (self.counts @ y.reshape(y.shape[0], -1)).reshape(z.shape)
+        z1 = z + (z @ ((ye @ y).sum(axis=0) - ny) @ z - d.T @ sd) / self.n
         return beta + sd, (z1 + z1.T) / 2, float(ll)
 
 

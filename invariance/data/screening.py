@@ -162,14 +162,16 @@ def item_total_correlations(x: np.ndarray) -> np.ndarray:
     n, p = x.shape
     if p < 2 or n < 3:
         return np.full(p, np.nan)
-    total = x.sum(axis=1)
-    out = np.empty(p)
-    for j in range(p):
-        rest = total - x[:, j]
-        a, b = x[:, j] - x[:, j].mean(), rest - rest.mean()
-        den = np.sqrt((a @ a) * (b @ b))
-        out[j] = a @ b / den if den > 0 else np.nan
-    return out
+    # from the cross products C of the centred items: (item, total) = row sums of C, and
+    # rest = total - item, so (item, rest) = row sum - C_jj and
+    # (rest, rest) = sum C - 2 row sum + C_jj
+    xc = x - x.mean(axis=0)
+    c = xc.T @ xc
+    row, own = c.sum(axis=1), np.diag(c)
+    rest = c.sum() - 2 * row + own
+    den = np.sqrt(np.maximum(own * rest, 0.0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(den > 0, (row - own) / den, np.nan)
 
 
 def _cube_sum(z: np.ndarray, *, block: int = 2048, route: str | None = None) -> float:
