@@ -146,33 +146,37 @@ class Factored:
         """sum_k n_k Y_k."""
         return (self.counts @ y.reshape(y.shape[0], -1)).reshape(self.eye.shape)
 
-    def newton(self, beta: np.ndarray, z: np.ndarray, pt: Point) -> tuple[np.ndarray, np.ndarray] | None:
-        """The Newton point from (beta, Z) evaluated as ``pt``, or None when the Hessian
-        is not negative definite there.
+    def derivatives(self, pt: Point) -> tuple[np.ndarray, np.ndarray]:
+        """Gradient and Hessian of the log-likelihood at the point evaluated as ``pt``, in
+        (vec beta, vech Z) coordinates, row-major.
 
-        In (vec beta, vech Z), row-major: the gradient is sum_k D_k Y_k and
-        1/2 sum_k (Y_k E_k Y_k - n_k Y_k); the Hessian blocks are -sum_k T_zz,k (x) Y_k,
-        d/dZ of the beta gradient -sum_k (D_k Y_k) dZ Y_k, and of the Z gradient
+        The gradient is sum_k D_k Y_k and 1/2 sum_k (Y_k E_k Y_k - n_k Y_k); the Hessian
+        blocks are -sum_k T_zz,k (x) Y_k, d/dZ of the beta gradient
+        -sum_k (D_k Y_k) dZ Y_k, and of the Z gradient
         1/2 sum_k [n_k Y_k dZ Y_k - Y_k dZ M_k - M_k dZ Y_k] with M_k = Y_k E_k Y_k
         (Magnus & Neudecker 1988 differentials of log|Z_oo| and tr(Z_oo^-1 E)). Every
         sum over patterns is one matrix product of the per-pattern pieces laid flat.
         """
         k, q, r = self.counts.size, self.a + 1, self.eye.shape[0]
-        yf, mf = pt.y.reshape(k, r * r), pt.yey.reshape(k, r * r)
-        dup = self.dup
-        hbb = -(self.tzz.reshape(k, q * q).T @ yf).reshape(q, q, r, r).transpose(0, 2, 1, 3).reshape(q * r, q * r)
-        hbz = -(pt.dy.reshape(k, q * r).T @ yf).reshape(q, r, r, r).transpose(0, 3, 1, 2).reshape(q * r, r * r) @ dup
+        yf, mf, dup, m = pt.y.reshape(k, r * r), pt.yey.reshape(k, r * r), self.dup, q * r
+        hbb = -(self.tzz.reshape(k, q * q).T @ yf).reshape(q, q, r, r).transpose(0, 2, 1, 3).reshape(m, m)
+        hbz = -(pt.dy.reshape(k, m).T @ yf).reshape(q, r, r, r).transpose(0, 3, 1, 2).reshape(m, r * r) @ dup
         hzz = (self.counts[:, None] * yf).T @ yf - yf.T @ mf - mf.T @ yf
         hzz = dup.T @ (0.5 * hzz.reshape(r, r, r, r).transpose(0, 3, 1, 2).reshape(r * r, r * r)) @ dup
         grad = np.concatenate([pt.dy.sum(axis=0).ravel(), dup.T @ (0.5 * (pt.yey.sum(axis=0) - self._ny(pt.y))).ravel()])
-        m = q * r
-        neg = np.empty((m + hzz.shape[0],) * 2)
-        neg[:m, :m], neg[:m, m:], neg[m:, :m], neg[m:, m:] = -hbb, -hbz, -hbz.T, -hzz
-        chol, info = lapack.dpotrf(neg, lower=1)
+        hess = np.empty((m + hzz.shape[0],) * 2)
+        hess[:m, :m], hess[:m, m:], hess[m:, :m], hess[m:, m:] = hbb, hbz, hbz.T, hzz
+        return grad, hess
+
+    def newton(self, beta: np.ndarray, z: np.ndarray, pt: Point) -> tuple[np.ndarray, np.ndarray] | None:
+        """The Newton point from (beta, Z) evaluated as ``pt`` (:meth:`derivatives`), or
+        None when the Hessian is not negative definite there."""
+        grad, hess = self.derivatives(pt)
+        chol, info = lapack.dpotrf(-hess, lower=1)
         if info != 0:
             return None
         step, info = lapack.dpotrs(chol, grad, lower=1)
         if info != 0:
             return None
-        dz = dup @ step[q * r:]
-        return beta + step[: q * r].reshape(q, r), z + dz.reshape(r, r)
+        m = beta.size
+        return beta + step[:m].reshape(beta.shape), z + (self.dup @ step[m:]).reshape(z.shape)
