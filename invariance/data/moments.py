@@ -202,7 +202,7 @@ def _listwise(name: str, x: np.ndarray, items: Sequence[str]) -> GroupStats:
 def _full_information(name: str, x: np.ndarray, items: Sequence[str]) -> GroupStats:
     obs = ~np.isnan(x)
     keep = obs.any(axis=1)
-    xu, obs = x[keep], obs[keep]
+    xu, obs = (x, obs) if keep.all() else (x[keep], obs[keep])
     n, p = xu.shape
     if n <= p:
         raise DataError(
@@ -212,16 +212,19 @@ def _full_information(name: str, x: np.ndarray, items: Sequence[str]) -> GroupSt
     count = obs.sum(axis=0)
     for j in np.flatnonzero(count < 2):
         raise DataError(f"Item {items[j]!r} is observed in fewer than 2 cases of group {name!r}; drop the item or the group.")
-    pair = obs.T.astype(float) @ obs.astype(float)
-    lo = np.argwhere(np.tril(pair == 0, -1))
-    if lo.size:
+    of = obs.astype(float)
+    pair = of.T @ of
+    lo = np.argwhere(np.tril(pair == 0, -1)) if not pair.all() else ()
+    if len(lo):
         a, b = lo[0]
         raise DataError(
             f"Items {items[b]!r} and {items[a]!r} are never observed together in group {name!r}, "
             f"so their covariance cannot be estimated; drop one of them."
         )
-    sd = np.nanstd(xu, axis=0)
-    const = np.flatnonzero(sd <= 1e-12 * np.maximum(1.0, np.abs(np.nanmean(xu, axis=0))))
+    mean = np.where(obs, xu, 0.0).sum(axis=0) / count  # numpy.nanmean and nanstd, without their copies
+    dev = np.where(obs, xu - mean, 0.0)
+    sd = np.sqrt((dev * dev).sum(axis=0) / count)
+    const = np.flatnonzero(sd <= 1e-12 * np.maximum(1.0, np.abs(mean)))
     if const.size:
         raise DataError(f"Item {items[const[0]]!r} is constant in group {name!r}; drop the item or the group.")
     try:
