@@ -55,6 +55,8 @@ class PatternSplit:
     means, obs, covs
         Pattern means (K, p), observed items (K, p, as 0/1) and covariances (K, p, p),
         in the split order.
+    s_ax, s_rx
+        The rows of A and of R of ``covs`` (contiguous copies).
     saa_total
         sum_k n_k S_AA,k.
     """
@@ -72,6 +74,8 @@ class PatternSplit:
     obs: np.ndarray
     covs: np.ndarray
     saa_total: np.ndarray
+    s_ax: np.ndarray
+    s_rx: np.ndarray
     #: rows of the identity in the split order (the item block of the basis)
     perm: np.ndarray
 
@@ -88,7 +92,8 @@ class PatternSplit:
         return cls(order, np.argsort(order), a, rest.shape[1], n, float(n.sum()),
                    float(n @ (pm.observed.sum(axis=1) * _LOG2PI)), mask, eye,
                    pm.means[:, order], pm.observed[:, order].astype(float), covs,
-                   np.tensordot(n, covs[:, :a, :a], axes=1), np.eye(order.size)[order])
+                   np.tensordot(n, covs[:, :a, :a], axes=1), np.ascontiguousarray(covs[:, :a]),
+                   np.ascontiguousarray(covs[:, a:]), np.eye(order.size)[order])
 
 
 @dataclass(eq=False)
@@ -96,7 +101,8 @@ class PatternPoint:
     """One group at one implied (Sigma, mu), in the split order.
 
     ``value`` is -2 logL; P, G, Y as in the module text; d the mean residuals of the
-    patterns (K, p), e = B d_k (K, r), U_k = S_AR,k - S_AA,k G, E_k = B C_k B' with
+    patterns (K, p), e = B d_k (K, r), U_k' = S_RA,k - G'S_AA,k (stored as U_k', (K, r,
+    a)), E_k = B C_k B' with
     C_k = S_k + d_k d_k', and CA = sum_k n_k C_AA,k. The gradient terms are filled by
     :func:`gradient_terms`.
     """
@@ -110,8 +116,8 @@ class PatternPoint:
     U: np.ndarray
     E: np.ndarray
     CA: np.ndarray
-    #: filled by :func:`gradient_terms`: Gs and w in the split order, sum_k n_k Y_k,
-    #: Y_k e_k, and the Y-tensor of :func:`information_terms`
+    #: filled by :func:`gradient_terms` and reused by the information and the Hessian:
+    #: Gs and w, n_k Y_k, their sum, Y_k e_k, the bases, the Y-tensor
     more: dict = field(default_factory=dict)
 
 
@@ -138,8 +144,9 @@ def pattern_point(sp: PatternSplit, sigma: np.ndarray, mu: np.ndarray) -> Patter
     d = (sp.means - mu[o]) * sp.obs
     dA = d[:, :a]
     e = d[:, a:] - dA @ G
-    U = sp.covs[:, :a, a:] - sp.covs[:, :a, :a] @ G
-    E = sp.covs[:, a:, a:] - sp.covs[:, a:, :a] @ G - G.T @ U + e[:, :, None] * e[:, None, :]
+    bs = sp.s_rx - G.T @ sp.s_ax                                # B S_k, rows of R
+    U = bs[:, :, :a]
+    E = bs[:, :, a:] - U @ G + e[:, :, None] * e[:, None, :]
     CA = sp.saa_total + (dA.T * sp.n) @ dA
     value = (sp.const + sp.N * logdet_a + float(sp.n @ logdet) + float(np.vdot(P, CA))
              + float(np.einsum("k,kij,kij->", sp.n, Y, E)))
@@ -169,20 +176,21 @@ def gradient_terms(sp: PatternSplit, pt: PatternPoint) -> tuple[np.ndarray, np.n
     if "Gs" in pt.more:
         return pt.more["Gs"], pt.more["w"]
     n, a, P, G, Y = sp.n, sp.a, pt.P, pt.G, pt.Y
+    K, r = Y.shape[:2]
     dA = pt.d[:, :a]
-    ybar = _wsum(n, Y)
+    ny = Y * n[:, None, None]
+    ybar = ny.sum(axis=0)
     xi = _wsum(n, Y @ pt.E @ Y)
-    phi = P @ _wsum(n, (pt.U + dA[:, :, None] * pt.e[:, None, :]) @ Y)
+    h = (Y @ pt.e[:, :, None])[:, :, 0]                          # Y_k e_k
+    phi = P @ (pt.U.reshape(K * r, a).T @ ny.reshape(K * r, r) + (dA.T * n) @ h)
     yt = ybar - xi
     gyt = G @ yt
     pg = phi @ G.T
     gs = _blocks(sp, sp.N * P - P @ pt.CA @ P + gyt @ G.T + pg + pg.T, -gyt - phi, yt)
-    h = np.einsum("kij,kj->ki", Y, pt.e)
     ebar = n @ h
     w = np.concatenate([P @ (n @ dA) - G @ ebar, ebar])
-    wbar = _blocks(sp, sp.N * P + G @ ybar @ G.T, -G @ ybar, ybar)
-    pt.more.update(gs_split=gs, w_split=w, ybar=ybar, h=h, wbar=wbar,
-                   Gs=gs[sp.back][:, sp.back], w=w[sp.back])
+    back = sp.back
+    pt.more.update(gs_split=gs, ny=ny, ybar=ybar, h=h, Gs=gs.take(back, 0).take(back, 1), w=w.take(back))
     return pt.more["Gs"], pt.more["w"]
 
 
@@ -253,7 +261,10 @@ def hessian_terms(sp: PatternSplit, pt: PatternPoint, fj) -> np.ndarray:
     m = pt.more
     u, p, r, a = fj.ia.size, ko.shape[0], sp.r, sp.a
     idx = np.concatenate([fj.ia, fj.ib])
-    qm = ko.T @ (m["wbar"] - m["gs_split"]) @ ko
+    G, ybar = pt.G, m["ybar"]
+    gy = G @ ybar
+    wbar = _blocks(sp, sp.N * pt.P + gy @ G.T, -gy, ybar)           # sum_k n_k W_k
+    qm = ko.T @ (wbar - m["gs_split"]) @ ko
     q_aa, q_ab, q_ba, q_bb = m["Q0pairs"]
     m_aa, m_ab, m_ba, m_bb = _pairs(qm, idx, u)
     cross = m_ba * q_ab + m_bb * q_aa + m_aa * q_bb + m_ab * q_ba
@@ -274,7 +285,7 @@ def hessian_terms(sp: PatternSplit, pt: PatternPoint, fj) -> np.ndarray:
     yh = qc.take(fj.ia, 0) * kwbar[fj.ib][:, None] + qc.take(fj.ib, 0) * kwbar[fj.ia][:, None]
     # the Y part: sum_x v_{a_u}[x] R[b_u, x, v] + v_{b_u}[x] R[a_u, x, v] with
     # R[l, x, v] = sum_k n_k kw_k[l] (Y_k V_c)[x, v]
-    yv = (pt.Y * sp.n[:, None, None]) @ V.take(fj.ic, 1)                 # (K, r, u)
+    yv = m["ny"] @ V.take(fj.ic, 1)                                     # (K, r, u)
     R = (kw.T @ yv.reshape(K, -1)).reshape(kw.shape[1], r, u)
     yh += (va[:, None, :] @ R.take(fj.ib, 0))[:, 0] + (vb[:, None, :] @ R.take(fj.ia, 0))[:, 0]
     s, t = fj.s, fj.t
