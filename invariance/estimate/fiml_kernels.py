@@ -52,11 +52,10 @@ class PatternSplit:
     mask, eye
         (K, r, r): observed pairs of R items per pattern, and the identity on the
         unobserved items (the padding that keeps every block invertible).
-    means, obs, covs
-        Pattern means (K, p), observed items (K, p, as 0/1) and covariances (K, p, p),
-        in the split order.
+    means, obs
+        Pattern means (K, p) and observed items (K, p, as 0/1), in the split order.
     s_ax, s_rx
-        The rows of A and of R of ``covs`` (contiguous copies).
+        The rows of A and of R of the pattern covariances (K, p, p) in the split order.
     saa_total
         sum_k n_k S_AA,k.
     """
@@ -72,7 +71,6 @@ class PatternSplit:
     eye: np.ndarray
     means: np.ndarray
     obs: np.ndarray
-    covs: np.ndarray
     saa_total: np.ndarray
     s_ax: np.ndarray
     s_rx: np.ndarray
@@ -91,7 +89,7 @@ class PatternSplit:
         n = pm.counts
         return cls(order, np.argsort(order), a, rest.shape[1], n, float(n.sum()),
                    float(n @ (pm.observed.sum(axis=1) * _LOG2PI)), mask, eye,
-                   pm.means[:, order], pm.observed[:, order].astype(float), covs,
+                   pm.means[:, order], pm.observed[:, order].astype(float),
                    np.tensordot(n, covs[:, :a, :a], axes=1), np.ascontiguousarray(covs[:, :a]),
                    np.ascontiguousarray(covs[:, a:]), np.eye(order.size)[order])
 
@@ -180,7 +178,8 @@ def gradient_terms(sp: PatternSplit, pt: PatternPoint) -> tuple[np.ndarray, np.n
     dA = pt.d[:, :a]
     ny = Y * n[:, None, None]
     ybar = ny.sum(axis=0)
-    xi = _wsum(n, Y @ pt.E @ Y)
+    yey = Y @ pt.E @ Y
+    xi = _wsum(n, yey)
     h = (Y @ pt.e[:, :, None])[:, :, 0]                          # Y_k e_k
     phi = P @ (pt.U.reshape(K * r, a).T @ ny.reshape(K * r, r) + (dA.T * n) @ h)
     yt = ybar - xi
@@ -190,7 +189,7 @@ def gradient_terms(sp: PatternSplit, pt: PatternPoint) -> tuple[np.ndarray, np.n
     ebar = n @ h
     w = np.concatenate([P @ (n @ dA) - G @ ebar, ebar])
     back = sp.back
-    pt.more.update(gs_split=gs, ny=ny, ybar=ybar, h=h, Gs=gs.take(back, 0).take(back, 1), w=w.take(back))
+    pt.more.update(ny=ny, ybar=ybar, h=h, yey=yey, Gs=gs.take(back, 0).take(back, 1), w=w.take(back))
     return pt.more["Gs"], pt.more["w"]
 
 
@@ -251,43 +250,38 @@ def hessian_terms(sp: PatternSplit, pt: PatternPoint, fj) -> np.ndarray:
     :func:`~invariance.estimate.kernels.factored_moment_hessian` with pattern weights).
 
     cross = sum_k n_k [QM_k(b_u, a_v) Q_k(a_u, b_v) + QM_k(b_u, b_v) Q_k(a_u, a_v)
-    + QM_k(a_u, a_v) Q_k(b_u, b_v) + QM_k(a_u, b_v) Q_k(b_u, a_v)], QM_k = K'M_kK with
-    M_k = W_k C_k W_k: its Q0 part from Mbar = sum n_k M_k = Wbar - Gs, its Y part
-    Psi N Psi' with N = sum_k n_k M_k (x) Y_k and Psi_u = k_{b_u} (x) v_{a_u} +
-    k_{a_u} (x) v_{b_u}.
+    + QM_k(a_u, a_v) Q_k(b_u, b_v) + QM_k(a_u, b_v) Q_k(b_u, a_v)] with QM_k = K'M_kK,
+    M_k = W_k C_k W_k = T'M~_kT (:func:`_split_products`), so QM_k(i, j) =
+    l_i' M~_k l_j with l_i the columns of L = T Ko = [KA; V]. Its Q0 part needs
+    sum_k n_k M~_k only; its Y part is Psi N Psi' with N = sum_k n_k M~_k (x) Y_k and
+    Psi_u = l_{b_u} (x) v_{a_u} + l_{a_u} (x) v_{b_u}.
     """
     cov, mean = information_terms(sp, pt, fj)
     ko, V, Q0 = _bases(sp, pt, fj.H)
     m = pt.more
-    u, p, r, a = fj.ia.size, ko.shape[0], sp.r, sp.a
+    u, p, r, a, K = fj.ia.size, ko.shape[0], sp.r, sp.a, pt.Y.shape[0]
     idx = np.concatenate([fj.ia, fj.ib])
-    G, ybar = pt.G, m["ybar"]
-    gy = G @ ybar
-    wbar = _blocks(sp, sp.N * pt.P + gy @ G.T, -gy, ybar)           # sum_k n_k W_k
-    qm = ko.T @ (wbar - m["gs_split"]) @ ko
+    lam = np.vstack([ko[:a], V])
+    mt = _split_products(sp, pt)
     q_aa, q_ab, q_ba, q_bb = m["Q0pairs"]
-    m_aa, m_ab, m_ba, m_bb = _pairs(qm, idx, u)
+    m_aa, m_ab, m_ba, m_bb = _pairs(lam.T @ _wsum(sp.n, mt) @ lam, idx, u)
     cross = m_ba * q_ab + m_bb * q_aa + m_aa * q_bb + m_ab * q_ba
-    W = _pattern_inverses(sp, pt)
-    C = sp.covs + pt.d[:, :, None] * pt.d[:, None, :]
-    M = W @ C @ W
-    K = pt.Y.shape[0]
-    n0 = (M.reshape(K, p * p).T * sp.n) @ pt.Y.reshape(K, r * r)
+    n0 = (mt.reshape(K, p * p).T * sp.n) @ pt.Y.reshape(K, r * r)
     nt = n0.reshape(p, p, r, r).transpose(0, 2, 1, 3).reshape(p * r, p * r)
-    ka, kb = ko[:, fj.ia].T, ko[:, fj.ib].T
+    la, lb = lam[:, fj.ia].T, lam[:, fj.ib].T
     va, vb = V[:, fj.ia].T, V[:, fj.ib].T
-    psi = (kb[:, :, None] * va[:, None, :] + ka[:, :, None] * vb[:, None, :]).reshape(u, p * r)
+    psi = (lb[:, :, None] * va[:, None, :] + la[:, :, None] * vb[:, None, :]).reshape(u, p * r)
     cross += psi @ nt @ psi.T
     # sum_k n_k (Q_k[a_u, c_v] kw_k[b_u] + Q_k[b_u, c_v] kw_k[a_u]), kw_k = Ko' W_k d_k
     kw = (pt.d[:, :a] @ pt.P) @ ko[:a] + m["h"] @ V
     kwbar = sp.n @ kw
     qc = Q0.take(fj.ic, 1)
     yh = qc.take(fj.ia, 0) * kwbar[fj.ib][:, None] + qc.take(fj.ib, 0) * kwbar[fj.ia][:, None]
-    # the Y part: sum_x v_{a_u}[x] R[b_u, x, v] + v_{b_u}[x] R[a_u, x, v] with
-    # R[l, x, v] = sum_k n_k kw_k[l] (Y_k V_c)[x, v]
+    # its Y part: S[b_u, a_u, v] + S[a_u, b_u, v], S[l, i, v] = sum_k n_k kw_k[l] v_i' Y_k v_{c_v}
+    nb = kw.shape[1]
     yv = m["ny"] @ V.take(fj.ic, 1)                                     # (K, r, u)
-    R = (kw.T @ yv.reshape(K, -1)).reshape(kw.shape[1], r, u)
-    yh += (va[:, None, :] @ R.take(fj.ib, 0))[:, 0] + (vb[:, None, :] @ R.take(fj.ia, 0))[:, 0]
+    S = (V.T @ (kw.T @ yv.reshape(K, -1)).reshape(nb, r, u)).reshape(nb * nb, u)
+    yh += S.take(fj.ib * nb + fj.ia, 0) + S.take(fj.ia * nb + fj.ib, 0)
     s, t = fj.s, fj.t
     ys = s[:, None] * t[None, :] * yh
     H = 2.0 * (s[:, None] * s[None, :] * (cross - cov) + ys + ys.T)
@@ -295,13 +289,16 @@ def hessian_terms(sp: PatternSplit, pt: PatternPoint, fj) -> np.ndarray:
     return H
 
 
-def _pattern_inverses(sp: PatternSplit, pt: PatternPoint) -> np.ndarray:
-    """W_k (K, p, p) in the split order, zero outside each pattern's observed items."""
-    a, P, G, Y = sp.a, pt.P, pt.G, pt.Y
-    yg = Y @ G.T                                               # (K, r, a)
-    W = np.empty((Y.shape[0], sp.a + sp.r, sp.a + sp.r))
-    W[:, :a, :a] = P + G @ yg
-    W[:, a:, :a] = -yg
-    W[:, :a, a:] = -yg.transpose(0, 2, 1)
-    W[:, a:, a:] = Y
-    return W
+def _split_products(sp: PatternSplit, pt: PatternPoint) -> np.ndarray:
+    """M~_k = D_k (T C_k T') D_k (K, p, p) with D_k = diag(P, Y_k), T = [[I, 0], [-G', I]]:
+    [[P C_AA,k P, P (U_k + dA_k e_k') Y_k], [., Y_k E_k Y_k]]; W_k = T'D_kT, so
+    W_k C_k W_k = T'M~_kT."""
+    a, P, m = sp.a, pt.P, pt.more
+    g = pt.d[:, :a] @ P                                                # P dA_k
+    f = P @ (pt.U.transpose(0, 2, 1) @ pt.Y) + g[:, :, None] * m["h"][:, None, :]
+    out = np.empty((pt.Y.shape[0], sp.a + sp.r, sp.a + sp.r))
+    out[:, :a, :a] = P @ sp.s_ax[:, :, :a] @ P + g[:, :, None] * g[:, None, :]
+    out[:, :a, a:] = f
+    out[:, a:, :a] = f.transpose(0, 2, 1)
+    out[:, a:, a:] = m["yey"]
+    return out
