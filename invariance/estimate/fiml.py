@@ -10,17 +10,18 @@ Cholesky factor per evaluation:
 with Sigma_k, mu_k the rows and columns of the observed items and d_k = m_k - mu_k.
 The value of the objective is T = -2 (logL_model - logL_H1), logL_H1 the saturated
 model by EM (METHODS section 6; Arbuckle 1996; Little & Rubin 2002). Gradient and
-expected information are sums of the complete-data kernels on the sub-selected rows and
-columns of the analytic moment Jacobian, so the optimizer of
-:mod:`invariance.estimate.optimize` serves this objective unchanged. With complete data
-T equals the complete-data ML statistic exactly.
+expected information and the exact Hessian are contracted through the factored moment
+Jacobian; the sums over patterns run in the coordinates of the items every case observes
+(:mod:`invariance.estimate.fiml_kernels`), so a pattern costs one small factorization.
+The optimizer of :mod:`invariance.estimate.optimize` serves this objective unchanged.
+With complete data T equals the complete-data ML statistic exactly.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from ..data.em import PatternMoments, em_saturated, pattern_moments, pattern_terms
+from ..data.em import PatternMoments, em_saturated, pattern_moments
 from ..data.moments import SampleStats
 from ..model.spec import ModelSpec
 from .fiml_kernels import PatternSplit, gradient_terms, hessian_terms, information_terms, pattern_point
@@ -28,7 +29,7 @@ from .kernels import factor_jacobian, factored_gradient, group_matrices, implied
 from .ml_kernels import second_derivative_part
 from .objective import GroupObjective
 
-__all__ = ["FIMLObjective", "independence_loglik", "pattern_m2ll"]
+__all__ = ["FIMLObjective", "independence_loglik"]
 
 _LOG2PI = float(np.log(2 * np.pi))
 
@@ -44,20 +45,6 @@ class _GroupData:
             loglik_h1 = em_saturated(x).loglik
         self.loglik_h1 = float(loglik_h1)
         self.n = self.pm.n
-
-
-def pattern_m2ll(pm: PatternMoments, sigma: np.ndarray, mu: np.ndarray, *, parts: bool = False):
-    """-2 logL of one group from its pattern statistics, all patterns batched.
-
-    sum_k n_k [p_k log 2pi + log|Sigma_oo| + tr(Sigma_oo^-1 (S_k + d_k d_k'))]
-    (METHODS section 14). With ``parts=True`` also returns (W, d, C): the padded
-    inverses, mean residuals and second moments about the implied mean of every pattern.
-    """
-    W, logdet, d = pattern_terms(pm, mu, sigma)
-    C = pm.covs + d[:, :, None] * d[:, None, :]
-    pk = pm.observed.sum(axis=1)
-    val = float(pm.counts @ (pk * _LOG2PI + logdet + np.einsum("kij,kij->k", W, C)))
-    return (val, W, d, C) if parts else val
 
 
 class FIMLObjective(GroupObjective):
@@ -133,13 +120,19 @@ class FIMLObjective(GroupObjective):
         total = 2.0 * self.loglik_h1
         for lay, d, (_, _, _, val, pt, fj) in zip(self.layouts, self.data, self._jacobians(theta)):
             total += val
-            u = lay.params
-            grad[u] += factored_gradient(fj, *gradient_terms(d.split, pt))
+            gg = factored_gradient(fj, *gradient_terms(d.split, pt))
+            hh = None
             if information:
                 cov, mean = information_terms(d.split, pt, fj)
                 s, t = fj.s, fj.t
-                ent = 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * mean)
-                info[np.ix_(u, u)] += to_params(fj, None, ent)[1]
+                hh = to_params(fj, None, 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * mean))[1]
+            if self._whole:  # one group owning every parameter: its terms are the totals
+                grad, info = gg, hh
+                break
+            u = lay.params
+            grad[u] += gg
+            if information:
+                info[np.ix_(u, u)] += hh
         if not np.isfinite(total):
             raise np.linalg.LinAlgError("implied covariance not positive definite")
         return float(total), grad, info
@@ -159,6 +152,8 @@ class FIMLObjective(GroupObjective):
             Gs, w = gradient_terms(d.split, pt)
             He = hessian_terms(d.split, pt, fj) + second_derivative_part(lay, mats, G, A, Gs, w)
             hh = He if fj.P is None else fj.P.T @ He @ fj.P
+            if self._whole:
+                return (hh + hh.T) / 2
             u = lay.params
             H[np.ix_(u, u)] += hh
         return (H + H.T) / 2
