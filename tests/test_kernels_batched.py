@@ -57,11 +57,15 @@ def hs():
     return semopy_examples.holzinger39.get_data()
 
 
-def _deleted(hs, rate=0.15, seed=7):
+def _deleted(hs, rate=0.15, seed=7, *, columns=None):
+    """Values deleted at random (only in ``columns``, item positions, when given)."""
     rng = np.random.default_rng(seed)
     d = hs.copy()
     X = d[ITEMS].to_numpy(dtype=float, copy=True)
-    X[rng.random(X.shape) < rate] = np.nan
+    hit = rng.random(X.shape) < rate
+    if columns is not None:
+        hit[:, [j for j in range(X.shape[1]) if j not in columns]] = False
+    X[hit] = np.nan
     d[ITEMS] = X
     return d
 
@@ -141,6 +145,42 @@ def test_fiml_hessian_second_order_against_finite_differences(hs):
         for e in np.eye(spec.n_params)
     ])
     # central differences of the analytic gradient (itself checked against the loop above)
+    assert np.allclose(H, fd, rtol=1e-5, atol=1e-6 * np.abs(fd).max())
+
+
+#: items with holes: none always observed (all nine), some always observed (split
+#: coordinates of fiml_kernels), and holes in one school only (the other school complete)
+_HOLES = {"all": dict(columns=None), "some": dict(columns=(1, 3, 4, 7)), "one_group": dict(columns=(0, 5))}
+
+
+def _holes(hs, kind, seed):
+    d = _deleted(hs, 0.2, seed, **_HOLES[kind])
+    if kind == "one_group":
+        keep = d["school"] == d["school"].iloc[0]
+        d.loc[keep, ITEMS] = hs.loc[keep, ITEMS]
+    return d
+
+
+@pytest.mark.parametrize("kind", sorted(_HOLES))
+@pytest.mark.parametrize("family", ["bifactor", "paths"])
+def test_fiml_kernels_against_loop_and_finite_differences(hs, kind, family):
+    s = inv.sample_stats(_holes(hs, kind, 31), ITEMS, "school", missing="fiml")
+    spec = inv.build_level(STRUCTURES[family], s.names, "scalar")
+    obj = FIMLObjective(spec, s)
+    theta = _point(spec, s, 13)
+    val, grad, info = obj.derivatives(theta)
+    rv, rg, ri = _loop_reference(obj, theta)
+    # the per-pattern loop written above (textbook casewise form, METHODS section 14)
+    assert val == pytest.approx(rv, rel=1e-9, abs=1e-6)
+    assert np.allclose(grad, rg, rtol=1e-8, atol=1e-6)
+    assert np.allclose(info, ri, rtol=1e-8, atol=1e-6)
+    H = obj.hessian(theta)
+    h = 1e-6
+    fd = np.column_stack([
+        (obj.derivatives(theta + h * e, information=False)[1] - obj.derivatives(theta - h * e, information=False)[1]) / (2 * h)
+        for e in np.eye(spec.n_params)
+    ])
+    # central differences of the analytic gradient
     assert np.allclose(H, fd, rtol=1e-5, atol=1e-6 * np.abs(fd).max())
 
 

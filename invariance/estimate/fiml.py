@@ -10,32 +10,26 @@ Cholesky factor per evaluation:
 with Sigma_k, mu_k the rows and columns of the observed items and d_k = m_k - mu_k.
 The value of the objective is T = -2 (logL_model - logL_H1), logL_H1 the saturated
 model by EM (METHODS section 6; Arbuckle 1996; Little & Rubin 2002). Gradient and
-expected information are sums of the complete-data kernels on the sub-selected rows and
-columns of the analytic moment Jacobian, so the optimizer of
-:mod:`invariance.estimate.optimize` serves this objective unchanged. With complete data
-T equals the complete-data ML statistic exactly.
+expected information and the exact Hessian are contracted through the factored moment
+Jacobian; the sums over patterns run in the coordinates of the items every case observes
+(:mod:`invariance.estimate.fiml_kernels`), so a pattern costs one small factorization.
+The optimizer of :mod:`invariance.estimate.optimize` serves this objective unchanged.
+With complete data T equals the complete-data ML statistic exactly.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from ..data.em import PatternMoments, em_saturated, pattern_moments, pattern_terms
+from ..data.em import PatternMoments, em_saturated, pattern_moments
 from ..data.moments import SampleStats
 from ..model.spec import ModelSpec
-from .kernels import (
-    factor_jacobian,
-    factored_gradient,
-    factored_information,
-    factored_moment_hessian,
-    gram,
-    group_matrices,
-    implied_moments,
-)
+from .fiml_kernels import PatternSplit, gradient_terms, hessian_terms, information_terms, pattern_point
+from .kernels import factor_jacobian, factored_gradient, group_matrices, implied_moments, to_params
 from .ml_kernels import second_derivative_part
 from .objective import GroupObjective
 
-__all__ = ["FIMLObjective", "independence_loglik", "pattern_m2ll"]
+__all__ = ["FIMLObjective", "independence_loglik"]
 
 _LOG2PI = float(np.log(2 * np.pi))
 
@@ -46,24 +40,11 @@ class _GroupData:
     def __init__(self, x: np.ndarray, loglik_h1: float | None) -> None:
         self.x = x
         self.pm: PatternMoments = pattern_moments(x)
+        self.split = PatternSplit.of(self.pm)
         if loglik_h1 is None:
             loglik_h1 = em_saturated(x).loglik
         self.loglik_h1 = float(loglik_h1)
         self.n = self.pm.n
-
-
-def pattern_m2ll(pm: PatternMoments, sigma: np.ndarray, mu: np.ndarray, *, parts: bool = False):
-    """-2 logL of one group from its pattern statistics, all patterns batched.
-
-    sum_k n_k [p_k log 2pi + log|Sigma_oo| + tr(Sigma_oo^-1 (S_k + d_k d_k'))]
-    (METHODS section 14). With ``parts=True`` also returns (W, d, C): the padded
-    inverses, mean residuals and second moments about the implied mean of every pattern.
-    """
-    W, logdet, d = pattern_terms(pm, mu, sigma)
-    C = pm.covs + d[:, :, None] * d[:, None, :]
-    pk = pm.observed.sum(axis=1)
-    val = float(pm.counts @ (pk * _LOG2PI + logdet + np.einsum("kij,kij->k", W, C)))
-    return (val, W, d, C) if parts else val
 
 
 class FIMLObjective(GroupObjective):
@@ -101,17 +82,16 @@ class FIMLObjective(GroupObjective):
 
     # -- the kept point (:class:`~invariance.estimate.objective.GroupObjective`) --------
     def _parts(self, g: int, lay, theta: np.ndarray) -> list:
-        """[mats, G, A, value, W, d, C, factored Jacobian, K'WK] of group ``g``
-        (:func:`pattern_m2ll` with parts, all patterns in one batched factorization;
-        the Jacobian and the Gram matrices on first use)."""
+        """[mats, G, A, value, pattern point, factored Jacobian (on first use)]: the
+        value from :func:`~invariance.estimate.fiml_kernels.pattern_point`."""
         mats = group_matrices(lay, theta)
         sigma, mu, G, A = implied_moments(mats)
-        return [mats, G, A, *pattern_m2ll(self.data[g].pm, sigma, mu, parts=True), None, None]
+        pt = pattern_point(self.data[g].split, sigma, mu)
+        return [mats, G, A, pt.value, pt, None]
 
     def _complete(self, lay, part: list) -> None:
-        if part[7] is None:
-            part[7] = factor_jacobian(lay, part[0], part[1], part[2])
-            part[8] = gram(part[7].H, part[4])
+        if part[5] is None:
+            part[5] = factor_jacobian(lay, part[0], part[1], part[2])
 
     # -- likelihood -----------------------------------------------------------------
     def loglik(self, theta: np.ndarray) -> float:
@@ -132,20 +112,27 @@ class FIMLObjective(GroupObjective):
         return matrices, tuple(s for s, _ in moments), tuple(mu for _, mu in moments)
 
     def derivatives(self, theta: np.ndarray, *, information: bool = True):
+        """T, its gradient and (optionally) the expected information: sums over patterns
+        through :mod:`~invariance.estimate.fiml_kernels`."""
         q = self.n_params
         grad = np.zeros(q)
         info = np.zeros((q, q)) if information else None
         total = 2.0 * self.loglik_h1
-        for lay, d, (_, _, _, val, W, e, C, fj, QW) in zip(self.layouts, self.data, self._jacobians(theta)):
+        for lay, d, (_, _, _, val, pt, fj) in zip(self.layouts, self.data, self._jacobians(theta)):
             total += val
-            n = d.pm.counts
-            WC = W @ C
-            Gs = np.tensordot(n, W - WC @ W, axes=1)           # sum_k n_k (W - W C W)
-            w = np.tensordot(n, np.einsum("kij,kj->ki", W, e), axes=1)
-            u = lay.params
-            grad[u] += factored_gradient(fj, Gs, w)
+            gg = factored_gradient(fj, *gradient_terms(d.split, pt))
+            hh = None
             if information:
-                info[np.ix_(u, u)] += factored_information(fj, QW, n)
+                cov, mean = information_terms(d.split, pt, fj)
+                s, t = fj.s, fj.t
+                hh = to_params(fj, None, 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * mean))[1]
+            if self._whole:  # one group owning every parameter: its terms are the totals
+                grad, info = gg, hh
+                break
+            u = lay.params
+            grad[u] += gg
+            if information:
+                info[np.ix_(u, u)] += hh
         if not np.isfinite(total):
             raise np.linalg.LinAlgError("implied covariance not positive definite")
         return float(total), grad, info
@@ -153,23 +140,20 @@ class FIMLObjective(GroupObjective):
     def hessian(self, theta: np.ndarray) -> np.ndarray:
         """Exact (observed) Hessian of T, analytic.
 
-        The first-derivative part is summed over patterns from their Gram matrices
-        (:func:`~invariance.estimate.kernels.factored_moment_hessian`); the
-        second-derivative part is linear in Gs = W - W C W and w = W d, so the
-        patterns' sums are contracted once per group (METHODS section 2; Kenward &
-        Molenberghs 1998 for why the observed information is the one to use under MAR).
+        The first-derivative part is summed over patterns in the split coordinates
+        (:func:`~invariance.estimate.fiml_kernels.hessian_terms`); the
+        second-derivative part is linear in Gs = sum n_k (W_k - W_k C_k W_k) and
+        w = sum n_k W_k d_k (METHODS section 2; Kenward & Molenberghs 1998 for why the
+        observed information is the one to use under MAR).
         """
         q = self.n_params
         H = np.zeros((q, q))
-        for lay, d, (mats, G, A, _, W, e, C, fj, QW) in zip(self.layouts, self.data, self._jacobians(theta)):
-            n = d.pm.counts
-            M = W @ C @ W
-            we = np.einsum("kij,kj->ki", W, e)
-            kw = np.concatenate([we, we @ fj.H], axis=1)
-            He = factored_moment_hessian(fj, QW, gram(fj.H, M), kw, n)
-            Gs = np.tensordot(n, W - M, axes=1)
-            He += second_derivative_part(lay, mats, G, A, Gs, n @ we)
+        for lay, d, (mats, G, A, _, pt, fj) in zip(self.layouts, self.data, self._jacobians(theta)):
+            Gs, w = gradient_terms(d.split, pt)
+            He = hessian_terms(d.split, pt, fj) + second_derivative_part(lay, mats, G, A, Gs, w)
             hh = He if fj.P is None else fj.P.T @ He @ fj.P
+            if self._whole:
+                return (hh + hh.T) / 2
             u = lay.params
             H[np.ix_(u, u)] += hh
         return (H + H.T) / 2

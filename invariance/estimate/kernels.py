@@ -12,14 +12,12 @@ parameter), ``dm`` arrays shape (u, p).
 
 from __future__ import annotations
 
-import functools
 import weakref
 from dataclasses import dataclass
 
 import numpy as np
 
 from ..model.spec import ALPHA, BETA, LAMBDA, NU, PSI, THETA, ModelSpec
-from .linalg import lower_triangle
 
 __all__ = [
     "GroupLayout",
@@ -293,121 +291,40 @@ def factored_gradient(fj: FactoredJacobian, Gs: np.ndarray, w: np.ndarray) -> np
     return to_params(fj, g, None)[0]
 
 
-def _wsum(weights: np.ndarray | None, X: np.ndarray) -> np.ndarray:
-    """sum_k weights_k X_k over the leading axis (a plain copy for one unweighted slice)."""
-    if weights is None:
-        return X[0] if X.shape[0] == 1 else X.sum(axis=0)
-    return weights[0] * X[0] if X.shape[0] == 1 else np.tensordot(weights, X, axes=1)
+def _block(X: np.ndarray, i: np.ndarray, j: np.ndarray) -> np.ndarray:
+    """X[i][:, j] (two takes: far cheaper than broadcast fancy indexing)."""
+    return X.take(i, 0).take(j, 1)
 
 
-#: largest n^4 (n the basis size) for which stacked products go through a moment tensor
-_TENSOR_LIMIT = 3_000_000
+def factored_information(fj: FactoredJacobian, QW: np.ndarray) -> np.ndarray:
+    """Expected information tr(W S_u W S_v) + 2 mu_u' W mu_v from the Gram matrix QW = K'WK.
 
-
-@functools.lru_cache(maxsize=64)
-def _vech_index(n: int) -> np.ndarray:
-    """(n, n) position of entry (i, j) in the lower-triangle vector (symmetric)."""
-    v = np.zeros((n, n), dtype=np.int64)
-    r, c = lower_triangle(n)
-    v[r, c] = np.arange(r.size)
-    v[c, r] = np.arange(r.size)
-    return v
-
-
-class _PairSums:
-    """Weighted sums over a stack of Gram matrices of entrywise products of gathered blocks:
-    sum_k w_k X_k[i, j'] Y_k[l, m'] for index vectors i, j, l, m.
-
-    One matrix: gathered directly. A stack (missingness patterns) with a small basis:
-    through the moment tensor T = sum_k w_k X_k (x) Y_k, one matrix product (fast BLAS),
-    then gathered; otherwise gathered per pattern and summed. Within one instance (one
-    kernel call) the lower triangles, tensors and gather positions are computed once.
-    """
-
-    def __init__(self, weights: np.ndarray | None) -> None:
-        self.w = weights
-        self._tensors: dict = {}
-        self._lower: dict = {}
-        self._where: dict = {}
-
-    def _triangle(self, X: np.ndarray) -> np.ndarray:
-        low = self._lower.get(id(X))
-        if low is None:
-            r, c = lower_triangle(X.shape[1])
-            low = self._lower[id(X)] = X[:, r, c]
-        return low
-
-    def _positions(self, n: int, i: np.ndarray, j: np.ndarray) -> np.ndarray:
-        key = (id(i), id(j))
-        pos = self._where.get(key)
-        if pos is None:
-            pos = self._where[key] = _vech_index(n)[i[:, None], j[None, :]]
-        return pos
-
-    def __call__(self, X: np.ndarray, Y: np.ndarray, i, j, l, m) -> np.ndarray:
-        K, n = X.shape[0], X.shape[1]
-        w = np.ones(K) if self.w is None else self.w
-        if K == 1:
-            return w[0] * X[0][i[:, None], j[None, :]] * Y[0][l[:, None], m[None, :]]
-        if n**4 <= _TENSOR_LIMIT:
-            # symmetric X_k, Y_k: the tensor over their lower triangles suffices
-            key = (id(X), id(Y))
-            T = self._tensors.get(key)
-            if T is None:
-                T = self._tensors[key] = (self._triangle(X).T * w) @ self._triangle(Y)
-            return T[self._positions(n, i, j), self._positions(n, l, m)]
-        return np.tensordot(w, X[:, i][:, :, j] * Y[:, l][:, :, m], axes=1)
-
-
-def factored_information(fj: FactoredJacobian, QW: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
-    """Expected information tr(W S_u W S_v) + 2 mu_u' W mu_v from Gram matrices QW = K'WK.
-
-    ``QW`` may be a stack (K, n, n) with ``weights`` (K,): the weighted sum is returned
-    (full-information ML: one W per missingness pattern); a single (n, n) matrix is
-    unweighted.
+    (Full-information ML sums it over missingness patterns in
+    :mod:`invariance.estimate.fiml_kernels`.)
     """
     a, b, c = fj.ia, fj.ib, fj.ic
-    if QW.ndim == 2:
-        Qa, Qb = QW[a], QW[b]
-        cov = Qa[:, a] * Qb[:, b] + Qa[:, b] * Qb[:, a]
-        mean = QW[c[:, None], c[None, :]]
-    else:
-        ps = _PairSums(weights)
-        cov = ps(QW, QW, a, a, b, b) + ps(QW, QW, a, b, b, a)
-        mean = _wsum(weights, QW)[c[:, None], c[None, :]]
+    Qa, Qb = QW.take(a, 0), QW.take(b, 0)
+    cov = Qa.take(a, 1) * Qb.take(b, 1) + Qa.take(b, 1) * Qb.take(a, 1)
     s, t = fj.s, fj.t
-    info = 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * mean)
+    info = 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * _block(QW, c, c))
     return to_params(fj, None, info)[1]
 
 
-def factored_moment_hessian(fj: FactoredJacobian, QW: np.ndarray, QM: np.ndarray, kw: np.ndarray, weights: np.ndarray | None = None) -> np.ndarray:
+def factored_moment_hessian(fj: FactoredJacobian, QW: np.ndarray, QM: np.ndarray, kw: np.ndarray) -> np.ndarray:
     """First-derivative part of the exact Hessian of F, per entry (not yet mapped by P)::
 
         -tr(W S_u W S_v) + 2 tr(W S_u M S_v) + 2 mu_v' W S_u w + 2 mu_u' W S_v w + 2 mu_u' W mu_v
 
-    with M = W C W, w = W d; ``QW`` = K'WK, ``QM`` = K'MK, ``kw`` = K'w, each optionally
-    stacked over patterns with ``weights``.
+    with M = W C W, w = W d; ``QW`` = K'WK, ``QM`` = K'MK, ``kw`` = K'w.
     """
     a, b, c = fj.ia, fj.ib, fj.ic
-    if QW.ndim == 2:
-        # one matrix: gather each block once
-        Wa, Wb, Ma, Mb = QW[a], QW[b], QM[a], QM[b]
-        Waa, Wab, Wba, Wbb = Wa[:, a], Wa[:, b], Wb[:, a], Wb[:, b]
-        cov = Mb[:, a] * Wab + Mb[:, b] * Waa + Ma[:, a] * Wbb + Ma[:, b] * Wba - (Waa * Wbb + Wab * Wba)
-        Y = Wa[:, c] * kw[b][:, None] + Wb[:, c] * kw[a][:, None]
-        QWsum = QW
-    else:
-        ps = _PairSums(weights)
-        cross = ps(QM, QW, b, a, a, b) + ps(QM, QW, b, b, a, a) + ps(QM, QW, a, a, b, b) + ps(QM, QW, a, b, b, a)
-        cov = cross - ps(QW, QW, a, a, b, b) - ps(QW, QW, a, b, b, a)
-        # sum_k w_k (W_k[a, c'] kw_k[b] + W_k[b, c'] kw_k[a]) through U = sum_k w_k kw_k (x) W_k
-        w = np.ones(QW.shape[0]) if weights is None else weights
-        n = QW.shape[1]
-        U = ((kw.T * w) @ QW.reshape(QW.shape[0], -1)).reshape(n, n, n)
-        Y = U[b[:, None], a[:, None], c[None, :]] + U[a[:, None], b[:, None], c[None, :]]
-        QWsum = _wsum(weights, QW)
+    Wa, Wb, Ma, Mb = QW.take(a, 0), QW.take(b, 0), QM.take(a, 0), QM.take(b, 0)
+    Waa, Wab, Wba, Wbb = Wa.take(a, 1), Wa.take(b, 1), Wb.take(a, 1), Wb.take(b, 1)
+    cov = (Mb.take(a, 1) * Wab + Mb.take(b, 1) * Waa + Ma.take(a, 1) * Wbb + Ma.take(b, 1) * Wba
+           - (Waa * Wbb + Wab * Wba))
+    Y = Wa.take(c, 1) * kw[b][:, None] + Wb.take(c, 1) * kw[a][:, None]
     s, t = fj.s, fj.t
     Ys = s[:, None] * t[None, :] * Y
     H = 2.0 * (s[:, None] * s[None, :] * cov + Ys + Ys.T)
-    H += 2.0 * t[:, None] * t[None, :] * QWsum[c[:, None], c[None, :]]
+    H += 2.0 * t[:, None] * t[None, :] * _block(QW, c, c)
     return H

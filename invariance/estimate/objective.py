@@ -49,6 +49,8 @@ class GroupObjective:
         self.partition = (partition([lay.params for lay in self.layouts], self.n_params)
                           if len(self.layouts) > 1 else None)
         self._kept: tuple[bytes, list] | None = None
+        #: one group owning every parameter in order: its arrays are the totals (no scatter)
+        self._whole = len(self.layouts) == 1 and np.array_equal(self.layouts[0].params, np.arange(self.n_params))
 
     def _at(self, theta: np.ndarray) -> list[list]:
         """The parts of every group at ``theta`` (LinAlgError when not admissible)."""
@@ -87,8 +89,6 @@ class MLObjective(GroupObjective):
         self.S = [g.cov for g in stats.groups]
         self.mean = [g.mean for g in stats.groups]
         self.logdet_s = [float(np.linalg.slogdet(s)[1]) for s in self.S]
-        #: one group owning every parameter in order: its arrays are the totals (no scatter)
-        self._whole = len(self.layouts) == 1 and np.array_equal(self.layouts[0].params, np.arange(self.n_params))
 
     def _parts(self, g: int, lay, theta: np.ndarray) -> list:
         """[mats, Sigma, mu, G, A, W, log|Sigma|, factored Jacobian (on first use)]."""
