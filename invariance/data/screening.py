@@ -270,6 +270,7 @@ def _num(v) -> float | None:
 def _screen_group(
     name: str,
     x: np.ndarray,
+    distinct: np.ndarray,
     items: Sequence[str],
     low: np.ndarray,
     high: np.ndarray,
@@ -285,7 +286,6 @@ def _screen_group(
         r = item_total_correlations(x[:, cols])
         for i, v in zip(its, r):
             itc[i][scale] = _num(v)
-    distinct = distinct_counts(x)
     recs = []
     for j, it in enumerate(items):
         col = x[:, j]
@@ -414,12 +414,16 @@ def _screen(parts: list[tuple[str, np.ndarray]], items: list[str], rule: dict, s
     """The screening records of every group, the recommendation and the rules."""
     pooled = np.concatenate([x for _, x in parts], axis=0)
     low, high = _item_bounds(pooled, items, bounds)
+    distinct = [distinct_counts(x) for _, x in parts]
     cats: dict[int, np.ndarray] = {}
-    k = distinct_counts(pooled)
-    for j in np.flatnonzero((k > 0) & (k <= rule["few_categories_max"])):
+    # a column with more distinct values in one group than the limit has more overall:
+    # only the others need their pooled values counted
+    for j in np.flatnonzero(np.all([k <= rule["few_categories_max"] for k in distinct], axis=0)):
         col = pooled[:, j]
-        cats[int(j)] = np.unique(col[~np.isnan(col)])
-    recs = [_screen_group(name, x, items, low, high, cats, scales) for name, x in parts]
+        values = np.unique(col[~np.isnan(col)])
+        if 0 < values.size <= rule["few_categories_max"]:
+            cats[int(j)] = values
+    recs = [_screen_group(name, x, k, items, low, high, cats, scales) for (name, x), k in zip(parts, distinct)]
     return {
         "groups": recs,
         "recommendation": recommend(recs, rules=rule),
