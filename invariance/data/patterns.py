@@ -61,12 +61,13 @@ class Patterns:
 
 def missing_patterns(x: np.ndarray) -> Patterns:
     """Group the rows of ``x`` (NaN = missing) by their pattern of observed items."""
-    return _sorted_patterns(x)[0]
+    observed, case, counts, sort = _pattern_order(x)
+    return Patterns(observed, case, counts, tuple(np.split(sort, np.cumsum(counts)[:-1])))
 
 
-def _sorted_patterns(x: np.ndarray) -> tuple[Patterns, np.ndarray]:
-    """:func:`missing_patterns` and the rows sorted by pattern (stable: data order within
-    a pattern), the concatenation of ``rows``."""
+def _pattern_order(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """(observed, case_pattern, counts) of :class:`Patterns` and the rows sorted by pattern
+    (stable: data order within a pattern; the concatenation of ``Patterns.rows``)."""
     x = np.asarray(x, dtype=float)
     obs = ~np.isnan(x)
     if obs.shape[1] <= 62:
@@ -82,9 +83,7 @@ def _sorted_patterns(x: np.ndarray) -> tuple[Patterns, np.ndarray]:
     rank[order] = np.arange(order.size)
     case = rank[inv]
     counts = np.bincount(case, minlength=order.size)
-    sort = np.argsort(case, kind="stable")
-    rows = tuple(np.split(sort, np.cumsum(counts)[:-1]))
-    return Patterns(uniq[order], case, counts, rows), sort
+    return uniq[order], case, counts, np.argsort(case, kind="stable")
 
 
 @dataclass(frozen=True, eq=False)
@@ -155,21 +154,21 @@ class _Blocks:
 def _pattern_moments(x: np.ndarray) -> PatternMoments:
     """Pattern statistics from the cases sorted by pattern: means by segment sums, then
     the centred cross products of each contiguous segment (missing entries zero)."""
-    pat, order = _sorted_patterns(x)
-    bounds = np.r_[0, np.cumsum(pat.counts)]
+    pattern, _, count, order = _pattern_order(x)
+    bounds = np.r_[0, np.cumsum(count)]
     xo = x[order]
     observed = ~np.isnan(xo)
     xs = np.where(observed, xo, 0.0)
-    counts = pat.counts.astype(float)
+    counts = count.astype(float)
     means = np.add.reduceat(xs, bounds[:-1], axis=0) / counts[:, None]
-    e = (xs - np.repeat(means, pat.counts, axis=0)) * observed
-    covs = np.empty((pat.n_patterns, x.shape[1], x.shape[1]))
-    for k in range(pat.n_patterns):
+    e = (xs - np.repeat(means, count, axis=0)) * observed
+    covs = np.zeros((count.size, x.shape[1], x.shape[1]))
+    for k in np.flatnonzero(count > 1):  # a single case has covariance 0
         seg = e[bounds[k]:bounds[k + 1]]
         np.matmul(seg.T, seg, out=covs[k])
     covs /= counts[:, None, None]
-    keep = pat.observed.any(axis=1)
-    return PatternMoments(pat.observed[keep], counts[keep], means[keep], covs[keep])
+    keep = pattern.any(axis=1)
+    return PatternMoments(pattern[keep], counts[keep], means[keep], covs[keep])
 
 
 class ContentCache:
