@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from scipy import stats as sst
 
-from invariance.data import em_saturated, little_mcar
+from invariance.data import SampleStats, em_saturated, little_mcar, missing_report, stats_from_arrays
 
 
 def _monotone(seed=4, n=40, m=25):
@@ -83,3 +83,20 @@ def test_little_detects_missingness_that_depends_on_values():
     y = rng.multivariate_normal([0, 0, 0], np.eye(3) + 0.5, size=400)
     y[rng.permutation(400)[:200], 1] = np.nan
     assert little_mcar(y).pvalue > 1e-3
+
+
+def test_little_test_kept_with_the_full_information_statistics():
+    # the statistics of a group carry Little's test at their EM estimates: the same
+    # hand-worked two-pattern statistic as above (Little 1988), with no second pass
+    x, m = _monotone()
+    n = x.shape[0]
+    mu, cov = _closed_form(x, m)
+    d1 = x[:m].mean(axis=0) - mu
+    d2 = x[m:, 0].mean() - mu[0]
+    stat = m * d1 @ np.linalg.solve(cov, d1) + (n - m) * d2**2 / cov[0, 0]
+    g = stats_from_arrays([x], ["g"], ["a", "b"], missing="fiml").groups[0]
+    assert g.missing.little.statistic == pytest.approx(stat, rel=1e-7)
+    assert g.missing.little.df == 1 and g.missing.little.n == n
+    assert missing_report(SampleStats(("a", "b"), (g,)))["g"]["little"] == g.missing.little.to_dict()
+    # complete data: one pattern, no test
+    assert stats_from_arrays([x[:m]], ["g"], ["a", "b"], missing="fiml").groups[0].missing.little is None

@@ -19,9 +19,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special as _sp
 
-from .em import pattern_moments, pattern_terms, saturated_with_patterns
+from .em import PatternMoments, pattern_moments, pattern_terms, saturated_with_patterns
 
-__all__ = ["LittleTest", "little_mcar", "missing_report"]
+__all__ = ["LittleTest", "little_mcar", "little_statistic", "missing_report"]
 
 
 @dataclass(frozen=True)
@@ -74,11 +74,17 @@ def little_mcar(
         mean, cov = em.mean, em.cov
     else:
         pm = pattern_moments(x)
+    return little_statistic(pm, mean, cov)
+
+
+def little_statistic(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray) -> LittleTest:
+    """:func:`little_mcar` from the pattern statistics of the cases and their saturated
+    ML estimates (``mean``, ``cov``)."""
     W, _, d = pattern_terms(pm, mean, cov)
     d2 = float(pm.counts @ np.einsum("ki,kij,kj->k", d, W, d))
-    df = int(pm.observed.sum()) - x.shape[1]
+    df = int(pm.observed.sum()) - pm.observed.shape[1]
     pval = float(_sp.chdtrc(df, d2)) if df > 0 else float("nan")  # = scipy.stats.chi2.sf
-    return LittleTest(float(d2), int(df), pval, int(pm.counts.size), int(x.shape[0]))
+    return LittleTest(float(d2), int(df), pval, int(pm.counts.size), int(round(pm.n)))
 
 
 def missing_report(stats) -> dict:
@@ -95,6 +101,7 @@ def missing_report(stats) -> dict:
             continue
         d = g.missing.to_dict(stats.items)
         if g.missing.method == "fiml" and g.missing.n_patterns > 1:
-            d["little"] = little_mcar(g.raw, mean=g.mean, cov=g.cov).to_dict()
+            little = getattr(g.missing, "little", None) or little_mcar(g.raw, mean=g.mean, cov=g.cov)
+            d["little"] = little.to_dict()
         out[g.name] = d
     return out

@@ -21,6 +21,7 @@ import pandas as pd
 
 from ..errors import ConvergenceWarning, DataError
 from .em import saturated_with_patterns
+from .mcar import LittleTest, little_statistic
 
 __all__ = ["GroupStats", "MissingInfo", "SampleStats", "group_arrays", "sample_stats", "split_rows", "stats_from_arrays"]
 
@@ -51,6 +52,9 @@ class MissingInfo:
         Saturated-model log-likelihood of the cases used (EM under ``fiml``).
     em_iterations, em_converged
         EM run (0 and True when no EM was needed).
+    little
+        Little's MCAR test at the EM estimates (``fiml`` with several patterns), computed
+        with them from the same pattern statistics; ``None`` otherwise.
     """
 
     method: str
@@ -62,6 +66,7 @@ class MissingInfo:
     loglik_h1: float
     em_iterations: int = 0
     em_converged: bool = True
+    little: LittleTest | None = None
 
     @property
     def n_patterns(self) -> int:
@@ -72,7 +77,7 @@ class MissingInfo:
         ix = list(ix)
         return MissingInfo(
             self.method, self.n_input, self.n_dropped, self.observed[:, ix], self.pattern_counts,
-            self.coverage[ix], self.loglik_h1, self.em_iterations, self.em_converged,
+            self.coverage[ix], self.loglik_h1, self.em_iterations, self.em_converged, self.little,
         )
 
     def to_dict(self, items: Sequence[str]) -> dict:
@@ -251,7 +256,7 @@ def _full_information(name: str, x: np.ndarray, items: Sequence[str]) -> GroupSt
         )
     info = MissingInfo(
         "fiml", int(x.shape[0]), int((~keep).sum()), pat.observed, pat.counts.astype(np.int64), count / n,
-        em.loglik, em.iterations, em.converged,
+        em.loglik, em.iterations, em.converged, little_statistic(pat, em.mean, em.cov) if pat.counts.size > 1 else None,
     )
     return GroupStats(name, int(n), em.mean, em.cov, xu, info)
 
