@@ -184,10 +184,13 @@ def _item_array(frame, items: tuple[str, ...]) -> np.ndarray:
     """The items as one (rows, items) float array (NaN = missing), checked item by item
     in model order: text that is not a number, and values that are not finite or too large,
     are refused."""
-    sub = frame[list(items)]
-    if sub.shape[1] == len(items) and all(dt.kind in "biuf" for dt in sub.dtypes):
-        # numbers already (numpy or nullable dtypes): one conversion, nothing to parse
-        return _finite(sub.to_numpy(dtype=float, na_value=np.nan), frame.index, items)
+    if items and frame.columns.is_unique:
+        kinds = dict(zip(frame.columns, frame.dtypes))
+        if all(kinds[c].kind in "biuf" for c in items):
+            # numbers already (numpy or nullable dtypes): column by column, nothing to parse
+            # (no intermediate frame of the items)
+            values = np.column_stack([frame[c].to_numpy(dtype=float, na_value=np.nan) for c in items])
+            return _finite(values, frame.index, items)
     values = np.empty((frame.shape[0], len(items)))
     for j, col in enumerate(items):
         values[:, j] = _finite(_item_values(frame[col], col)[:, None], frame.index, (col,))[:, 0]
@@ -326,6 +329,8 @@ def _labels(keys, group: str) -> _Labels:
 def _finite(values: np.ndarray, index, items: Sequence[str]) -> np.ndarray:
     """``values`` (rows labelled by ``index``, one column per item) when every observed
     value is finite and of a sane magnitude; else the first offending item is named."""
+    if not (np.abs(values) > MAX_MAGNITUDE).any():  # NaN compares False; inf is caught
+        return values
     with np.errstate(invalid="ignore"):
         bad = ~np.isnan(values) & ~(np.abs(values) <= MAX_MAGNITUDE)
     if bad.any():

@@ -142,7 +142,7 @@ def _change(fac: Factored, th0, th1) -> float:
 
 
 #: Newton steps take over once an EM update moves no entry by more than this (relative)
-_NEWTON_FROM = 1e-3
+_NEWTON_FROM = 3e-2
 #: relative rounding of a log-likelihood summed over patterns
 _ROUNDING = 1e-12
 

@@ -465,9 +465,8 @@ def _item_bounds(
     pooled: np.ndarray, items: list[str], bounds: Mapping[str, tuple[float, float]] | None
 ) -> tuple[np.ndarray, np.ndarray]:
     """Lowest and highest value of each item: observed over all groups, or given by the caller."""
-    with np.errstate(all="ignore"):
-        low = np.nanmin(np.where(np.isnan(pooled), np.inf, pooled), axis=0)
-        high = np.nanmax(np.where(np.isnan(pooled), -np.inf, pooled), axis=0)
+    low, high = np.fmin.reduce(pooled, axis=0), np.fmax.reduce(pooled, axis=0)  # NaN only if all are
+    low, high = np.where(np.isnan(low), np.inf, low), np.where(np.isnan(high), -np.inf, high)
     for it, (lo, hi) in dict(bounds or {}).items():
         if it not in items:
             raise SpecificationError(f"Bounds are given for {it!r}, which is not among the screened items.")
