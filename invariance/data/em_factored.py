@@ -11,6 +11,7 @@ Newton steps on these pieces.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -21,6 +22,17 @@ from .patterns import PatternMoments
 __all__ = ["Factored", "Point"]
 
 _LOG2PI = float(np.log(2 * np.pi))
+
+
+@functools.lru_cache(maxsize=64)
+def _duplication(r: int) -> np.ndarray:
+    """The duplication matrix of an r x r symmetric matrix: vec Z = D vech Z, rows of vec
+    in row-major order, vech over the upper triangle row by row (read-only)."""
+    iu, ju = np.triu_indices(r)
+    dup = np.zeros((r * r, iu.size))
+    dup[iu * r + ju, np.arange(iu.size)] = dup[ju * r + iu, np.arange(iu.size)] = 1.0
+    dup.flags.writeable = False
+    return dup
 
 
 @dataclass(frozen=True, eq=False)
@@ -82,7 +94,7 @@ class Factored:
         aug = np.empty((n.size, p + 1, p + 1))  # n_k [[1, m'], [m, S + m m']] per pattern
         aug[:, 0, 0] = n
         aug[:, 0, 1:] = aug[:, 1:, 0] = n[:, None] * means
-        aug[:, 1:, 1:] = n[:, None, None] * (pm.covs[:, order][:, :, order] + means[:, :, None] * means[:, None, :])
+        aug[:, 1:, 1:] = n[:, None, None] * (pm.covs[:, order[:, None], order] + means[:, :, None] * means[:, None, :])
         q, tot = a + 1, float(n.sum())
         szz = aug[:, :q, :q].sum(axis=0)
         mean_a = szz[0, 1:] / tot
@@ -90,12 +102,9 @@ class Factored:
         logdet_a = 2.0 * np.log(np.diag(np.linalg.cholesky(cov_a))).sum() if a else 0.0
         o = pm.observed[:, order[a:]]
         ll_const = -0.5 * (tot * a * (_LOG2PI + 1.0) + tot * logdet_a + float(n @ o.sum(axis=1)) * _LOG2PI)
-        r = p - a
-        iu, ju = np.triu_indices(r)
-        dup = np.zeros((r * r, iu.size))
-        dup[iu * r + ju, np.arange(iu.size)] = dup[ju * r + iu, np.arange(iu.size)] = 1.0
         return cls(order, np.argsort(order), a, n, aug[:, :q, :q], aug[:, :q, q:], aug[:, q:, q:], o[:, :, None] & o[:, None, :],
-                   np.linalg.inv(szz), ll_const, mean_a, cov_a, np.sqrt(np.diag(cov_a)), np.eye(r), tot, dup)
+                   np.linalg.inv(szz), ll_const, mean_a, cov_a, np.sqrt(np.diag(cov_a)), np.eye(p - a), tot,
+                   _duplication(p - a))
 
     def regression(self, mean: np.ndarray, cov: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(beta, Z) of (mean, cov) given in the items' own order."""
