@@ -348,7 +348,9 @@ def group_arrays(
 def split_rows(values: np.ndarray, member: np.ndarray, n_groups: int) -> list[np.ndarray]:
     """The rows of ``values`` of each group ``k < n_groups`` (``member``: row -> group, -1
     for none), in data order; one stable sort, so the cost does not grow with the number
-    of groups times the rows."""
+    of groups times the rows. Each group's array is stored item by item (Fortran order):
+    the per-item sums, counts and bounds that every later stage takes run along
+    contiguous memory."""
     order = np.argsort(member, kind="stable")
     bounds = np.cumsum(np.bincount(member + 1, minlength=n_groups + 1))
-    return [values[order[bounds[k]:bounds[k + 1]]] for k in range(n_groups)]
+    return [np.asfortranarray(values[order[bounds[k]:bounds[k + 1]]]) for k in range(n_groups)]
