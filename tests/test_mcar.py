@@ -46,14 +46,20 @@ def test_em_matches_factored_likelihood_closed_form():
     assert np.allclose(em.cov, cov, atol=1e-8)
 
 
-def test_little_statistic_against_the_formula_worked_by_hand():
-    x, m = _monotone()
+def _little_by_hand(x, m):
+    """Little's (1988) statistic of the two monotone patterns written out."""
     n = x.shape[0]
     mu, cov = _closed_form(x, m)
     # pattern 1: both items, m cases; pattern 2: x1 only, n - m cases
     d1 = x[:m].mean(axis=0) - mu
     d2 = x[m:, 0].mean() - mu[0]
-    stat = m * d1 @ np.linalg.solve(cov, d1) + (n - m) * d2**2 / cov[0, 0]
+    return m * d1 @ np.linalg.solve(cov, d1) + (n - m) * d2**2 / cov[0, 0]
+
+
+def test_little_statistic_against_the_formula_worked_by_hand():
+    x, m = _monotone()
+    n = x.shape[0]
+    stat = _little_by_hand(x, m)
     df = (2 + 1) - 2   # sum of observed items over patterns minus p (Little 1988)
     res = little_mcar(x)
     assert res.statistic == pytest.approx(stat, rel=1e-7)
@@ -90,10 +96,7 @@ def test_little_test_kept_with_the_full_information_statistics():
     # hand-worked two-pattern statistic as above (Little 1988), with no second pass
     x, m = _monotone()
     n = x.shape[0]
-    mu, cov = _closed_form(x, m)
-    d1 = x[:m].mean(axis=0) - mu
-    d2 = x[m:, 0].mean() - mu[0]
-    stat = m * d1 @ np.linalg.solve(cov, d1) + (n - m) * d2**2 / cov[0, 0]
+    stat = _little_by_hand(x, m)
     g = stats_from_arrays([x], ["g"], ["a", "b"], missing="fiml").groups[0]
     assert g.missing.little.statistic == pytest.approx(stat, rel=1e-7)
     assert g.missing.little.df == 1 and g.missing.little.n == n

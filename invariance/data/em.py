@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .em_factored import Factored, Point
-from .patterns import (
+from .patterns import (  # re-exported: the pattern statistics were defined here before
     CACHE,
     ContentCache,
     PatternMoments,
@@ -33,6 +33,7 @@ __all__ = [
     "missing_patterns",
     "PatternMoments",
     "pattern_moments",
+    "pattern_moments_by_key",
     "pattern_terms",
     "pattern_loglik",
     "pattern_loglik_moments",
@@ -43,7 +44,6 @@ __all__ = [
     "saturated_with_patterns",
 ]
 
-_LOG2PI = float(np.log(2 * np.pi))
 
 @dataclass(frozen=True, eq=False)
 class EMResult:
