@@ -14,6 +14,8 @@ import pytest
 from scipy import stats as sst
 
 from invariance.data.em import CACHE, em_saturated, pattern_moments
+from invariance.data.moments import stats_from_arrays
+from invariance.errors import ConvergenceWarning, DataError
 from invariance.data.em_factored import Factored
 
 
@@ -163,3 +165,38 @@ def test_complete_data_gives_the_sample_moments():
     assert np.allclose(em.mean, x.mean(axis=0), rtol=1e-12)
     assert np.allclose(em.cov, np.cov(x.T, bias=True), rtol=1e-12)
     assert em.loglik == pytest.approx(sst.multivariate_normal(em.mean, em.cov).logpdf(x).sum(), rel=1e-12)
+
+
+_NAN = np.nan
+#: 21 cases, 5 items, about 40% missing on three of them (a seeded draw of a random normal
+#: model, rounded): too few cases observe the first three items together
+_DEGENERATE = np.array([
+    [_NAN, -2.15, -0.27, 2.41, -1.0], [-3.81, 1.25, _NAN, 0.55, -0.44], [-0.92, _NAN, -0.94, -1.72, 0.28],
+    [-2.45, _NAN, _NAN, 0.9, -1.77], [0.51, 1.35, -1.06, -0.21, -0.02], [_NAN, -3.49, -1.51, 1.86, -0.8],
+    [0.38, _NAN, -2.59, -0.64, 0.83], [-2.04, _NAN, -1.37, 0.05, -1.33], [_NAN, -2.25, -2.29, 0.02, -1.33],
+    [-0.59, -0.49, _NAN, -1.18, -0.01], [_NAN, _NAN, -1.25, 0.26, -0.78], [_NAN, _NAN, _NAN, -0.12, -0.24],
+    [-2.29, _NAN, -3.11, -2.59, -1.45], [_NAN, -1.97, _NAN, -1.07, -0.62], [_NAN, -2.3, _NAN, 1.5, -2.6],
+    [-3.1, -0.03, _NAN, 0.8, 1.83], [-2.28, -4.3, -0.4, 1.09, -2.6], [_NAN, _NAN, _NAN, -1.33, -1.57],
+    [_NAN, -1.13, _NAN, 0.44, -1.39], [-0.92, _NAN, _NAN, -1.82, 0.08], [-1.28, _NAN, _NAN, 0.35, -0.14],
+])
+
+
+def test_iterates_running_to_a_singular_covariance_stop_as_not_converged():
+    # the saturated ML estimate of these data is singular: the EM iterates approach a
+    # covariance with a zero eigenvalue. The run stops without an exception, says it did
+    # not converge; the statistics refuse the group with one line (or warn), never a
+    # traceback
+    CACHE.clear()
+    em = em_saturated(_DEGENERATE)
+    assert not em.converged
+    # a point this close to singular (smallest eigenvalue about 1e-12 of the largest)
+    # determines its log-likelihood to a few digits only: finite, and above the start's
+    assert np.isfinite(em.loglik) and np.linalg.eigvalsh(em.cov)[0] < 1e-8 * np.linalg.eigvalsh(em.cov)[-1]
+    start_mean, start_cov = np.nanmean(_DEGENERATE, axis=0), np.diag(np.nanvar(_DEGENERATE, axis=0))
+    assert em.loglik > _casewise(_DEGENERATE, start_mean, start_cov)
+    CACHE.clear()
+    with pytest.warns(ConvergenceWarning, match="before converging"):
+        try:
+            stats_from_arrays([_DEGENERATE], ["g"], list("abcde"), missing="fiml")
+        except DataError as exc:
+            assert "\n" not in str(exc)

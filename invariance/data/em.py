@@ -134,7 +134,8 @@ def _change(fac: Factored, th0, th1) -> float:
     g0, g1 = b0[1:], b1[1:]
     sar0, sar1 = fac.cov_a @ g0, fac.cov_a @ g1
     srr1 = z1 + g1.T @ sar1
-    sd_r, sd_a = np.sqrt(np.diag(srr1)), fac.sd_a
+    with np.errstate(invalid="ignore"):  # a variance below 0 makes the move NaN: not converged
+        sd_r, sd_a = np.sqrt(np.diag(srr1)), fac.sd_a
     dm = np.abs(b1[0] - b0[0] + fac.mean_a @ (g1 - g0)) / sd_r
     dar = np.abs(sar1 - sar0) / np.outer(sd_a, sd_r) if fac.a else dm
     drr = np.abs(srr1 - z0 - g0.T @ sar0) / np.outer(sd_r, sd_r)
@@ -165,7 +166,13 @@ def _em_run(x: np.ndarray, key: tuple, *, max_iter: int, tol: float) -> EMResult
             break
         if steps >= max_iter:
             break
-        th, pt, used = _advance(fac, th, pt, newton=move < _NEWTON_FROM)
+        try:
+            th, pt, used = _advance(fac, th, pt, newton=move < _NEWTON_FROM)
+        except np.linalg.LinAlgError:
+            # an EM update no longer positive definite: the iterates run to a singular
+            # covariance (too few cases for some items); the last point is returned as
+            # not converged
+            break
         steps += used
     mean, cov = fac.moments(*th)
     return EMResult(mean, cov, pt.ll, steps, converged)
