@@ -26,6 +26,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..data.em import PatternMoments
+from .kernels import pair_products
 from .linalg import pd_inverse_logdet
 
 __all__ = ["PatternSplit", "PatternPoint", "pattern_point", "gradient_terms", "information_terms",
@@ -212,12 +213,6 @@ def _y_tensor(sp: PatternSplit, pt: PatternPoint) -> np.ndarray:
     return pt.more["T"]
 
 
-def _pairs(X: np.ndarray, idx: np.ndarray, u: int) -> tuple[np.ndarray, ...]:
-    """Blocks X[a_u, a_v], X[a_u, b_v], X[b_u, a_v], X[b_u, b_v] (idx = [a, b])."""
-    g = X.take(idx, 0).take(idx, 1)
-    return g[:u, :u], g[:u, u:], g[u:, :u], g[u:, u:]
-
-
 def information_terms(sp: PatternSplit, pt: PatternPoint, fj) -> tuple[np.ndarray, np.ndarray]:
     """(cov, mean) of the expected information over free entries: cov[u, v] =
     sum_k n_k (Q_k[a_u, a_v] Q_k[b_u, b_v] + Q_k[a_u, b_v] Q_k[b_u, a_v]) and
@@ -231,16 +226,15 @@ def information_terms(sp: PatternSplit, pt: PatternPoint, fj) -> tuple[np.ndarra
     gradient_terms(sp, pt)
     _, V, Q0 = _bases(sp, pt, fj.H)
     N, u = sp.N, fj.ia.size
-    qbar = N * Q0 + V.T @ pt.more["ybar"] @ V
-    idx = np.concatenate([fj.ia, fj.ib])
-    q_aa, q_ab, q_ba, q_bb = pt.more["Q0pairs"] = _pairs(Q0, idx, u)
-    b_aa, b_ab, b_ba, b_bb = _pairs(qbar, idx, u)
-    cov = q_aa * b_bb + q_ab * b_ba + b_aa * q_bb + b_ab * q_ba - N * (q_aa * q_bb + q_ab * q_ba)
+    rbar = V.T @ pt.more["ybar"] @ V
+    qbar = N * Q0 + rbar
+    # N S(Q0, Q0) + S(Q0, Rbar) + S(Rbar, Q0), S(X, Y) = X_aa Y_bb + X_ab Y_ba
+    cov = pair_products(Q0, 0.5 * N * Q0 + rbar, fj)
     va, vb = V[:, fj.ia].T, V[:, fj.ib].T
     phi = (va[:, :, None] * vb[:, None, :]).reshape(u, sp.r * sp.r)
     phit = (vb[:, :, None] * va[:, None, :]).reshape(u, sp.r * sp.r)
     cov += phi @ _y_tensor(sp, pt) @ (phi + phit).T
-    mean = qbar.take(fj.ic, 0).take(fj.ic, 1)
+    mean = qbar.take(fj.flat["cc"])
     pt.more.update(cov=cov, mean=mean)
     return cov, mean
 
@@ -260,12 +254,9 @@ def hessian_terms(sp: PatternSplit, pt: PatternPoint, fj) -> np.ndarray:
     ko, V, Q0 = _bases(sp, pt, fj.H)
     m = pt.more
     u, p, r, a, K = fj.ia.size, ko.shape[0], sp.r, sp.a, pt.Y.shape[0]
-    idx = np.concatenate([fj.ia, fj.ib])
     lam = np.vstack([ko[:a], V])
     mt = _split_products(sp, pt)
-    q_aa, q_ab, q_ba, q_bb = m["Q0pairs"]
-    m_aa, m_ab, m_ba, m_bb = _pairs(lam.T @ _wsum(sp.n, mt) @ lam, idx, u)
-    cross = m_ba * q_ab + m_bb * q_aa + m_aa * q_bb + m_ab * q_ba
+    cross = pair_products(Q0, lam.T @ _wsum(sp.n, mt) @ lam, fj)
     n0 = (mt.reshape(K, p * p).T * sp.n) @ pt.Y.reshape(K, r * r)
     nt = n0.reshape(p, p, r, r).transpose(0, 2, 1, 3).reshape(p * r, p * r)
     la, lb = lam[:, fj.ia].T, lam[:, fj.ib].T

@@ -32,6 +32,7 @@ __all__ = [
     "factored_gradient",
     "factored_information",
     "factored_moment_hessian",
+    "pair_products",
     "to_params",
 ]
 
@@ -219,6 +220,10 @@ class FactoredJacobian:
         (k,) scale of the covariance and mean parts (0 where an entry has none).
     P
         Entries -> local parameters (k x u), or ``None`` when it is the identity.
+    flat
+        Flat positions in an n x n Gram matrix (n the basis size) of the pairs of entries:
+        ``ab`` and ``ba`` gather X[[a, b]][:, [a, b]] and X[[b, a]][:, [b, a]], ``cc``
+        gathers X[c][:, c] (see :func:`pair_products`).
     """
 
     H: np.ndarray
@@ -228,6 +233,7 @@ class FactoredJacobian:
     s: np.ndarray
     t: np.ndarray
     P: np.ndarray | None
+    flat: dict
 
 
 def _factor_pattern(lay: GroupLayout) -> tuple[np.ndarray, ...]:
@@ -250,7 +256,10 @@ def _factor_pattern(lay: GroupLayout) -> tuple[np.ndarray, ...]:
     r, _, _, pos = lay.sel[ALPHA]
     ic[pos], t0[pos] = gcol + r, 1.0
     ident = lay.P.shape[0] == lay.P.shape[1] and np.array_equal(lay.P, np.eye(k))
-    return ia, ib, ic, s, t0, tsrc, ident
+    n = p + 2 * m
+    ab, ba = np.concatenate([ia, ib]), np.concatenate([ib, ia])
+    flat = {key: v[:, None] * n + v[None, :] for key, v in (("ab", ab), ("ba", ba), ("cc", ic))}
+    return ia, ib, ic, s, t0, tsrc, ident, flat
 
 
 _PATTERNS: "weakref.WeakKeyDictionary[GroupLayout, tuple]" = weakref.WeakKeyDictionary()
@@ -261,19 +270,24 @@ def factor_jacobian(lay: GroupLayout, mats: tuple[np.ndarray, ...], G: np.ndarra
     pat = _PATTERNS.get(lay)
     if pat is None:
         pat = _PATTERNS[lay] = _factor_pattern(lay)
-    ia, ib, ic, s, t0, tsrc, ident = pat
+    ia, ib, ic, s, t0, tsrc, ident, flat = pat
     C = A @ mats[2] @ G.T
     Aa = A @ mats[5]
     t = np.where(tsrc >= 0, Aa[tsrc], t0)
-    return FactoredJacobian(np.hstack([G, C.T]), ia, ib, ic, s, t, None if ident else lay.P)
+    return FactoredJacobian(np.hstack([G, C.T]), ia, ib, ic, s, t, None if ident else lay.P, flat)
 
 
 def gram(H: np.ndarray, X: np.ndarray) -> np.ndarray:
-    """K'XK for K = [I | H] and symmetric X of shape (..., p, p)."""
+    """K'XK for K = [I | H] and a symmetric p x p matrix X (the identity block of K is
+    never multiplied: the cost grows as p^2)."""
+    p = X.shape[0]
     XH = X @ H
-    top = np.concatenate([X, XH], axis=-1)
-    bottom = np.concatenate([np.swapaxes(XH, -1, -2), np.swapaxes(H, -1, -2) @ XH], axis=-1)
-    return np.concatenate([top, bottom], axis=-2)
+    out = np.empty((p + H.shape[1], p + H.shape[1]))
+    out[:p, :p] = X
+    out[:p, p:] = XH
+    out[p:, :p] = XH.T
+    out[p:, p:] = H.T @ XH
+    return out
 
 
 def to_params(fj: FactoredJacobian, g: np.ndarray | None, M: np.ndarray | None):
@@ -291,9 +305,15 @@ def factored_gradient(fj: FactoredJacobian, Gs: np.ndarray, w: np.ndarray) -> np
     return to_params(fj, g, None)[0]
 
 
-def _block(X: np.ndarray, i: np.ndarray, j: np.ndarray) -> np.ndarray:
-    """X[i][:, j] (two takes: far cheaper than broadcast fancy indexing)."""
-    return X.take(i, 0).take(j, 1)
+def pair_products(X: np.ndarray, Y: np.ndarray, fj: FactoredJacobian) -> np.ndarray:
+    """X[a_u, a_v] Y[b_u, b_v] + X[a_u, b_v] Y[b_u, a_v] + X[b_u, a_v] Y[a_u, b_v]
+    + X[b_u, b_v] Y[a_u, a_v] for every pair (u, v) of entries (a, b = ``fj.ia``,
+    ``fj.ib``): the four blocks of X[[a, b]][:, [a, b]] times Y[[b, a]][:, [b, a]],
+    summed (two flat gathers)."""
+    u = fj.ia.size
+    P = X.take(fj.flat["ab"]) * Y.take(fj.flat["ba"])
+    Q = P[:u] + P[u:]
+    return Q[:, :u] + Q[:, u:]
 
 
 def factored_information(fj: FactoredJacobian, QW: np.ndarray) -> np.ndarray:
@@ -302,11 +322,9 @@ def factored_information(fj: FactoredJacobian, QW: np.ndarray) -> np.ndarray:
     (Full-information ML sums it over missingness patterns in
     :mod:`invariance.estimate.fiml_kernels`.)
     """
-    a, b, c = fj.ia, fj.ib, fj.ic
-    Qa, Qb = QW.take(a, 0), QW.take(b, 0)
-    cov = Qa.take(a, 1) * Qb.take(b, 1) + Qa.take(b, 1) * Qb.take(a, 1)
+    cov = 0.5 * pair_products(QW, QW, fj)
     s, t = fj.s, fj.t
-    info = 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * _block(QW, c, c))
+    info = 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * QW.take(fj.flat["cc"]))
     return to_params(fj, None, info)[1]
 
 
@@ -318,13 +336,11 @@ def factored_moment_hessian(fj: FactoredJacobian, QW: np.ndarray, QM: np.ndarray
     with M = W C W, w = W d; ``QW`` = K'WK, ``QM`` = K'MK, ``kw`` = K'w.
     """
     a, b, c = fj.ia, fj.ib, fj.ic
-    Wa, Wb, Ma, Mb = QW.take(a, 0), QW.take(b, 0), QM.take(a, 0), QM.take(b, 0)
-    Waa, Wab, Wba, Wbb = Wa.take(a, 1), Wa.take(b, 1), Wb.take(a, 1), Wb.take(b, 1)
-    cov = (Mb.take(a, 1) * Wab + Mb.take(b, 1) * Waa + Ma.take(a, 1) * Wbb + Ma.take(b, 1) * Wba
-           - (Waa * Wbb + Wab * Wba))
-    Y = Wa.take(c, 1) * kw[b][:, None] + Wb.take(c, 1) * kw[a][:, None]
+    cov = pair_products(QW, QM - 0.5 * QW, fj)
+    Wc = QW.take(c, 1)
+    Y = Wc.take(a, 0) * kw[b][:, None] + Wc.take(b, 0) * kw[a][:, None]
     s, t = fj.s, fj.t
     Ys = s[:, None] * t[None, :] * Y
     H = 2.0 * (s[:, None] * s[None, :] * cov + Ys + Ys.T)
-    H += 2.0 * t[:, None] * t[None, :] * _block(QW, c, c)
+    H += 2.0 * t[:, None] * t[None, :] * QW.take(fj.flat["cc"])
     return H

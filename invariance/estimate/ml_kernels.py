@@ -115,7 +115,7 @@ def second_derivative_part(
     and nu enter linearly). Linear in (Gs, w): full-information ML passes the sums over
     its missingness patterns.
     """
-    lam, psi = mats[0], mats[2]
+    psi = mats[2]
     k = lay.ent_mat.size
     Ke = np.zeros((k, k))
     iL, jL, _, pL = lay.sel[LAMBDA]
