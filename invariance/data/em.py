@@ -149,8 +149,9 @@ _ROUNDING = 1e-12
 
 
 def _em_run(x: np.ndarray, key: tuple, *, max_iter: int, tol: float) -> EMResult:
-    """EM from the pairwise start on ``x``, whose content key is ``key`` (its columns in
-    canonical order already, so the pattern statistics are looked up without hashing)."""
+    """The saturated estimates of ``x`` from the pairwise start (:func:`_advance` steps),
+    ``x`` with content key ``key`` and its columns in canonical order already, so the
+    pattern statistics are looked up without hashing again."""
     pm = pattern_moments_by_key(x, (key, np.arange(x.shape[1])))
     fac = Factored.of(pm)
     if fac.a == x.shape[1]:  # complete data: the sample moments
@@ -180,11 +181,15 @@ def _em_run(x: np.ndarray, key: tuple, *, max_iter: int, tol: float) -> EMResult
 
 def _advance(fac: Factored, th, pt: Point, *, newton: bool) -> tuple[tuple, Point, int]:
     """The next point from ``th`` (evaluated as ``pt``), its evaluation and the number of
-    evaluations spent: a Newton step near the optimum when it raises the likelihood
-    (up to rounding: near the optimum the gain is below the rounding of the sum), else a SQUAREM cycle (Varadhan & Roland 2008): two EM updates give the direction;
-    the extrapolated point, stabilized by one EM update, is kept only when it is positive
+    evaluations spent.
+
+    Near the optimum (``newton``) a Newton step, kept when it does not lower the
+    likelihood (up to rounding: there the gain is below the rounding of the sum); else a
+    SQUAREM cycle (Varadhan & Roland 2008): two EM updates give the direction, and the
+    extrapolated point, stabilized by one EM update, is kept only when it is positive
     definite and its likelihood does not fall (else the second EM update), so the
-    likelihood never falls."""
+    likelihood never falls.
+    """
     used = 0
     if newton:
         cand = fac.newton(*th, pt)
