@@ -95,6 +95,12 @@ def em_saturated(
     -------
     EMResult
         With complete data the sample mean and covariance (one update).
+
+    Raises
+    ------
+    numpy.linalg.LinAlgError
+        When an EM update leaves the positive-definite region: the iterates run to a
+        singular covariance (too few cases observe some items together).
     """
     return saturated_with_patterns(x, max_iter=max_iter, tol=tol)[0]
 
@@ -167,13 +173,7 @@ def _em_run(x: np.ndarray, key: tuple, *, max_iter: int, tol: float) -> EMResult
             break
         if steps >= max_iter:
             break
-        try:
-            th, pt, used = _advance(fac, th, pt, newton=move < _NEWTON_FROM)
-        except np.linalg.LinAlgError:
-            # an EM update no longer positive definite: the iterates run to a singular
-            # covariance (too few cases for some items); the last point is returned as
-            # not converged
-            break
+        th, pt, used = _advance(fac, th, pt, newton=move < _NEWTON_FROM)
         steps += used
     mean, cov = fac.moments(*th)
     return EMResult(mean, cov, pt.ll, steps, converged)
