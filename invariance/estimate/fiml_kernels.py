@@ -55,8 +55,9 @@ class PatternSplit:
         unobserved items (the padding that keeps every block invertible).
     means, obs
         Pattern means (K, p) and observed items (K, p, as 0/1), in the split order.
-    s_ax, s_rx
-        The rows of A and of R of the pattern covariances (K, p, p) in the split order.
+    s_ax, s_rx, s_aa
+        The rows of A and of R of the pattern covariances (K, p, p) in the split order,
+        and their A x A block.
     saa_total
         sum_k n_k S_AA,k.
     """
@@ -75,6 +76,7 @@ class PatternSplit:
     saa_total: np.ndarray
     s_ax: np.ndarray
     s_rx: np.ndarray
+    s_aa: np.ndarray
     #: rows of the identity in the split order (the item block of the basis)
     perm: np.ndarray
 
@@ -92,7 +94,8 @@ class PatternSplit:
                    float(n @ (pm.observed.sum(axis=1) * _LOG2PI)), mask, eye,
                    pm.means[:, order], pm.observed[:, order].astype(float),
                    np.tensordot(n, covs[:, :a, :a], axes=1), np.ascontiguousarray(covs[:, :a]),
-                   np.ascontiguousarray(covs[:, a:]), np.eye(order.size)[order])
+                   np.ascontiguousarray(covs[:, a:]), np.ascontiguousarray(covs[:, :a, :a]),
+                   np.eye(order.size)[order])
 
 
 @dataclass(eq=False)
@@ -194,13 +197,17 @@ def gradient_terms(sp: PatternSplit, pt: PatternPoint) -> tuple[np.ndarray, np.n
     return pt.more["Gs"], pt.more["w"]
 
 
-def _bases(sp: PatternSplit, pt: PatternPoint, H: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(Ko, V, Q0): the basis K = [I | H] in the split order, V = B Ko and Q0 = KA' P KA."""
-    if "V" not in pt.more:
-        ko = np.hstack([sp.perm, H.take(sp.order, 0)])
-        ka = ko[:sp.a]
-        pt.more.update(Ko=ko, V=ko[sp.a:] - pt.G.T @ ka, Q0=ka.T @ pt.P @ ka)
-    return pt.more["Ko"], pt.more["V"], pt.more["Q0"]
+def _bases(sp: PatternSplit, pt: PatternPoint, H: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(L, Q0): L = T Ko = [KA; V] for the basis Ko = [I | H] in the split order (KA its
+    rows of A, V = B Ko) and Q0 = KA' P KA."""
+    if "L" not in pt.more:
+        p, a = sp.perm.shape[0], sp.a
+        lam = np.empty((p, p + H.shape[1]))
+        lam[:, :p] = sp.perm
+        lam[:, p:] = H.take(sp.order, 0)
+        lam[a:] -= pt.G.T @ lam[:a]
+        pt.more.update(L=lam, Q0=lam[:a].T @ pt.P @ lam[:a])
+    return pt.more["L"], pt.more["Q0"]
 
 
 def _y_tensor(sp: PatternSplit, pt: PatternPoint) -> np.ndarray:
@@ -224,7 +231,8 @@ def information_terms(sp: PatternSplit, pt: PatternPoint, fj) -> tuple[np.ndarra
     if "cov" in pt.more:
         return pt.more["cov"], pt.more["mean"]
     gradient_terms(sp, pt)
-    _, V, Q0 = _bases(sp, pt, fj.H)
+    lam, Q0 = _bases(sp, pt, fj.H)
+    V = lam[sp.a:]
     N, u = sp.N, fj.ia.size
     rbar = V.T @ pt.more["ybar"] @ V
     qbar = N * Q0 + rbar
@@ -251,10 +259,10 @@ def hessian_terms(sp: PatternSplit, pt: PatternPoint, fj) -> np.ndarray:
     Psi_u = l_{b_u} (x) v_{a_u} + l_{a_u} (x) v_{b_u}.
     """
     cov, mean = information_terms(sp, pt, fj)
-    ko, V, Q0 = _bases(sp, pt, fj.H)
+    lam, Q0 = _bases(sp, pt, fj.H)
     m = pt.more
-    u, p, r, a, K = fj.ia.size, ko.shape[0], sp.r, sp.a, pt.Y.shape[0]
-    lam = np.vstack([ko[:a], V])
+    u, p, r, a, K = fj.ia.size, lam.shape[0], sp.r, sp.a, pt.Y.shape[0]
+    V = lam[a:]
     mt = _split_products(sp, pt)
     cross = pair_products(Q0, lam.T @ _wsum(sp.n, mt) @ lam, fj)
     n0 = (mt.reshape(K, p * p).T * sp.n) @ pt.Y.reshape(K, r * r)
@@ -264,7 +272,7 @@ def hessian_terms(sp: PatternSplit, pt: PatternPoint, fj) -> np.ndarray:
     psi = (lb[:, :, None] * va[:, None, :] + la[:, :, None] * vb[:, None, :]).reshape(u, p * r)
     cross += psi @ nt @ psi.T
     # sum_k n_k (Q_k[a_u, c_v] kw_k[b_u] + Q_k[b_u, c_v] kw_k[a_u]), kw_k = Ko' W_k d_k
-    kw = (pt.d[:, :a] @ pt.P) @ ko[:a] + m["h"] @ V
+    kw = (pt.d[:, :a] @ pt.P) @ lam[:a] + m["h"] @ V
     kwbar = sp.n @ kw
     qc = Q0.take(fj.ic, 1)
     yh = qc.take(fj.ia, 0) * kwbar[fj.ib][:, None] + qc.take(fj.ib, 0) * kwbar[fj.ia][:, None]
@@ -286,10 +294,10 @@ def _split_products(sp: PatternSplit, pt: PatternPoint) -> np.ndarray:
     W_k C_k W_k = T'M~_kT."""
     a, P, m = sp.a, pt.P, pt.more
     g = pt.d[:, :a] @ P                                                # P dA_k
-    f = P @ (pt.U.transpose(0, 2, 1) @ pt.Y) + g[:, :, None] * m["h"][:, None, :]
+    ft = (pt.Y @ pt.U) @ P + m["h"][:, :, None] * g[:, None, :]         # F_k' = Y_k (U_k' + e_k dA_k') P
     out = np.empty((pt.Y.shape[0], sp.a + sp.r, sp.a + sp.r))
-    out[:, :a, :a] = P @ sp.s_ax[:, :, :a] @ P + g[:, :, None] * g[:, None, :]
-    out[:, :a, a:] = f
-    out[:, a:, :a] = f.transpose(0, 2, 1)
+    out[:, :a, :a] = P @ sp.s_aa @ P + g[:, :, None] * g[:, None, :]
+    out[:, a:, :a] = ft
+    out[:, :a, a:] = ft.transpose(0, 2, 1)
     out[:, a:, a:] = m["yey"]
     return out
