@@ -101,7 +101,7 @@ def missing_report(stats) -> dict:
             continue
         d = g.missing.to_dict(stats.items)
         if g.missing.method == "fiml" and g.missing.n_patterns > 1:
-            little = getattr(g.missing, "little", None) or little_mcar(g.raw, mean=g.mean, cov=g.cov)
+            little = g.missing.little or little_mcar(g.raw, mean=g.mean, cov=g.cov)
             d["little"] = little.to_dict()
         out[g.name] = d
     return out
