@@ -25,7 +25,7 @@ from ..data.em import PatternMoments, em_saturated, pattern_moments
 from ..data.moments import SampleStats
 from ..model.spec import ModelSpec
 from .fiml_kernels import PatternSplit, gradient_terms, hessian_terms, information_terms, pattern_point
-from .kernels import factor_jacobian, factored_gradient, group_matrices, implied_moments, to_params
+from .kernels import entry_matrix, factor_jacobian, factored_gradient, group_matrices, implied_moments, to_params
 from .ml_kernels import second_derivative_part
 from .objective import GroupObjective
 
@@ -123,9 +123,7 @@ class FIMLObjective(GroupObjective):
             gg = factored_gradient(fj, *gradient_terms(d.split, pt))
             hh = None
             if information:
-                cov, mean = information_terms(d.split, pt, fj)
-                s, t = fj.s, fj.t
-                hh = to_params(fj, None, 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * mean))[1]
+                hh = to_params(fj, None, entry_matrix(fj, *information_terms(d.split, pt, fj)))[1]
             if self._whole:  # one group owning every parameter: its terms are the totals
                 grad, info = gg, hh
                 break

@@ -26,7 +26,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..data.em import PatternMoments
-from .kernels import pair_products
+from .kernels import entry_matrix, pair_products
 from .linalg import pd_inverse_logdet
 
 __all__ = ["PatternSplit", "PatternPoint", "pattern_point", "gradient_terms", "information_terms",
@@ -221,9 +221,9 @@ def _y_tensor(sp: PatternSplit, pt: PatternPoint) -> np.ndarray:
 
 
 def information_terms(sp: PatternSplit, pt: PatternPoint, fj) -> tuple[np.ndarray, np.ndarray]:
-    """(cov, mean) of the expected information over free entries: cov[u, v] =
-    sum_k n_k (Q_k[a_u, a_v] Q_k[b_u, b_v] + Q_k[a_u, b_v] Q_k[b_u, a_v]) and
-    mean[u, v] = Qbar[c_u, c_v], Qbar = sum_k n_k Q_k, with Q_k = K'W_kK = Q0 + V'Y_kV.
+    """(cov, mean) of the expected information: over the entries with a covariance part
+    (``fj.flat``), cov[u, v] = sum_k n_k (Q_k[a_u, a_v] Q_k[b_u, b_v] + Q_k[a_u, b_v]
+    Q_k[b_u, a_v]); over all free entries mean[u, v] = Qbar[c_u, c_v], Qbar = sum_k n_k Q_k, with Q_k = K'W_kK = Q0 + V'Y_kV.
 
     The cross terms with Q0 are single-matrix products; the Y part is
     Phi T (Phi + Phi~)' with Phi_u = v_{a_u} (x) v_{b_u}, Phi~_u = v_{b_u} (x) v_{a_u}.
@@ -233,12 +233,12 @@ def information_terms(sp: PatternSplit, pt: PatternPoint, fj) -> tuple[np.ndarra
     gradient_terms(sp, pt)
     lam, Q0 = _bases(sp, pt, fj.H)
     V = lam[sp.a:]
-    N, u = sp.N, fj.ia.size
+    N, u = sp.N, fj.flat["cs"].size
     rbar = V.T @ pt.more["ybar"] @ V
     qbar = N * Q0 + rbar
     # N S(Q0, Q0) + S(Q0, Rbar) + S(Rbar, Q0), S(X, Y) = X_aa Y_bb + X_ab Y_ba
     cov = pair_products(Q0, 0.5 * N * Q0 + rbar, fj)
-    va, vb = V[:, fj.ia].T, V[:, fj.ib].T
+    va, vb = V[:, fj.flat["a"]].T, V[:, fj.flat["b"]].T
     phi = (va[:, :, None] * vb[:, None, :]).reshape(u, sp.r * sp.r)
     phit = (vb[:, :, None] * va[:, None, :]).reshape(u, sp.r * sp.r)
     cov += phi @ _y_tensor(sp, pt) @ (phi + phit).T
@@ -261,31 +261,29 @@ def hessian_terms(sp: PatternSplit, pt: PatternPoint, fj) -> np.ndarray:
     cov, mean = information_terms(sp, pt, fj)
     lam, Q0 = _bases(sp, pt, fj.H)
     m = pt.more
-    u, p, r, a, K = fj.ia.size, lam.shape[0], sp.r, sp.a, pt.Y.shape[0]
+    u, p, r, a, K = fj.flat["cs"].size, lam.shape[0], sp.r, sp.a, pt.Y.shape[0]
+    ea, eb = fj.flat["a"], fj.flat["b"]
     V = lam[a:]
     mt = _split_products(sp, pt)
     cross = pair_products(Q0, lam.T @ _wsum(sp.n, mt) @ lam, fj)
     n0 = (mt.reshape(K, p * p).T * sp.n) @ pt.Y.reshape(K, r * r)
     nt = n0.reshape(p, p, r, r).transpose(0, 2, 1, 3).reshape(p * r, p * r)
-    la, lb = lam[:, fj.ia].T, lam[:, fj.ib].T
-    va, vb = V[:, fj.ia].T, V[:, fj.ib].T
+    la, lb = lam[:, ea].T, lam[:, eb].T
+    va, vb = V[:, ea].T, V[:, eb].T
     psi = (lb[:, :, None] * va[:, None, :] + la[:, :, None] * vb[:, None, :]).reshape(u, p * r)
     cross += psi @ nt @ psi.T
     # sum_k n_k (Q_k[a_u, c_v] kw_k[b_u] + Q_k[b_u, c_v] kw_k[a_u]), kw_k = Ko' W_k d_k
     kw = (pt.d[:, :a] @ pt.P) @ lam[:a] + m["h"] @ V
     kwbar = sp.n @ kw
     qc = Q0.take(fj.ic, 1)
-    yh = qc.take(fj.ia, 0) * kwbar[fj.ib][:, None] + qc.take(fj.ib, 0) * kwbar[fj.ia][:, None]
+    yh = qc.take(ea, 0) * kwbar[eb][:, None] + qc.take(eb, 0) * kwbar[ea][:, None]
     # its Y part: S[b_u, a_u, v] + S[a_u, b_u, v], S[l, i, v] = sum_k n_k kw_k[l] v_i' Y_k v_{c_v}
     nb = kw.shape[1]
-    yv = m["ny"] @ V.take(fj.ic, 1)                                     # (K, r, u)
-    S = (V.T @ (kw.T @ yv.reshape(K, -1)).reshape(nb, r, u)).reshape(nb * nb, u)
-    yh += S.take(fj.ib * nb + fj.ia, 0) + S.take(fj.ia * nb + fj.ib, 0)
-    s, t = fj.s, fj.t
-    ys = s[:, None] * t[None, :] * yh
-    H = 2.0 * (s[:, None] * s[None, :] * (cross - cov) + ys + ys.T)
-    H += 2.0 * t[:, None] * t[None, :] * mean
-    return H
+    yv = m["ny"] @ V.take(fj.ic, 1)                                     # (K, r, k)
+    k = fj.ic.size
+    S = (V.T @ (kw.T @ yv.reshape(K, -1)).reshape(nb, r, k)).reshape(nb * nb, k)
+    yh += S.take(eb * nb + ea, 0) + S.take(ea * nb + eb, 0)
+    return entry_matrix(fj, cross - cov, mean, yh)
 
 
 def _split_products(sp: PatternSplit, pt: PatternPoint) -> np.ndarray:

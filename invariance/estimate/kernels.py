@@ -33,6 +33,7 @@ __all__ = [
     "factored_information",
     "factored_moment_hessian",
     "pair_products",
+    "entry_matrix",
     "to_params",
 ]
 
@@ -221,9 +222,12 @@ class FactoredJacobian:
     P
         Entries -> local parameters (k x u), or ``None`` when it is the identity.
     flat
-        Flat positions in an n x n Gram matrix (n the basis size) of the pairs of entries:
-        ``ab`` and ``ba`` gather X[[a, b]][:, [a, b]] and X[[b, a]][:, [b, a]], ``cc``
-        gathers X[c][:, c] (see :func:`pair_products`).
+        Index arrays fixed by the layout: ``cs`` the entries with a covariance part
+        (s != 0; intercepts and factor means have none), ``a``, ``b`` their basis
+        columns; flat positions in an n x n Gram matrix (n the basis size): ``ab`` and
+        ``ba`` gather X[[a, b]][:, [a, b]] and X[[b, a]][:, [b, a]] over those entries
+        (:func:`pair_products`), ``cc`` gathers X[c][:, c] over all entries; ``cs_flat``
+        the positions of the cs x cs block in a k x k matrix over entries.
     """
 
     H: np.ndarray
@@ -257,8 +261,11 @@ def _factor_pattern(lay: GroupLayout) -> tuple[np.ndarray, ...]:
     ic[pos], t0[pos] = gcol + r, 1.0
     ident = lay.P.shape[0] == lay.P.shape[1] and np.array_equal(lay.P, np.eye(k))
     n = p + 2 * m
-    ab, ba = np.concatenate([ia, ib]), np.concatenate([ib, ia])
+    cs = np.flatnonzero(s != 0)
+    a, b = ia[cs], ib[cs]
+    ab, ba = np.concatenate([a, b]), np.concatenate([b, a])
     flat = {key: v[:, None] * n + v[None, :] for key, v in (("ab", ab), ("ba", ba), ("cc", ic))}
+    flat.update(cs=cs, a=a, b=b, cs_flat=(cs[:, None] * k + cs[None, :]).ravel())
     return ia, ib, ic, s, t0, tsrc, ident, flat
 
 
@@ -307,13 +314,27 @@ def factored_gradient(fj: FactoredJacobian, Gs: np.ndarray, w: np.ndarray) -> np
 
 def pair_products(X: np.ndarray, Y: np.ndarray, fj: FactoredJacobian) -> np.ndarray:
     """X[a_u, a_v] Y[b_u, b_v] + X[a_u, b_v] Y[b_u, a_v] + X[b_u, a_v] Y[a_u, b_v]
-    + X[b_u, b_v] Y[a_u, a_v] for every pair (u, v) of entries (a, b = ``fj.ia``,
-    ``fj.ib``): the four blocks of X[[a, b]][:, [a, b]] times Y[[b, a]][:, [b, a]],
+    + X[b_u, b_v] Y[a_u, a_v] for every pair (u, v) of the entries with a covariance part
+    (``fj.flat``): the four blocks of X[[a, b]][:, [a, b]] times Y[[b, a]][:, [b, a]],
     summed (two flat gathers)."""
-    u = fj.ia.size
+    u = fj.flat["cs"].size
     P = X.take(fj.flat["ab"]) * Y.take(fj.flat["ba"])
     Q = P[:u] + P[u:]
     return Q[:, :u] + Q[:, u:]
+
+
+def entry_matrix(fj: FactoredJacobian, cov: np.ndarray, mean: np.ndarray, cross: np.ndarray | None = None) -> np.ndarray:
+    """2 (s s' cov + t t' mean + s t' cross + (s t' cross)') over free entries, with
+    ``cov`` (and the rows of ``cross``) over the entries with a covariance part only."""
+    s, t, cs = fj.s, fj.t, fj.flat["cs"]
+    sc = 2.0 * s[cs]
+    out = (2.0 * t)[:, None] * t[None, :] * mean
+    out.ravel()[fj.flat["cs_flat"]] += (sc[:, None] * s[cs][None, :] * cov).ravel()
+    if cross is not None:
+        ys = sc[:, None] * t[None, :] * cross
+        out[cs] += ys
+        out[:, cs] += ys.T
+    return out
 
 
 def factored_information(fj: FactoredJacobian, QW: np.ndarray) -> np.ndarray:
@@ -322,9 +343,7 @@ def factored_information(fj: FactoredJacobian, QW: np.ndarray) -> np.ndarray:
     (Full-information ML sums it over missingness patterns in
     :mod:`invariance.estimate.fiml_kernels`.)
     """
-    cov = 0.5 * pair_products(QW, QW, fj)
-    s, t = fj.s, fj.t
-    info = 2.0 * (s[:, None] * s[None, :] * cov + t[:, None] * t[None, :] * QW.take(fj.flat["cc"]))
+    info = entry_matrix(fj, 0.5 * pair_products(QW, QW, fj), QW.take(fj.flat["cc"]))
     return to_params(fj, None, info)[1]
 
 
@@ -335,12 +354,7 @@ def factored_moment_hessian(fj: FactoredJacobian, QW: np.ndarray, QM: np.ndarray
 
     with M = W C W, w = W d; ``QW`` = K'WK, ``QM`` = K'MK, ``kw`` = K'w.
     """
-    a, b, c = fj.ia, fj.ib, fj.ic
-    cov = pair_products(QW, QM - 0.5 * QW, fj)
-    Wc = QW.take(c, 1)
+    a, b = fj.flat["a"], fj.flat["b"]
+    Wc = QW.take(fj.ic, 1)
     Y = Wc.take(a, 0) * kw[b][:, None] + Wc.take(b, 0) * kw[a][:, None]
-    s, t = fj.s, fj.t
-    Ys = s[:, None] * t[None, :] * Y
-    H = 2.0 * (s[:, None] * s[None, :] * cov + Ys + Ys.T)
-    H += 2.0 * t[:, None] * t[None, :] * QW.take(fj.flat["cc"])
-    return H
+    return entry_matrix(fj, pair_products(QW, QM - 0.5 * QW, fj), QW.take(fj.flat["cc"]), Y)
