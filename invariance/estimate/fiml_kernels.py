@@ -22,12 +22,13 @@ objective in :mod:`invariance.estimate.fiml` keeps the results of one point.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from functools import cached_property
 
 import numpy as np
 
 from ..data.em import PatternMoments
 from .kernels import entry_matrix, pair_products
-from .linalg import pd_inverse_logdet
+from .linalg import factor_inverse, factor_solve, pd_factor
 
 __all__ = ["PatternSplit", "PatternPoint", "pattern_point", "gradient_terms", "information_terms",
            "hessian_terms"]
@@ -102,7 +103,8 @@ class PatternSplit:
 class PatternPoint:
     """One group at one implied (Sigma, mu), in the split order.
 
-    ``value`` is -2 logL; P, G, Y as in the module text; d the mean residuals of the
+    ``value`` is -2 logL; ``la`` the Cholesky factor of Sigma_AA, P (from it, on first
+    use), G, Y as in the module text; d the mean residuals of the
     patterns (K, p), e = B d_k (K, r), U_k' = S_RA,k - G'S_AA,k (stored as U_k', (K, r,
     a)), E_k = B C_k B' with
     C_k = S_k + d_k d_k', and CA = sum_k n_k C_AA,k. The gradient terms are filled by
@@ -110,7 +112,7 @@ class PatternPoint:
     """
 
     value: float
-    P: np.ndarray
+    la: np.ndarray
     G: np.ndarray
     Y: np.ndarray
     d: np.ndarray
@@ -121,6 +123,11 @@ class PatternPoint:
     #: filled by :func:`gradient_terms` and reused by the information and the Hessian:
     #: Gs and w, n_k Y_k, their sum, Y_k e_k, the bases, the Y-tensor
     more: dict = field(default_factory=dict)
+
+    @cached_property
+    def P(self) -> np.ndarray:
+        """Sigma_AA^-1."""
+        return factor_inverse(self.la) if self.la.size else self.la
 
 
 def pattern_point(sp: PatternSplit, sigma: np.ndarray, mu: np.ndarray) -> PatternPoint:
@@ -136,8 +143,8 @@ def pattern_point(sp: PatternSplit, sigma: np.ndarray, mu: np.ndarray) -> Patter
     """
     o, a = sp.order, sp.a
     c = sigma.take(o, 0).take(o, 1)
-    P, logdet_a = pd_inverse_logdet(c[:a, :a]) if a else (np.zeros((0, 0)), 0.0)
-    G = P @ c[:a, a:]
+    la, logdet_a = pd_factor(c[:a, :a]) if a else (np.zeros((0, 0)), 0.0)
+    G = factor_solve(la, c[:a, a:]) if a else np.zeros((0, sp.r))
     Z = c[a:, a:] - c[:a, a:].T @ G
     pad = np.where(sp.mask, (Z + Z.T) / 2, sp.eye)
     logdet = 2.0 * np.log(np.diagonal(np.linalg.cholesky(pad), axis1=1, axis2=2)).sum(axis=1)
@@ -150,9 +157,10 @@ def pattern_point(sp: PatternSplit, sigma: np.ndarray, mu: np.ndarray) -> Patter
     U = bs[:, :, :a]
     E = bs[:, :, a:] - U @ G + e[:, :, None] * e[:, None, :]
     CA = sp.saa_total + (dA.T * sp.n) @ dA
-    value = (sp.const + sp.N * logdet_a + float(sp.n @ logdet) + float(np.vdot(P, CA))
+    trace_a = float(np.trace(factor_solve(la, CA))) if a else 0.0          # tr(P CA)
+    value = (sp.const + sp.N * logdet_a + float(sp.n @ logdet) + trace_a
              + float(np.einsum("k,kij,kij->", sp.n, Y, E)))
-    return PatternPoint(value, P, G, Y, d, e, U, E, CA)
+    return PatternPoint(value, la, G, Y, d, e, U, E, CA)
 
 
 def _wsum(n: np.ndarray, X: np.ndarray) -> np.ndarray:

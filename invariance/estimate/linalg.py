@@ -20,7 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.linalg import lapack as _lapack
 
-__all__ = ["ArrowPartition", "partition", "pd_solve", "pd_inverse_logdet", "arrow_solve", "arrow_inverse", "arrow_min_eigen", "all_above", "lower_triangle"]
+__all__ = ["ArrowPartition", "partition", "pd_solve", "pd_factor", "factor_solve", "factor_inverse", "pd_inverse_logdet", "arrow_solve", "arrow_inverse", "arrow_min_eigen", "all_above", "lower_triangle"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -80,16 +80,32 @@ def all_above(M: np.ndarray, level: float) -> bool:
     return info == 0
 
 
-def pd_inverse_logdet(M: np.ndarray) -> tuple[np.ndarray, float]:
-    """Inverse and log-determinant of a positive-definite M (LAPACK potrf and potri, one
-    factorization); LinAlgError when M is not positive definite."""
+def pd_factor(M: np.ndarray) -> tuple[np.ndarray, float]:
+    """Lower Cholesky factor (upper triangle zero) and log-determinant of a
+    positive-definite M (LAPACK potrf); LinAlgError when M is not positive definite."""
     c = _cho_factor(M)
-    logdet = 2.0 * float(np.log(np.diagonal(c)).sum())
+    return c, 2.0 * float(np.log(np.diagonal(c)).sum())
+
+
+def factor_solve(c: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """M^-1 b from the factor ``c`` of :func:`pd_factor` (LAPACK potrs)."""
+    return _cho_solve(c, b)
+
+
+def factor_inverse(c: np.ndarray) -> np.ndarray:
+    """M^-1 from the factor ``c`` of :func:`pd_factor` (LAPACK potri)."""
     inv, info = _lapack.dpotri(c, lower=1)
     if info != 0:
         raise np.linalg.LinAlgError("matrix not positive definite")
     # potri fills the lower triangle; the upper one is the zeros of the cleaned factor
-    return inv + inv.T - np.diag(np.diagonal(inv)), logdet
+    return inv + inv.T - np.diag(np.diagonal(inv))
+
+
+def pd_inverse_logdet(M: np.ndarray) -> tuple[np.ndarray, float]:
+    """Inverse and log-determinant of a positive-definite M (LAPACK potrf and potri, one
+    factorization); LinAlgError when M is not positive definite."""
+    c, logdet = pd_factor(M)
+    return factor_inverse(c), logdet
 
 
 def _eliminate(H: np.ndarray, part: ArrowPartition, rhs: np.ndarray | None):
