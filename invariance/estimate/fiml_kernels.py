@@ -28,7 +28,7 @@ import numpy as np
 
 from ..data.em import PatternMoments
 from .kernels import entry_matrix, pair_products
-from .linalg import factor_inverse, factor_solve, pd_factor
+from .linalg import factor_solve, pd_factor
 
 __all__ = ["PatternSplit", "PatternPoint", "pattern_point", "gradient_terms", "information_terms",
            "hessian_terms"]
@@ -127,7 +127,7 @@ class PatternPoint:
     @cached_property
     def P(self) -> np.ndarray:
         """Sigma_AA^-1."""
-        return factor_inverse(self.la) if self.la.size else self.la
+        return factor_solve(self.la, np.eye(self.la.shape[0])) if self.la.size else self.la
 
 
 def pattern_point(sp: PatternSplit, sigma: np.ndarray, mu: np.ndarray) -> PatternPoint:
