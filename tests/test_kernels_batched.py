@@ -133,17 +133,20 @@ def test_factored_information_equals_dense_jacobian_contraction(hs, family):
         assert np.allclose(factored_information(fj, gram(fj.H, W)), dense, rtol=1e-10, atol=1e-10)
 
 
+def _fd_hessian(obj, theta, h=1e-6):
+    """Central differences of the analytic gradient."""
+    return np.column_stack([
+        (obj.derivatives(theta + h * e, information=False)[1] - obj.derivatives(theta - h * e, information=False)[1]) / (2 * h)
+        for e in np.eye(theta.size)
+    ])
+
+
 def test_fiml_hessian_second_order_against_finite_differences(hs):
     s = inv.sample_stats(_deleted(hs, 0.2, 12), ITEMS, "school", missing="fiml")
     spec = inv.build_level(STRUCTURES["second_order"], s.names, "scalar")
     obj = FIMLObjective(spec, s)
     theta = _point(spec, s, 9)
-    H = obj.hessian(theta)
-    h = 1e-6
-    fd = np.column_stack([
-        (obj.derivatives(theta + h * e, information=False)[1] - obj.derivatives(theta - h * e, information=False)[1]) / (2 * h)
-        for e in np.eye(spec.n_params)
-    ])
+    H, fd = obj.hessian(theta), _fd_hessian(obj, theta)
     # central differences of the analytic gradient (itself checked against the loop above)
     assert np.allclose(H, fd, rtol=1e-5, atol=1e-6 * np.abs(fd).max())
 
@@ -174,12 +177,7 @@ def test_fiml_kernels_against_loop_and_finite_differences(hs, kind, family):
     assert val == pytest.approx(rv, rel=1e-9, abs=1e-6)
     assert np.allclose(grad, rg, rtol=1e-8, atol=1e-6)
     assert np.allclose(info, ri, rtol=1e-8, atol=1e-6)
-    H = obj.hessian(theta)
-    h = 1e-6
-    fd = np.column_stack([
-        (obj.derivatives(theta + h * e, information=False)[1] - obj.derivatives(theta - h * e, information=False)[1]) / (2 * h)
-        for e in np.eye(spec.n_params)
-    ])
+    H, fd = obj.hessian(theta), _fd_hessian(obj, theta)
     # central differences of the analytic gradient
     assert np.allclose(H, fd, rtol=1e-5, atol=1e-6 * np.abs(fd).max())
 
