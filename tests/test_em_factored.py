@@ -15,7 +15,8 @@ import numpy as np
 import pytest
 from scipy import stats as sst
 
-from invariance.data.em import CACHE, em_saturated, pattern_moments
+from invariance.data.em import em_saturated
+from invariance.data.patterns import CACHE, pattern_moments
 from invariance.data.moments import stats_from_arrays
 from invariance.errors import DataError
 from invariance.data.em_factored import Factored

@@ -15,7 +15,7 @@ from scipy import stats as sst
 
 from invariance import DataError, Structure, build_level, fit, sample_stats
 from invariance.data import em_saturated, missing_patterns, stats_from_arrays
-from invariance.data.em import pattern_moments, pattern_terms
+from invariance.data.patterns import pattern_moments, pattern_terms
 from invariance.estimate import FIMLObjective, MLObjective
 from invariance.estimate.start import start_values
 

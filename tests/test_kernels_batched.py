@@ -16,7 +16,7 @@ from scipy import optimize as sopt
 from scipy import stats as sst
 
 import invariance as inv
-from invariance.data.em import CACHE, missing_patterns, pattern_moments
+from invariance.data.patterns import CACHE, missing_patterns, pattern_moments
 from invariance.effects.latent import compare_latent, latent_moments
 from invariance.estimate import FIMLObjective
 from invariance.estimate.indices import rmsea, rmsea_interval

@@ -272,7 +272,7 @@ def test_saturated_observed_information_equals_expected_at_complete_data_mle(hs)
     # at the complete-data MLE (sample moments) observed and expected information of the
     # saturated normal model coincide (the score's derivative terms in x - xbar vanish)
     from invariance.data import missing_patterns
-    from invariance.data.em import pattern_moments
+    from invariance.data.patterns import pattern_moments
     from invariance.estimate.robust import saturated_information, saturated_observed_information
 
     s = sample_stats(hs, ITEMS[:4])

@@ -1,7 +1,8 @@
 """Data: reading files, missing codes, checks and per-group statistics."""
 
 from .checks import CheckedData, check_data
-from .em import EMResult, Patterns, em_saturated, missing_patterns
+from .em import EMResult, em_saturated
+from .patterns import Patterns, missing_patterns
 from .mcar import LittleTest, little_mcar, missing_report
 from .moments import GroupStats, MissingInfo, SampleStats, sample_stats, stats_from_arrays
 from .read import apply_missing, file_sha256, read_table

@@ -5,7 +5,7 @@ covariance matrix; its ML estimates under MAR come from the EM algorithm (Dempst
 Laird & Rubin 1977; the normal-data form in Little & Rubin 2002, chapter 11). The
 maximized log-likelihood is the reference logL_H1 of the full-information test statistic
 T = -2 (logL_model - logL_H1) (METHODS section 6). The pattern statistics it works on
-come from :mod:`invariance.data.patterns` (re-exported here).
+come from :mod:`invariance.data.patterns`.
 """
 
 from __future__ import annotations
@@ -15,34 +15,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from .em_factored import Factored, Point
-from .patterns import (  # re-exported: the pattern statistics were defined here before
-    CACHE,
-    ContentCache,
-    PatternMoments,
-    Patterns,
-    missing_patterns,
-    pattern_loglik,
-    pattern_loglik_moments,
-    pattern_moments,
-    pattern_moments_by_key,
-    pattern_terms,
-)
+from .patterns import CACHE, PatternMoments, Patterns, pattern_moments_by_key
 
-__all__ = [
-    "Patterns",
-    "missing_patterns",
-    "PatternMoments",
-    "pattern_moments",
-    "pattern_moments_by_key",
-    "pattern_terms",
-    "pattern_loglik",
-    "pattern_loglik_moments",
-    "ContentCache",
-    "CACHE",
-    "EMResult",
-    "em_saturated",
-    "saturated_with_patterns",
-]
+__all__ = ["EMResult", "em_saturated", "saturated_with_patterns"]
 
 
 @dataclass(frozen=True, eq=False)

@@ -19,7 +19,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special as _sp
 
-from .em import PatternMoments, pattern_moments, pattern_terms, saturated_with_patterns
+from .em import saturated_with_patterns
+from .patterns import PatternMoments, pattern_moments, pattern_terms
 
 __all__ = ["LittleTest", "little_mcar", "little_statistic", "missing_report"]
 

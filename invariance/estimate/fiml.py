@@ -21,7 +21,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..data.em import PatternMoments, em_saturated, pattern_moments
+from ..data.em import em_saturated
+from ..data.patterns import PatternMoments, pattern_moments
 from ..data.moments import SampleStats
 from ..model.spec import ModelSpec
 from .fiml_kernels import PatternSplit, gradient_terms, hessian_terms, information_terms, pattern_point

@@ -26,7 +26,7 @@ from functools import cached_property
 
 import numpy as np
 
-from ..data.em import PatternMoments
+from ..data.patterns import PatternMoments
 from .kernels import entry_matrix, pair_products
 from .linalg import factor_solve, pd_factor
 

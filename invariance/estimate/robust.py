@@ -37,7 +37,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats as _st
 
-from ..data.em import CACHE, PatternMoments, Patterns, missing_patterns, pattern_moments, pattern_terms
+from ..data.patterns import CACHE, PatternMoments, Patterns, missing_patterns, pattern_moments, pattern_terms
 from ..data.moments import GroupStats, SampleStats
 from ..errors import DataError, EstimationError
 from ..model.spec import ModelSpec
@@ -216,7 +216,7 @@ def _h1_group(g: GroupStats) -> tuple:
     """(x, patterns, V, Gamma) of one group.
 
     V and Gamma are cached by the content of the cases and the H1 moments
-    (:data:`invariance.data.em.CACHE`), whatever the order of the items: levels, refits
+    (:data:`invariance.data.patterns.CACHE`), whatever the order of the items: levels, refits
     and reordered statistics of the same group share one computation.
     """
     x = _group_raw(g)

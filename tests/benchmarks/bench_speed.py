@@ -35,7 +35,7 @@ import pandas as pd
 from threadpoolctl import threadpool_limits
 
 import invariance as inv
-from invariance.data.em import CACHE
+from invariance.data.patterns import CACHE
 from invariance.data.simulate import draw_group, implied_from_matrices
 from invariance.pipeline import stages as _stages
 from invariance.pipeline.runner import run_stages
