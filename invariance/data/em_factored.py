@@ -87,9 +87,8 @@ class Factored:
     @classmethod
     def of(cls, pm: PatternMoments) -> "Factored":
         """The factored sums of pattern statistics (every pattern observes an item)."""
-        every = pm.observed.all(axis=0)
-        order = np.concatenate([np.flatnonzero(every), np.flatnonzero(~every)])
-        a, p = int(every.sum()), every.size
+        blk = pm.blocks                                   # the split A, R of the pattern statistics
+        order, a, p = blk.order, blk.n_always, blk.order.size
         means, n = pm.means[:, order], pm.counts
         aug = np.empty((n.size, p + 1, p + 1))  # n_k [[1, m'], [m, S + m m']] per pattern
         aug[:, 0, 0] = n
@@ -100,9 +99,8 @@ class Factored:
         mean_a = szz[0, 1:] / tot
         cov_a = szz[1:, 1:] / tot - np.outer(mean_a, mean_a)
         logdet_a = 2.0 * np.log(np.diag(np.linalg.cholesky(cov_a))).sum() if a else 0.0
-        o = pm.observed[:, order[a:]]
-        ll_const = -0.5 * (tot * a * (_LOG2PI + 1.0) + tot * logdet_a + float(n @ o.sum(axis=1)) * _LOG2PI)
-        return cls(order, np.argsort(order), a, n, aug[:, :q, :q], aug[:, :q, q:], aug[:, q:, q:], o[:, :, None] & o[:, None, :],
+        ll_const = -0.5 * (tot * a * (_LOG2PI + 1.0) + tot * logdet_a + float(n @ pm.observed[:, order[a:]].sum(axis=1)) * _LOG2PI)
+        return cls(order, blk.back, a, n, aug[:, :q, :q], aug[:, :q, q:], aug[:, q:, q:], blk.oo_rest,
                    np.linalg.inv(szz), ll_const, mean_a, cov_a, np.sqrt(np.diag(cov_a)), np.eye(p - a), tot,
                    _duplication(p - a))
 

@@ -83,15 +83,12 @@ class PatternSplit:
 
     @classmethod
     def of(cls, pm: PatternMoments) -> "PatternSplit":
-        every = pm.observed.all(axis=0)
-        order = np.concatenate([np.flatnonzero(every), np.flatnonzero(~every)])
-        a = int(every.sum())
-        rest = pm.observed[:, order[a:]]
-        mask = rest[:, :, None] & rest[:, None, :]
-        eye = np.eye(rest.shape[1])[None] * ~mask
+        blk = pm.blocks                                   # the split A, R of the pattern statistics
+        order, a, mask = blk.order, blk.n_always, blk.oo_rest
+        eye = np.eye(mask.shape[1])[None] * ~mask
         covs = np.ascontiguousarray(pm.covs[:, order][:, :, order])
         n = pm.counts
-        return cls(order, np.argsort(order), a, rest.shape[1], n, float(n.sum()),
+        return cls(order, blk.back, a, mask.shape[1], n, float(n.sum()),
                    float(n @ (pm.observed.sum(axis=1) * _LOG2PI)), mask, eye,
                    pm.means[:, order], pm.observed[:, order].astype(float),
                    np.tensordot(n, covs[:, :a, :a], axes=1), np.ascontiguousarray(covs[:, :a]),
@@ -104,11 +101,10 @@ class PatternPoint:
     """One group at one implied (Sigma, mu), in the split order.
 
     ``value`` is -2 logL; ``la`` the Cholesky factor of Sigma_AA, P (from it, on first
-    use), G, Y as in the module text; d the mean residuals of the
-    patterns (K, p), e = B d_k (K, r), U_k' = S_RA,k - G'S_AA,k (stored as U_k', (K, r,
-    a)), E_k = B C_k B' with
-    C_k = S_k + d_k d_k', and CA = sum_k n_k C_AA,k. The gradient terms are filled by
-    :func:`gradient_terms`.
+    use), G, Y as in the module text; d the mean residuals of the patterns (K, p),
+    e = B d_k (K, r), U_k' = S_RA,k - G'S_AA,k (stored as U_k', (K, r, a)),
+    E_k = B C_k B' with C_k = S_k + d_k d_k', and CA = sum_k n_k C_AA,k. The gradient
+    terms are filled by :func:`gradient_terms`.
     """
 
     value: float
@@ -231,7 +227,8 @@ def _y_tensor(sp: PatternSplit, pt: PatternPoint) -> np.ndarray:
 def information_terms(sp: PatternSplit, pt: PatternPoint, fj) -> tuple[np.ndarray, np.ndarray]:
     """(cov, mean) of the expected information: over the entries with a covariance part
     (``fj.flat``), cov[u, v] = sum_k n_k (Q_k[a_u, a_v] Q_k[b_u, b_v] + Q_k[a_u, b_v]
-    Q_k[b_u, a_v]); over all free entries mean[u, v] = Qbar[c_u, c_v], Qbar = sum_k n_k Q_k, with Q_k = K'W_kK = Q0 + V'Y_kV.
+    Q_k[b_u, a_v]); over all free entries mean[u, v] = Qbar[c_u, c_v]; Qbar = sum_k n_k Q_k
+    with Q_k = K'W_kK = Q0 + V'Y_kV.
 
     The cross terms with Q0 are single-matrix products; the Y part is
     Phi T (Phi + Phi~)' with Phi_u = v_{a_u} (x) v_{b_u}, Phi~_u = v_{b_u} (x) v_{a_u}.
