@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .em_factored import Factored, Point
-from .patterns import CACHE, PatternMoments, Patterns, pattern_moments_by_key
+from .patterns import CACHE, PatternMoments, pattern_moments_by_key
 
 __all__ = ["EMResult", "em_saturated", "saturated_with_patterns"]
 
@@ -39,7 +39,6 @@ class EMResult:
 def em_saturated(
     x: np.ndarray,
     *,
-    patterns: Patterns | None = None,
     max_iter: int = 2000,
     tol: float = 1e-10,
 ) -> EMResult:
@@ -58,8 +57,6 @@ def em_saturated(
     ----------
     x
         (n, p) data, NaN where missing; every row must observe at least one item.
-    patterns
-        Accepted for compatibility; the pattern statistics come from the cache.
     max_iter, tol
         Limit on EM updates; convergence when an EM update moves no mean or covariance
         entry by more than ``tol`` relative to the item variances. The estimates

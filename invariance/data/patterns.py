@@ -23,13 +23,10 @@ __all__ = [
     "pattern_moments",
     "pattern_moments_by_key",
     "pattern_terms",
-    "pattern_loglik",
-    "pattern_loglik_moments",
     "ContentCache",
     "CACHE",
 ]
 
-_LOG2PI = float(np.log(2 * np.pi))
 
 
 @dataclass(frozen=True, eq=False)
@@ -292,23 +289,3 @@ def _schur_terms(b: _Blocks, cov: np.ndarray):
     W[:, :na, na:] = -YG.transpose(0, 2, 1)
     W[:, na:, na:] = Y
     return W[:, b.back[:, None], b.back], logdet
-
-
-def pattern_loglik_moments(pm: PatternMoments, mean: np.ndarray, cov: np.ndarray) -> float:
-    """Normal log-likelihood of incomplete data from its pattern statistics.
-
-    sum_k -n_k/2 [p_k log 2pi + log|Sigma_oo| + tr(Sigma_oo^-1 (S_k + d_k d_k'))].
-    """
-    W, logdet, d = pattern_terms(pm, mean, cov)
-    quad = np.einsum("kij,kij->k", W, pm.covs) + np.einsum("ki,kij,kj->k", d, W, d)
-    pk = pm.observed.sum(axis=1)
-    return float(-0.5 * pm.counts @ (pk * _LOG2PI + logdet + quad))
-
-
-def pattern_loglik(x: np.ndarray, pat: Patterns | None, mean: np.ndarray, cov: np.ndarray) -> float:
-    """Normal log-likelihood of incomplete data: every case on its observed items.
-
-    ``pat`` is accepted for compatibility and not needed: the pattern statistics of
-    ``x`` come from the cache.
-    """
-    return pattern_loglik_moments(pattern_moments(x), mean, cov)
